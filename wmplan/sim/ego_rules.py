@@ -1,0 +1,125 @@
+"""A rule-based driver for the ego: IDM car following, MOBIL lane choice, a merge rule and lane-keeping steering.
+
+It uses no prediction; it is the non-learning baseline of the planner comparisons and one of the behaviour
+policies that generate datasets. Vectorised over scenes.
+
+* Longitudinal: IDM (Treiber et al. 2000) with the ego's own traits (``params.EGO_RULE_TRAITS``, common
+  practice), toward the nearest vehicle ahead in the ego's lane or in the lane it is moving to, and toward the end
+  of its lane if that lane ends.
+* Lane choice: if the ego's lane ends within the merge zone, it moves to the merge lane as soon as the MOBIL
+  safety criterion (Kesting et al. 2007) holds for the new follower; while waiting it also follows the vehicle
+  ahead in the target lane, so it slots in behind it. Elsewhere it overtakes by the MOBIL incentive with
+  politeness 0.2 and threshold 0.2 m/s^2.
+* Lateral: steer toward a heading that closes the lateral error to the target lane centre (a proportional law
+  on lateral and heading error, common practice), through the kinematic bicycle's yaw-rate relation.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from wmplan.sim.behaviour import idm_accel, mobil_incentive, mobil_safe
+from wmplan.sim.engine import lane_occupancy
+from wmplan.sim.params import EGO_RULE_TRAITS, T_A, T_B, T_S0, T_T, T_V0, SimParams
+from wmplan.sim.state import EGO, TrafficState
+
+POLITENESS = 0.2
+THRESHOLD_MPS2 = 0.2
+SAFE_DECEL_MPS2 = 4.0
+LATERAL_GAIN = 0.35  # rad of heading per metre of lateral error per (m/s) scale, see _steer
+HEADING_GAIN_PER_S = 2.5
+MAX_HEADING_RAD = 0.12
+
+
+def _ego_idm(params: SimParams, v, gap, v_lead):
+    t = EGO_RULE_TRAITS
+    return idm_accel(v, params.speed_limit_mps, gap, v - v_lead, t["time_headway_s"], t["min_gap_m"],
+                     t["max_accel_mps2"], t["comfort_decel_mps2"])
+
+
+def _leaders_followers(state: TrafficState, params: SimParams):
+    """Nearest vehicle ahead / behind the ego in every lane: gaps (S, L) and slots (S, L)."""
+    x, ln = state.x_m, state.length_m
+    occ = lane_occupancy(params, state.y_m, state.width_m, state.valid, state.lane)  # (S, V, L)
+    occ[:, EGO, :] = False
+    dx = (x - x[:, :1])[..., None]  # (S, V, 1)
+    half = (0.5 * (ln + ln[:, :1]))[..., None]
+    ahead = np.where(occ & (dx > 0), dx - half, np.inf)
+    behind = np.where(occ & (dx <= 0), -dx - half, np.inf)
+    return ahead.min(axis=1), ahead.argmin(axis=1), behind.min(axis=1), behind.argmin(axis=1)
+
+
+def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
+    """Actions (S, 2) of the rule-based ego for every scene: (accel_mps2, steer_rad), within the limits."""
+    s_n = state.num_scenes
+    rows = np.arange(s_n)
+    x, y = state.x_m[:, EGO], state.y_m[:, EGO]
+    v = state.ego_speed_mps
+    lane = params.lane_of(y)
+    g_ahead, i_ahead, g_behind, i_behind = _leaders_followers(state, params)
+    vx = state.vx_mps
+
+    def lead(l_idx):
+        li = np.clip(l_idx, 0, params.num_lanes - 1)
+        g = g_ahead[rows, li]
+        return g, np.where(np.isfinite(g), vx[rows, i_ahead[rows, li]], 0.0)
+
+    def follower_acc(l_idx, gap_to_ego_ok=True):
+        """(accel now, accel if the ego moved in front) of the nearest follower in lane l_idx."""
+        li = np.clip(l_idx, 0, params.num_lanes - 1)
+        g = g_behind[rows, li]
+        f = i_behind[rows, li]
+        has = np.isfinite(g)
+        tr = state.traits[rows, f]
+        vf = vx[rows, f]
+        gl, vl = lead(li)
+        now = idm_accel(vf, tr[:, T_V0], gl + g + state.length_m[:, EGO], vf - vl, tr[:, T_T], tr[:, T_S0],
+                        tr[:, T_A], tr[:, T_B])
+        after = idm_accel(vf, tr[:, T_V0], g, vf - v, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B])
+        return np.where(has, now, 0.0), np.where(has, after, 0.0), has, g
+
+    d_end = params.distance_to_lane_end(lane, x) - 0.5 * state.length_m[:, EGO]
+    g_own, v_own = lead(lane)
+    a_now = np.minimum(_ego_idm(params, v, g_own, v_own), _ego_idm(params, v, d_end, 0.0))
+
+    # --- lane choice ---
+    target = lane.copy()
+    best = np.full(s_n, -np.inf)
+    merge_to = params.merge_target[lane]
+    must_merge = (merge_to >= 0) & (params.distance_to_lane_end(lane, x) < params.merge_zone_m)
+    for d in (-1, 1):
+        tl = lane + d
+        ok_lane = params.lane_exists(tl, x) & params.lane_exists(tl, x + 30.0)
+        g_t, v_t = lead(tl)
+        a_after = _ego_idm(params, v, g_t, v_t)
+        d_end_t = params.distance_to_lane_end(np.clip(tl, 0, params.num_lanes - 1), x)
+        a_after = np.minimum(a_after, _ego_idm(params, v, d_end_t - 0.5 * state.length_m[:, EGO], 0.0))
+        n_now, n_after, has_n, g_n = follower_acc(tl)
+        o_now, o_after, _, _ = follower_acc(lane)  # old follower: approximate gain is small; kept for the rule
+        safe = (mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n) & (g_t > 2.0) & (g_n > 2.0)
+        inc = mobil_incentive(a_now, a_after, n_now, n_after, 0.0, 0.0, POLITENESS)
+        forced = must_merge & (merge_to == tl)
+        inc = np.where(forced, np.inf, inc)
+        # never move into a lane that ends soon unless forced
+        avoid = (d_end_t < params.merge_zone_m) & ~forced
+        choose = ok_lane & safe & ~avoid & (inc > THRESHOLD_MPS2) & (inc > best)
+        target = np.where(choose, tl, target)
+        best = np.where(choose, inc, best)
+        # while waiting to merge, fall in behind the target lane's vehicle alongside
+        waiting = forced & ~choose & ok_lane
+        a_now = np.where(waiting, np.minimum(a_now, _ego_idm(params, v, np.maximum(g_t, 0.5), v_t)), a_now)
+    # Keep a lane change going once the ego's centre has left its lane's middle.
+    accel = np.clip(a_now, -params.max_brake_mps2, params.max_accel_mps2)
+    steer = steer_to_lane(state, params, target)
+    return np.stack([accel, steer], axis=-1)
+
+
+def steer_to_lane(state: TrafficState, params: SimParams, target_lane: np.ndarray) -> np.ndarray:
+    """Steering angle (S,) that brings the ego to the centre of ``target_lane`` smoothly, within the limits."""
+    y, heading = state.y_m[:, EGO], state.heading_rad[:, EGO]
+    v = np.maximum(state.ego_speed_mps, 1.0)
+    err = params.lane_centre_m(target_lane) - y
+    heading_des = np.clip(np.arctan(LATERAL_GAIN * err * 10.0 / np.maximum(v, 5.0)), -MAX_HEADING_RAD, MAX_HEADING_RAD)
+    yaw_rate = HEADING_GAIN_PER_S * (heading_des - heading)
+    steer = np.arctan(params.wheelbase_m * yaw_rate / v)
+    return np.clip(steer, -params.max_steer_rad, params.max_steer_rad)

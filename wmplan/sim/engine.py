@@ -1,0 +1,475 @@
+"""The batched engine: one pure ``step`` that advances every scene by one time step with vectorised numpy.
+
+Letters in shape comments: S scenes, V vehicle slots, L lanes. ``dx[s, i, j] = x[s, j] - x[s, i]``: row i looks
+at vehicle j. No loop in this module runs over vehicles or scenes; the only loops are over the (at most six)
+lanes or the two lane-change directions.
+
+Order of one step:
+1. neighbours: for each vehicle the nearest leader and follower in its own lane and the lanes beside it;
+2. car following (IDM) with the end of an ending lane as a standing obstacle;
+3. yielding: drivers with a merging vehicle just ahead in the next lane decide (a random event, drawn when the
+   interaction begins) whether to let it in, and if so follow it as a leader;
+4. hard-braking events;
+5. lane changes (MOBIL; a lane that ends makes the change mandatory, still subject to the safety criterion);
+6. motion: ballistic longitudinal update, smooth lateral motion for traffic, kinematic bicycle for the ego;
+7. vehicles leave and enter at the ends of the simulated stretch; ego collision, off-road and goal checks.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from wmplan import rng
+from wmplan.sim.behaviour import MIN_GAP_FLOOR_M, mobil_incentive, mobil_safe
+from wmplan.sim.bicycle import bicycle_step, distance_and_speed
+from wmplan.sim.collision import box_corners, boxes_overlap
+from wmplan.sim.params import (
+    LANE_CHANGE_COOLDOWN_S,
+    MANDATORY_BIAS_MPS2,
+    MAX_PHYSICAL_DECEL_MPS2,
+    T_A,
+    T_B,
+    T_BSAFE,
+    T_P,
+    T_S0,
+    T_T,
+    T_TH,
+    T_V0,
+    T_YIELD,
+    SimParams,
+)
+from wmplan.sim.spawn import draw_size, draw_traits
+from wmplan.sim.state import EGO, TrafficState
+
+LATERAL_MARGIN_M = 0.2  # two vehicles interact longitudinally if their bodies come this close sideways
+BAND_EPS_M = 0.05  # a body must reach this far into a lane to occupy it
+SETTLED_M = 0.4  # a traffic vehicle may start a new lane change once this close to its lane centre
+LATERAL_GAIN_PER_S = 1.2  # proportional gain of the traffic's lateral motion toward the lane centre
+MIN_SPAWN_GAP_M = 10.0
+SPAWN_PERIOD_STEPS = 5  # entries are attempted every 5 steps (0.5 s at 0.1 s steps)
+# Steps between lane-change decisions of a driver (0.6 s at 0.1 s steps); common practice, no source.
+LANE_DECISION_PERIOD_STEPS = 6
+
+
+@dataclass(frozen=True, eq=False)
+class StepInfo:
+    """What happened during one step, per scene (S,) unless stated."""
+
+    collision: np.ndarray
+    offroad: np.ndarray
+    goal: np.ndarray
+    accel_mps2: np.ndarray  # (S, V) longitudinal acceleration applied (ego: the clipped action)
+    steer_rad: np.ndarray  # (S,) ego steering angle applied after clipping and rate limiting
+
+
+def _offsets(a: np.ndarray) -> np.ndarray:
+    """Row offsets (S, 1) that turn per-scene slot indices into flat indices of an (S, V, ...) array."""
+    return (np.arange(a.shape[0]) * a.shape[1])[:, None]
+
+
+def _gather(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """a[s, idx[s, i]] for (S, V) arrays (idx must hold valid slots; callers mask the result)."""
+    return np.take(a, _offsets(a) + idx)
+
+
+def _gather_rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """a[s, idx[s, i], :] for (S, V, K) arrays."""
+    return np.take(a.reshape(a.shape[0] * a.shape[1], -1), _offsets(a) + idx, axis=0)
+
+
+class _Order:
+    """Vehicles of each scene sorted by position, for nearest-neighbour queries in O(V L) per scene.
+
+    ``next_pos(mask)`` gives, for every vehicle (by slot) and lane, the sorted position of the nearest vehicle
+    ahead (by centre position) among those marked in ``mask`` (S, V, L), or V if none; ``prev_pos`` the
+    nearest behind, or -1. Ties in position are broken by slot number (a stable sort), as a plain loop would.
+    """
+
+    def __init__(self, x_m: np.ndarray, valid: np.ndarray):
+        v_n = x_m.shape[1]
+        self.v_n = v_n
+        self.order = np.argsort(np.where(valid, x_m, np.inf), axis=1, kind="stable")  # (S, V) sorted -> slot
+        self.rank = np.empty_like(self.order)  # slot -> sorted position
+        np.put_along_axis(self.rank, self.order, np.arange(v_n)[None, :], axis=1)
+        self._ar = np.arange(v_n)[None, :, None]
+
+    def next_pos(self, mask: np.ndarray) -> np.ndarray:
+        src = np.where(_gather_rows(mask, self.order), self._ar, self.v_n)
+        suf = np.minimum.accumulate(src[:, ::-1], axis=1)[:, ::-1]
+        nxt = np.concatenate([suf[:, 1:], np.full_like(suf[:, :1], self.v_n)], axis=1)  # strictly after
+        return _gather_rows(nxt, self.rank)
+
+    def prev_pos(self, mask: np.ndarray) -> np.ndarray:
+        src = np.where(_gather_rows(mask, self.order), self._ar, -1)
+        pre = np.maximum.accumulate(src, axis=1)
+        prv = np.concatenate([np.full_like(pre[:, :1], -1), pre[:, :-1]], axis=1)  # strictly before
+        return _gather_rows(prv, self.rank)
+
+    def slot_of(self, pos: np.ndarray) -> np.ndarray:
+        """(S, V) sorted positions -> slots, -1 where the position is out of range (no neighbour)."""
+        found = (pos >= 0) & (pos < self.v_n)
+        return np.where(found, _gather(self.order, np.where(found, pos, 0)), -1)
+
+
+def _pick(nb: np.ndarray, lane: np.ndarray) -> np.ndarray:
+    """nb[s, i, lane[s, i]] for (S, V, L) neighbour tables."""
+    s_n, v_n, l_n = nb.shape
+    flat = (_offsets(nb) + np.arange(v_n)[None, :]) * l_n + np.clip(lane, 0, l_n - 1)
+    return np.take(nb, flat)
+
+
+def _gap_to(x, length, i_slot_x, i_len, j_slot, ahead: bool):
+    """Bumper-to-bumper gap from each vehicle to neighbour slot j (inf where j = -1)."""
+    has = j_slot >= 0
+    js = np.where(has, j_slot, 0)
+    xj, lj = _gather(x, js), _gather(length, js)
+    gap = (xj - i_slot_x) if ahead else (i_slot_x - xj)
+    return np.where(has, gap - 0.5 * (lj + i_len), np.inf), js
+
+
+class _Drivers:
+    """Contiguous (S, V) arrays of the IDM traits, with 1 / (2 sqrt(a b)) worked out once per step."""
+
+    def __init__(self, v0, t, s0, a, c):
+        self.v0, self.t, self.s0, self.a, self.c = v0, t, s0, a, c
+
+    @classmethod
+    def of(cls, trc: np.ndarray) -> _Drivers:
+        return cls(trc[T_V0], trc[T_T], trc[T_S0], trc[T_A], 0.5 / np.sqrt(trc[T_A] * trc[T_B]))
+
+    def take(self, idx: np.ndarray) -> _Drivers:
+        return _Drivers(*(_gather(a, idx) for a in (self.v0, self.t, self.s0, self.a, self.c)))
+
+
+def _idm(v, d: _Drivers, gap, v_lead):
+    """IDM acceleration; the same law as :func:`behaviour.idm_accel`, with s* = s0 + max(0, v T + v dv c)."""
+    s_star = d.s0 + np.maximum(0.0, v * (d.t + (v - v_lead) * d.c))
+    r = v / d.v0
+    r *= r
+    inter = s_star / np.maximum(gap, MIN_GAP_FLOOR_M)
+    inter *= inter
+    return d.a * (1.0 - r * r - inter)
+
+
+def _lane_end_gap(params: SimParams, lane: np.ndarray, x: np.ndarray, length: np.ndarray) -> np.ndarray:
+    return params.distance_to_lane_end(lane, x) - 0.5 * length
+
+
+def lane_occupancy(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
+                   lane: np.ndarray | None = None) -> np.ndarray:
+    """(S, V, L) True where a vehicle's body reaches into lane l, or (given ``lane``) l is the lane it is in or
+    moving to: a driver who has begun a lane change is visible in the target lane at once, as an indicator is."""
+    lanes = np.arange(params.num_lanes)
+    lo = lanes * params.lane_width_m
+    hw = 0.5 * width_m[..., None]
+    yy = y_m[..., None]
+    occ = (yy + hw > lo + BAND_EPS_M) & (yy - hw < lo + params.lane_width_m - BAND_EPS_M)
+    if lane is not None:
+        occ |= lane[..., None] == lanes
+    return valid[..., None] & occ
+
+
+def mergers(params: SimParams, state: TrafficState) -> tuple[np.ndarray, np.ndarray]:
+    """(S, V) whether each vehicle must leave its ending lane soon, and the lane it must merge into."""
+    lane = state.lane.copy()
+    lane[:, EGO] = params.lane_of(state.y_m[:, EGO])
+    d_end = params.distance_to_lane_end(lane, state.x_m)
+    is_merger = state.valid & (d_end < params.merge_zone_m) & (params.merge_target[lane] >= 0)
+    return is_merger, params.merge_target[lane]
+
+
+def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[TrafficState, StepInfo]:
+    """Advance every scene by one step.
+
+    Args:
+        state: the current batched state (S scenes, V slots).
+        action: ego action per scene, shape (S, 2): (acceleration m/s^2, front steering angle rad). Clipped to the
+            scenario's limits, and the steering angle to the steering-rate limit.
+        params: the scenario's arrays.
+
+    Returns:
+        The new state and a :class:`StepInfo`.
+    """
+    action = np.asarray(action, dtype=np.float64)
+    if action.shape != (state.num_scenes, 2):
+        raise ValueError(f"action must have shape ({state.num_scenes}, 2) (accel_mps2, steer_rad), got {action.shape}")
+    dt = params.dt_s
+    s_n, v_n = state.x_m.shape
+    valid = state.valid
+    x, y, vx, length, width, lane, tr = state.x_m, state.y_m, state.vx_mps, state.length_m, state.width_m, \
+        state.lane, state.traits
+    is_traffic = valid.copy()
+    is_traffic[:, EGO] = False
+    trc = np.moveaxis(tr, -1, 0).copy()  # (NT, S, V) contiguous trait planes
+    drv = _Drivers.of(trc)
+
+    # --- 1. neighbours ---
+    order = _Order(x, valid)
+    occ = lane_occupancy(params, y, width, valid, lane)  # (S, V, L)
+    nxt = order.next_pos(occ)  # (S, V, L) nearest occupant ahead in each lane (sorted position)
+    # Own leader: the nearest over all lanes this vehicle occupies (body or intent).
+    lead_pos = np.where(occ[..., 0], nxt[..., 0], v_n)
+    for ln in range(1, params.num_lanes):
+        lead_pos = np.minimum(lead_pos, np.where(occ[..., ln], nxt[..., ln], v_n))
+    lead_gap, lead_idx = _gap_to(x, length, x, length, order.slot_of(lead_pos), ahead=True)
+    has_lead = np.isfinite(lead_gap)
+    v_lead = np.where(has_lead, _gather(vx, lead_idx), 0.0)
+
+    # --- 2. car following ---
+    acc = _idm(vx, drv, lead_gap, v_lead)
+    if params.lane_ends_on_road.any():
+        acc = np.minimum(acc, _idm(vx, drv, _lane_end_gap(params, lane, x, length), 0.0))
+
+    # --- 3. yielding to merging vehicles ---
+    is_merger, merge_to = mergers(params, state)
+    ys = np.zeros((s_n, v_n), dtype=np.int8)
+    if is_merger.any():
+        m_occ = is_merger[..., None] & (merge_to[..., None] == np.arange(params.num_lanes))  # (S, V, L)
+        p_slot = order.slot_of(_pick(order.next_pos(m_occ), lane))
+        p_gap, p_idx = _gap_to(x, length, x, length, p_slot, ahead=True)
+        p_dx = _gather(x, p_idx) - x
+        has_partner = (p_slot >= 0) & (p_dx < params.yield_window_m) & is_traffic & ~is_merger
+        ys = np.where(has_partner, state.yield_state, 0).astype(np.int8)
+        new_s, new_v = np.nonzero(has_partner & (state.yield_state == 0))
+        if new_s.size:  # interactions that begin now: draw the decision
+            u = rng.uniform(rng.combine(state.key[new_s], state.step[new_s], rng.STREAM_YIELD), state.vehicle_id[new_s, new_v])
+            ys[new_s, new_v] = np.where(u < trc[T_YIELD, new_s, new_v], 1, 2)
+        a_yield = _idm(vx, drv, np.maximum(np.where(has_partner, p_gap, np.inf), trc[T_S0]),
+                       np.where(has_partner, _gather(vx, p_idx), 0.0))
+        a_yield = np.maximum(a_yield, -trc[T_BSAFE])
+        acc = np.where(ys == 1, np.minimum(acc, a_yield), acc)
+
+    # --- 4. hard-braking events ---
+    timer = np.maximum(state.brake_timer_s - dt, 0.0)
+    decel = state.brake_decel_mps2
+    if params.brake_prob_per_step > 0.0:
+        ev_key = rng.combine(state.key, state.step, rng.STREAM_BRAKE_START)[:, None]
+        u_brake = rng.uniform(ev_key, state.vehicle_id)
+        starts = is_traffic & (timer <= 0.0) & (u_brake < params.brake_prob_per_step) & (vx > 5.0)
+        if starts.any():
+            ss, sv = np.nonzero(starts)
+            size_key = rng.combine(state.key[ss], state.step[ss], rng.STREAM_BRAKE_SIZE, state.vehicle_id[ss, sv])
+            m, sd, lo, hi = params.brake_decel
+            decel = decel.copy()
+            decel[ss, sv] = np.clip(m + sd * rng.normal(size_key, 0), lo, hi)
+            m, sd, lo, hi = params.brake_duration
+            timer[ss, sv] = np.clip(m + sd * rng.normal(size_key, 1), lo, hi)
+    acc = np.where(timer > 0.0, np.minimum(acc, -decel), acc)
+    acc = np.maximum(acc, -MAX_PHYSICAL_DECEL_MPS2)
+
+    # --- 5. lane changes (MOBIL) ---
+    cooldown = np.maximum(state.cooldown_s - dt, 0.0)
+    settled = np.abs(y - params.lane_centre_m(lane)) < SETTLED_M
+    may_change = is_traffic & settled & (cooldown <= 0.0)
+    d_end_own = params.distance_to_lane_end(lane, x)
+    best_inc = np.full((s_n, v_n), -np.inf)
+    best_dir = np.zeros((s_n, v_n), dtype=np.int64)
+    tr_foll = None
+    for d in (-1, 1):
+        # Drivers reconsider their lane every LANE_DECISION_PERIOD_STEPS, to the right and to the left at
+        # different steps: two drivers on either side of a lane never claim the same gap in the same step (the
+        # intent is visible to both from the next step on).
+        phase = 0 if d < 0 else LANE_DECISION_PERIOD_STEPS // 2
+        deciding = (state.step % LANE_DECISION_PERIOD_STEPS) == phase
+        if not deciding.any():
+            continue
+        target = lane + d
+        tclip = np.clip(target, 0, params.num_lanes - 1)
+        d_end_t = params.distance_to_lane_end(tclip, x)
+        allowed = params.lane_exists(target, x) & ((d_end_t >= params.merge_zone_m) | (d_end_t > d_end_own + 1.0))
+        cand = may_change & allowed & deciding[:, None]
+        if not cand.any():
+            continue
+        if tr_foll is None:  # followers are needed only on the steps where drivers reconsider their lane
+            prv = order.prev_pos(occ)
+            foll_pos = np.where(occ[..., 0], prv[..., 0], -1)
+            for ln in range(1, params.num_lanes):
+                foll_pos = np.maximum(foll_pos, np.where(occ[..., ln], prv[..., ln], -1))
+            foll_gap, foll_idx = _gap_to(x, length, x, length, order.slot_of(foll_pos), ahead=False)
+            has_foll = np.isfinite(foll_gap)
+            v_foll = np.where(has_foll, _gather(vx, foll_idx), 0.0)
+            tr_foll = drv.take(foll_idx)
+            a_o = np.where(has_foll, _idm(v_foll, tr_foll, foll_gap, vx), 0.0)
+            a_o_after = np.where(has_foll, _idm(v_foll, tr_foll, foll_gap + lead_gap + length, v_lead), 0.0)
+        nl_gap, nl_idx = _gap_to(x, length, x, length, order.slot_of(_pick(nxt, tclip)), ahead=True)
+        nf_gap, nf_idx = _gap_to(x, length, x, length, order.slot_of(_pick(prv, tclip)), ahead=False)
+        has_nf = np.isfinite(nf_gap)
+        v_nl = np.where(np.isfinite(nl_gap), _gather(vx, nl_idx), 0.0)
+        a_self_after = np.minimum(_idm(vx, drv, nl_gap, v_nl), _idm(vx, drv, _lane_end_gap(params, tclip, x, length), 0.0))
+        v_nf = np.where(has_nf, _gather(vx, nf_idx), 0.0)
+        tr_nf = drv.take(nf_idx)
+        a_n = np.where(has_nf, _idm(v_nf, tr_nf, nl_gap + nf_gap + length, v_nl), 0.0)
+        a_n_after = np.where(has_nf, _idm(v_nf, tr_nf, nf_gap, vx), 0.0)
+        inc = mobil_incentive(acc, a_self_after, a_n, a_n_after, a_o, a_o_after, trc[T_P])
+        mandatory = (params.merge_target[lane] == target) & (d_end_own < params.merge_zone_m)
+        urgency = np.clip(1.0 - d_end_own / params.merge_zone_m, 0.0, 1.0)
+        inc = inc + np.where(mandatory, MANDATORY_BIAS_MPS2 * urgency + trc[T_TH], 0.0)
+        safe = (mobil_safe(a_n_after, trc[T_BSAFE]) | ~has_nf) & (nl_gap > 1.0) & (nf_gap > 1.0)
+        safe &= a_self_after >= -trc[T_BSAFE]
+        ok = cand & safe & (inc > trc[T_TH]) & (inc > best_inc)
+        best_inc = np.where(ok, inc, best_inc)
+        best_dir = np.where(ok, d, best_dir)
+    changing = best_dir != 0
+    new_lane = lane + best_dir
+    cooldown = np.where(changing, LANE_CHANGE_COOLDOWN_S, cooldown)
+
+    # --- 6. motion ---
+    dist, v_new = distance_and_speed(vx, acc, dt)
+    x_new = x + dist
+    vlat_max = 1.5 * params.lane_change_speed_mps
+    vy = np.clip(LATERAL_GAIN_PER_S * (params.lane_centre_m(new_lane) - y), -vlat_max, vlat_max)
+    y_new = y + vy * dt
+    heading = np.arctan2(vy, np.maximum(v_new, 1.0))
+    # ego: clip the action to the scenario's limits, then the kinematic bicycle
+    a_ego = np.clip(action[:, 0], -params.max_brake_mps2, params.max_accel_mps2)
+    steer = np.clip(action[:, 1], -params.max_steer_rad, params.max_steer_rad)
+    max_dsteer = params.max_steer_rate_radps * dt
+    steer = np.clip(steer, state.ego_steer_rad - max_dsteer, state.ego_steer_rad + max_dsteer)
+    ex, ey, eh, ev, evx, evy, _ = bicycle_step(
+        x[:, EGO], y[:, EGO], state.heading_rad[:, EGO], state.ego_speed_mps, a_ego, steer,
+        wheelbase_m=params.wheelbase_m, l_r_m=params.l_r_m, dt_s=dt,
+    )
+    x_new[:, EGO], y_new[:, EGO], heading[:, EGO] = ex, ey, eh
+    v_new[:, EGO], vy[:, EGO] = evx, evy
+    acc[:, EGO] = a_ego
+    new_lane[:, EGO] = params.lane_of(ey)
+    x_new = np.where(valid, x_new, x)
+    y_new = np.where(valid, y_new, y)
+
+    # --- 7. leave, enter, outcome ---
+    lo_x = ex - params.window_behind_m
+    hi_x = ex + params.window_ahead_m
+    inside = (x_new > lo_x[:, None] - 10.0) & (x_new < hi_x[:, None] + 10.0) & (x_new < params.road_length_m)
+    new_valid = valid & inside
+    new_valid[:, EGO] = True
+
+    out = dict(
+        key=state.key, step=state.step + 1, next_id=state.next_id,
+        x_m=x_new, y_m=y_new, vx_mps=np.where(valid, v_new, 0.0), vy_mps=np.where(valid, vy, 0.0),
+        heading_rad=np.where(valid, heading, 0.0), length_m=length, width_m=width, valid=new_valid,
+        vehicle_id=state.vehicle_id, lane=np.where(valid, new_lane, lane), traits=tr,
+        yield_state=np.where(new_valid, ys, 0).astype(np.int8),
+        brake_timer_s=np.where(new_valid, timer, 0.0), brake_decel_mps2=decel, cooldown_s=cooldown,
+        ego_speed_mps=ev, ego_steer_rad=steer,
+        collided=state.collided, offroad=state.offroad, reached_goal=state.reached_goal,
+    )
+    _spawn(out, params)
+
+    collision = ego_collisions(out)
+    off = ego_offroad(params, ex, ey, length[:, EGO], width[:, EGO], eh)
+    goal = (ex >= params.goal_x_m) & params.goal_lane_mask[params.lane_of(ey)] & ~collision & ~off
+    out["collided"] = state.collided | collision
+    out["offroad"] = state.offroad | off
+    out["reached_goal"] = state.reached_goal | (goal & ~state.collided & ~state.offroad)
+    info = StepInfo(collision=collision, offroad=off, goal=goal, accel_mps2=acc, steer_rad=steer)
+    return TrafficState(**out), info
+
+
+def ego_collisions(arrays: dict) -> np.ndarray:
+    """(S,) True where the ego's footprint overlaps another vehicle's. The separating-axis test runs only on
+    pairs whose bounding circles meet, which is almost never; the answer is the same as testing every pair."""
+    x, y, ln, wd, hd = (arrays[k] for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
+    # Bounding circles, radius at most half the diagonal: a quick test on x alone first, then on the few near ones.
+    reach = 0.5 * (ln + wd)  # >= half the diagonal
+    near = (np.abs(x - x[:, :1]) <= reach + reach[:, :1]) & arrays["valid"]
+    near[:, EGO] = False
+    ss, vv = np.nonzero(near)
+    radius = 0.5 * np.hypot(ln[ss, vv], wd[ss, vv]) + 0.5 * np.hypot(ln[ss, EGO], wd[ss, EGO])
+    close = (x[ss, vv] - x[ss, EGO]) ** 2 + (y[ss, vv] - y[ss, EGO]) ** 2 <= radius**2
+    ss, vv = ss[close], vv[close]
+    hit = np.zeros(x.shape[0], dtype=bool)
+    if ss.size:
+        overlap = boxes_overlap(x[ss, EGO], y[ss, EGO], ln[ss, EGO], wd[ss, EGO], hd[ss, EGO],
+                                x[ss, vv], y[ss, vv], ln[ss, vv], wd[ss, vv], hd[ss, vv])
+        hit[ss[overlap]] = True
+    return hit
+
+
+def ego_offroad(params: SimParams, x_m, y_m, length_m, width_m, heading_rad) -> np.ndarray:
+    """True where any corner of the ego's footprint lies outside every lane that exists at that corner."""
+    corners = box_corners(x_m, y_m, length_m, width_m, heading_rad)  # (S, 4, 2)
+    cx, cy = corners[..., 0], corners[..., 1]
+    li = np.floor(cy / params.lane_width_m).astype(np.int64)
+    on = params.lane_exists(li, cx)
+    return ~on.all(axis=-1)
+
+
+def _spawn(out: dict, params: SimParams) -> None:
+    """Let at most one vehicle per scene enter at an end of the simulated stretch, where a lane is short of its
+    density and a slot is free. Replaces arrays of ``out`` by modified copies (never writes into a previous state).
+    Work is done only for the scenes that want a vehicle this step."""
+    if params.density_veh_per_m.max() <= 0.0:
+        return
+    attempt = (out["step"] % SPAWN_PERIOD_STEPS) == 0
+    if not attempt.any():
+        return
+    valid = out["valid"]
+    lanes = np.arange(params.num_lanes)
+    ego_x = out["x_m"][:, EGO]
+    lo_x = ego_x - params.window_behind_m
+    hi_x = ego_x + params.window_ahead_m
+    traffic = valid.copy()
+    traffic[:, EGO] = False
+    count = np.stack([(traffic & (out["lane"] == ln)).sum(axis=1) for ln in lanes], axis=1)  # (S, L)
+    seg = np.clip(np.minimum(hi_x[:, None], params.lane_end_m) - np.maximum(lo_x[:, None], params.lane_start_m), 0, None)
+    short = (params.density_veh_per_m * seg - count > 0.5) & (attempt & ~valid.all(axis=1))[:, None]
+    cand = np.nonzero(short.any(axis=1))[0]
+    if cand.size == 0:
+        return
+    # --- from here on, only the candidate scenes (c of them) ---
+    key, new_id, stp = out["key"][cand], out["next_id"][cand], out["step"][cand]
+    u_lane = rng.uniform(rng.combine(key, stp, rng.STREAM_SPAWN)[:, None], lanes)
+    lane = np.where(short[cand], params.density_veh_per_m * seg[cand] - count[cand] + u_lane, -np.inf).argmax(axis=1)
+    traits = draw_traits(params, key, new_id)  # (c, NT)
+    length, width = draw_size(params, key, new_id)
+    v0 = traits[:, T_V0]
+    from_behind = v0 > out["vx_mps"][cand, EGO] + 1.0
+    xs = np.where(from_behind, lo_x[cand], hi_x[cand])
+    want = params.lane_exists(lane, xs)
+    x_c, len_c, v_c = out["x_m"][cand], out["length_m"][cand], out["vx_mps"][cand]
+    occ = lane_occupancy(params, out["y_m"][cand], out["width_m"][cand], valid[cand], out["lane"][cand])
+    occ = np.take_along_axis(occ, lane[:, None, None], axis=2)[..., 0]  # (c, V)
+    dxs = x_c - xs[:, None]
+    half = 0.5 * (len_c + length[:, None])
+    g_ahead = np.where(occ & (dxs >= 0), dxs - half, np.inf)
+    g_behind = np.where(occ & (dxs < 0), -dxs - half, np.inf)
+    rr = np.arange(cand.size)
+    ia, ib = g_ahead.argmin(axis=1), g_behind.argmin(axis=1)
+    ga, gb = g_ahead[rr, ia], g_behind[rr, ib]
+    v_lead = np.where(np.isfinite(ga), v_c[rr, ia], np.inf)
+    v_foll = np.where(np.isfinite(gb), v_c[rr, ib], 0.0)
+    speed = np.minimum(v0 * params.initial_speed_fraction, params.speed_limit_mps * 1.15)
+    speed = np.where(ga < 2.0 * (traits[:, T_S0] + speed * traits[:, T_T]), np.minimum(speed, v_lead), speed)
+    want &= ga >= np.maximum(traits[:, T_S0] + speed * traits[:, T_T], MIN_SPAWN_GAP_M)
+    want &= gb >= 2.0 + 1.2 * v_foll + np.maximum(v_foll - speed, 0.0) ** 2 / 6.0 + MIN_SPAWN_GAP_M
+    if not want.any():
+        return
+    ws = cand[want]
+    wl = (~valid[ws]).argmax(axis=1)
+    new_rows = {
+        "valid": True, "x_m": xs[want], "y_m": params.lane_centre_m(lane[want]), "vx_mps": speed[want],
+        "vy_mps": 0.0, "heading_rad": 0.0, "length_m": length[want], "width_m": width[want],
+        "vehicle_id": new_id[want], "lane": lane[want], "traits": traits[want], "yield_state": 0,
+        "brake_timer_s": 0.0, "brake_decel_mps2": 0.0, "cooldown_s": 0.0,
+    }
+    for name, value in new_rows.items():
+        arr = np.array(out[name], copy=True)
+        arr[ws, wl] = value
+        out[name] = arr
+    next_id = out["next_id"].copy()
+    next_id[ws] += 1
+    out["next_id"] = next_id
+
+
+def traffic_collisions(state: TrafficState) -> np.ndarray:
+    """(S,) number of overlapping pairs among traffic vehicles (the ego excluded); for invariant checks."""
+    x, y, ln, wd, hd = state.x_m, state.y_m, state.length_m, state.width_m, state.heading_rad
+    hit = boxes_overlap(x[:, :, None], y[:, :, None], ln[:, :, None], wd[:, :, None], hd[:, :, None],
+                        x[:, None, :], y[:, None, :], ln[:, None, :], wd[:, None, :], hd[:, None, :])
+    traffic = state.valid.copy()
+    traffic[:, EGO] = False
+    pair = traffic[:, :, None] & traffic[:, None, :]
+    upper = np.triu(np.ones(hit.shape[1:], dtype=bool), k=1)
+    return (hit & pair & upper).sum(axis=(1, 2))
