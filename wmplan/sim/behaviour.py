@@ -22,8 +22,20 @@ MIN_GAP_FLOOR_M = 0.1  # the interaction term is evaluated at no less than this 
 
 def idm_desired_gap(speed_mps, dv_mps, time_headway_s, min_gap_m, max_accel_mps2, comfort_decel_mps2):
     """Desired gap s* of the IDM, book form with the max(0, .) guard (Treiber & Kesting 2013)."""
-    dyn = speed_mps * time_headway_s + speed_mps * dv_mps / (2.0 * np.sqrt(max_accel_mps2 * comfort_decel_mps2))
-    return min_gap_m + np.maximum(0.0, dyn)
+    c = 0.5 / np.sqrt(max_accel_mps2 * comfort_decel_mps2)
+    return min_gap_m + np.maximum(0.0, speed_mps * (time_headway_s + dv_mps * c))
+
+
+def idm_accel_fast(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_gap_m, max_accel_mps2, c):
+    """IDM acceleration with ``c = 1 / (2 sqrt(a b))`` worked out by the caller (the engine does it once a step).
+
+    This is the one implementation of the law in the package; :func:`idm_accel` calls it.
+    """
+    s_star = min_gap_m + np.maximum(0.0, speed_mps * (time_headway_s + dv_mps * c))
+    r = speed_mps / desired_speed_mps
+    r = r * r
+    inter = s_star / np.maximum(gap_m, MIN_GAP_FLOOR_M)  # gap = inf gives 0: the free-road law
+    return max_accel_mps2 * (1.0 - r * r - inter * inter)  # (v/v0)^delta with delta = 4
 
 
 def idm_accel(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_gap_m, max_accel_mps2,
@@ -40,13 +52,8 @@ def idm_accel(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_g
     Returns:
         dv/dt, same shape as the broadcast inputs; no lower bound (clip separately).
     """
-    s_star = idm_desired_gap(speed_mps, dv_mps, time_headway_s, min_gap_m, max_accel_mps2, comfort_decel_mps2)
-    ratio = speed_mps / desired_speed_mps
-    ratio2 = ratio * ratio
-    free = 1.0 - ratio2 * ratio2  # (v/v0)^delta with delta = 4
-    # With gap = inf the ratio is 0: the free-road law.
-    inter = s_star / np.maximum(gap_m, MIN_GAP_FLOOR_M)
-    return max_accel_mps2 * (free - inter * inter)
+    c = 0.5 / np.sqrt(max_accel_mps2 * comfort_decel_mps2)
+    return idm_accel_fast(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_gap_m, max_accel_mps2, c)
 
 
 def idm_equilibrium_gap(speed_mps, desired_speed_mps, time_headway_s, min_gap_m):

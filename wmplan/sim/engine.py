@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from wmplan import rng
-from wmplan.sim.behaviour import MIN_GAP_FLOOR_M, mobil_incentive, mobil_safe
+from wmplan.sim.behaviour import idm_accel_fast, mobil_incentive, mobil_safe
 from wmplan.sim.bicycle import bicycle_step, distance_and_speed
 from wmplan.sim.collision import box_corners, boxes_overlap
 from wmplan.sim.params import (
@@ -144,13 +144,7 @@ class _Drivers:
 
 
 def _idm(v, d: _Drivers, gap, v_lead):
-    """IDM acceleration; the same law as :func:`behaviour.idm_accel`, with s* = s0 + max(0, v T + v dv c)."""
-    s_star = d.s0 + np.maximum(0.0, v * (d.t + (v - v_lead) * d.c))
-    r = v / d.v0
-    r *= r
-    inter = s_star / np.maximum(gap, MIN_GAP_FLOOR_M)
-    inter *= inter
-    return d.a * (1.0 - r * r - inter)
+    return idm_accel_fast(v, d.v0, gap, v - v_lead, d.t, d.s0, d.a, d.c)
 
 
 def _lane_end_gap(params: SimParams, lane: np.ndarray, x: np.ndarray, length: np.ndarray) -> np.ndarray:
