@@ -1,0 +1,280 @@
+"""The ``wmplan`` command: turns flags into calls of the Python API.
+
+Every verb prints human-readable output, most take ``--json FILE`` for scripting, and bad input ends in one line on
+stderr (``wmplan: error: ...``) and exit status 2 — never a traceback. Ctrl-C exits with status 130.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import json
+import sys
+import time
+from collections.abc import Callable, Sequence
+from pathlib import Path
+
+from wmplan.errors import ConfigError, WmplanError
+
+EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130
+REPO_ROOT = Path(__file__).resolve().parent.parent
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error and exit status 2."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see `{self.prog} --help`)\n")
+
+
+def _progress(total: int, desc: str) -> tuple[Callable[[int], None], Callable[[], None]]:
+    """A tqdm progress bar on stderr; returns (advance, close)."""
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=total, desc=desc, unit="step", leave=False, dynamic_ncols=True, file=sys.stderr,
+               mininterval=0.5, disable=None)
+    return bar.update, bar.close
+
+
+def _write_json(path: str | None, payload: dict) -> None:
+    if path:
+        from wmplan.io import atomic_write_json
+
+        atomic_write_json(Path(path), payload)
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"invalid integer {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be >= 1, got {value}")
+    return value
+
+
+def _nonneg_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"invalid integer {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be >= 0, got {value}")
+    return value
+
+
+def _fraction(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"invalid number {text!r}") from None
+    if not 0.0 <= value <= 1.0:
+        raise argparse.ArgumentTypeError(f"must lie in [0, 1], got {value}")
+    return value
+
+
+# --- scenarios -------------------------------------------------------------------------------------------------------
+
+
+def cmd_scenarios(args: argparse.Namespace) -> int:
+    from wmplan.scenario import (
+        builtin_names,
+        load_scenario,
+        scenario_hash,
+        scenario_to_dict,
+        scenario_to_yaml,
+    )
+
+    if args.action == "list":
+        rows = []
+        for name in builtin_names():
+            scn = load_scenario(name)
+            rows.append({"name": name, "lanes": scn.road.num_lanes, "duration_s": scn.duration_s,
+                         "description": scn.description})
+        if args.json:
+            _write_json(args.json, {"scenarios": rows})
+        width = max(len(r["name"]) for r in rows)
+        for r in rows:
+            print(f"{r['name']:<{width}}  {r['lanes']} lanes  {r['duration_s']:>5.1f} s  {r['description']}")
+        return 0
+    if args.action == "show":
+        if not args.targets:
+            raise ConfigError("wmplan scenarios show: name a scenario, e.g. `wmplan scenarios show onramp-merge`")
+        for target in args.targets:
+            scn = load_scenario(target)
+            if args.json:
+                _write_json(args.json, scenario_to_dict(scn))
+            print(f"# {scn.name} (content hash {scenario_hash(scn)[:12]}), every default written out")
+            print(scenario_to_yaml(scn), end="")
+        return 0
+    # check
+    if not args.targets:
+        raise ConfigError("wmplan scenarios check: name one or more scenario files")
+    results = []
+    for target in args.targets:
+        scn = load_scenario(target)  # raises a one-line ScenarioError on the first bad file
+        results.append({"file": target, "name": scn.name, "hash": scenario_hash(scn)})
+        print(f"ok  {target}  ({scn.name}, hash {scenario_hash(scn)[:12]})")
+    _write_json(args.json, {"checked": results})
+    return 0
+
+
+# --- simulate --------------------------------------------------------------------------------------------------------
+
+
+def cmd_simulate(args: argparse.Namespace) -> int:
+    from wmplan.data import decisions_per_episode, simulate_dataset
+    from wmplan.data.store import MANIFEST_FILE
+    from wmplan.scenario import load_scenario
+
+    scn = load_scenario(args.scenario)
+    out = Path(args.out)
+    if (out / MANIFEST_FILE).exists() and not args.overwrite:
+        raise ConfigError(f"{out}: already holds a dataset; pass --overwrite to replace it or choose another --out")
+    if out.exists() and not out.is_dir():
+        raise ConfigError(f"{out}: exists and is not a folder")
+    total = decisions_per_episode(scn, args.decision_every) * args.episodes
+    advance, close = _progress(total, f"simulate {scn.name}")
+    t0 = time.perf_counter()
+    try:
+        ds = simulate_dataset(scn, out, episodes=args.episodes, seed=args.seed, batch_size=args.batch_size,
+                              policy_mix=args.policy_mix, decision_every=args.decision_every, progress=advance)
+    finally:
+        close()
+    secs = time.perf_counter() - t0
+    m = ds.manifest
+    summary = {"out": str(out), "scenario": scn.name, "episodes": m["num_episodes"], "seed": args.seed,
+               "decisions_per_episode": m["num_decisions"], "seconds": round(secs, 2), "outcomes": m["outcomes"]}
+    _write_json(args.json, summary)
+    o = m["outcomes"]
+    print(f"wrote {m['num_episodes']} episodes of {scn.name} ({m['num_decisions']} decisions of {m['decision_dt_s']} s "
+          f"each) to {out} in {secs:.1f} s; goal reached {o['reached_goal']}, collisions {o['collided']}, "
+          f"off-road {o['offroad']}")
+    return 0
+
+
+# --- render ----------------------------------------------------------------------------------------------------------
+
+
+def cmd_render(args: argparse.Namespace) -> int:
+    from wmplan.viz.anim import render_to_file
+
+    path = render_to_file(args.scenario, Path(args.out), seed=args.seed, step=args.step)
+    print(f"wrote {path}")
+    return 0
+
+
+# --- bench -----------------------------------------------------------------------------------------------------------
+
+BENCHMARKS = {"sim": "sim_throughput.py", "model": "model_throughput.py", "plan": "plan_latency.py",
+              "sweep": "sweep_scaling.py"}
+
+
+def _load_benchmark(file_name: str):
+    path = REPO_ROOT / "benchmarks" / file_name
+    if not path.is_file():
+        return None
+    spec = importlib.util.spec_from_file_location(f"wmplan_bench_{path.stem}", path)
+    module = importlib.util.module_from_spec(spec)
+    assert spec.loader is not None
+    spec.loader.exec_module(module)
+    return module
+
+
+def cmd_bench(args: argparse.Namespace) -> int:
+    wanted = [w.strip() for w in args.only.split(",")] if args.only else list(BENCHMARKS)
+    unknown = [w for w in wanted if w not in BENCHMARKS]
+    if unknown:
+        raise ConfigError(f"--only: unknown benchmark(s) {unknown}; choose from {', '.join(BENCHMARKS)}")
+    results: dict[str, object] = {}
+    for name in wanted:
+        module = _load_benchmark(BENCHMARKS[name])
+        if module is None:
+            results[name] = {"skipped": f"benchmarks/{BENCHMARKS[name]} is not in this checkout"}
+            continue
+        print(f"running benchmark {name} ...", file=sys.stderr)
+        results[name] = module.run(quick=args.quick)
+    _write_json(args.json, results)
+    print(json.dumps(results, indent=2))
+    return 0
+
+
+# --- demo ------------------------------------------------------------------------------------------------------------
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from wmplan.demo import run_demo
+
+    report = run_demo(Path(args.out), quick=args.quick, seed=args.seed)
+    print(f"demo finished; see {report}")
+    return 0
+
+
+# --- parser ----------------------------------------------------------------------------------------------------------
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="wmplan", description=(
+        "Learned stochastic world models of lane traffic, sampling MPC over their futures, and collision-risk "
+        "evaluation with confidence intervals. A research sandbox: results on this simplified traffic model "
+        "certify nothing about a real vehicle."))
+    sub = p.add_subparsers(dest="verb", metavar="VERB", parser_class=_Parser)
+    sub.required = True
+
+    sp = sub.add_parser("scenarios", help="list, show or check scenario files")
+    sp.add_argument("action", choices=["list", "show", "check"])
+    sp.add_argument("targets", nargs="*", help="scenario names or YAML files (show, check)")
+    sp.add_argument("--json", metavar="FILE", help="also write the result as JSON")
+    sp.set_defaults(func=cmd_scenarios)
+
+    sp = sub.add_parser("simulate", help="roll out episodes with behaviour policies into a dataset folder")
+    sp.add_argument("scenario", help="built-in scenario name or YAML file")
+    sp.add_argument("--episodes", type=_positive_int, default=200, help="number of episodes (default 200)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0, help="dataset seed (default 0)")
+    sp.add_argument("--out", required=True, metavar="DIR", help="dataset folder to write")
+    sp.add_argument("--batch-size", type=_positive_int, default=256, help="scenes simulated at once (default 256)")
+    sp.add_argument("--policy-mix", type=_fraction, default=0.5,
+                    help="share of episodes driven by the exploring policy rather than the rules (default 0.5)")
+    sp.add_argument("--decision-every", type=_positive_int, default=2,
+                    help="simulator steps per recorded decision (default 2, i.e. 0.2 s)")
+    sp.add_argument("--overwrite", action="store_true", help="replace a dataset already in --out")
+    sp.add_argument("--json", metavar="FILE", help="write a summary as JSON")
+    sp.set_defaults(func=cmd_simulate)
+
+    sp = sub.add_parser("render", help="draw one episode of a scenario as a PNG (one moment) or GIF (animation)")
+    sp.add_argument("scenario", help="built-in scenario name or YAML file")
+    sp.add_argument("--out", required=True, metavar="FILE", help="FILE.png or FILE.gif (FILE.mp4 where ffmpeg exists)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--step", type=_nonneg_int, default=None, help="simulator step to draw in a PNG (default: middle)")
+    sp.set_defaults(func=cmd_render)
+
+    sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
+    sp.add_argument("--json", metavar="FILE", help="write all results to FILE")
+    sp.add_argument("--only", metavar="LIST", help=f"comma-separated subset of: {', '.join(BENCHMARKS)}")
+    sp.add_argument("--quick", action="store_true", help="short runs (for a smoke test, not for numbers)")
+    sp.set_defaults(func=cmd_bench)
+
+    sp = sub.add_parser("demo", help="run the whole job end to end on onramp-merge and write a report")
+    sp.add_argument("--out", default="demo-out", metavar="DIR")
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--quick", action="store_true", help="a small, fast version (for tests)")
+    sp.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except WmplanError as err:
+        print(f"wmplan: error: {err}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("wmplan: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+
+if __name__ == "__main__":
+    sys.exit(main())
