@@ -200,6 +200,66 @@ def cmd_bench(args: argparse.Namespace) -> int:
     return 0
 
 
+# --- train, assess ----------------------------------------------------------------------------------------------
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from wmplan.model.config import ModelConfig, TrainConfig
+    from wmplan.model.train import train
+
+    mcfg = ModelConfig(deterministic=args.deterministic)
+    tcfg = TrainConfig(minutes=args.minutes, seed=args.seed, **({"max_epochs": args.epochs} if args.epochs else {}))
+    total = tcfg.max_epochs * tcfg.steps_per_epoch
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=total, desc="train " + ("deterministic" if args.deterministic else "latent"), unit="step",
+               leave=False, file=sys.stderr, dynamic_ncols=True, mininterval=0.5, disable=None)
+
+    def progress(n: int, running: dict) -> None:
+        bar.update(n)
+        bar.set_postfix({k.split("/")[-1]: f"{v:.3g}" for k, v in running.items() if k != "loss/total"}, refresh=False)
+
+    if args.resume:
+        from wmplan.model.checkpoint import load_training_state
+
+        _, _, st = load_training_state(Path(args.out))
+        bar.update(int(st["step"]))
+    t0 = time.perf_counter()
+    try:
+        res = train(args.data_dir, args.out, model_cfg=mcfg, train_cfg=tcfg, resume=args.resume, progress=progress)
+    except KeyboardInterrupt:
+        bar.close()
+        print(f"wmplan: interrupted; the last finished epoch is saved in {args.out}; continue with --resume",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED
+    bar.close()
+    last = res.history[-1] if res.history else {}
+    summary = {"out": str(res.out_dir), "epochs": len(res.history), "seconds": round(time.perf_counter() - t0, 1),
+               "stopped_by_time_budget": res.stopped_early, "num_parameters": res.model.num_parameters(),
+               "last_epoch": last}
+    _write_json(args.json, summary)
+    keys = [k for k in ("val/nll", "val/mse", "val/min_fde_k6_m") if k in last]
+    shown = ", ".join(f"{k} {last[k]:.3f}" for k in keys)
+    print(f"trained {'deterministic' if args.deterministic else 'latent'} model ({res.model.num_parameters()} "
+          f"parameters) for {len(res.history)} epochs in {summary['seconds']} s -> {res.out_dir}; {shown}")
+    return 0
+
+
+def cmd_assess(args: argparse.Namespace) -> int:
+    from wmplan.model.assess import assess
+    from wmplan.scenario import load_scenario
+
+    scn = load_scenario(args.scenario)
+    result = assess(args.model_dir, scn, deterministic_dir=args.deterministic, episodes=args.episodes,
+                    seed=args.seed, progress=lambda msg: print(f"[assess] {msg}", file=sys.stderr, flush=True))
+    _write_json(args.json, result)
+    keys = ["min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance", "collision_prob_gap"]
+    print(f"{'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
+    for name, row in result["predictors"].items():
+        print(f"{name:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
+    return 0
+
+
 # --- demo ------------------------------------------------------------------------------------------------------------
 
 
@@ -248,6 +308,26 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=_nonneg_int, default=0)
     sp.add_argument("--step", type=_nonneg_int, default=None, help="simulator step to draw in a PNG (default: middle)")
     sp.set_defaults(func=cmd_render)
+
+    sp = sub.add_parser("train", help="train the forward model (or its deterministic baseline) on a dataset")
+    sp.add_argument("data_dir", help="dataset folder written by `wmplan simulate`")
+    sp.add_argument("--out", required=True, metavar="MODEL_DIR")
+    sp.add_argument("--minutes", type=float, default=4.0, help="wall-clock budget (default 4)")
+    sp.add_argument("--epochs", type=_positive_int, default=None, help="number of epochs (default 25)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--deterministic", action="store_true", help="train the least-squares baseline without latent")
+    sp.add_argument("--resume", action="store_true", help="continue from the newest checkpoint in --out")
+    sp.add_argument("--json", metavar="FILE", help="write a summary as JSON")
+    sp.set_defaults(func=cmd_train)
+
+    sp = sub.add_parser("assess", help="compare the forward models with constant velocity and the oracle")
+    sp.add_argument("model_dir", help="latent model folder")
+    sp.add_argument("--scenario", default="onramp-merge")
+    sp.add_argument("--deterministic", metavar="DIR", default=None, help="deterministic model folder")
+    sp.add_argument("--episodes", type=_positive_int, default=96, help="held-out episodes (default 96)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--json", metavar="FILE")
+    sp.set_defaults(func=cmd_assess)
 
     sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
     sp.add_argument("--json", metavar="FILE", help="write all results to FILE")

@@ -116,7 +116,8 @@ class BehaviourPolicy:
 
 
 def collect(params: SimParams, seeds: np.ndarray, *, policy_mix: float = 0.5, decision_every: int = 2,
-            progress: Callable[[int], None] | None = None) -> Trajectories:
+            progress: Callable[[int], None] | None = None,
+            on_decision: Callable[[int, TrafficState], None] | None = None) -> Trajectories:
     """Run one batch of episodes (one per seed) with the mixed behaviour policy and record them.
 
     Args:
@@ -125,6 +126,8 @@ def collect(params: SimParams, seeds: np.ndarray, *, policy_mix: float = 0.5, de
         policy_mix: probability that an episode uses the ``explore`` policy rather than ``rules``.
         decision_every: simulator steps per decision (and per recorded time step); 2 gives 0.2 s at dt 0.1 s.
         progress: called with the number of decision steps done since the last call.
+        on_decision: called with (decision index t, state) before each decision's action is applied; the state
+            matches the recorded rows ``vehicles[:, t]`` (snapshots for the oracle are taken this way).
 
     Returns:
         The recorded :class:`Trajectories`.
@@ -144,6 +147,8 @@ def collect(params: SimParams, seeds: np.ndarray, *, policy_mix: float = 0.5, de
     alive = np.empty((e_n, num_decisions + 1), dtype=bool)
     vehicles[:, 0], ids[:, 0], alive[:, 0] = state.vehicles(), state.vehicle_id, True
     for t in range(num_decisions):
+        if on_decision is not None:
+            on_decision(t, state)
         act = policy(state, t, decision_every * params.dt_s)
         applied = np.zeros_like(act)
         for _ in range(decision_every):

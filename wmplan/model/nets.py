@@ -1,0 +1,118 @@
+"""Small torch modules of the forward model. Letters: B scenes, C candidate plans, K samples, N objects,
+W history steps, H horizon steps, D embedding width, Z latent size.
+
+The model only sees tensors in the anchor frame and a feature list; it knows nothing of lanes or scenarios.
+"""
+
+from __future__ import annotations
+
+import math
+
+import torch
+from torch import nn
+
+from wmplan.sim.features import F_LENGTH, F_VALID, F_VX, F_VY, F_WIDTH, F_X, F_Y
+
+# Fixed input scales (metres, metres per second): common practice, chosen so inputs are of order one.
+POS_SCALE_X_M = 50.0
+POS_SCALE_Y_M = 10.0
+VEL_SCALE_X_MPS = 20.0
+VEL_SCALE_Y_MPS = 2.0
+SIZE_SCALE_M = 5.0
+ROAD_SCALE = (1.0, 250.0, 3.0, 3.0, 250.0, 250.0)
+ACTION_SCALE = (3.0, 0.5)
+RESIDUAL_SCALE_M = 5.0
+LOGVAR_MIN, LOGVAR_MAX = -7.0, 7.0
+
+
+def mlp(sizes: list[int], *, final_act: bool = False) -> nn.Sequential:
+    """Linear layers with GELU between them."""
+    layers: list[nn.Module] = []
+    for i in range(len(sizes) - 1):
+        layers.append(nn.Linear(sizes[i], sizes[i + 1]))
+        if i < len(sizes) - 2 or final_act:
+            layers.append(nn.GELU())
+    return nn.Sequential(*layers)
+
+
+def object_features(history: torch.Tensor) -> torch.Tensor:
+    """Per-object input vector (B, N, 5 W + 3) from history rows (B, W, N, F)."""
+    b, w, n, _ = history.shape
+    steps = torch.stack([
+        history[..., F_X] / POS_SCALE_X_M,
+        history[..., F_Y] / POS_SCALE_Y_M,
+        history[..., F_VX] / VEL_SCALE_X_MPS,
+        history[..., F_VY] / VEL_SCALE_Y_MPS,
+        history[..., F_VALID],
+    ], dim=-1)  # (B, W, N, 5)
+    steps = steps.permute(0, 2, 1, 3).reshape(b, n, w * 5)
+    last = history[:, -1]
+    is_ego = torch.zeros(b, n, 1, dtype=history.dtype)
+    is_ego[:, 0] = 1.0
+    static = torch.cat([last[..., F_LENGTH:F_LENGTH + 1] / SIZE_SCALE_M, last[..., F_WIDTH:F_WIDTH + 1] / 2.0, is_ego], -1)
+    return torch.cat([steps, static], dim=-1)
+
+
+class SceneEncoder(nn.Module):
+    """Embeds every object of the history and lets them attend to each other (a permutation-equivariant block)."""
+
+    def __init__(self, history: int, d_model: int, num_heads: int, num_layers: int):
+        super().__init__()
+        self.obj = mlp([5 * history + 3, d_model, d_model])
+        self.road = mlp([6, d_model])
+        layer = nn.TransformerEncoderLayer(d_model, num_heads, dim_feedforward=2 * d_model, dropout=0.0,
+                                           activation="gelu", batch_first=True, norm_first=True)
+        self.blocks = nn.TransformerEncoder(layer, num_layers, enable_nested_tensor=False)
+        self.norm = nn.LayerNorm(d_model)
+        self.register_buffer("road_scale", torch.tensor(ROAD_SCALE), persistent=False)
+
+    def forward(self, history: torch.Tensor, road: torch.Tensor) -> torch.Tensor:
+        """history (B, W, N, F), road (B, 6) -> embeddings (B, N, D)."""
+        valid = history[:, -1, :, F_VALID] > 0.5  # (B, N)
+        h = self.obj(object_features(history)) + self.road(road / self.road_scale)[:, None, :]
+        h = self.blocks(h, src_key_padding_mask=~valid)
+        return self.norm(h) * valid[..., None]
+
+
+class PlanEncoder(nn.Module):
+    """Embeds the ego's planned motion as seen from each object (relative positions, ego velocity, actions)."""
+
+    def __init__(self, horizon: int, d_model: int):
+        super().__init__()
+        self.net = mlp([6 * horizon, d_model, d_model])
+        self.register_buffer("action_scale", torch.tensor(ACTION_SCALE), persistent=False)
+
+    def forward(self, obj_xy: torch.Tensor, ego_future: torch.Tensor, actions: torch.Tensor) -> torch.Tensor:
+        """obj_xy (B, N, 2), ego_future (B, C, H, >=4), actions (B, C, H, 2) -> (B, C, N, D)."""
+        rel = ego_future[:, :, None, :, :2] - obj_xy[:, None, :, None, :]  # (B, C, N, H, 2)
+        rel = rel / torch.tensor([POS_SCALE_X_M, POS_SCALE_Y_M])
+        vel = (ego_future[..., 2:4] / torch.tensor([VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS]))[:, :, None]
+        act = (actions / self.action_scale)[:, :, None]
+        n = obj_xy.shape[1]
+        feats = torch.cat([rel, vel.expand(-1, -1, n, -1, -1), act.expand(-1, -1, n, -1, -1)], dim=-1)
+        return self.net(feats.flatten(-2))
+
+
+def gaussian_params(out: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Split the last axis into mean and log-variance (clamped)."""
+    mean, logvar = out.chunk(2, dim=-1)
+    return mean, logvar.clamp(LOGVAR_MIN, LOGVAR_MAX)
+
+
+def reset_parameters(module: nn.Module, generator: torch.Generator) -> None:
+    """Re-initialise every parameter from ``generator`` (no global seeding): weights and biases of linear
+    layers uniform in +-1/sqrt(fan_in), as torch's default; layer norms to identity."""
+    with torch.no_grad():
+        for m in module.modules():
+            if isinstance(m, nn.Linear):
+                bound = 1.0 / math.sqrt(m.in_features)
+                m.weight.uniform_(-bound, bound, generator=generator)
+                if m.bias is not None:
+                    m.bias.uniform_(-bound, bound, generator=generator)
+            elif isinstance(m, nn.MultiheadAttention):
+                bound = 1.0 / math.sqrt(m.embed_dim)
+                m.in_proj_weight.uniform_(-bound, bound, generator=generator)
+                m.in_proj_bias.zero_()
+            elif isinstance(m, nn.LayerNorm):
+                m.weight.fill_(1.0)
+                m.bias.zero_()

@@ -1,0 +1,225 @@
+"""Training the forward model: a plain loop that reads top to bottom.
+
+Logged scalars (the per-epoch rows of ``metrics.csv`` and the returned history):
+
+| key              | meaning                                                                  |
+|------------------|--------------------------------------------------------------------------|
+| loss/nll         | Gaussian negative log-likelihood of the future residuals, per object     |
+| loss/kl          | KL(posterior || prior) summed over latent dimensions, per object         |
+| loss/total       | nll + kl_weight x (KL with free bits)                                    |
+| loss/mse         | deterministic model: mean squared residual per coordinate and step (m^2) |
+| val/nll, val/mse | the same on held-out episodes                                            |
+| val/min_fde_k6_m | best-of-6 final displacement error at the horizon on held-out windows    |
+| sched/lr, sched/kl_weight | learning rate and KL weight of the epoch                        |
+| perf/samples_per_s | training windows per second                                            |
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from wmplan.data import load_dataset
+from wmplan.data.windows import Windows, WindowSpec, anchor_index
+from wmplan.errors import CheckpointError, ConfigError
+from wmplan.io import atomic_write_text
+from wmplan.model.checkpoint import (
+    load_training_state,
+    optimizer_from_tensors,
+    optimizer_to_tensors,
+    save_checkpoint,
+)
+from wmplan.model.config import ModelConfig, TrainConfig
+from wmplan.model.ego import EgoKinematics
+from wmplan.model.world_model import WorldModel
+from wmplan.sim.features import F_VALID, F_X, F_Y
+
+VAL_WINDOWS = 2048
+
+
+@dataclass
+class TrainResult:
+    model: WorldModel
+    history: list[dict]
+    out_dir: Path
+    stopped_early: bool
+
+
+def to_torch(batch) -> dict[str, torch.Tensor]:
+    """A numpy :class:`WindowBatch` as a dict of tensors."""
+    return {k: torch.from_numpy(np.ascontiguousarray(getattr(batch, k))) for k in batch.__dataclass_fields__
+            if k != "slots"}
+
+
+def split_episodes(num_episodes: int, val_fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Train / validation episodes, split by episode with a seeded permutation."""
+    perm = np.random.default_rng(np.random.SeedSequence([seed, 0x5B1])).permutation(num_episodes)
+    n_val = max(1, int(round(val_fraction * num_episodes)))
+    if num_episodes - n_val < 1:
+        raise ConfigError(f"dataset has {num_episodes} episode(s); need at least 2 for a train/validation split")
+    return np.sort(perm[n_val:]), np.sort(perm[:n_val])
+
+
+def min_fde(model: WorldModel, batch: dict, k: int, generator: torch.Generator) -> float:
+    """Best-of-k final displacement error (m) per valid object at the last step, averaged."""
+    out = model.sample(batch, batch["actions"][:, None], k, generator=generator)
+    pred = out["rows"][:, 0, :, -1, :, :2]  # (B, K, N, 2)
+    true = batch["future"][:, -1, :, :2]  # (B, N, 2)
+    ok = (batch["future"][:, -1, :, F_VALID] > 0.5) & (batch["history"][:, -1, :, F_VALID] > 0.5)
+    ok[:, 0] = False
+    err = (pred - true[:, None]).norm(dim=-1).min(dim=1).values  # (B, N)
+    return float((err * ok).sum() / ok.sum().clamp_min(1))
+
+
+def fit_residual_variance(model: WorldModel, windows: Windows, index: np.ndarray, batch_size: int) -> None:
+    """Set the deterministic model's predictive variance to its residual variance per step and coordinate."""
+    total = torch.zeros(model.cfg.horizon, 2)
+    count = torch.zeros(model.cfg.horizon, 1)
+    for i in range(0, len(index), batch_size):
+        r, m = model.residuals(to_torch(windows.batch(index[i:i + batch_size])))
+        total += (r**2 * m[..., None]).sum((0, 1))
+        count += m.sum((0, 1))[:, None]
+    model.fitted_logvar.copy_(torch.log(total / count.clamp_min(1.0) + 1e-4))
+
+
+def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig = ModelConfig(),
+          train_cfg: TrainConfig = TrainConfig(), resume: bool = False,
+          progress: Callable[[int, dict], None] | None = None) -> TrainResult:
+    """Train a forward model on a dataset folder and write checkpoints to ``out_dir``.
+
+    Args:
+        data_dir: a folder written by ``wmplan simulate``.
+        out_dir: the model folder; checkpoints after every epoch.
+        model_cfg, train_cfg: configurations (ignored in favour of the stored ones when resuming).
+        resume: continue from the newest checkpoint in ``out_dir``.
+        progress: called after every optimiser step with (steps done in this call, running metrics).
+
+    Returns:
+        The trained model, the per-epoch history and whether the time budget stopped it before max_epochs.
+    """
+    out_dir = Path(out_dir)
+    ds = load_dataset(data_dir)
+    state = None
+    if resume:
+        ckpt_cfg, opt_tensors, state = load_training_state(out_dir)
+        model_cfg = ModelConfig.from_dict(ckpt_cfg["model"])
+        train_cfg = TrainConfig(**ckpt_cfg["train"])
+        if ckpt_cfg.get("dataset", {}).get("scenario_hash") != ds.manifest["scenario_hash"]:
+            raise CheckpointError(f"{out_dir}: was trained on another dataset (scenario hash differs); cannot resume on {data_dir}")
+    elif (out_dir / "latest").exists():
+        raise ConfigError(f"{out_dir}: already holds a model; pass --resume to continue it or choose another --out")
+    torch.set_num_threads(train_cfg.threads)
+    if abs(ds.decision_dt_s - model_cfg.plan_dt_s) > 1e-9:
+        raise ConfigError(f"model plan_dt_s {model_cfg.plan_dt_s} differs from the dataset's decision step {ds.decision_dt_s}")
+    spec = WindowSpec(model_cfg.history, model_cfg.horizon, model_cfg.num_objects)
+    windows = Windows(ds, spec)
+    tr_eps, va_eps = split_episodes(ds.traj.num_episodes, train_cfg.val_fraction, train_cfg.seed)
+    tr_idx = anchor_index(ds, spec, tr_eps, train_cfg.anchor_stride)
+    va_idx = anchor_index(ds, spec, va_eps, 1)
+    if len(tr_idx) == 0 or len(va_idx) == 0:
+        raise ConfigError(f"{data_dir}: no usable training windows; simulate more or longer episodes")
+    va_idx = va_idx[np.random.default_rng(train_cfg.seed).permutation(len(va_idx))[:VAL_WINDOWS]]
+    val_batch = to_torch(windows.batch(va_idx))
+
+    ss = np.random.SeedSequence(train_cfg.seed)
+    init_ss, data_ss, noise_ss, eval_ss = ss.spawn(4)
+    gen_init = torch.Generator().manual_seed(int(init_ss.generate_state(1)[0]))
+    ego = EgoKinematics.from_scenario(ds.scenario, model_cfg.plan_dt_s)
+    model = WorldModel(model_cfg, ego, generator=gen_init)
+    opt = torch.optim.Adam(model.parameters(), lr=train_cfg.lr, weight_decay=train_cfg.weight_decay)
+    data_rng = np.random.default_rng(data_ss)
+    gen_noise = torch.Generator().manual_seed(int(noise_ss.generate_state(1)[0]))
+    history: list[dict] = []
+    start_epoch, step, elapsed_before = 0, 0, 0.0
+    if state is not None:
+        from safetensors.torch import load_file
+
+        from wmplan.model.checkpoint import checkpoint_folder
+
+        model.load_state_dict(load_file(str(checkpoint_folder(out_dir) / "model.safetensors")))
+        optimizer_from_tensors(opt, opt_tensors, state["optimizer"])
+        data_rng.bit_generator.state = state["data_rng"]
+        gen_noise.set_state(torch.tensor(state["noise_gen"], dtype=torch.uint8))
+        start_epoch, step, elapsed_before = state["epoch"] + 1, state["step"], state["elapsed_s"]
+        history = state["history"]
+
+    meta = {"train": train_cfg.to_dict(), "dataset": {"path": str(Path(data_dir).resolve()),
+            "scenario_name": ds.scenario.name, "scenario_hash": ds.manifest["scenario_hash"],
+            "num_episodes": ds.traj.num_episodes}, "num_parameters": model.num_parameters(),
+            "window": {"history": spec.history, "horizon": spec.horizon, "num_objects": spec.num_objects}}
+    total_steps = train_cfg.max_epochs * train_cfg.steps_per_epoch
+    t_start = time.perf_counter() - elapsed_before
+    stopped_early = False
+    for epoch in range(start_epoch, train_cfg.max_epochs):
+        # --- train one epoch ---
+        model.train()
+        kl_weight = min(1.0, (epoch + 1) / max(1, train_cfg.kl_warmup_epochs))
+        sums: dict[str, float] = {}
+        t_epoch = time.perf_counter()
+        for _ in range(train_cfg.steps_per_epoch):
+            lr = train_cfg.lr * (0.1 + 0.9 * 0.5 * (1.0 + math.cos(math.pi * min(1.0, step / total_steps))))
+            for g in opt.param_groups:
+                g["lr"] = lr
+            idx = tr_idx[data_rng.integers(0, len(tr_idx), train_cfg.batch_size)]
+            batch = to_torch(windows.batch(idx))
+            loss, metrics = model.loss(batch, kl_weight=kl_weight, free_bits=train_cfg.free_bits, generator=gen_noise)
+            opt.zero_grad(set_to_none=True)
+            loss.backward()
+            torch.nn.utils.clip_grad_norm_(model.parameters(), train_cfg.grad_clip)
+            opt.step()
+            step += 1
+            for k, v in metrics.items():
+                sums[k] = sums.get(k, 0.0) + v
+            if progress is not None:
+                progress(1, {k: v / max(1, step - epoch * train_cfg.steps_per_epoch) for k, v in sums.items()})
+        secs = time.perf_counter() - t_epoch
+        row = {"epoch": epoch, "step": step, "elapsed_s": round(time.perf_counter() - t_start, 2)}
+        row.update({k: v / train_cfg.steps_per_epoch for k, v in sums.items()})
+        row["sched/lr"] = lr
+        row["sched/kl_weight"] = kl_weight
+        row["perf/samples_per_s"] = train_cfg.steps_per_epoch * train_cfg.batch_size / secs
+        # --- validate ---
+        model.eval()
+        with torch.no_grad():
+            _, vm = model.loss(val_batch, kl_weight=1.0, free_bits=0.0, generator=torch.Generator().manual_seed(1))
+        row.update({k.replace("loss/", "val/"): v for k, v in vm.items()})
+        row["val/min_fde_k6_m"] = min_fde(model, val_batch, 6, torch.Generator().manual_seed(int(eval_ss.generate_state(1)[0])))
+        history.append(row)
+        # --- checkpoint ---
+        opt_tensors, opt_desc = optimizer_to_tensors(opt)
+        train_state = {"epoch": epoch, "step": step, "elapsed_s": time.perf_counter() - t_start,
+                       "data_rng": data_rng.bit_generator.state, "noise_gen": gen_noise.get_state().tolist(),
+                       "optimizer": opt_desc, "history": history}
+        if model_cfg.deterministic:
+            fit_residual_variance(model, windows, tr_idx[:: max(1, len(tr_idx) // 20000)], 1024)
+        save_checkpoint(out_dir, model, epoch=epoch, meta={**meta, "metrics": row}, optimizer_state=opt_tensors,
+                        train_state=train_state)
+        write_metrics_csv(out_dir / "metrics.csv", history)
+        if time.perf_counter() - t_start > 60.0 * train_cfg.minutes and epoch + 1 < train_cfg.max_epochs:
+            stopped_early = True
+            break
+    model.eval()
+    return TrainResult(model=model, history=history, out_dir=out_dir, stopped_early=stopped_early)
+
+
+def write_metrics_csv(path: Path, history: list[dict]) -> None:
+    keys: list[str] = []
+    for row in history:
+        keys += [k for k in row if k not in keys]
+    buf = io.StringIO()
+    w = csv.DictWriter(buf, fieldnames=keys)
+    w.writeheader()
+    for row in history:
+        w.writerow(row)
+    atomic_write_text(path, buf.getvalue())
+
+
+assert F_X == 0 and F_Y == 1
