@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from pathlib import Path
 
 import yaml
@@ -30,6 +31,27 @@ def _format_loc(loc: tuple) -> str:
     return out or "(top level)"
 
 
+# A custom check that names its own field starts its message with the field's path, e.g.
+# "traffic.density_veh_per_km has 2 values ..." or "density_veh_per_km[1] must lie in ...". A path here has at
+# least one "_", "." or "[" so that an ordinary first word ("must ...") or a bare "low"/"mean" stays in the text.
+_PATH_AT_START = re.compile(r"^([A-Za-z_]\w*(?:\.[A-Za-z_]\w*|\[\d+\])*) (.+)$")
+
+
+def _field_from_message(field: str, msg: str) -> tuple[str, str]:
+    """Move a field path that opens a validator's message into the field slot, joined to where pydantic
+    reported the error (a check on a whole model reports the model, not the field it is about)."""
+    m = _PATH_AT_START.match(msg)
+    if m is None or not any(ch in m.group(1) for ch in "_.["):
+        return field, msg
+    path, rest = m.groups()
+    head = re.split(r"[.\[]", path, maxsplit=1)[0]
+    if field == "(top level)":
+        return path, rest
+    if field == head or field.endswith("." + head):  # the message restates the last part of the location
+        return field[: len(field) - len(head)] + path, rest
+    return f"{field}.{path}", rest
+
+
 def format_validation_error(source: str, err: ValidationError) -> str:
     """One line: file, field, value and rule of the first problem, plus how many more there are."""
     problems = err.errors(include_url=False)
@@ -39,10 +61,16 @@ def format_validation_error(source: str, err: ValidationError) -> str:
     msg = first["msg"]
     if first["type"] == "extra_forbidden":
         msg = "unknown key (check the spelling against `wmplan scenarios show open-road`)"
-    elif msg.startswith("Value error, "):
-        msg = msg[len("Value error, "):]
+    elif first["type"] == "model_type" and first.get("ctx", {}).get("class_name") == "Dist":
+        msg = "must be a number or a mapping {mean, std, low, high}"
+    elif first["type"] == "value_error":
+        if msg.startswith("Value error, "):
+            msg = msg[len("Value error, "):]
+        field, msg = _field_from_message(field, msg)
     value = first.get("input")
-    shown = "" if first["type"] in ("missing",) or isinstance(value, dict) else f" (got {value!r})"
+    # The value is shown unless there is none, it is a whole mapping, or our own check already states it.
+    hide = first["type"] == "missing" or isinstance(value, dict) or (first["type"] == "value_error" and ", got " in msg)
+    shown = "" if hide else f" (got {value!r})"
     more = f" [and {len(problems) - 1} more problem(s)]" if len(problems) > 1 else ""
     return f"{source}: {field}: {msg}{shown}{more}"
 
