@@ -68,6 +68,23 @@ def normal(*parts: np.ndarray | int) -> np.ndarray:
     return np.sqrt(-2.0 * np.log1p(-u1)) * np.cos(2.0 * np.pi * u2)
 
 
+def truncated_normal(mean, std, low, high, *parts: np.ndarray | int) -> np.ndarray:
+    """Normal(mean, std) truncated to [low, high], by the inverse-CDF method on a counter-based uniform.
+
+    ``mean``, ``std``, ``low``, ``high`` broadcast with the counters; std = 0 gives the mean; infinite bounds are
+    allowed. (Inverse transform sampling of a truncated distribution: u ~ U(F(a), F(b)), x = F^-1(u).)
+    """
+    from scipy.special import ndtr, ndtri
+
+    mean, std = np.asarray(mean, dtype=np.float64), np.asarray(std, dtype=np.float64)
+    u = uniform(*parts)
+    safe = np.where(std > 0, std, 1.0)
+    a = ndtr((low - mean) / safe)
+    b = ndtr((high - mean) / safe)
+    x = mean + safe * ndtri(np.clip(a + u * (b - a), 1e-300, 1.0 - 1e-16))
+    return np.where(std > 0, np.clip(x, low, high), np.clip(mean, low, high))
+
+
 def scene_keys(seeds: np.ndarray | list[int] | int) -> np.ndarray:
     """Turn integer episode seeds into scene keys (uint64), one per seed."""
     arr = np.atleast_1d(np.asarray(seeds, dtype=np.int64))

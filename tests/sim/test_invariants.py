@@ -15,14 +15,10 @@ Checked at every step of every scene (common practice, no source, unless stated)
 * no two traffic vehicles overlap (``engine.traffic_collisions``); the issue requires it for ``open-road`` at
   nominal density over at least 1e5 vehicle-steps.
 
-Known failures (engine bugs, reported; the tests stay strict and are marked ``xfail(strict=True)``):
-
-* ``stop-and-go``: traffic vehicles overlap in a few episodes per 1000 (6 of seeds 10000-11023 within one
-  episode; reproducers below);
-* ``onramp-merge`` and ``lane-drop``: vehicles that enter the simulated stretch just before the end of an ending
-  lane drive past its end (3 and 42 of 1024 episodes; reproducers below);
-* all scenarios but ``open-road``: the rotated footprint of a traffic vehicle sticks out over the road edge, by
-  up to 0.88 m in 1024 episodes (a vehicle changing lanes at standstill is turned by up to 61 degrees).
+Engine bugs these tests found and that are now fixed (kept as regression tests): overlapping traffic in
+stop-and-go and footprints over the road edge (a vehicle changing lanes at standstill was turned sideways; the
+lateral speed is now limited by the forward speed and lane occupancy uses the rotated footprint), and vehicles
+entering just before the end of an ending lane and driving past it (entry now needs the merge zone ahead).
 """
 
 from __future__ import annotations
@@ -179,11 +175,6 @@ def test_other_scenarios_no_traffic_collisions(name):
 STOP_AND_GO_COLLISIONS = [(10647, 105), (10834, 116), (10101, 135), (10761, 136), (10149, 175)]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "engine bug: traffic vehicles that change lanes at near-zero speed get headings of 35-42 deg "
-    "(heading = arctan2(vy, max(v, 1)) with a lateral speed that does not shrink with the longitudinal speed), "
-    "so their rotated body reaches into the next lane; lane_occupancy tests only the unrotated band y +- w/2, "
-    "so the spawner puts a new vehicle there or a vehicle in that lane drives into it"))
 @pytest.mark.parametrize(("seed", "collision_step"), STOP_AND_GO_COLLISIONS)
 def test_stop_and_go_reproducers_have_no_traffic_collision(seed, collision_step):
     """Replays one stop-and-go episode to the recorded step and asks for no overlapping traffic there."""
@@ -198,10 +189,6 @@ def test_stop_and_go_reproducers_have_no_traffic_collision(seed, collision_step)
 PAST_LANE_END = [("onramp-merge", 10341, 28), ("lane-drop", 10396, 51)]
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "engine bug: _spawn lets a vehicle enter at the front of the simulated stretch in an ending lane a few metres "
-    "before the lane's end (only lane_exists at the entry point is checked) at full speed; it cannot stop or "
-    "merge and brakes at 9 m/s^2 to a stop about 15-25 m past the end of the lane"))
 @pytest.mark.parametrize(("name", "seed", "bad_step"), PAST_LANE_END)
 def test_reproducers_keep_traffic_within_its_lane(name, seed, bad_step):
     params = _params(name)
@@ -216,7 +203,7 @@ def test_reproducers_keep_traffic_within_its_lane(name, seed, bad_step):
 @pytest.mark.slow
 @pytest.mark.parametrize("name", [
     "open-road", "cut-in", "lane-drop", "onramp-merge",
-    pytest.param("stop-and-go", marks=pytest.mark.xfail(strict=True, reason="see STOP_AND_GO_COLLISIONS")),
+    "stop-and-go",
 ])
 def test_no_traffic_collisions_1024_episodes(name):
     """1024 episodes of 1.5 scenario durations each: no overlap among traffic."""
@@ -228,7 +215,6 @@ def test_no_traffic_collisions_1024_episodes(name):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="see PAST_LANE_END")
 @pytest.mark.parametrize("name", ["lane-drop", "onramp-merge"])  # the two scenarios with a lane that ends
 def test_traffic_never_passes_the_end_of_its_lane_1024_episodes(name):
     params = _params(name)
@@ -238,11 +224,7 @@ def test_traffic_never_passes_the_end_of_its_lane_1024_episodes(name):
 
 @pytest.mark.parametrize("name", [
     "open-road",
-    *(pytest.param(n, marks=pytest.mark.xfail(strict=True, reason=(
-        "engine bug: traffic heading = arctan2(vy, max(v, 1)) with vy jumping at once to +-1.5 lane widths per "
-        "lane-change duration (1.8 m/s) whatever the speed: a vehicle changing lanes at standstill is turned by "
-        "up to 61 deg and its corners stick out up to 0.88 m over the road edge; in cut-in a 12 m truck starting "
-        "a change swings up to 0.14 m over it"))) for n in OTHER_SCENARIOS),
+    *OTHER_SCENARIOS,
 ])
 def test_traffic_footprint_stays_on_the_carriageway(name):
     """The rotated rectangle of every valid traffic vehicle stays between y = 0 and the road width."""

@@ -14,11 +14,19 @@ from __future__ import annotations
 import math
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, field_validator, model_validator
 
 SCHEMA_VERSION = 1
 
-Finite = Annotated[float, Field(allow_inf_nan=False)]
+
+def _reject_bool(value: object) -> object:
+    if isinstance(value, bool):
+        raise ValueError("must be a number, not true/false")
+    return value
+
+
+Finite = Annotated[float, BeforeValidator(_reject_bool), Field(allow_inf_nan=False)]
+Int = Annotated[int, BeforeValidator(_reject_bool)]
 
 
 class _Strict(BaseModel):
@@ -111,7 +119,7 @@ class Road(_Strict):
 class PlacedVehicle(_Strict):
     """A vehicle put at a chosen place at the start, relative to the ego (for cut-ins and similar set-ups)."""
 
-    lane: int = Field(ge=0)
+    lane: Int = Field(ge=0)
     offset_m: Finite = Field(ge=-500.0, le=500.0)
     """Longitudinal position of its centre relative to the ego's centre."""
     speed_mps: Finite = Field(ge=0.0, le=60.0)
@@ -131,7 +139,7 @@ class Traffic(_Strict):
     from behind, slower ones from ahead) to hold each lane's density, as long as a free slot exists.
     """
 
-    max_vehicles: int = Field(16, ge=2, le=256)
+    max_vehicles: Int = Field(16, ge=2, le=256)
     """Vehicle slots per scene, the ego included."""
     density_veh_per_km: tuple[Finite, ...]
     """Target density of each lane, vehicles per km (one value per lane)."""
@@ -195,13 +203,13 @@ class Goal(_Strict):
     """The ego succeeds when its centre passes ``x_m`` in one of ``lanes``."""
 
     x_m: Finite = Field(gt=0.0)
-    lanes: tuple[int, ...] = Field(min_length=1)
+    lanes: tuple[Int, ...] = Field(min_length=1)
 
 
 class Ego(_Strict):
     """The controlled vehicle: where it starts, its size and its goal."""
 
-    lane: int = Field(ge=0)
+    lane: Int = Field(ge=0)
     x_m: Finite = Field(ge=0.0)
     speed_mps: Finite = Field(ge=0.0, le=60.0)
     length_m: Finite = Field(4.7, gt=2.0, le=25.0)

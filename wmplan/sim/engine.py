@@ -48,6 +48,8 @@ BAND_EPS_M = 0.05  # a body must reach this far into a lane to occupy it
 SETTLED_M = 0.4  # a traffic vehicle may start a new lane change once this close to its lane centre
 LATERAL_GAIN_PER_S = 1.2  # proportional gain of the traffic's lateral motion toward the lane centre
 MIN_SPAWN_GAP_M = 10.0
+MAX_LANE_CHANGE_HEADING_RAD = 0.15  # about 8.6 degrees; common practice, no source
+MAX_LANE_CHANGE_SLOPE = float(np.tan(MAX_LANE_CHANGE_HEADING_RAD))
 SPAWN_PERIOD_STEPS = 5  # entries are attempted every 5 steps (0.5 s at 0.1 s steps)
 # Steps between lane-change decisions of a driver (0.6 s at 0.1 s steps); common practice, no source.
 LANE_DECISION_PERIOD_STEPS = 6
@@ -152,12 +154,15 @@ def _lane_end_gap(params: SimParams, lane: np.ndarray, x: np.ndarray, length: np
 
 
 def lane_occupancy(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
-                   lane: np.ndarray | None = None) -> np.ndarray:
+                   lane: np.ndarray | None = None, heading_rad: np.ndarray | None = None,
+                   length_m: np.ndarray | None = None) -> np.ndarray:
     """(S, V, L) True where a vehicle's body reaches into lane l, or (given ``lane``) l is the lane it is in or
     moving to: a driver who has begun a lane change is visible in the target lane at once, as an indicator is."""
     lanes = np.arange(params.num_lanes)
     lo = lanes * params.lane_width_m
     hw = 0.5 * width_m[..., None]
+    if heading_rad is not None:  # lateral half-extent of the rotated footprint
+        hw = hw * np.cos(heading_rad)[..., None] + 0.5 * (length_m * np.abs(np.sin(heading_rad)))[..., None]
     yy = y_m[..., None]
     occ = (yy + hw > lo + BAND_EPS_M) & (yy - hw < lo + params.lane_width_m - BAND_EPS_M)
     if lane is not None:
@@ -201,7 +206,7 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
 
     # --- 1. neighbours ---
     order = _Order(x, valid)
-    occ = lane_occupancy(params, y, width, valid, lane)  # (S, V, L)
+    occ = lane_occupancy(params, y, width, valid, lane, state.heading_rad, length)  # (S, V, L)
     nxt = order.next_pos(occ)  # (S, V, L) nearest occupant ahead in each lane (sorted position)
     # Own leader: the nearest over all lanes this vehicle occupies (body or intent).
     lead_pos = np.where(occ[..., 0], nxt[..., 0], v_n)
@@ -247,9 +252,9 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
             size_key = rng.combine(state.key[ss], state.step[ss], rng.STREAM_BRAKE_SIZE, state.vehicle_id[ss, sv])
             m, sd, lo, hi = params.brake_decel
             decel = decel.copy()
-            decel[ss, sv] = np.clip(m + sd * rng.normal(size_key, 0), lo, hi)
+            decel[ss, sv] = rng.truncated_normal(m, sd, lo, hi, size_key, 0)
             m, sd, lo, hi = params.brake_duration
-            timer[ss, sv] = np.clip(m + sd * rng.normal(size_key, 1), lo, hi)
+            timer[ss, sv] = rng.truncated_normal(m, sd, lo, hi, size_key, 1)
     acc = np.where(timer > 0.0, np.minimum(acc, -decel), acc)
     acc = np.maximum(acc, -MAX_PHYSICAL_DECEL_MPS2)
 
@@ -312,10 +317,12 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     # --- 6. motion ---
     dist, v_new = distance_and_speed(vx, acc, dt)
     x_new = x + dist
-    vlat_max = 1.5 * params.lane_change_speed_mps
+    # Lateral speed toward the lane centre, at most 1.5x the nominal lane-change speed and at most
+    # tan(MAX_LANE_CHANGE_HEADING_RAD) times the forward speed: a slow car changes lane slowly, never sideways.
+    vlat_max = np.minimum(1.5 * params.lane_change_speed_mps, MAX_LANE_CHANGE_SLOPE * v_new)
     vy = np.clip(LATERAL_GAIN_PER_S * (params.lane_centre_m(new_lane) - y), -vlat_max, vlat_max)
     y_new = y + vy * dt
-    heading = np.arctan2(vy, np.maximum(v_new, 1.0))
+    heading = np.arctan2(vy, np.maximum(v_new, 0.1))
     # ego: clip the action to the scenario's limits, then the kinematic bicycle
     a_ego = np.clip(action[:, 0], -params.max_brake_mps2, params.max_accel_mps2)
     steer = np.clip(action[:, 1], -params.max_steer_rad, params.max_steer_rad)
@@ -421,9 +428,11 @@ def _spawn(out: dict, params: SimParams) -> None:
     v0 = traits[:, T_V0]
     from_behind = v0 > out["vx_mps"][cand, EGO] + 1.0
     xs = np.where(from_behind, lo_x[cand], hi_x[cand])
-    want = params.lane_exists(lane, xs)
+    # enter only where the lane runs on for at least the merge zone (nobody appears just before a lane end)
+    want = params.lane_exists(lane, xs) & (params.distance_to_lane_end(lane, xs) >= params.merge_zone_m)
     x_c, len_c, v_c = out["x_m"][cand], out["length_m"][cand], out["vx_mps"][cand]
-    occ = lane_occupancy(params, out["y_m"][cand], out["width_m"][cand], valid[cand], out["lane"][cand])
+    occ = lane_occupancy(params, out["y_m"][cand], out["width_m"][cand], valid[cand], out["lane"][cand],
+                         out["heading_rad"][cand], out["length_m"][cand])
     occ = np.take_along_axis(occ, lane[:, None, None], axis=2)[..., 0]  # (c, V)
     dxs = x_c - xs[:, None]
     half = 0.5 * (len_c + length[:, None])

@@ -61,13 +61,16 @@ def substeps_per_plan_step(params: SimParams, plan_dt_s: float) -> int:
     return int(round(n))
 
 
-def branch(state: TrafficState, params: SimParams, scene: int, num_branches: int, *, mode: OracleMode,
+def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_branches: int, *, mode: OracleMode,
            seed: int) -> TrafficState:
-    """``num_branches`` copies of one scene, each with its own random key (and, if resampled, new traits)."""
+    """``num_branches`` copies of each given scene (scene-major), each with its own random key (and, if
+    resampled, new traits). Branch k of a scene gets the same key derivation whatever the other scenes are."""
     if mode not in ("known", "resampled"):
         raise ValueError(f"mode must be 'known' or 'resampled', got {mode!r}")
-    base = state.take(np.full(num_branches, scene))
-    keys = rng.combine(base.key, int(seed), rng.STREAM_ORACLE, np.arange(num_branches))
+    scenes = np.atleast_1d(np.asarray(scene, dtype=np.int64))
+    base = state.take(np.repeat(scenes, num_branches))
+    k_idx = np.tile(np.arange(num_branches), len(scenes))
+    keys = rng.combine(base.key, int(seed), rng.STREAM_ORACLE, k_idx)
     new = base.replace(key=keys, collided=np.zeros_like(base.collided), offroad=np.zeros_like(base.offroad),
                        reached_goal=np.zeros_like(base.reached_goal))
     if mode == "resampled":
@@ -93,33 +96,55 @@ def oracle_futures(state: TrafficState, params: SimParams, plans: np.ndarray, nu
         seed: selects the K random futures; the same seed gives the same futures.
 
     Returns:
-        An :class:`OracleFutures`.
+        An :class:`OracleFutures` with leading axes (C, K).
     """
     plans = np.asarray(plans, dtype=np.float64)
     if plans.ndim != 3 or plans.shape[-1] != ACTION_DIM:
         raise ValueError(f"plans must have shape (C, H, {ACTION_DIM}), got {plans.shape}")
+    out = oracle_futures_batch(state, params, np.array([scene]), plans[None], num_futures, mode=mode,
+                               plan_dt_s=plan_dt_s, seed=seed)
+    return OracleFutures(*(getattr(out, f)[0] for f in ("vehicles", "vehicle_id", "collided", "offroad",
+                                                        "first_collision_step")))
+
+
+def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndarray, plans: np.ndarray,
+                         num_futures: int, *, mode: OracleMode = "known", plan_dt_s: float = 0.2,
+                         seed: int = 0) -> OracleFutures:
+    """:func:`oracle_futures` for several scenes at once: plans (S, C, H, 2) -> leading axes (S, C, K).
+
+    All S x C x K futures run as one batch of the engine. The K futures of a scene are shared by its C plans
+    (common random numbers) and do not depend on which other scenes are in the batch.
+    """
+    plans = np.asarray(plans, dtype=np.float64)
+    scenes = np.asarray(scenes, dtype=np.int64)
+    if plans.ndim != 4 or plans.shape[-1] != ACTION_DIM or plans.shape[0] != len(scenes):
+        raise ValueError(f"plans must have shape (S={len(scenes)}, C, H, {ACTION_DIM}), got {plans.shape}")
     if num_futures < 1:
         raise ValueError(f"num_futures must be >= 1, got {num_futures}")
-    c_n, h_n, _ = plans.shape
+    s_n, c_n, h_n, _ = plans.shape
     k_n = int(num_futures)
     sub = substeps_per_plan_step(params, plan_dt_s)
-    branches = branch(state, params, scene, k_n, mode=mode, seed=seed)
-    st = branches.take(np.tile(np.arange(k_n), c_n))  # (C*K) scenes, plan-major
-    actions = np.repeat(plans, k_n, axis=0)  # (C*K, H, 2)
+    branches = branch(state, params, scenes, k_n, mode=mode, seed=seed)  # (S*K) scenes, scene-major
+    # order (S, C, K): for scene s and plan c, the K branches of scene s
+    take = (np.arange(s_n)[:, None, None] * k_n + np.arange(k_n)[None, None, :]).repeat(c_n, axis=1)
+    st = branches.take(take.reshape(-1))
+    actions = np.repeat(plans, k_n, axis=1).reshape(s_n * c_n * k_n, h_n, ACTION_DIM)
     v_n = state.num_vehicles
-    rows = np.empty((c_n * k_n, h_n, v_n, 8))
-    ids = np.empty((c_n * k_n, h_n, v_n), dtype=np.int64)
-    first = np.full(c_n * k_n, h_n, dtype=np.int64)
+    n = s_n * c_n * k_n
+    rows = np.empty((n, h_n, v_n, 8))
+    ids = np.empty((n, h_n, v_n), dtype=np.int64)
+    first = np.full(n, h_n, dtype=np.int64)
     for h in range(h_n):
         for _ in range(sub):
             st, _info = step(st, actions[:, h], params)
         rows[:, h] = st.vehicles()
         ids[:, h] = st.vehicle_id
         first = np.where((first == h_n) & (st.collided | st.offroad), h, first)
+    lead = (s_n, c_n, k_n)
     return OracleFutures(
-        vehicles=rows.reshape(c_n, k_n, h_n, v_n, -1),
-        vehicle_id=ids.reshape(c_n, k_n, h_n, v_n),
-        collided=st.collided.reshape(c_n, k_n),
-        offroad=st.offroad.reshape(c_n, k_n),
-        first_collision_step=first.reshape(c_n, k_n),
+        vehicles=rows.reshape(*lead, h_n, v_n, -1),
+        vehicle_id=ids.reshape(*lead, h_n, v_n),
+        collided=st.collided.reshape(lead),
+        offroad=st.offroad.reshape(lead),
+        first_collision_step=first.reshape(lead),
     )

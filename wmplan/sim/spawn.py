@@ -14,22 +14,20 @@ from wmplan.sim.params import NUM_TRAITS, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
 
 
-def _truncnorm(spec: tuple[float, float, float, float], z: np.ndarray) -> np.ndarray:
-    mean, std, lo, hi = spec
-    return np.clip(mean + std * z, lo, hi)
-
-
 def draw_traits(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0) -> np.ndarray:
-    """Hidden traits for vehicles with the given identities, (..., NT); ``key`` broadcasts against ``vehicle_id``."""
+    """Hidden traits for vehicles with the given identities, (..., NT); ``key`` broadcasts against ``vehicle_id``.
+
+    Each trait follows the scenario's normal distribution truncated to [low, high].
+    """
     trait_idx = np.arange(NUM_TRAITS)
-    z = rng.normal(key[..., None], rng.STREAM_TRAITS, vehicle_id[..., None], trait_idx, salt)
-    return np.clip(params.trait_mean + params.trait_std * z, params.trait_lo, params.trait_hi)
+    return rng.truncated_normal(params.trait_mean, params.trait_std, params.trait_lo, params.trait_hi,
+                                key[..., None], rng.STREAM_TRAITS, vehicle_id[..., None], trait_idx, salt)
 
 
 def draw_size(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Length and width of vehicles with the given identities."""
-    length = _truncnorm(params.length_dist, rng.normal(key, rng.STREAM_TRAITS, vehicle_id, 101))
-    width = _truncnorm(params.width_dist, rng.normal(key, rng.STREAM_TRAITS, vehicle_id, 102))
+    """Length and width of vehicles with the given identities (truncated normals)."""
+    length = rng.truncated_normal(*params.length_dist, key, rng.STREAM_TRAITS, vehicle_id, 101)
+    width = rng.truncated_normal(*params.width_dist, key, rng.STREAM_TRAITS, vehicle_id, 102)
     return length, width
 
 
