@@ -75,6 +75,32 @@ def anchor_index(dataset: Dataset, spec: WindowSpec, episodes: np.ndarray | None
     return np.stack([ee[ok], tt[ok]], axis=1).astype(np.int64)
 
 
+def frame_window(rows: np.ndarray, ids: np.ndarray, anchor: int, num_objects: int) -> tuple[np.ndarray, np.ndarray]:
+    """Object rows of a window in its anchor frame.
+
+    Args:
+        rows: (B, T, V, F) world-frame rows over the window's times; ids: (B, T, V) vehicle identities.
+        anchor: index along T of the anchor time.
+        num_objects: M.
+
+    Returns:
+        (B, T, N, F) rows of the ego and the M vehicles nearest to it at the anchor, in the ego's anchor frame, with
+        valid = 0 wherever a slot holds another vehicle than at the anchor; and the slots (B, N).
+    """
+    b, t_n = rows.shape[:2]
+    at = rows[:, anchor]  # (B, V, F)
+    slots = nearest_slots(at, num_objects)  # (B, N)
+    slots_t = np.broadcast_to(slots[:, None, :], (b, t_n, slots.shape[1]))
+    picked = gather_slots(rows, slots_t)  # (B, T, N, F)
+    anchor_ids = np.take_along_axis(ids[:, anchor], np.where(slots >= 0, slots, 0), axis=1)  # (B, N)
+    ids_t = np.take_along_axis(ids, np.where(slots_t >= 0, slots_t, 0), axis=2)
+    picked[..., F_VALID] *= (ids_t == anchor_ids[:, None, :]) & (slots_t >= 0)
+    ego = at[:, 0]
+    origin = np.broadcast_to(ego[:, None, [F_X, F_Y]], (b, t_n, 2))
+    heading = np.broadcast_to(ego[:, None, F_HEADING], (b, t_n))
+    return to_frame(picked, origin, heading), slots
+
+
 class Windows:
     """Vectorised window builder over a loaded dataset."""
 
@@ -96,16 +122,8 @@ class Windows:
         rows = self._veh[e[:, None], tt].astype(np.float64)  # (B, W+H, V, F)
         ids = self._ids[e[:, None], tt]  # (B, W+H, V)
         w = spec.history - 1
-        anchor = rows[:, w]  # (B, V, F)
-        slots = nearest_slots(anchor, spec.num_objects)  # (B, N)
-        slots_t = np.broadcast_to(slots[:, None, :], (len(e), len(offs), slots.shape[1]))
-        picked = gather_slots(rows, slots_t)  # (B, W+H, N, F)
-        anchor_ids = np.take_along_axis(ids[:, w], np.where(slots >= 0, slots, 0), axis=1)  # (B, N)
-        ids_t = np.take_along_axis(ids, np.where(slots_t >= 0, slots_t, 0), axis=2)
-        same = (ids_t == anchor_ids[:, None, :]) & (slots_t >= 0)
-        picked[..., F_VALID] *= same
-        ego = anchor[:, 0]
-        framed = to_frame(picked, ego[:, None, [F_X, F_Y]].repeat(len(offs), 1), np.repeat(ego[:, None, F_HEADING], len(offs), 1))
+        framed, slots = frame_window(rows, ids, w, spec.num_objects)
+        ego = rows[:, w, 0]
         road = road_features(self.params, ego[:, F_X], ego[:, F_Y])
         speed = np.hypot(ego[:, 2], ego[:, 3])
         steer = np.where(t > 0, self._act[e, np.maximum(t - 1, 0), 1], 0.0)
