@@ -128,7 +128,7 @@ def test_check_env_passes_without_warnings_with_normalised_actions(eid, render_m
 def test_check_env_with_physical_actions_only_advises_a_normalised_box(eid, render_mode):
     """With the default action box in physical units (m/s^2, rad) check_env passes and its only warning is the
     advice to use a normalised box (gymnasium's check_space_limit); any other warning fails this test."""
-    env = gym.make(eid, render_mode=render_mode)
+    env = gym.make(eid, render_mode=render_mode, normalized_actions=False)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         check_env(env.unwrapped)

@@ -599,13 +599,18 @@ def env_id(scenario_name: str) -> str:
 
 
 def register_envs() -> list[str]:
-    """Register every built-in scenario with gymnasium (idempotent); returns the ids."""
+    """Register every built-in scenario with gymnasium (idempotent); returns the ids.
+
+    Registered environments take normalised actions in [-1, 1]^2 (mapped to the scenario's acceleration, braking
+    and steering limits), the convention learning code expects; ``LaneEnv(...)`` built directly takes physical
+    units by default.
+    """
     ids = []
     for name in builtin_names():
         eid = env_id(name)
         if eid not in gym.registry:
             gym.register(id=eid, entry_point="wmplan.sim.env:LaneEnv",
-                         vector_entry_point="wmplan.sim.env:LaneVectorEnv", kwargs={"scenario": name},
+                         vector_entry_point="wmplan.sim.env:LaneVectorEnv", kwargs={"scenario": name, "normalized_actions": True},
                          nondeterministic=False)
         ids.append(eid)
     return ids
