@@ -1,0 +1,207 @@
+"""Closed-loop evaluation: planners drive the ego in the true simulator, many episodes per batch.
+
+Every planner meets the same episodes (the same scene seeds: a paired comparison). A batch of episodes runs as one
+simulator state and one planner call per decision; finished episodes drop out of the planner's batch.
+
+Per-episode rows (keys): planner, episode, seed, collision, offroad, success (goal reached without collision or
+leaving the road), progress_m, mean_speed_mps, min_ttc_s (smallest time to collision with the vehicle ahead in
+the ego's path over the episode), rms_jerk_mps3, decision_ms (planner wall time per decision, divided among the
+episodes of the batch), decisions.
+
+Calibration records: at every decision of a risk-predicting planner, the predicted probability that the chosen plan
+collides within its horizon, beside whether the ego then collided within that horizon.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+import torch
+
+from wmplan.data.collect import episode_seeds
+from wmplan.errors import ConfigError
+from wmplan.model.baselines import ConstantVelocity
+from wmplan.model.checkpoint import load_model
+from wmplan.model.ego import EgoKinematics
+from wmplan.plan.mpc import PlannerConfig, SamplingPlanner
+from wmplan.plan.predictors import ModelPredictor, OraclePredictor, make_context
+from wmplan.plan.risk import ttc_to_leader_s
+from wmplan.scenario import Scenario
+from wmplan.sim.ego_rules import rule_actions
+from wmplan.sim.engine import step
+from wmplan.sim.params import SimParams
+from wmplan.sim.spawn import initial_state
+from wmplan.sim.state import EGO, TrafficState
+
+PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
+HISTORY = 5
+NUM_OBJECTS = 8
+
+
+@dataclass
+class EvalOutput:
+    """Rows of one planner's episodes and its calibration records."""
+
+    rows: list[dict] = field(default_factory=list)
+    predicted: list[float] = field(default_factory=list)
+    happened: list[int] = field(default_factory=list)
+    decision_ms: list[float] = field(default_factory=list)
+
+
+def build_planner(name: str, params: SimParams, *, model_dir=None, deterministic_dir=None,
+                  cfg: PlannerConfig | None = None):
+    """A planner by name (see PLANNER_NAMES): None for 'rules', else a SamplingPlanner."""
+    if name not in PLANNER_NAMES:
+        raise ConfigError(f"unknown planner {name!r}; choose from {', '.join(PLANNER_NAMES)}")
+    if name == "rules":
+        return None
+    cfg = cfg or PlannerConfig()
+    ego = EgoKinematics.from_scenario(params.scenario, cfg.plan_dt_s)
+    kind = name.split("+", 1)[1]
+    if kind == "oracle":
+        return SamplingPlanner(cfg, params, OraclePredictor(params, ego, cfg.plan_dt_s), ego)
+    if kind == "latent":
+        if model_dir is None:
+            raise ConfigError("planner mpc+latent needs --model MODEL_DIR (a latent model from `wmplan train`)")
+        model, _ = load_model(model_dir)
+        return SamplingPlanner(cfg, params, ModelPredictor(model, "latent"), ego)
+    if kind == "deterministic":
+        if deterministic_dir is None:
+            raise ConfigError("planner mpc+deterministic needs --deterministic DIR (from `wmplan train --deterministic`)")
+        model, _ = load_model(deterministic_dir)
+        return SamplingPlanner(cfg, params, ModelPredictor(model, "deterministic"), ego)
+    from wmplan.model.config import ModelConfig
+
+    mcfg = ModelConfig(history=HISTORY, horizon=cfg.horizon, num_objects=NUM_OBJECTS, plan_dt_s=cfg.plan_dt_s)
+    if model_dir is not None:
+        mcfg = load_model(model_dir)[0].cfg
+    return SamplingPlanner(cfg, params, ModelPredictor(ConstantVelocity(mcfg, ego), "constant-velocity"), ego)
+
+
+def _initial_history(state: TrafficState, history: int, dt_s: float) -> tuple[np.ndarray, np.ndarray]:
+    """History buffers (S, W, V, F) and ids at the start: positions extrapolated backwards at constant velocity."""
+    rows = state.vehicles()
+    back = np.arange(history - 1, -1, -1)[None, :, None] * dt_s  # (1, W, 1)
+    hist = np.repeat(rows[:, None], history, axis=1)
+    hist[..., 0] -= hist[..., 2] * back
+    hist[..., 1] -= hist[..., 3] * back
+    ids = np.repeat(state.vehicle_id[:, None], history, axis=1)
+    return hist, ids
+
+
+def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, *, seed: int,
+              progress: Callable[[int], None] | None = None, num_objects: int = NUM_OBJECTS,
+              history: int = HISTORY) -> EvalOutput:
+    """Run one batch of episodes (one per seed) with one planner."""
+    out = EvalOutput()
+    cfg = planner.cfg if planner is not None else PlannerConfig()
+    sub = int(round(cfg.plan_dt_s / params.dt_s))
+    n_dec = params.num_steps // sub
+    state = initial_state(params, seeds)
+    e_n = state.num_scenes
+    hist, ids = _initial_history(state, history, cfg.plan_dt_s)
+    x0 = state.x_m[:, EGO].copy()
+    speed_sum = np.zeros(e_n)
+    steps = np.zeros(e_n, dtype=np.int64)
+    min_ttc = np.full(e_n, np.inf)
+    jerk_sq = np.zeros(e_n)
+    prev_acc = np.full(e_n, np.nan)
+    end_dec = np.full(e_n, n_dec, dtype=np.int64)
+    coll_dec = np.full(e_n, -1, dtype=np.int64)
+    # outcome frozen at the step an episode ends (the engine keeps stepping finished scenes with the others)
+    fin_coll = np.zeros(e_n, dtype=bool)
+    fin_off = np.zeros(e_n, dtype=bool)
+    fin_goal = np.zeros(e_n, dtype=bool)
+    fin_x = np.full(e_n, np.nan)
+    dec_ms = np.zeros(e_n)
+    pred_log: list[tuple[np.ndarray, int, np.ndarray]] = []
+    gen = torch.Generator().manual_seed(int(np.random.SeedSequence([seed, 0xE7A1]).generate_state(1)[0]))
+    if planner is not None:
+        planner.reset(e_n)
+    for t in range(n_dec):
+        active = ~state.done
+        if not active.any():
+            break
+        act_idx = np.nonzero(active)[0]
+        t0 = time.perf_counter()
+        if planner is None:
+            actions = rule_actions(state, params)
+        else:
+            ctx = make_context(params, state.take(act_idx), hist[act_idx], ids[act_idx], num_objects)
+            res = planner.plan(ctx, generator=gen, rows=act_idx)
+            actions = np.zeros((e_n, 2))
+            actions[act_idx] = res.action
+            pred_log.append((act_idx, t, res.p_collision))
+        elapsed_ms = (time.perf_counter() - t0) * 1e3
+        out.decision_ms.append(elapsed_ms / len(act_idx))
+        dec_ms[act_idx] += elapsed_ms / len(act_idx)
+        for _ in range(sub):
+            was_done = state.done
+            state, info = step(state, actions, params)
+            live = ~was_done
+            speed_sum += np.where(live, state.ego_speed_mps, 0.0)
+            steps += live
+            acc = info.accel_mps2[:, EGO]
+            jerk = np.where(np.isnan(prev_acc), 0.0, (acc - prev_acc) / params.dt_s)
+            jerk_sq += np.where(live, jerk**2, 0.0)
+            prev_acc = acc
+            newly = live & state.done
+            end_dec = np.where(newly, t + 1, end_dec)
+            fin_coll |= newly & state.collided
+            fin_off |= newly & state.offroad
+            fin_goal |= newly & state.reached_goal
+            fin_x = np.where(newly, state.x_m[:, EGO], fin_x)
+            coll_dec = np.where(live & (state.collided | state.offroad) & (coll_dec < 0), t + 1, coll_dec)
+        rows_now = state.vehicles()
+        ttc = ttc_to_leader_s(torch.from_numpy(rows_now[:, None])).numpy()[:, 0]
+        min_ttc = np.where(active, np.minimum(min_ttc, ttc), min_ttc)
+        hist = np.concatenate([hist[:, 1:], rows_now[:, None]], axis=1)
+        ids = np.concatenate([ids[:, 1:], state.vehicle_id[:, None]], axis=1)
+        if progress is not None:
+            progress(1)
+    horizon = cfg.horizon
+    for act_idx, t, p in pred_log:
+        c = coll_dec[act_idx]
+        happened = (c > t) & (c <= t + horizon)
+        out.predicted.extend(p.tolist())
+        out.happened.extend(happened.astype(int).tolist())
+    fin_x = np.where(np.isnan(fin_x), state.x_m[:, EGO], fin_x)
+    for i in range(e_n):
+        out.rows.append({
+            "planner": planner_name,
+            "seed": int(seeds[i]),
+            "collision": bool(fin_coll[i]),
+            "offroad": bool(fin_off[i]),
+            "success": bool(fin_goal[i] and not fin_coll[i] and not fin_off[i]),
+            "progress_m": float(fin_x[i] - x0[i]),
+            "mean_speed_mps": float(speed_sum[i] / max(1, steps[i])),
+            "min_ttc_s": float(min_ttc[i]),
+            "rms_jerk_mps3": float(np.sqrt(jerk_sq[i] / max(1, steps[i]))),
+            "decision_ms": float(dec_ms[i] / max(1, end_dec[i])),
+            "decisions": int(end_dec[i]),
+        })
+    return out
+
+
+def evaluate_planner(scenario: Scenario, planner_name: str, *, episodes: int, seed: int = 0, model_dir=None,
+                     deterministic_dir=None, planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
+                     progress: Callable[[int], None] | None = None) -> EvalOutput:
+    """All episodes of one planner, in batches; episode e uses scene seed ``episode_seeds(seed, episodes)[e]``."""
+    params = SimParams.from_scenario(scenario)
+    planner = build_planner(planner_name, params, model_dir=model_dir, deterministic_dir=deterministic_dir,
+                            cfg=planner_cfg)
+    seeds = episode_seeds(seed, episodes)
+    total = EvalOutput()
+    for start in range(0, episodes, batch_size):
+        part = run_batch(params, planner_name, planner, seeds[start:start + batch_size], seed=seed + start,
+                         progress=progress)
+        for r, e in zip(part.rows, range(start, start + len(part.rows)), strict=True):
+            r["episode"] = e
+        total.rows += part.rows
+        total.predicted += part.predicted
+        total.happened += part.happened
+        total.decision_ms += part.decision_ms
+    return total

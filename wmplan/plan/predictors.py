@@ -1,0 +1,135 @@
+"""Predictors behind one interface: sampled futures of the object list under candidate ego plans.
+
+Every predictor answers the same question for a batch of B decision points: given the observation history and
+C candidate plans, draw K futures of the ego and its M nearest vehicles, as rows (B, C, K, H, N, F) in each
+decision's anchor frame (the ego at the origin, x along its heading). Names used by the CLI and in JSON:
+
+| name                | what it is                                                                          |
+|---------------------|-------------------------------------------------------------------------------------|
+| ``latent``          | the learned latent-variable model (:mod:`wmplan.model.world_model`)                 |
+| ``deterministic``   | the least-squares model of the same size; its K futures coincide                    |
+| ``constant-velocity`` | every other vehicle keeps its velocity                                            |
+| ``oracle``          | the true simulator from the true state, drivers' traits known, events re-drawn      |
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from wmplan.data.windows import frame_window
+from wmplan.model.baselines import ConstantVelocity
+from wmplan.model.ego import EgoKinematics
+from wmplan.model.world_model import WorldModel
+from wmplan.sim.features import F_HEADING, F_VALID, F_X, F_Y
+from wmplan.sim.observe import gather_slots, road_features, to_frame
+from wmplan.sim.oracle import oracle_futures_batch
+from wmplan.sim.params import SimParams
+from wmplan.sim.state import EGO, TrafficState
+
+PREDICTOR_NAMES = ("latent", "deterministic", "constant-velocity", "oracle")
+
+
+@dataclass(frozen=True, eq=False)
+class DecisionContext:
+    """What a planner knows at one decision for B scenes.
+
+    Attributes:
+        history: (B, W, N, F) float32 object rows over the last W decision steps, anchor frame.
+        slots: (B, N) simulator slots of the object list (-1 padding); used only by the oracle.
+        road: (B, 6) road context of the ego.
+        ego_speed_mps, ego_steer_rad: (B,).
+        ego_pose: (B, 3) world x, y, heading of the ego at the anchor.
+        state: the true simulator state of the B scenes (read only by the oracle predictor).
+        scenes: (B,) indices of these scenes in ``state``.
+    """
+
+    history: torch.Tensor
+    slots: np.ndarray
+    road: torch.Tensor
+    ego_speed_mps: torch.Tensor
+    ego_steer_rad: torch.Tensor
+    ego_pose: np.ndarray
+    state: TrafficState
+    scenes: np.ndarray
+
+    def model_batch(self) -> dict:
+        return {"history": self.history, "road": self.road, "ego_speed_mps": self.ego_speed_mps,
+                "ego_steer_rad": self.ego_steer_rad}
+
+
+def make_context(params: SimParams, state: TrafficState, rows_hist: np.ndarray, ids_hist: np.ndarray,
+                 num_objects: int, scenes: np.ndarray | None = None) -> DecisionContext:
+    """Build the decision context from a history buffer of world rows (B, W, V, F) and identities (B, W, V)."""
+    scenes = np.arange(state.num_scenes) if scenes is None else np.asarray(scenes)
+    w = rows_hist.shape[1]
+    framed, slots = frame_window(rows_hist, ids_hist, w - 1, num_objects)
+    ego = rows_hist[:, -1, EGO]
+    road = road_features(params, ego[:, F_X], ego[:, F_Y])
+    return DecisionContext(
+        history=torch.from_numpy(framed.astype(np.float32)),
+        slots=slots,
+        road=torch.from_numpy(road.astype(np.float32)),
+        ego_speed_mps=torch.from_numpy(state.ego_speed_mps[scenes].astype(np.float32)),
+        ego_steer_rad=torch.from_numpy(state.ego_steer_rad[scenes].astype(np.float32)),
+        ego_pose=np.stack([ego[:, F_X], ego[:, F_Y], ego[:, F_HEADING]], axis=-1),
+        state=state,
+        scenes=scenes,
+    )
+
+
+class Predictor:
+    """Base class: ``predict(ctx, actions (B, C, H, 2), K, generator) -> rows (B, C, K, H, N, F)``."""
+
+    name = "base"
+
+    def predict(self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *,
+                generator: torch.Generator) -> torch.Tensor:
+        raise NotImplementedError
+
+
+class ModelPredictor(Predictor):
+    """A trained model (latent or deterministic) or the constant-velocity baseline."""
+
+    def __init__(self, model: WorldModel | ConstantVelocity, name: str):
+        self.model = model
+        self.name = name
+
+    @property
+    def ego(self) -> EgoKinematics:
+        return self.model.ego
+
+    def predict(self, ctx, actions, num_futures, *, generator):
+        out = self.model.sample(ctx.model_batch(), actions, num_futures, generator=generator)
+        return out["rows"]
+
+
+class OraclePredictor(Predictor):
+    """The true simulator, branched from the true state (``known`` traits by default)."""
+
+    name = "oracle"
+
+    def __init__(self, params: SimParams, ego: EgoKinematics, plan_dt_s: float, mode: str = "known"):
+        self.params = params
+        self.ego = ego
+        self.plan_dt_s = plan_dt_s
+        self.mode = mode
+        self._calls = 0
+
+    def predict(self, ctx, actions, num_futures, *, generator):
+        seed = int(torch.randint(0, 2**31 - 1, (1,), generator=generator))
+        fut = oracle_futures_batch(ctx.state, self.params, ctx.scenes, actions.double().numpy(), num_futures,
+                                   mode=self.mode, plan_dt_s=self.plan_dt_s, seed=seed)
+        b, c, k, h = fut.vehicles.shape[:4]
+        slots = np.broadcast_to(ctx.slots[:, None, None, None, :], (b, c, k, h, ctx.slots.shape[1]))
+        picked = gather_slots(fut.vehicles, slots)  # (B, C, K, H, N, F)
+        anchor_ids = np.take_along_axis(ctx.state.vehicle_id[ctx.scenes], np.where(ctx.slots >= 0, ctx.slots, 0), axis=1)
+        ids = np.take_along_axis(fut.vehicle_id, np.where(slots >= 0, slots, 0), axis=-1)
+        picked[..., F_VALID] *= (ids == anchor_ids[:, None, None, None, :]) & (slots >= 0)
+        pose = ctx.ego_pose
+        origin = np.broadcast_to(pose[:, None, None, None, :2], (b, c, k, h, 2))
+        heading = np.broadcast_to(pose[:, None, None, None, 2], (b, c, k, h))
+        framed = to_frame(picked, origin, heading)
+        return torch.from_numpy(framed.astype(np.float32))
