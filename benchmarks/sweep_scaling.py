@@ -1,0 +1,107 @@
+"""Sweep scaling: cells per minute with 1 and 2 workers on the same sweep, and their ratio ``scaling_2x``.
+
+What is measured: ``wmplan.sweep.run_sweep`` on one small sweep (onramp-merge, the rule-based ego, the density of
+main lane 1 on a grid, ``episodes_per_cell`` episodes per cell so that a cell takes about a second and the start of
+the worker processes does not dominate), into a fresh folder each time, plots off:
+
+* ``cells_per_min["1"]``: ``workers=1`` (cells run one after another in this process);
+* ``cells_per_min["2"]``: ``workers=2`` (a spawned process pool; its start-up time is included);
+* ``scaling_2x`` = rate with 2 workers / rate with 1; the design target is >= 1.8 on a 2-core machine;
+* ``rows_identical``: both runs wrote the same ``results.parquet`` rows (they must).
+
+Each configuration is timed ``repeats`` times, alternating 1 and 2 workers, and the median is kept. Wall-clock time
+depends on what else the machine is doing: the load average before and after is recorded with the numbers, and
+``cpu_count`` tells how many cores there were to share.
+
+Usage: ``python benchmarks/sweep_scaling.py [--quick] [--json FILE]``; ``wmplan bench`` calls :func:`run`.
+Importing this module runs nothing.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import statistics
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+FULL = dict(num_cells=24, episodes_per_cell=192, repeats=3)
+QUICK = dict(num_cells=8, episodes_per_cell=96, repeats=1)
+TARGET_SCALING_2X = 1.8
+
+
+def _sweep(num_cells: int, episodes_per_cell: int):
+    from wmplan.sweep import parse_sweep
+
+    densities = [round(8.0 + 2.0 * i, 1) for i in range(num_cells)]
+    return parse_sweep({
+        "name": "bench-scaling", "base": "onramp-merge",
+        "vary": {"traffic.density_veh_per_km[1]": densities},
+        "planners": ["rules"], "seed": 1, "episodes_per_cell": episodes_per_cell,
+    }, source="<benchmark>")
+
+
+def _time_run(sweep, workers: int, root: Path, tag: str) -> tuple[float, Path]:
+    from wmplan.sweep import run_sweep
+
+    out = root / tag
+    start = time.perf_counter()
+    run_sweep(sweep, out, workers=workers, progress=False, plots=False)
+    return time.perf_counter() - start, out
+
+
+def run(quick: bool = False) -> dict:
+    """Measure and return the JSON-ready result (see the module docstring)."""
+    import pyarrow.parquet as pq
+
+    cfg = QUICK if quick else FULL
+    sweep = _sweep(cfg["num_cells"], cfg["episodes_per_cell"])
+    load_before = os.getloadavg()
+    times: dict[int, list[float]] = {1: [], 2: []}
+    identical = True
+    with tempfile.TemporaryDirectory(prefix="wmplan-bench-sweep-") as tmp:
+        root = Path(tmp)
+        for r in range(cfg["repeats"]):
+            outs = {}
+            for workers in (1, 2):
+                seconds, outs[workers] = _time_run(sweep, workers, root, f"w{workers}-r{r}")
+                times[workers].append(seconds)
+            identical &= pq.read_table(outs[1] / "results.parquet").equals(pq.read_table(outs[2] / "results.parquet"))
+    seconds = {w: statistics.median(ts) for w, ts in times.items()}
+    rate = {w: 60.0 * cfg["num_cells"] / s for w, s in seconds.items()}
+    scaling = rate[2] / rate[1]
+    return {
+        "cells": cfg["num_cells"], "episodes_per_cell": cfg["episodes_per_cell"], "repeats": cfg["repeats"],
+        "seconds": {str(w): s for w, s in seconds.items()},
+        "seconds_all": {str(w): ts for w, ts in times.items()},
+        "cells_per_min": {str(w): r for w, r in rate.items()},
+        "scaling_2x": scaling, "target_scaling_2x": TARGET_SCALING_2X, "meets_target": scaling >= TARGET_SCALING_2X,
+        "rows_identical": bool(identical),
+        "cpu_count": os.cpu_count(), "load_average_before": list(load_before),
+        "load_average_after": list(os.getloadavg()),
+        "python": platform.python_version(), "quick": quick,
+    }
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="a smaller sweep, one repeat")
+    parser.add_argument("--json", metavar="FILE", help="also write the result to FILE (atomically)")
+    args = parser.parse_args(argv)
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+    result = run(quick=args.quick)
+    text = json.dumps(result, indent=2)
+    if args.json:
+        from wmplan.io import atomic_write_text
+
+        atomic_write_text(Path(args.json), text + "\n")
+    print(text)
+    return 0
+
+
+if __name__ == "__main__":  # the spawned sweep workers import this file as __mp_main__; they must not rerun it
+    raise SystemExit(main())
