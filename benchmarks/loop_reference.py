@@ -12,7 +12,8 @@ The rules (same order as the engine):
 
 1. neighbours: vehicles sorted by centre position (a stable sort, so the slot number breaks ties); a vehicle
    occupies a lane if its body reaches ``BAND_EPS_M`` into it or the lane is the one it is in or moving to; its
-   leader (follower) is the nearest vehicle ahead (behind) in sorted order that occupies one of its lanes;
+   leader (follower) is the nearest vehicle ahead (behind) in sorted order that occupies one of its lanes (the
+   lateral extent of a body is that of its footprint rotated by its heading);
 2. IDM (Treiber, Hennecke, Helbing 2000; book form of s* from Treiber & Kesting 2013) toward the leader and, if
    any lane of the road ends, toward the end of its own lane as a standing obstacle;
 3. yielding: a traffic driver that is not itself merging and has a merging vehicle ahead (within the yield
@@ -20,8 +21,10 @@ The rules (same order as the engine):
 4. hard-braking events (random start, random size and duration), then the physical braking limit;
 5. MOBIL (Kesting, Treiber, Helbing 2007) on decision steps, right/left at different phases, with the
    mandatory-merge bias;
-6. motion: constant-acceleration longitudinal step, proportional lateral motion, kinematic bicycle for the ego;
-7. vehicles outside the window leave; every ``SPAWN_PERIOD_STEPS`` at most one vehicle enters; then the ego's
+6. motion: constant-acceleration longitudinal step, proportional lateral motion (its speed limited, also by the
+   forward speed), kinematic bicycle for the ego;
+7. vehicles outside the window leave; every ``SPAWN_PERIOD_STEPS`` at most one vehicle enters (traits and size
+   drawn from truncated normals, never just before a lane end); then the ego's
    collision (separating axes), off-road and goal checks.
 
 Shapes: S scenes, V vehicle slots (slot 0 is the ego), L lanes, NT traits. Results on this simplified traffic
@@ -31,6 +34,7 @@ model certify nothing about a real vehicle.
 from __future__ import annotations
 
 import math
+import statistics
 
 import numpy as np
 
@@ -39,6 +43,7 @@ from wmplan.sim.engine import (
     BAND_EPS_M,
     LANE_DECISION_PERIOD_STEPS,
     LATERAL_GAIN_PER_S,
+    MAX_LANE_CHANGE_SLOPE,
     MIN_SPAWN_GAP_M,
     SETTLED_M,
     SPAWN_PERIOD_STEPS,
@@ -98,11 +103,24 @@ def uniform(*parts: int) -> float:
     return (combine(*parts) >> 11) * _INV53
 
 
-def normal(*parts: int) -> float:
-    """Standard normal variate (Box-Muller of two counter-based uniforms)."""
-    u1 = uniform(*parts, 0x51)
-    u2 = uniform(*parts, 0x52)
-    return math.sqrt(-2.0 * math.log1p(-u1)) * math.cos(2.0 * math.pi * u2)
+_STD_NORMAL = statistics.NormalDist()  # inv_cdf: Wichura's algorithm AS 241 (Applied Statistics, 1988)
+
+
+def std_normal_cdf(z: float) -> float:
+    """Phi(z) = erfc(-z / sqrt 2) / 2."""
+    return 0.5 * math.erfc(-z / math.sqrt(2.0))
+
+
+def truncated_normal(mean: float, std: float, low: float, high: float, *parts: int) -> float:
+    """Normal(mean, std) truncated to [low, high] by inverse transform sampling of one counter-based uniform:
+    u' = Phi(a) + u (Phi(b) - Phi(a)), x = mean + std Phi^-1(u'); std = 0 gives the mean (clipped)."""
+    u = uniform(*parts)
+    if not std > 0.0:
+        return clip(mean, low, high)
+    a = std_normal_cdf((low - mean) / std)
+    b = std_normal_cdf((high - mean) / std)
+    p = clip(a + u * (b - a), 1e-300, 1.0 - 1e-16)
+    return clip(mean + std * _STD_NORMAL.inv_cdf(p), low, high)
 
 
 # --- scalar laws ------------------------------------------------------------------------------------------------------
@@ -196,11 +214,16 @@ class Road:
         lane = min(max(lane, 0), self.num_lanes - 1)
         return self.end[lane] - x if self.ends[lane] else INF
 
-    def occupies(self, y: float, width: float, lane_now: int, lane: int) -> bool:
-        """Body reaches BAND_EPS_M into ``lane``, or ``lane`` is the one the vehicle is in or moving to."""
+    def occupies(self, y: float, hw: float, lane_now: int, lane: int) -> bool:
+        """The body (lateral half-extent ``hw``) reaches BAND_EPS_M into ``lane``, or ``lane`` is the one the
+        vehicle is in or moving to."""
         lo = lane * self.lane_w
-        hw = 0.5 * width
         return lane_now == lane or (y + hw > lo + BAND_EPS_M and y - hw < lo + self.lane_w - BAND_EPS_M)
+
+
+def half_extent_y(length: float, width: float, heading: float) -> float:
+    """Lateral half-extent of a footprint rotated by ``heading``: w/2 cos h + l/2 |sin h|."""
+    return 0.5 * width * math.cos(heading) + 0.5 * (length * abs(math.sin(heading)))
 
 
 # --- one scene ------------------------------------------------------------------------------------------------------
@@ -224,7 +247,9 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
     # --- 1. neighbours ---
     order = sorted((i for i in range(v_n) if valid[i]), key=lambda i: x[i])  # stable: slot order breaks ties
     rank = {slot: r for r, slot in enumerate(order)}
-    occ = [[valid[i] and rd.occupies(y[i], width[i], lane[i], ln) for ln in range(num_lanes)] for i in range(v_n)]
+    head = sc["heading_rad"]
+    hw = [half_extent_y(length[i], width[i], head[i]) for i in range(v_n)]
+    occ = [[valid[i] and rd.occupies(y[i], hw[i], lane[i], ln) for ln in range(num_lanes)] for i in range(v_n)]
 
     def shares_lane(i: int, j: int) -> bool:
         return any(occ[i][ln] and occ[j][ln] for ln in range(num_lanes))
@@ -292,10 +317,8 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
         if (rd.brake_prob > 0.0 and timer[i] <= 0.0 and vx[i] > 5.0
                 and uniform(ev_key, vid[i]) < rd.brake_prob):
             size_key = combine(key, stp, _STREAM_BRAKE_SIZE, vid[i])
-            m, sd, lo, hi = rd.brake_decel
-            decel[i] = clip(m + sd * normal(size_key, 0), lo, hi)
-            m, sd, lo, hi = rd.brake_duration
-            timer[i] = clip(m + sd * normal(size_key, 1), lo, hi)
+            decel[i] = truncated_normal(*rd.brake_decel, size_key, 0)
+            timer[i] = truncated_normal(*rd.brake_duration, size_key, 1)
         if timer[i] > 0.0:
             acc[i] = min(acc[i], -decel[i])
         acc[i] = max(acc[i], -MAX_PHYSICAL_DECEL_MPS2)
@@ -355,10 +378,12 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
             continue
         dist, v_new = distance_and_speed(vx[i], acc[i], dt)
         x_new[i] = x[i] + dist
-        vy_i = clip(LATERAL_GAIN_PER_S * (rd.centre(new_lane[i]) - y[i]), -rd.vlat_max, rd.vlat_max)
+        # lateral speed at most 1.5x the nominal lane-change speed and at most the forward speed x tan(max heading)
+        vlat_max = min(rd.vlat_max, MAX_LANE_CHANGE_SLOPE * v_new)
+        vy_i = clip(LATERAL_GAIN_PER_S * (rd.centre(new_lane[i]) - y[i]), -vlat_max, vlat_max)
         y_new[i] = y[i] + vy_i * dt
         vx_new[i], vy_new[i] = v_new, vy_i
-        head_new[i] = math.atan2(vy_i, max(v_new, 1.0))
+        head_new[i] = math.atan2(vy_i, max(v_new, 0.1))
     # ego: clip the action, limit the steering rate, then one step of the kinematic bicycle (Rajamani 2012, 2.2)
     a_ego = clip(a_cmd, -rd.max_brake, rd.max_accel)
     steer = clip(steer_cmd, -rd.max_steer, rd.max_steer)
@@ -424,20 +449,19 @@ def _spawn_scene(out: dict, rd: Road) -> None:
     if best_lane < 0:
         return
     ln = best_lane
-    traits = [clip(rd.t_mean[t] + rd.t_std[t] * normal(key, _STREAM_TRAITS, new_id, t, 0), rd.t_lo[t], rd.t_hi[t])
+    traits = [truncated_normal(rd.t_mean[t], rd.t_std[t], rd.t_lo[t], rd.t_hi[t], key, _STREAM_TRAITS, new_id, t, 0)
               for t in range(NUM_TRAITS)]
-    m, sd, lo, hi = rd.length_dist
-    length = clip(m + sd * normal(key, _STREAM_TRAITS, new_id, 101), lo, hi)
-    m, sd, lo, hi = rd.width_dist
-    width = clip(m + sd * normal(key, _STREAM_TRAITS, new_id, 102), lo, hi)
+    length = truncated_normal(*rd.length_dist, key, _STREAM_TRAITS, new_id, 101)
+    width = truncated_normal(*rd.width_dist, key, _STREAM_TRAITS, new_id, 102)
     v0 = traits[T_V0]
     xs = lo_x if v0 > out["vx_mps"][EGO] + 1.0 else hi_x
-    if not rd.exists(ln, xs):
+    if not (rd.exists(ln, xs) and rd.to_end(ln, xs) >= rd.merge_zone):  # never just before a lane end
         return
     # nearest occupant of the lane ahead of and behind the entry point (first slot wins a tie)
     ga, gb, v_lead, v_foll = INF, INF, INF, 0.0
     for j in range(v_n):
-        if not (valid[j] and rd.occupies(out["y_m"][j], out["width_m"][j], out["lane"][j], ln)):
+        hw = half_extent_y(out["length_m"][j], out["width_m"][j], out["heading_rad"][j])
+        if not (valid[j] and rd.occupies(out["y_m"][j], hw, out["lane"][j], ln)):
             continue
         dx = out["x_m"][j] - xs
         half = 0.5 * (out["length_m"][j] + length)
