@@ -260,6 +260,61 @@ def cmd_assess(args: argparse.Namespace) -> int:
     return 0
 
 
+# --- evaluate -----------------------------------------------------------------------------------------------------
+
+
+def cmd_evaluate(args: argparse.Namespace) -> int:
+    from wmplan.evaluate.closed_loop import PLANNER_NAMES, evaluate_planner
+    from wmplan.evaluate.report import CAUTION, calibration, format_table, summarise_planner, write_outputs
+    from wmplan.plan.mpc import PlannerConfig
+    from wmplan.scenario import load_scenario, scenario_hash
+
+    scn = load_scenario(args.scenario)
+    names = [n.strip() for n in args.planners.split(",") if n.strip()]
+    unknown = [n for n in names if n not in PLANNER_NAMES]
+    if unknown:
+        raise ConfigError(f"--planners: unknown planner(s) {unknown}; choose from {', '.join(PLANNER_NAMES)}")
+    if any(n in ("mpc+latent",) for n in names) and not args.model:
+        raise ConfigError("--planners includes mpc+latent: pass --model MODEL_DIR")
+    if "mpc+deterministic" in names and not args.deterministic:
+        raise ConfigError("--planners includes mpc+deterministic: pass --deterministic DIR")
+    pcfg = PlannerConfig(sampler=args.sampler, risk_mode=args.risk, epsilon=args.epsilon)
+    import torch
+
+    torch.set_num_threads(args.threads)
+    results, calib, rows, calib_rows = {}, {}, [], []
+    n_dec = int(round(scn.duration_s / pcfg.plan_dt_s))
+    for name in names:
+        advance, close = _progress(n_dec * ((args.episodes + args.batch_size - 1) // args.batch_size), f"evaluate {name}")
+        t0 = time.perf_counter()
+        try:
+            out = evaluate_planner(scn, name, episodes=args.episodes, seed=args.seed, model_dir=args.model,
+                                   deterministic_dir=args.deterministic, planner_cfg=pcfg,
+                                   batch_size=args.batch_size, progress=advance)
+        finally:
+            close()
+        results[name] = summarise_planner(out.rows)
+        results[name]["seconds"] = round(time.perf_counter() - t0, 1)
+        rows += out.rows
+        if name != "rules":
+            calib[name] = calibration(out.predicted, out.happened)
+            calib_rows += [{"planner": name, "predicted": p, "happened": int(h)}
+                           for p, h in zip(out.predicted, out.happened, strict=True)]
+        print(f"[evaluate] {name}: {results[name]['seconds']} s", file=sys.stderr, flush=True)
+    summary = {"scenario": scn.name, "scenario_hash": scenario_hash(scn), "episodes": args.episodes,
+               "seed": args.seed, "model": args.model, "deterministic": args.deterministic,
+               "planner_config": pcfg.to_dict(), "results": results, "calibration": calib, "caution": CAUTION}
+    if args.out:
+        write_outputs(Path(args.out), summary, rows, calib_rows)
+    _write_json(args.json, summary)
+    print(format_table(results))
+    for name, c in calib.items():
+        if c.get("decisions"):
+            print(f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions")
+    print(CAUTION)
+    return 0
+
+
 # --- demo ------------------------------------------------------------------------------------------------------------
 
 
@@ -328,6 +383,24 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=_nonneg_int, default=0)
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_assess)
+
+    sp = sub.add_parser("evaluate", help="closed-loop evaluation of planners in the true simulator")
+    sp.add_argument("scenario", help="built-in scenario name or YAML file")
+    sp.add_argument("--planners", default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
+                    help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle")
+    sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
+    sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
+    sp.add_argument("--episodes", type=_positive_int, default=200)
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--sampler", choices=["cem", "mppi"], default="cem")
+    sp.add_argument("--risk", choices=["penalty", "chance"], default="penalty",
+                    help="collision risk as a weighted penalty or as a chance constraint P(collision) <= epsilon")
+    sp.add_argument("--epsilon", type=float, default=0.05, help="chance-constraint level (default 0.05)")
+    sp.add_argument("--batch-size", type=_positive_int, default=50, help="episodes planned together (default 50)")
+    sp.add_argument("--threads", type=_positive_int, default=2, help="torch threads (default 2)")
+    sp.add_argument("--out", metavar="DIR", help="write episodes.parquet, calibration.parquet, summary.json")
+    sp.add_argument("--json", metavar="FILE", help="write the summary JSON")
+    sp.set_defaults(func=cmd_evaluate)
 
     sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
     sp.add_argument("--json", metavar="FILE", help="write all results to FILE")

@@ -90,6 +90,34 @@ def fit_residual_variance(model: WorldModel, windows: Windows, index: np.ndarray
     model.fitted_logvar.copy_(torch.log(total / count.clamp_min(1.0) + 1e-4))
 
 
+def calibrate_noise_scale(model: WorldModel, batch: dict, *, target: float = 0.90, samples: int = 64,
+                          seed: int = 0) -> float:
+    """Set the decoder-noise scale so that central ``target`` intervals of the predictive cover ``target`` of the
+    true future coordinates of ``batch`` (bisection on a log scale; coverage grows with the scale)."""
+    true = batch["future"][..., :2]
+    valid = (batch["future"][..., F_VALID] > 0.5) & (batch["history"][:, -1:, :, F_VALID] > 0.5)
+    valid[..., 0] = False
+    q = (1.0 - target) / 2.0
+
+    def coverage(scale: float) -> float:
+        model.noise_scale.fill_(scale)
+        xs = model.sample(batch, batch["actions"][:, None], samples, generator=torch.Generator().manual_seed(seed),
+                          noise=True)["rows"][:, 0, ..., :2]
+        lo, hi = torch.quantile(xs, q, dim=1), torch.quantile(xs, 1.0 - q, dim=1)
+        return float(((true >= lo) & (true <= hi)).float()[valid].mean())
+
+    lo_s, hi_s = 0.05, 4.0
+    for _ in range(12):
+        mid = math.sqrt(lo_s * hi_s)
+        if coverage(mid) < target:
+            lo_s = mid
+        else:
+            hi_s = mid
+    scale = math.sqrt(lo_s * hi_s)
+    model.noise_scale.fill_(scale)
+    return scale
+
+
 def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig = ModelConfig(),
           train_cfg: TrainConfig = TrainConfig(), resume: bool = False,
           progress: Callable[[int, dict], None] | None = None) -> TrainResult:
@@ -170,7 +198,8 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
                 g["lr"] = lr
             idx = tr_idx[data_rng.integers(0, len(tr_idx), train_cfg.batch_size)]
             batch = to_torch(windows.batch(idx))
-            loss, metrics = model.loss(batch, kl_weight=kl_weight, free_bits=train_cfg.free_bits, generator=gen_noise)
+            loss, metrics = model.loss(batch, kl_weight=kl_weight, free_bits=train_cfg.free_bits,
+                                       prior_weight=train_cfg.prior_weight, generator=gen_noise)
             opt.zero_grad(set_to_none=True)
             loss.backward()
             torch.nn.utils.clip_grad_norm_(model.parameters(), train_cfg.grad_clip)
@@ -200,6 +229,10 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
                        "optimizer": opt_desc, "history": history}
         if model_cfg.deterministic:
             fit_residual_variance(model, windows, tr_idx[:: max(1, len(tr_idx) // 20000)], 1024)
+        last_epoch = epoch + 1 >= train_cfg.max_epochs or time.perf_counter() - t_start > 60.0 * train_cfg.minutes
+        if last_epoch and not model_cfg.deterministic:
+            half = {k: v[: VAL_WINDOWS // 2] for k, v in val_batch.items()}
+            row["calib/noise_scale"] = calibrate_noise_scale(model, half, seed=train_cfg.seed)
         save_checkpoint(out_dir, model, epoch=epoch, meta={**meta, "metrics": row}, optimizer_state=opt_tensors,
                         train_state=train_state)
         write_metrics_csv(out_dir / "metrics.csv", history)

@@ -71,6 +71,9 @@ class WorldModel(nn.Module):
             self.posterior = mlp([2 * d + 2 * hz, hdim, 2 * self.zdim])
         # Residual variance per step and coordinate, fitted after training (deterministic model only).
         self.register_buffer("fitted_logvar", torch.zeros(hz, 2))
+        # Scale of the decoder's standard deviation, recalibrated on validation windows after training so that
+        # central predictive intervals cover what they claim (Kuleshov, Fenner, Ermon, ICML 2018).
+        self.register_buffer("noise_scale", torch.ones(()))
         if generator is not None:
             reset_parameters(self, generator)
 
@@ -101,9 +104,14 @@ class WorldModel(nn.Module):
 
     # --- training ---------------------------------------------------------------------------------------------
 
-    def loss(self, batch: dict, *, kl_weight: float = 1.0, free_bits: float = 0.0,
+    def loss(self, batch: dict, *, kl_weight: float = 1.0, free_bits: float = 0.0, prior_weight: float = 0.0,
              generator: torch.Generator | None = None) -> tuple[torch.Tensor, dict]:
         """Training loss of one batch of windows and its parts.
+
+        The latent model's loss is the negative conditional ELBO (free bits on the KL) plus ``prior_weight`` times
+        the likelihood of the future under a draw of z from the *prior* — the hybrid objective of Sohn et al.
+        (2015), which keeps futures sampled from the prior (what the planner uses) likely, not only those decoded
+        from the posterior.
 
         Returns (loss, metrics) with metrics under ``loss/...`` keys (floats).
         """
@@ -137,6 +145,13 @@ class WorldModel(nn.Module):
         kl = kl_per_dim.sum()
         kl_fb = torch.clamp(kl_per_dim, min=free_bits).sum()
         loss = nll + kl_weight * kl_fb
+        if prior_weight > 0.0:
+            z_p = p_mu + (0.5 * p_lv).exp() * torch.randn(p_mu.shape, generator=generator)
+            mean_p, logvar_p = self._decode(h, p, z_p)
+            nll_p = 0.5 * (LOG_2PI + logvar_p + (target - mean_p) ** 2 / logvar_p.exp())
+            nll_p = (nll_p * m).sum() / n_obj
+            loss = loss + prior_weight * nll_p
+            metrics["loss/nll_prior"] = float(nll_p.detach())
         metrics.update({"loss/nll": float(nll.detach()), "loss/kl": float(kl.detach()), "loss/total": float(loss.detach())})
         return loss, metrics
 
@@ -177,6 +192,7 @@ class WorldModel(nn.Module):
             mean, _ = self._decode(hb, p, None)
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = self.fitted_logvar.expand(b, c, k, n, cfg.horizon, 2)
+        logvar = logvar + 2.0 * torch.log(self.noise_scale)
         xy = self.cv_positions(hist)[:, None, None] + mean  # (B, C, K, N, H, 2)
         if noise:
             xy = xy + (0.5 * logvar).exp() * torch.randn(xy.shape, generator=generator)

@@ -48,6 +48,10 @@ BAND_EPS_M = 0.05  # a body must reach this far into a lane to occupy it
 SETTLED_M = 0.4  # a traffic vehicle may start a new lane change once this close to its lane centre
 LATERAL_GAIN_PER_S = 1.2  # proportional gain of the traffic's lateral motion toward the lane centre
 MIN_SPAWN_GAP_M = 10.0
+# A driver who does not yield to a merging vehicle drives as if its desired speed were 15% higher and its time
+# headway 30% shorter while the interaction lasts; invented for this sandbox (no source).
+NON_YIELD_SPEEDUP = 1.15
+NON_YIELD_HEADWAY_FACTOR = 0.7
 MAX_LANE_CHANGE_HEADING_RAD = 0.15  # about 8.6 degrees; common practice, no source
 MAX_LANE_CHANGE_SLOPE = float(np.tan(MAX_LANE_CHANGE_HEADING_RAD))
 SPAWN_PERIOD_STEPS = 5  # entries are attempted every 5 steps (0.5 s at 0.1 s steps)
@@ -212,6 +216,18 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     lead_pos = np.where(occ[..., 0], nxt[..., 0], v_n)
     for ln in range(1, params.num_lanes):
         lead_pos = np.minimum(lead_pos, np.where(occ[..., ln], nxt[..., ln], v_n))
+    is_merger, merge_to = mergers(params, state)
+    shutting = state.yield_state == 2
+    if shutting.any() and is_merger.any():
+        # A driver who decided not to yield gives the merging vehicle no room: it reacts to a merging vehicle only
+        # once that vehicle's centre is in its lane (not to its body reaching over the line).
+        centre_lane = params.lane_of(y)
+        occ_strict = np.where(is_merger[..., None], valid[..., None] & (centre_lane[..., None] == np.arange(params.num_lanes)), occ)
+        nxt_strict = order.next_pos(occ_strict)
+        strict_pos = np.where(occ[..., 0], nxt_strict[..., 0], v_n)
+        for ln in range(1, params.num_lanes):
+            strict_pos = np.minimum(strict_pos, np.where(occ[..., ln], nxt_strict[..., ln], v_n))
+        lead_pos = np.where(shutting, strict_pos, lead_pos)
     lead_gap, lead_idx = _gap_to(x, length, x, length, order.slot_of(lead_pos), ahead=True)
     has_lead = np.isfinite(lead_gap)
     v_lead = np.where(has_lead, _gather(vx, lead_idx), 0.0)
@@ -222,7 +238,6 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         acc = np.minimum(acc, _idm(vx, drv, _lane_end_gap(params, lane, x, length), 0.0))
 
     # --- 3. yielding to merging vehicles ---
-    is_merger, merge_to = mergers(params, state)
     ys = np.zeros((s_n, v_n), dtype=np.int8)
     if is_merger.any():
         m_occ = is_merger[..., None] & (merge_to[..., None] == np.arange(params.num_lanes))  # (S, V, L)
@@ -239,6 +254,16 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
                        np.where(has_partner, _gather(vx, p_idx), 0.0))
         a_yield = np.maximum(a_yield, -trc[T_BSAFE])
         acc = np.where(ys == 1, np.minimum(acc, a_yield), acc)
+        # A driver who decided not to yield closes up on its leader, as if it wanted to go faster with a shorter
+        # headway, so that the merging vehicle finds no gap in front of it: the future is bimodal (brake to let in
+        # or speed up to shut out), not a blur around keeping speed.
+        shut = ys == 2
+        if shut.any():
+            bold = _Drivers(drv.v0 * NON_YIELD_SPEEDUP, drv.t * NON_YIELD_HEADWAY_FACTOR, drv.s0, drv.a, drv.c)
+            a_shut = _idm(vx, bold, lead_gap, v_lead)
+            if params.lane_ends_on_road.any():
+                a_shut = np.minimum(a_shut, _idm(vx, bold, _lane_end_gap(params, lane, x, length), 0.0))
+            acc = np.where(shut, a_shut, acc)
 
     # --- 4. hard-braking events ---
     timer = np.maximum(state.brake_timer_s - dt, 0.0)

@@ -1,0 +1,118 @@
+"""Tables of closed-loop results with 95% intervals, calibration, and the files an evaluation leaves on disk.
+
+``OUT/episodes.parquet``: one row per episode and planner (see :mod:`wmplan.evaluate.closed_loop`).
+``OUT/calibration.parquet``: one row per decision of a risk-predicting planner (predicted, happened).
+``OUT/summary.json``: ``{"results": {planner: {...}}, "calibration": {planner: {...}}, ...}``.
+All written atomically.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from pathlib import Path
+
+import numpy as np
+
+from wmplan.evaluate.stats import (
+    brier_score,
+    expected_calibration_error,
+    mean_ci,
+    reliability_bins,
+    wilson_interval,
+)
+from wmplan.io import atomic_write_bytes, atomic_write_json
+
+CAUTION = ("Results on a simplified traffic model; they certify nothing about a real vehicle. Real programmes "
+           "follow ISO 26262, ISO 21448, local regulation and licensed engineering practice.")
+
+
+def _rate(flags: np.ndarray) -> tuple[float, list[float]]:
+    n = len(flags)
+    k = int(np.sum(flags))
+    lo, hi = wilson_interval(k, n)
+    return k / n, [float(lo), float(hi)]
+
+
+def _mean(values: np.ndarray) -> tuple[float, list[float]]:
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    if len(v) < 2:
+        m = float(v.mean()) if len(v) else math.nan
+        return m, [math.nan, math.nan]
+    ci = mean_ci(v)
+    return float(ci.mean), [float(ci.low), float(ci.high)]
+
+
+def summarise_planner(rows: list[dict]) -> dict:
+    """Rates with Wilson 95% intervals and means with t intervals for one planner's episodes."""
+    col = np.array([r["collision"] for r in rows])
+    off = np.array([r["offroad"] for r in rows])
+    suc = np.array([r["success"] for r in rows])
+    coll_rate, coll_ci = _rate(col)
+    off_rate, off_ci = _rate(off)
+    succ_rate, succ_ci = _rate(suc)
+    speed, speed_ci = _mean(np.array([r["mean_speed_mps"] for r in rows]))
+    prog, prog_ci = _mean(np.array([r["progress_m"] for r in rows]))
+    jerk, jerk_ci = _mean(np.array([r["rms_jerk_mps3"] for r in rows]))
+    ttc = np.array([r["min_ttc_s"] for r in rows])
+    dec = np.array([r["decision_ms"] for r in rows])
+    return {
+        "episodes": len(rows),
+        "collision_rate": coll_rate, "collision_ci95": coll_ci,
+        "offroad_rate": off_rate, "offroad_ci95": off_ci,
+        "success_rate": succ_rate, "success_ci95": succ_ci,
+        "mean_speed_mps": speed, "mean_speed_ci95": speed_ci,
+        "progress_m": prog, "progress_ci95": prog_ci,
+        "rms_jerk_mps3": jerk, "rms_jerk_ci95": jerk_ci,
+        "min_ttc_s_median": float(np.median(ttc)),
+        "share_min_ttc_below_1_5s": float(np.mean(ttc < 1.5)),
+        "decision_ms_median": float(np.median(dec)),
+    }
+
+
+def calibration(predicted: list[float], happened: list[int], num_bins: int = 10) -> dict:
+    """Brier score, expected calibration error and reliability bins of predicted collision probabilities."""
+    p = np.asarray(predicted, dtype=np.float64)
+    y = np.asarray(happened, dtype=np.float64)
+    if len(p) == 0:
+        return {"decisions": 0}
+    bins = reliability_bins(p, y, num_bins)
+    clean = [{k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in b.items()} for b in bins]
+    return {"decisions": int(len(p)), "brier": float(brier_score(p, y)),
+            "ece": float(expected_calibration_error(p, y, num_bins)), "num_bins": num_bins,
+            "mean_predicted": float(p.mean()), "observed_rate": float(y.mean()), "bins": clean}
+
+
+def write_parquet(path: Path, rows: list[dict]) -> None:
+    """Rows as a Parquet table, atomically."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pylist(rows)
+    buf = io.BytesIO()
+    pq.write_table(table, buf)
+    atomic_write_bytes(Path(path), buf.getvalue())
+
+
+def write_outputs(out_dir: Path, summary: dict, rows: list[dict], calib_rows: list[dict]) -> None:
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    write_parquet(out_dir / "episodes.parquet", rows)
+    if calib_rows:
+        write_parquet(out_dir / "calibration.parquet", calib_rows)
+    atomic_write_json(out_dir / "summary.json", summary)
+
+
+def format_table(results: dict[str, dict]) -> str:
+    """The terminal table: one row per planner, rates with their 95% intervals."""
+    head = f"{'planner':<24}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}{'speed m/s':>11}{'decision ms':>13}"
+    lines = [head, "-" * len(head)]
+    for name, r in results.items():
+        c, s = r["collision_ci95"], r["success_ci95"]
+        lines.append(
+            f"{name:<24}{r['episodes']:>5}  {r['collision_rate']:.3f} [{c[0]:.3f}, {c[1]:.3f}]   "
+            f"{r['success_rate']:.3f} [{s[0]:.3f}, {s[1]:.3f}]   {r['offroad_rate']:>7.3f}{r['mean_speed_mps']:>11.1f}"
+            f"{r['decision_ms_median']:>13.1f}"
+        )
+    return "\n".join(lines)
