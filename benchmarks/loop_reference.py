@@ -45,6 +45,8 @@ from wmplan.sim.engine import (
     LATERAL_GAIN_PER_S,
     MAX_LANE_CHANGE_SLOPE,
     MIN_SPAWN_GAP_M,
+    NON_YIELD_HEADWAY_FACTOR,
+    NON_YIELD_SPEEDUP,
     SETTLED_M,
     SPAWN_PERIOD_STEPS,
     StepInfo,
@@ -273,10 +275,25 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
     def gap_behind(i: int, j: int) -> float:
         return INF if j < 0 else (x[i] - x[j]) - 0.5 * (length[j] + length[i])
 
+    # mergers (from the state before the step): vehicles whose lane ends within the merge zone
+    lane_m = [rd.lane_of(y[i]) if i == EGO else lane[i] for i in range(v_n)]  # the ego's own lane is its centre's
+    merge_to = [rd.merge_target[lane_m[i]] for i in range(v_n)]
+    is_merger = [valid[i] and rd.to_end(lane_m[i], x[i]) < rd.merge_zone and merge_to[i] >= 0 for i in range(v_n)]
+
+    def shares_lane_strict(i: int, j: int) -> bool:
+        """As shares_lane, but a merging vehicle j occupies only the lane of its centre."""
+        if not is_merger[j]:
+            return shares_lane(i, j)
+        cl = rd.lane_of(y[j])
+        return valid[j] and occ[i][cl]
+
     lead = [-1] * v_n
     for i in range(v_n):
         if traffic[i]:
-            lead[i] = ahead_of(i, lambda j, i=i: shares_lane(i, j))
+            if sc["yield_state"][i] == 2:  # a driver not yielding ignores a merging body over the line
+                lead[i] = ahead_of(i, lambda j, i=i: shares_lane_strict(i, j))
+            else:
+                lead[i] = ahead_of(i, lambda j, i=i: shares_lane(i, j))
 
     # --- 2. car following ---
     acc = [math.nan] * v_n  # stays NaN for empty slots (the engine's values there are never used)
@@ -288,9 +305,6 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
                 acc[i] = min(acc[i], follow(i, rd.to_end(lane[i], x[i]) - 0.5 * length[i], 0.0))
 
     # --- 3. yielding to merging vehicles ---
-    lane_m = [rd.lane_of(y[i]) if i == EGO else lane[i] for i in range(v_n)]  # the ego's own lane is its centre's
-    merge_to = [rd.merge_target[lane_m[i]] for i in range(v_n)]
-    is_merger = [valid[i] and rd.to_end(lane_m[i], x[i]) < rd.merge_zone and merge_to[i] >= 0 for i in range(v_n)]
     ys = [0] * v_n
     for i in range(v_n) if any(is_merger) else ():
         if not traffic[i] or is_merger[i]:
@@ -306,6 +320,15 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
         if ys[i] == 1:
             a_yield = follow(i, max(gap_ahead(i, p), tr[i][T_S0]), vx[p])
             acc[i] = min(acc[i], max(a_yield, -tr[i][T_BSAFE]))
+        elif ys[i] == 2:  # not yielding: close up on the leader, with a higher desired speed, shorter headway
+            t = tr[i]
+            j = lead[i]
+            bold = idm(vx[i], t[T_V0] * NON_YIELD_SPEEDUP, gap_ahead(i, j), vx[i] - (vx[j] if j >= 0 else 0.0),
+                       t[T_T] * NON_YIELD_HEADWAY_FACTOR, t[T_S0], t[T_A], c[i])
+            if rd.any_end:
+                bold = min(bold, idm(vx[i], t[T_V0] * NON_YIELD_SPEEDUP, rd.to_end(lane[i], x[i]) - 0.5 * length[i],
+                                     vx[i], t[T_T] * NON_YIELD_HEADWAY_FACTOR, t[T_S0], t[T_A], c[i]))
+            acc[i] = bold
 
     # --- 4. hard-braking events ---
     timer = [max(t - dt, 0.0) for t in sc["brake_timer_s"]]
