@@ -315,6 +315,76 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     return 0
 
 
+# --- sweep, stress, report -------------------------------------------------------------------------------------
+
+
+def cmd_sweep(args: argparse.Namespace) -> int:
+    from wmplan.sweep.runner import run_sweep
+
+    summary = run_sweep(args.file, args.out, workers=args.workers, scheduler=args.scheduler, progress=True)
+    _write_json(args.json, summary)
+    cells = summary.get("cells", [])
+    print(f"sweep {summary.get('name', args.file)}: {len(cells)} cells; results in {Path(args.out) / 'results.parquet'}")
+    for c in cells[:40]:
+        ci = c.get("collision_ci95", [float("nan")] * 2)
+        params = ", ".join(f"{k}={v}" for k, v in c.get("params", {}).items())
+        print(f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
+              f"[{ci[0]:.3f}, {ci[1]:.3f}] n={c.get('episodes', '')}")
+    return 0
+
+
+def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path, *, options: dict | None = None) -> Path:
+    """Replay one saved failure with its planner and draw it as an animation (stress tests call this)."""
+    from wmplan.evaluate.closed_loop import record_episode
+    from wmplan.scenario import load_scenario
+    from wmplan.sim.params import SimParams
+    from wmplan.viz.anim import save_episode_animation
+
+    options = options or {}
+    scn = load_scenario(scenario_file)
+    if planner not in ("rules",) and not planner.startswith("mpc+"):
+        raise ConfigError(f"cannot animate planner {planner!r}")
+    frames, row = record_episode(scn, planner, seed, model_dir=options.get("model"),
+                                 deterministic_dir=options.get("deterministic"))
+    params = SimParams.from_scenario(scn)
+    shown = frames[::2]
+    last = len(shown) - 1
+    return save_episode_animation(shown, params, out_file, fps=5.0, collided_at=last if row["collision"] else None,
+                                  offroad_at=last if row["offroad"] else None, title=f"{planner}, seed {seed}")
+
+
+def cmd_stress(args: argparse.Namespace) -> int:
+    import functools
+
+    from wmplan.stress.runner import run_stress
+
+    options = {}
+    if args.model:
+        options["model"] = args.model
+    if args.deterministic:
+        options["deterministic"] = args.deterministic
+    animate = None
+    if not args.no_animation:
+        animate = functools.partial(animate_failure, options=options)
+    report = run_stress(args.scenario, args.planner, args.budget, args.out, args.seed, workers=args.workers,
+                        scheduler=args.scheduler, planner_options=options or None, animate=animate, progress=True)
+    _write_json(args.json, report)
+    fp, mc = report["failure_prob"], report["plain_mc"]
+    print(f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}")
+    print(f"  failure probability (importance sampling): {fp['estimate']:.3g} [{fp['ci95'][0]:.3g}, {fp['ci95'][1]:.3g}], "
+          f"ESS {fp['ess']:.0f}")
+    print(f"  plain Monte Carlo, same budget:            {mc['estimate']:.3g} [{mc['ci95'][0]:.3g}, {mc['ci95'][1]:.3g}]")
+    return 0
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from wmplan.report import build_report
+
+    html, md = build_report(Path(args.run_dir))
+    print(f"wrote {html} and {md}")
+    return 0
+
+
 # --- demo ------------------------------------------------------------------------------------------------------------
 
 
@@ -401,6 +471,32 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--out", metavar="DIR", help="write episodes.parquet, calibration.parquet, summary.json")
     sp.add_argument("--json", metavar="FILE", help="write the summary JSON")
     sp.set_defaults(func=cmd_evaluate)
+
+    sp = sub.add_parser("sweep", help="run a sweep file over scenario variants and planners (resumable)")
+    sp.add_argument("file", help="sweep YAML file")
+    sp.add_argument("--out", required=True, metavar="DIR")
+    sp.add_argument("--workers", type=_positive_int, default=1, help="local worker processes (default 1)")
+    sp.add_argument("--scheduler", metavar="ADDRESS", help="run on a Dask cluster, e.g. tcp://127.0.0.1:8786")
+    sp.add_argument("--json", metavar="FILE", help="also write the summary JSON here")
+    sp.set_defaults(func=cmd_sweep)
+
+    sp = sub.add_parser("stress", help="search for failures and estimate their probability by importance sampling")
+    sp.add_argument("scenario")
+    sp.add_argument("--planner", default="rules")
+    sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
+    sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
+    sp.add_argument("--budget", type=_positive_int, default=2000, help="episodes per estimator (default 2000)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--workers", type=_positive_int, default=1)
+    sp.add_argument("--scheduler", metavar="ADDRESS")
+    sp.add_argument("--no-animation", action="store_true", help="do not draw the saved failures")
+    sp.add_argument("--out", required=True, metavar="DIR")
+    sp.add_argument("--json", metavar="FILE")
+    sp.set_defaults(func=cmd_stress)
+
+    sp = sub.add_parser("report", help="write report.html and report.md from what a run left in RUN_DIR")
+    sp.add_argument("run_dir")
+    sp.set_defaults(func=cmd_report)
 
     sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
     sp.add_argument("--json", metavar="FILE", help="write all results to FILE")

@@ -94,8 +94,11 @@ def _initial_history(state: TrafficState, history: int, dt_s: float) -> tuple[np
 
 def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, *, seed: int,
               progress: Callable[[int], None] | None = None, num_objects: int = NUM_OBJECTS,
-              history: int = HISTORY) -> EvalOutput:
-    """Run one batch of episodes (one per seed) with one planner."""
+              history: int = HISTORY, frames: list | None = None) -> EvalOutput:
+    """Run one batch of episodes (one per seed) with one planner.
+
+    ``frames``: if given, the world rows (S, V, F) of every simulator step are appended to it (for animations).
+    """
     out = EvalOutput()
     cfg = planner.cfg if planner is not None else PlannerConfig()
     sub = int(round(cfg.plan_dt_s / params.dt_s))
@@ -141,6 +144,8 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
         for _ in range(sub):
             was_done = state.done
             state, info = step(state, actions, params)
+            if frames is not None:
+                frames.append(state.vehicles())
             live = ~was_done
             speed_sum += np.where(live, state.ego_speed_mps, 0.0)
             steps += live
@@ -186,22 +191,47 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     return out
 
 
-def evaluate_planner(scenario: Scenario, planner_name: str, *, episodes: int, seed: int = 0, model_dir=None,
-                     deterministic_dir=None, planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
-                     progress: Callable[[int], None] | None = None) -> EvalOutput:
-    """All episodes of one planner, in batches; episode e uses scene seed ``episode_seeds(seed, episodes)[e]``."""
+def record_episode(scenario: Scenario, planner_name: str, seed: int, *, model_dir=None, deterministic_dir=None,
+                   planner_cfg: PlannerConfig | None = None) -> tuple[np.ndarray, dict]:
+    """World rows (T, V, F) of one closed-loop episode (scene seed ``seed``) and its outcome row."""
     params = SimParams.from_scenario(scenario)
     planner = build_planner(planner_name, params, model_dir=model_dir, deterministic_dir=deterministic_dir,
                             cfg=planner_cfg)
-    seeds = episode_seeds(seed, episodes)
+    state0 = initial_state(params, [seed])
+    frames: list[np.ndarray] = [state0.vehicles()]
+    out = run_batch(params, planner_name, planner, np.array([seed]), seed=seed, frames=frames)
+    row = out.rows[0]
+    steps = int(round(row["decisions"] * (planner.cfg.plan_dt_s if planner is not None else 0.2) / params.dt_s))
+    return np.stack(frames)[: steps + 1, 0], row
+
+
+def evaluate_seeds(scenario: Scenario, planner_name: str, seeds: np.ndarray, *, seed: int = 0, model_dir=None,
+                   deterministic_dir=None, planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
+                   progress: Callable[[int], None] | None = None) -> EvalOutput:
+    """Episodes of one planner for the given scene seeds, in batches of ``batch_size``."""
+    params = SimParams.from_scenario(scenario)
+    planner = build_planner(planner_name, params, model_dir=model_dir, deterministic_dir=deterministic_dir,
+                            cfg=planner_cfg)
+    seeds = np.asarray(seeds, dtype=np.int64)
     total = EvalOutput()
-    for start in range(0, episodes, batch_size):
+    for start in range(0, len(seeds), batch_size):
         part = run_batch(params, planner_name, planner, seeds[start:start + batch_size], seed=seed + start,
                          progress=progress)
         for r, e in zip(part.rows, range(start, start + len(part.rows)), strict=True):
             r["episode"] = e
+            r["time_s"] = r["decisions"] * (planner.cfg.plan_dt_s if planner is not None else PlannerConfig().plan_dt_s)
         total.rows += part.rows
         total.predicted += part.predicted
         total.happened += part.happened
         total.decision_ms += part.decision_ms
     return total
+
+
+def evaluate_planner(scenario: Scenario, planner_name: str, *, episodes: int, seed: int = 0, model_dir=None,
+                     deterministic_dir=None, planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
+                     progress: Callable[[int], None] | None = None) -> EvalOutput:
+    """All episodes of one planner, in batches; episode e uses scene seed ``episode_seeds(seed, episodes)[e]``
+    (the same for every planner: a paired comparison)."""
+    return evaluate_seeds(scenario, planner_name, episode_seeds(seed, episodes), seed=seed, model_dir=model_dir,
+                          deterministic_dir=deterministic_dir, planner_cfg=planner_cfg, batch_size=batch_size,
+                          progress=progress)

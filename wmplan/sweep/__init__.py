@@ -14,6 +14,7 @@ from wmplan.sweep.episodes import (
     run_episodes,
     unregister_planner,
 )
+from wmplan.sweep.mpc_planners import register_mpc_planners
 from wmplan.sweep.runner import cli_sweep, read_results, run_sweep
 from wmplan.sweep.spec import (
     RandomRange,
@@ -25,6 +26,8 @@ from wmplan.sweep.spec import (
     sweep_from_yaml,
 )
 from wmplan.sweep.stats import wilson_interval
+
+register_mpc_planners()
 
 __all__ = [
     "REQUIRED_KEYS",
