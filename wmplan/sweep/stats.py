@@ -11,12 +11,13 @@ It keeps its coverage near the nominal level for small counts and rates near 0, 
 
 from __future__ import annotations
 
-import math
 from statistics import NormalDist
+
+from wmplan.evaluate.stats import wilson_interval as _wilson
 
 
 def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
-    """Wilson score interval of a binomial proportion.
+    """Wilson score interval of a binomial proportion (the evaluation's implementation, with plain floats).
 
     Args:
         successes: number of events k (0 <= k <= n).
@@ -33,11 +34,5 @@ def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tu
         raise ValueError(f"confidence must lie in (0, 1), got {confidence!r}")
     if n == 0:
         return 0.0, 1.0
-    z = NormalDist().inv_cdf(0.5 + confidence / 2.0)
-    p = k / n
-    denom = 1.0 + z * z / n
-    centre = (p + z * z / (2 * n)) / denom
-    half = z * math.sqrt(p * (1.0 - p) / n + z * z / (4.0 * n * n)) / denom
-    lo = 0.0 if k == 0 else max(0.0, centre - half)
-    hi = 1.0 if k == n else min(1.0, centre + half)
-    return lo, hi
+    lo, hi = _wilson(k, n, z=NormalDist().inv_cdf(0.5 + confidence / 2.0))
+    return (0.0 if k == 0 else max(0.0, float(lo))), (1.0 if k == n else min(1.0, float(hi)))
