@@ -17,7 +17,9 @@ The rules (same order as the engine):
 2. IDM (Treiber, Hennecke, Helbing 2000; book form of s* from Treiber & Kesting 2013) toward the leader and, if
    any lane of the road ends, toward the end of its own lane as a standing obstacle;
 3. yielding: a traffic driver that is not itself merging and has a merging vehicle ahead (within the yield
-   window) whose merge target is its lane decides once, at random, whether to yield, and if so follows it;
+   window) whose merge target is its lane decides once, at random, whether to yield; if so it follows it, if not
+   it closes up on its leader with a bolder desired speed and headway, and (from the next step on) counts a
+   merging vehicle as its leader only once the merger's centre is in its lane;
 4. hard-braking events (random start, random size and duration), then the physical braking limit;
 5. MOBIL (Kesting, Treiber, Helbing 2007) on decision steps, right/left at different phases, with the
    mandatory-merge bias;
