@@ -13,7 +13,8 @@ boolean fields exactly. In practice they agree to about 1e-16: numpy's vectorise
 differ in the last bit for some arguments, and nothing else differs.
 
 Each case also checks that it exercised what it is meant to exercise (lane changes, entries, yielding decisions,
-hard-braking events, ego collisions, off-road and goal events), so that a passing test says something.
+decisions to yield and not to yield, hard-braking events, ego collisions, off-road and goal events), so that a
+passing test says something.
 """
 
 from __future__ import annotations
@@ -68,8 +69,8 @@ def _assert_same(engine_state: TrafficState, loop_state: TrafficState, engine_in
 
 def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of) -> dict[str, int]:
     """Step the engine and the loop side by side; compare after every step; count the events seen."""
-    seen = dict.fromkeys(("lane_change", "spawn", "leave", "yield_decision", "brake_start", "collision", "offroad",
-                          "goal"), 0)
+    seen = dict.fromkeys(("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start",
+                          "collision", "offroad", "goal"), 0)
     eng, loop = state, state
     for k in range(num_steps):
         action = actions_of(k, eng)
@@ -84,7 +85,8 @@ def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of
         seen["lane_change"] += int((traffic & (eng_next.lane != eng.lane)).sum())
         seen["spawn"] += int((eng_next.next_id - eng.next_id).sum())
         seen["leave"] += int((traffic & ~eng_next.valid).sum())
-        seen["yield_decision"] += int(((eng.yield_state == 0) & (eng_next.yield_state != 0)).sum())
+        seen["yield_decision"] += int(((eng.yield_state == 0) & (eng_next.yield_state == 1)).sum())
+        seen["no_yield_decision"] += int(((eng.yield_state == 0) & (eng_next.yield_state == 2)).sum())
         seen["brake_start"] += int((traffic & (eng_next.brake_timer_s > eng.brake_timer_s)).sum())
         seen["collision"] += int(eng_info.collision.sum())
         seen["offroad"] += int(eng_info.offroad.sum())
@@ -97,8 +99,8 @@ def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of
 NUM_SCENES, NUM_STEPS = 8, 90
 EXPECTED = {
     "cut-in": ("lane_change", "spawn", "leave"),
-    "lane-drop": ("lane_change", "spawn", "leave", "yield_decision", "brake_start"),
-    "onramp-merge": ("lane_change", "spawn", "leave", "yield_decision", "brake_start"),
+    "lane-drop": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
+    "onramp-merge": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
     "open-road": ("lane_change", "spawn", "leave"),
     "stop-and-go": ("lane_change", "spawn", "brake_start"),
 }
