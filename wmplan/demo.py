@@ -1,19 +1,23 @@
-"""The end-to-end demo: the whole job on ``onramp-merge``, from traffic to a report.
+"""The end-to-end demo: the whole job on ``onramp-merge``, from traffic to a report, in minutes on a laptop CPU.
 
-Stages so far: simulate a dataset, draw a scene and animate an episode. Each stage writes into ``OUT`` and the
-demo ends by naming the main result.
+Stages (each writes into ``OUT``): simulate a dataset (``data/``), draw a scene and an episode, train the latent
+model (``latent/``) and the least-squares baseline (``deterministic/``), assess them against constant velocity and
+the oracle (``assess.json``), keep one decision's sampled futures for the figures (``futures.npz``,
+``candidates.npz``), evaluate all five planners in closed loop (``evaluate/``), and write ``report.html`` and
+``report.md``. The demo's budgets are smaller than the defaults of the individual commands (``quick`` smaller
+still, for tests); its numbers show the workflow, not the best the tool can do.
 """
 
 from __future__ import annotations
 
-import logging
+import json
 import sys
+import time
 from pathlib import Path
 
-from wmplan.data import decisions_per_episode, simulate_dataset
-from wmplan.scenario import load_scenario
+import numpy as np
 
-log = logging.getLogger(__name__)
+from wmplan.scenario import load_scenario, scenario_to_yaml
 
 SCENARIO = "onramp-merge"
 
@@ -22,22 +26,124 @@ def _say(msg: str) -> None:
     print(f"[demo] {msg}", file=sys.stderr, flush=True)
 
 
-def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
-    """Run the demo into folder ``out``; returns the path of its main result."""
+def _bar(total: int, desc: str):
     from tqdm.auto import tqdm
 
+    return tqdm(total=total, desc=desc, unit="step", leave=False, file=sys.stderr, disable=None, mininterval=0.5)
+
+
+def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> None:
+    """Save one decision's futures (model vs oracle vs least squares) and the planner's candidates for figures."""
+    import torch
+
+    from wmplan.evaluate.closed_loop import HISTORY, NUM_OBJECTS, _initial_history, build_planner
+    from wmplan.model.checkpoint import load_model
+    from wmplan.plan.predictors import OraclePredictor, make_context
+    from wmplan.sim.ego_rules import rule_actions
+    from wmplan.sim.engine import step
+    from wmplan.sim.params import SimParams
+    from wmplan.sim.spawn import initial_state
+
+    scn = load_scenario(SCENARIO)
+    params = SimParams.from_scenario(scn)
+    state = initial_state(params, [seed + 17])
+    hist, ids = _initial_history(state, HISTORY, 0.2)
+    for _ in range(12):  # drive 2.4 s with the rules to reach the interesting part
+        a = rule_actions(state, params)
+        for _ in range(2):
+            state, _ = step(state, a, params)
+        hist = np.concatenate([hist[:, 1:], state.vehicles()[:, None]], axis=1)
+        ids = np.concatenate([ids[:, 1:], state.vehicle_id[:, None]], axis=1)
+    ctx = make_context(params, state, hist, ids, NUM_OBJECTS)
+    planner = build_planner("mpc+latent", params, model_dir=model_dir)
+    gen = torch.Generator().manual_seed(seed)
+    res = planner.plan(ctx, generator=gen, keep=True)
+    chosen = int(res.chosen[0])
+    plan = res.plans[:, chosen:chosen + 1]
+    latent, _ = load_model(model_dir)
+    det, _ = load_model(det_dir)
+    model_rows = latent.sample(ctx.model_batch(), plan, 32, generator=gen)["rows"][0, 0].numpy()
+    det_rows = det.sample(ctx.model_batch(), plan, 1, generator=gen)["rows"][0, 0, 0].numpy()
+    oracle = OraclePredictor(params, latent.ego, 0.2).predict(ctx, plan, 32, generator=gen)[0, 0].numpy()
+    np.savez(out / "futures.npz", history=ctx.history[0].numpy(), model_rows=model_rows, oracle_rows=oracle,
+             deterministic_rows=det_rows)
+    ego_paths = res.futures[0, :, 0, :, 0, :5].numpy()  # (C, H, 5)
+    np.savez(out / "candidates.npz", ego_paths=ego_paths, costs=res.costs[0].numpy(),
+             p_collision=res.risk["p_collision"][0].numpy(), chosen=np.array(chosen),
+             futures=res.futures[0, chosen].numpy())
+
+
+def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
+    """Run the demo into folder ``out``; returns the path of ``report.html``."""
+    import torch
+
+    from wmplan.data import decisions_per_episode, simulate_dataset
+    from wmplan.evaluate.closed_loop import PLANNER_NAMES, evaluate_planner
+    from wmplan.evaluate.report import CAUTION, calibration, format_table, summarise_planner, write_outputs
+    from wmplan.io import atomic_write_json, atomic_write_text
+    from wmplan.model.assess import assess
+    from wmplan.model.config import ModelConfig, TrainConfig
+    from wmplan.model.train import train
+    from wmplan.report import build_report
     from wmplan.viz.anim import render_to_file
 
+    t_start = time.perf_counter()
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
+    torch.set_num_threads(2)
     scn = load_scenario(SCENARIO)
-    episodes = 64 if quick else 1024
-    _say(f"simulating {episodes} episodes of {SCENARIO}")
-    with tqdm(total=episodes * decisions_per_episode(scn), desc="simulate", unit="step", leave=False,
-              file=sys.stderr, disable=None) as bar:
-        simulate_dataset(scn, out / "data", episodes=episodes, seed=seed, progress=bar.update)
-    _say("drawing a scene and an episode")
-    png = render_to_file(SCENARIO, out / "scene.png", seed=seed)
-    gif = render_to_file(SCENARIO, out / "episode.gif", seed=seed)
-    _say(f"wrote {out / 'data'}, {png}, {gif}")
-    return gif
+    atomic_write_text(out / "scenario.yaml", scenario_to_yaml(scn))
+    episodes = 48 if quick else 768
+    # --- simulate ---
+    _say(f"1/7 simulating {episodes} episodes of {SCENARIO}")
+    with _bar(episodes * decisions_per_episode(scn), "simulate") as bar:
+        simulate_dataset(scn, out / "data", episodes=episodes, seed=seed + 1, progress=bar.update)
+    # --- pictures ---
+    _say("2/7 drawing a scene and an episode")
+    render_to_file(SCENARIO, out / "scene.png", seed=seed)
+    render_to_file(SCENARIO, out / "episode.gif", seed=seed)
+    # --- train ---
+    for kind, det, minutes in (("latent", False, 0.3 if quick else 2.5), ("deterministic", True, 0.2 if quick else 1.3)):
+        tcfg = TrainConfig(minutes=minutes, seed=seed, max_epochs=2 if quick else 25,
+                           steps_per_epoch=20 if quick else 200)
+        _say(f"3/7 training the {kind} model (at most {minutes} min)")
+        with _bar(tcfg.max_epochs * tcfg.steps_per_epoch, f"train {kind}") as bar:
+            train(out / "data", out / kind, model_cfg=ModelConfig(deterministic=det), train_cfg=tcfg,
+                  progress=lambda n, _m, b=bar: b.update(n))
+    # --- assess ---
+    _say("4/7 assessing the models against constant velocity and the oracle")
+    result = assess(out / "latent", scn, deterministic_dir=out / "deterministic", episodes=16 if quick else 64,
+                    oracle_states=6 if quick else 24, oracle_samples=8 if quick else 32, seed=seed)
+    atomic_write_json(out / "assess.json", result)
+    # --- one decision, for the figures ---
+    _say("5/7 keeping one decision's futures and candidates for the figures")
+    _example_decision(out, out / "latent", out / "deterministic", seed)
+    # --- evaluate ---
+    n_eval = 6 if quick else 40
+    _say(f"6/7 closed-loop evaluation of {len(PLANNER_NAMES)} planners, {n_eval} episodes each")
+    results, calib, rows, calib_rows = {}, {}, [], []
+    for name in PLANNER_NAMES:
+        with _bar(int(round(scn.duration_s / 0.2)), f"evaluate {name}") as bar:
+            ev = evaluate_planner(scn, name, episodes=n_eval, seed=seed, model_dir=out / "latent",
+                                  deterministic_dir=out / "deterministic", batch_size=n_eval, progress=bar.update)
+        results[name] = summarise_planner(ev.rows)
+        rows += ev.rows
+        if name != "rules":
+            calib[name] = calibration(ev.predicted, ev.happened)
+            calib_rows += [{"planner": name, "predicted": p, "happened": int(h)}
+                           for p, h in zip(ev.predicted, ev.happened, strict=True)]
+    summary = {"scenario": scn.name, "episodes": n_eval, "seed": seed, "results": results, "calibration": calib,
+               "caution": CAUTION}
+    write_outputs(out / "evaluate", summary, rows, calib_rows)
+    print(format_table(results), file=sys.stderr)
+    # --- report ---
+    _say("7/7 writing the report")
+    html, md = build_report(out)
+    atomic_write_json(out / "demo.json", {"seconds": round(time.perf_counter() - t_start, 1), "quick": quick,
+                                          "report_html": str(html), "report_md": str(md)})
+    _say(f"done in {time.perf_counter() - t_start:.0f} s")
+    return html
+
+
+if __name__ == "__main__":  # pragma: no cover
+    print(json.dumps({"report": str(run_demo(Path(sys.argv[1]) if len(sys.argv) > 1 else Path("demo-out")))}))
