@@ -8,6 +8,10 @@ the worker processes does not dominate), into a fresh folder each time, plots of
 * ``cells_per_min["2"]``: ``workers=2`` (a spawned process pool; its start-up time is included);
 * ``scaling_2x`` = rate with 2 workers / rate with 1; the design target is >= 1.8 on a 2-core machine;
 * ``rows_identical``: both runs wrote the same ``results.parquet`` rows (they must).
+* ``cpu_seconds``: CPU time of this process and the pool's workers per run; ``cpu_utilisation`` = CPU seconds /
+  (workers x wall seconds), below 1 when other programs took the cores; ``scaling_2x_if_idle`` = 2 x CPU(1) / CPU(2),
+  the scaling that the 2-worker run's extra work (start-up, transfers) would allow on otherwise idle cores. It is a
+  projection, reported beside the measured ``scaling_2x``, not instead of it.
 
 Each configuration is timed ``repeats`` times, alternating 1 and 2 workers, and the median is kept. Wall-clock time
 depends on what else the machine is doing: the load average before and after is recorded with the numbers, and
@@ -23,6 +27,7 @@ import argparse
 import json
 import os
 import platform
+import resource
 import statistics
 import sys
 import tempfile
@@ -45,13 +50,20 @@ def _sweep(num_cells: int, episodes_per_cell: int):
     }, source="<benchmark>")
 
 
-def _time_run(sweep, workers: int, root: Path, tag: str) -> tuple[float, Path]:
+def _cpu_s() -> float:
+    """CPU seconds of this process plus its finished children (the pool's workers, once the pool is shut down)."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def _time_run(sweep, workers: int, root: Path, tag: str) -> tuple[float, float, Path]:
+    """(wall seconds, CPU seconds, output folder) of one run."""
     from wmplan.sweep import run_sweep
 
     out = root / tag
-    start = time.perf_counter()
+    cpu0, start = _cpu_s(), time.perf_counter()
     run_sweep(sweep, out, workers=workers, progress=False, plots=False)
-    return time.perf_counter() - start, out
+    return time.perf_counter() - start, _cpu_s() - cpu0, out
 
 
 def run(quick: bool = False) -> dict:
@@ -62,16 +74,19 @@ def run(quick: bool = False) -> dict:
     sweep = _sweep(cfg["num_cells"], cfg["episodes_per_cell"])
     load_before = os.getloadavg()
     times: dict[int, list[float]] = {1: [], 2: []}
+    cpu: dict[int, list[float]] = {1: [], 2: []}
     identical = True
     with tempfile.TemporaryDirectory(prefix="wmplan-bench-sweep-") as tmp:
         root = Path(tmp)
         for r in range(cfg["repeats"]):
             outs = {}
             for workers in (1, 2):
-                seconds, outs[workers] = _time_run(sweep, workers, root, f"w{workers}-r{r}")
+                seconds, cpu_s, outs[workers] = _time_run(sweep, workers, root, f"w{workers}-r{r}")
                 times[workers].append(seconds)
+                cpu[workers].append(cpu_s)
             identical &= pq.read_table(outs[1] / "results.parquet").equals(pq.read_table(outs[2] / "results.parquet"))
     seconds = {w: statistics.median(ts) for w, ts in times.items()}
+    cpu_med = {w: statistics.median(cs) for w, cs in cpu.items()}
     rate = {w: 60.0 * cfg["num_cells"] / s for w, s in seconds.items()}
     scaling = rate[2] / rate[1]
     return {
@@ -79,6 +94,9 @@ def run(quick: bool = False) -> dict:
         "seconds": {str(w): s for w, s in seconds.items()},
         "seconds_all": {str(w): ts for w, ts in times.items()},
         "cells_per_min": {str(w): r for w, r in rate.items()},
+        "cpu_seconds": {str(w): c for w, c in cpu_med.items()},
+        "cpu_utilisation": {str(w): cpu_med[w] / (w * seconds[w]) for w in seconds},
+        "scaling_2x_if_idle": 2.0 * cpu_med[1] / cpu_med[2],
         "scaling_2x": scaling, "target_scaling_2x": TARGET_SCALING_2X, "meets_target": scaling >= TARGET_SCALING_2X,
         "rows_identical": bool(identical),
         "cpu_count": os.cpu_count(), "load_average_before": list(load_before),

@@ -20,7 +20,7 @@ import yaml
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict, scenario_to_yaml
-from wmplan.stress import DEFAULT_KNOBS, replay, run_stress, search_failures
+from wmplan.stress import DEFAULT_KNOBS, nominal_reference, replay, run_stress, search_failures
 from wmplan.stress.knobs import knob_values, quantise, variant
 from wmplan.stress.search import sample_score
 
@@ -97,6 +97,15 @@ def test_failure_search_finds_failures_that_replay(harsh: Scenario, tmp_path: Pa
     assert all(replay(tmp_path / "failures" / name) for name in res["failures_saved"])
 
 
+def test_nominal_reference_is_the_failed_fraction(harsh: Scenario) -> None:
+    """With equal clusters the reference estimate is the failed fraction of all its episodes, and its standard
+    error is the spread of the per-sample fractions over sqrt(n)."""
+    ref = nominal_reference(harsh, "rules", 30, 4, 2, knobs=KNOBS, z_step=1.0, progress=False)
+    assert ref["simulations"] == 120
+    assert ref["estimate"] == pytest.approx(ref["failed_episodes"] / 120)
+    assert ref["failed_episodes"] >= 1 and ref["ci95"][0] <= ref["estimate"] <= ref["ci95"][1]
+
+
 def test_knob_values_follow_their_formulas() -> None:
     """density x exp(0.3 z) per lane; yield mean + 0.15 z clipped to the distribution's [low, high]; hard-brake
     rate x exp(0.8 z); desired speed mean + 1.5 z; ego speed + 2 z."""
@@ -132,8 +141,8 @@ def test_bad_arguments_are_one_line(harsh: Scenario, tmp_path: Path) -> None:
         run_stress(harsh, "rules", 50, tmp_path, 0)
     with pytest.raises(ConfigError, match=re.escape("seed must be an integer >= 0, got -1")):
         run_stress(harsh, "rules", 200, tmp_path, -1)
-    with pytest.raises(ConfigError, match=re.escape("unknown planner 'mpc+latent'; known planners:")):
-        run_stress(harsh, "mpc+latent", 200, tmp_path, 0)
+    with pytest.raises(ConfigError, match=re.escape("unknown planner 'no-such-planner'; known planners:")):
+        run_stress(harsh, "no-such-planner", 200, tmp_path, 0)
     from wmplan.stress import Knob
 
     with pytest.raises(ConfigError, match=re.escape("knob x: path 'drivers.yield' is not a field of the scenario")):

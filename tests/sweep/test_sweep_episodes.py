@@ -141,9 +141,9 @@ def test_registry_errors_are_one_line() -> None:
     """Unknown names list the known ones; a taken name needs replace=True; the rules planner takes no options;
     a runner's rows are checked for count, order and required keys."""
     assert "rules" in planner_names()
-    with pytest.raises(ConfigError, match=re.escape(f"unknown planner 'mpc+latent'; known planners: "
+    with pytest.raises(ConfigError, match=re.escape(f"unknown planner 'no-such-planner'; known planners: "
                                                     f"{', '.join(planner_names())}")):
-        run_episodes("open-road", "mpc+latent", [1])
+        run_episodes("open-road", "no-such-planner", [1])
     with pytest.raises(ConfigError, match=re.escape("planner 'rules' is already registered; pass replace=True to "
                                                     "replace it")):
         register_planner("rules", _bad_count)

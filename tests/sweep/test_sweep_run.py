@@ -8,8 +8,12 @@ method="wilson") (REFERENCES.md section 9.1, [S]).
 from __future__ import annotations
 
 import json
+import os
 import re
+import signal
+import subprocess
 import sys
+import time
 from pathlib import Path
 
 import pyarrow.parquet as pq
@@ -162,6 +166,34 @@ def test_interrupted_run_resumes_to_the_uninterrupted_rows(tmp_path: Path, broke
     assert final["complete"] and read_results(out).equals(reference)
 
 
+def test_killed_run_resumes_without_lost_or_duplicate_rows(tmp_path: Path) -> None:
+    """SIGKILL the process running a sweep after two cells are written: every cell file left is complete (it
+    reads back and belongs to its cell), and rerunning completes the sweep with the uninterrupted rows."""
+    path = _sweep_file(tmp_path, ["rules", "rules-twin"], episodes=32)
+    run_sweep(path, tmp_path / "clean", progress=False)
+    reference = read_results(tmp_path / "clean")
+    out = tmp_path / "out"
+    code = (f"import sys; sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); import sweep_planners; "
+            "from wmplan.sweep import register_planner, run_sweep; "
+            "register_planner('rules-twin', sweep_planners.rules_twin); "
+            f"run_sweep({str(path)!r}, {str(out)!r}, progress=False)")
+    proc = subprocess.Popen([sys.executable, "-c", code])
+    deadline = time.monotonic() + 120.0
+    while len(list((out / "cells").glob("*.parquet"))) < 2 and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert proc.poll() is None, "the sweep finished before it could be killed; give it more work"
+    os.kill(proc.pid, signal.SIGKILL)
+    proc.wait()
+    left = sorted((out / "cells").glob("*.parquet"))
+    assert 2 <= len(left) < 8 and not (out / "results.parquet").exists()
+    from wmplan.sweep.runner import read_cell
+
+    for f in left:
+        assert read_cell(out, f.stem).num_rows == 32
+    summary = run_sweep(path, out, progress=False)
+    assert summary["complete"] and read_results(out).equals(reference)
+
+
 def test_summary_rates_and_wilson_intervals(tmp_path: Path) -> None:
     """Per cell: n, collision count and rate from the rows, and the Wilson interval of scipy's binomtest."""
     path = _sweep_file(tmp_path, ["rules"], episodes=6)
@@ -180,6 +212,17 @@ def test_summary_rates_and_wilson_intervals(tmp_path: Path) -> None:
         assert cell["mean_speed_mps"] == pytest.approx(sum(r["mean_speed_mps"] for r in mine) / 6)
     cells = expand_cells(load_sweep(path))
     assert {c["cell_id"] for c in summary["cells"]} == {c.cell_id for c in cells}
+
+
+def test_a_lambda_planner_is_refused_for_the_process_pool(tmp_path: Path) -> None:
+    """Spawned workers import planners by name; a lambda cannot travel, and the message says what to do."""
+    register_planner("flaky", lambda scenario, seeds, **kw: sweep_planners.rules_twin(scenario, seeds), replace=True)
+    path = _sweep_file(tmp_path, ["flaky"])
+    with pytest.raises(ConfigError, match=re.escape(
+            "planner 'flaky' is a lambda, a nested function or defined interactively, so the worker processes "
+            "cannot import it; define it at the top level of a module, or run with workers=1")):
+        run_sweep(path, tmp_path / "out", workers=2, progress=False)
+    assert run_sweep(path, tmp_path / "out", workers=1, progress=False)["complete"]
 
 
 def test_bad_workers_and_unreachable_scheduler(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -16,7 +16,7 @@ from wmplan.stress.rare_event import (
     importance_sample,
     plain_monte_carlo,
 )
-from wmplan.stress.runner import cli_stress, run_stress
+from wmplan.stress.runner import cli_stress, nominal_reference, run_stress
 from wmplan.stress.search import replay, search_failures
 
 __all__ = [
@@ -30,6 +30,7 @@ __all__ = [
     "cross_entropy_is",
     "cross_entropy_levels",
     "importance_sample",
+    "nominal_reference",
     "plain_monte_carlo",
     "replay",
     "run_stress",

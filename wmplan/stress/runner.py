@@ -42,7 +42,7 @@ from wmplan.stress.rare_event import (
 )
 from wmplan.stress.search import FAILURE_DEFINITION, Animate, StressEvaluator, save_failures
 from wmplan.sweep.episodes import get_planner
-from wmplan.sweep.runner import CAUTION, make_executor
+from wmplan.sweep.runner import CAUTION, check_picklable_by_reference, make_executor
 
 MIN_KNOB_SAMPLES = 30
 
@@ -106,7 +106,9 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
     if not 0.0 < ce_fraction < 1.0:
         raise ConfigError(f"ce_fraction must lie in (0, 1), got {ce_fraction!r}")
     base = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
-    get_planner(planner)
+    fn = get_planner(planner)
+    if workers != 1 and not scheduler:
+        check_picklable_by_reference(planner, fn)
     knobs = tuple(DEFAULT_KNOBS if knobs is None else knobs)
     check_knobs(base, knobs)
     budget = int(budget)
@@ -173,6 +175,45 @@ def _report(base: Scenario, planner: str, budget: int, seed: int, knobs: Sequenc
         "knobs": describe_knobs(knobs), "z_step": z_step, "nominal": "independent standard normal knobs",
         "caution": CAUTION,
     }
+
+
+def nominal_reference(scenario: Scenario | str | Path, planner: str, num_knob_samples: int, seeds_per_sample: int,
+                      seed: int, *, workers: int = 1, scheduler: str | None = None,
+                      knobs: Sequence[Knob] | None = None, z_step: float = DEFAULT_Z_STEP,
+                      planner_options: dict[str, Any] | None = None,
+                      progress: bool | Callable[[int, int], None] | None = None) -> dict:
+    """A reference value of the nominal failure probability, to check the estimators against.
+
+    Plain Monte Carlo over the knobs with many scene seeds per knob sample (conditional Monte Carlo): knob samples
+    z_i from the nominal distribution, m episodes each in one simulator batch (cheap in time), value H_i = the
+    failed fraction. The estimate mean(H) is unbiased, and as the z_i are independent its standard error is
+    sd(H) / sqrt(n) (normal 95% interval). It spends many episodes per unit of information when failures depend
+    mostly on the knobs, so it is a slow, assumption-light yardstick, not a competitor.
+    """
+    base = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
+    fn = get_planner(planner)
+    if workers != 1 and not scheduler:
+        check_picklable_by_reference(planner, fn)
+    knobs = tuple(DEFAULT_KNOBS if knobs is None else knobs)
+    check_knobs(base, knobs)
+    if num_knob_samples < 2 or seeds_per_sample < 1:
+        raise ConfigError("need num_knob_samples >= 2 and seeds_per_sample >= 1")
+    ss_z, ss_seeds = np.random.SeedSequence(int(seed)).spawn(2)
+    nominal = GaussianFamily.standard(len(knobs))
+    update, close = _progress(progress, num_knob_samples * seeds_per_sample)
+    try:
+        with make_executor(workers, scheduler) as (executor, _window):
+            ev = StressEvaluator(base, planner, knobs, z_step, np.random.default_rng(ss_seeds), executor,
+                                 dict(planner_options or {}), seeds_per_sample=seeds_per_sample, on_simulated=update)
+            res = importance_sample(ev.scorer(lambda: "reference"), nominal, nominal, 0.0, num_knob_samples,
+                                    rng=np.random.default_rng(ss_z))
+    finally:
+        close()
+    failures = sum(bool(s.row["collision"]) or bool(s.row["offroad"]) for s in ev.samples)
+    return {"estimate": res.estimate, "ci95": [res.ci95[0], res.ci95[1] if res.failures else None],
+            "std_error": res.std_error, "knob_samples": num_knob_samples, "seeds_per_sample": seeds_per_sample,
+            "simulations": len(ev.samples), "failed_episodes": failures, "scenario": base.name, "planner": planner,
+            "seed": int(seed), "knobs": describe_knobs(knobs), "z_step": z_step}
 
 
 def cli_stress(scenario: str | Path, planner: str, budget: int, out: str | Path, *, seed: int = 0,

@@ -13,6 +13,7 @@ grey, learned futures violet, oracle futures teal); the heatmap runs from white 
 from __future__ import annotations
 
 import io
+import json
 import math
 import re
 from collections import defaultdict
@@ -87,6 +88,9 @@ def lines_figure(cells: list[dict], path_x: str, planners: list[str], title: str
         colour = PLANNER_COLOURS[i % len(PLANNER_COLOURS)]
         ax.errorbar(xs, rate, yerr=[rate - ci[:, 0], ci[:, 1] - rate], color=colour, marker="o", capsize=3,
                     label=planner)
+    xs_all = [k[1] for k in counts]
+    if min(xs_all) > 0 and max(xs_all) >= 20 * min(xs_all):  # values over decades (e.g. loguniform draws)
+        ax.set_xscale("log")
     ax.set_xlabel(axis_label(path_x))
     ax.set_ylabel("collision rate (Wilson 95% interval)")
     ax.set_ylim(bottom=0.0)
@@ -103,7 +107,7 @@ def heatmap_figure(cells: list[dict], path_x: str, path_y: str, planners: list[s
     ys = sorted({k[2] for k in counts})
     fig = Figure(figsize=(1.0 + 0.95 * len(xs) * len(planners) + 1.2, 1.2 + 0.6 * len(ys)), layout="constrained")
     axes = fig.subplots(1, len(planners), squeeze=False)[0]
-    vmax = max(max(k / n for k, n in counts.values() if n), 1e-3)
+    vmax = max(max(k / n for k, n in counts.values() if n), 0.05)
     image = None
     for ax, planner in zip(axes, planners, strict=True):
         grid = np.full((len(ys), len(xs)), np.nan)
@@ -151,6 +155,10 @@ def write_summary_plots(summary: dict, out_dir: Path) -> list[Path]:
     planners = [p for p in summary["planners"] if any(c["planner"] == p for c in cells)]
     numeric = [p for p in summary["parameters"] if all(_is_number(c["params"][p]) for c in cells)]
     title = f"sweep {summary['sweep']}: collision rate"
+    shown = numeric[:2] if len(numeric) >= 2 else numeric
+    pooled = [p for p in summary["parameters"] if p not in shown]
+    if pooled and len({json.dumps(c["params"][p]) for c in cells for p in pooled}) > len(pooled):
+        title += f" (pooled over {', '.join(pooled)})"
     if len(numeric) >= 2:
         fig = heatmap_figure(cells, numeric[0], numeric[1], planners, title)
     elif len(numeric) == 1:

@@ -121,7 +121,7 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
             raise SweepError(f"cannot reach the Dask scheduler at {scheduler}: {type(err).__name__}: {first}") from None
         try:
             threads = sum(client.nthreads().values())
-            yield client.get_executor(), max(2, 2 * threads)
+            yield client.get_executor(pure=False), max(2, 2 * threads)
         finally:
             client.close()
     elif workers == 1:
@@ -288,6 +288,17 @@ def _resolve_planners(sweep: Sweep) -> dict[str, PlannerFn]:
     return fns
 
 
+def check_picklable_by_reference(name: str, fn: PlannerFn) -> None:
+    """Spawned pool workers import a planner's function by module and name; refuse one they cannot find."""
+    qual = getattr(fn, "__qualname__", "")
+    module = sys.modules.get(getattr(fn, "__module__", "") or "")
+    interactive = module is not None and module.__name__ == "__main__" and not hasattr(module, "__file__")
+    if "<lambda>" in qual or "<locals>" in qual or interactive:
+        raise ConfigError(f"planner {name!r} is a lambda, a nested function or defined interactively, so the "
+                          "worker processes cannot import it; define it at the top level of a module, or run with "
+                          "workers=1")
+
+
 def _progress_bar(progress: Progress, total: int, initial: int):
     from tqdm import tqdm
 
@@ -319,6 +330,9 @@ def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 
     sweep = _as_sweep(sweep)
     out_dir = Path(out_dir)
     fns = _resolve_planners(sweep)
+    if workers != 1 and not scheduler:
+        for name, fn in fns.items():
+            check_picklable_by_reference(name, fn)
     cells = expand_cells(sweep)
     kinds = param_column_kinds(sweep)
     atomic_write_json(out_dir / "sweep.json", {
