@@ -35,12 +35,10 @@ from wmplan.model.nets import (
     reset_parameters,
 )
 from wmplan.sim.features import (
-    F_HEADING,
     F_LENGTH,
     F_VALID,
     F_VX,
     F_VY,
-    F_WIDTH,
     F_X,
     F_Y,
     NUM_VEHICLE_FEATURES,
@@ -203,20 +201,19 @@ class WorldModel(nn.Module):
         """Object rows (B, C, K, H, N, F) from predicted positions (B, C, K, N, H, 2) and the ego path (B, C, H, 5)."""
         dt = self.cfg.plan_dt_s
         last = hist[:, -1]  # (B, N, F)
-        prev = torch.cat([last[:, None, None, :, None, :2].expand(*xy.shape[:4], 1, 2), xy[..., :-1, :]], dim=-2)
-        vel = (xy - prev) / dt
         b, c, k, n, hz, _ = xy.shape
-        rows = torch.zeros(b, c, k, hz, n, NUM_VEHICLE_FEATURES)
-        rows[..., F_X] = xy[..., 0].transpose(-1, -2)
-        rows[..., F_Y] = xy[..., 1].transpose(-1, -2)
-        rows[..., F_VX] = vel[..., 0].transpose(-1, -2)
-        rows[..., F_VY] = vel[..., 1].transpose(-1, -2)
-        rows[..., F_HEADING] = torch.atan2(rows[..., F_VY], rows[..., F_VX].clamp_min(0.1))
-        rows[..., F_LENGTH] = last[:, None, None, None, :, F_LENGTH]
-        rows[..., F_WIDTH] = last[:, None, None, None, :, F_WIDTH]
-        rows[..., F_VALID] = last[:, None, None, None, :, F_VALID]
-        rows[..., 0, :5] = ego_f[:, :, None].expand(b, c, k, hz, 5)
-        return rows * (rows[..., F_VALID:F_VALID + 1] > 0.5)
+        pos = xy.transpose(-2, -3)  # (B, C, K, H, N, 2)
+        prev = torch.cat([last[:, None, None, None, :, :2].expand(b, c, k, 1, n, 2), pos[..., :-1, :, :]], dim=-3)
+        vel = (pos - prev) / dt
+        # the ego's own path, the same in every future
+        ego = ego_f[:, :, None, :, None, :].expand(b, c, k, hz, 1, 5)
+        pos = torch.cat([ego[..., :2], pos[..., 1:, :]], dim=-2)
+        vel = torch.cat([ego[..., 2:4], vel[..., 1:, :]], dim=-2)
+        heading = torch.atan2(vel[..., 1], vel[..., 0].clamp_min(0.1))
+        heading = torch.cat([ego[..., 4], heading[..., 1:]], dim=-1)
+        static = last[:, None, None, None, :, F_LENGTH:].expand(b, c, k, hz, n, NUM_VEHICLE_FEATURES - F_LENGTH)
+        rows = torch.cat([pos, vel, heading[..., None], static], dim=-1)
+        return rows * (static[..., -1:] > 0.5)
 
     @torch.no_grad()
     def residuals(self, batch: dict) -> tuple[torch.Tensor, torch.Tensor]:

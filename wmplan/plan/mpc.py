@@ -28,7 +28,7 @@ import torch
 from wmplan.errors import ConfigError
 from wmplan.model.ego import EgoKinematics
 from wmplan.plan.predictors import DecisionContext, Predictor
-from wmplan.plan.risk import leader_gap_and_closing, summarise_risk
+from wmplan.plan.risk import summarise_risk
 from wmplan.plan.samplers import ar1_filter_matrix
 from wmplan.sim.params import SimParams
 
@@ -280,7 +280,7 @@ class SamplingPlanner:
         risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=cfg.safe_distance_m)
         p_coll = risk.p_collision.double()
         ttc_short = (cfg.ttc_threshold_s - risk.min_ttc_s.double().clamp(max=cfg.ttc_threshold_s)) ** 2
-        gap, _ = leader_gap_and_closing(rows)  # (B, C, K, H)
+        gap = risk.leader_gap_m  # (B, C, K, H)
         ego_v = torch.hypot(rows[..., 0, 2], rows[..., 0, 3]).clamp_min(1.0)
         thw = gap.double() / ego_v.double()
         headway_short = ((cfg.headway_s - thw.clamp(max=cfg.headway_s)) ** 2).mean((-1, -2))

@@ -374,19 +374,25 @@ def clearance_m(futures: object) -> Tensor:
     return _clearance(_relative(futures))
 
 
-def _clearance(r: _Relative) -> Tensor:
+def _clearance(r: _Relative, exact_below_m: float | None = None) -> Tensor:
+    """Clearance per step (B*, H). With ``exact_below_m``, pairs whose centres are so far apart that even their
+    circumscribed discs are more than ``exact_below_m`` apart get that disc bound (a lower bound of their true
+    distance, itself above ``exact_below_m``) instead of the exact box distance: the result is exact wherever the
+    true clearance is below ``exact_below_m``, and above ``exact_below_m`` elsewhere. The planner uses this to skip
+    the exact computation for the many far-away pairs."""
     if r.ahead_m.shape[0] == 0:
         return torch.full(r.ahead_m.shape[1:], torch.inf, dtype=r.ahead_m.dtype)
-    dist = _signed_distance(
-        r.ahead_m,
-        r.lateral_m,
-        r.cos_rel,
-        r.sin_rel,
-        r.ego_half_length_m,
-        r.ego_half_width_m,
-        r.half_length_m,
-        r.half_width_m,
-    )  # (V-1, B*, H)
+    args = (r.ahead_m, r.lateral_m, r.cos_rel, r.sin_rel, r.ego_half_length_m, r.ego_half_width_m,
+            r.half_length_m, r.half_width_m)
+    if exact_below_m is None:
+        dist = _signed_distance(*args)  # (V-1, B*, H)
+    else:
+        radius = torch.hypot(r.ego_half_length_m, r.ego_half_width_m) + torch.hypot(r.half_length_m, r.half_width_m)
+        dist = torch.hypot(r.ahead_m, r.lateral_m) - radius  # disc bound
+        near = r.is_valid & (dist <= exact_below_m)
+        idx = near.nonzero(as_tuple=True)
+        if idx[0].numel():
+            dist = dist.index_put(idx, _signed_distance(*(a[idx] for a in args)))
     return torch.where(r.is_valid, dist, torch.inf).amin(dim=0)
 
 
@@ -505,6 +511,8 @@ class RiskSummary:
     collided: Tensor
     shortfall_m: Tensor
     ttc_s: Tensor
+    leader_gap_m: Tensor | None = None
+    """(B*, K, H) gap to the vehicle ahead in the ego's path (+inf if none)."""
 
 
 def summarise_risk(
@@ -535,12 +543,14 @@ def summarise_risk(
     if not lateral_margin_m >= 0:
         raise ConfigError(f"lateral_margin_m must be >= 0, got {lateral_margin_m!r}")
     rel = _relative(rows)  # shared by the clearance and the leader search
-    clear = _clearance(rel)  # (B*, K, H)
+    # exact box distances only where they can matter: below the safe distance (plus a margin)
+    clear = _clearance(rel, exact_below_m=safe_distance_m + 1.0)  # (B*, K, H)
     collided = (clear <= 0).any(dim=-1)  # (B*, K)
     p = collision_probability(collided)
     low, high = wilson_interval(collided.sum(dim=-1), collided.shape[-1], z=z)
     shortfall = clearance_shortfall_m(clear, safe_distance_m)  # (B*, K)
-    ttc = time_to_collision(*_leader(rel, lateral_margin_m)).amin(dim=-1)  # (B*, K)
+    gap, closing = _leader(rel, lateral_margin_m)  # (B*, K, H)
+    ttc = time_to_collision(gap, closing).amin(dim=-1)  # (B*, K)
     return RiskSummary(
         p_collision=p,
         p_collision_low=low,
@@ -550,4 +560,5 @@ def summarise_risk(
         collided=collided,
         shortfall_m=shortfall,
         ttc_s=ttc,
+        leader_gap_m=gap,
     )
