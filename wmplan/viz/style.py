@@ -61,3 +61,17 @@ def hex_to_rgb(colour: str) -> tuple[int, int, int]:
     if len(text) != 6:
         raise ValueError(f"colour must be '#rrggbb', got {colour!r}")
     return int(text[0:2], 16), int(text[2:4], 16), int(text[4:6], 16)
+
+# --- predictions and statistics (figures of futures, plans and results) -----------------------------------------------
+DETERMINISTIC_COLOUR = "#3a3a3a"
+"""Dark grey, drawn dashed: the least-squares (deterministic) model's single prediction, the blurry mean."""
+EGO_PLAN_COLOUR = EGO_COLOUR
+"""The ego's own planned path is drawn in the ego's colour."""
+RISK_COLOURS = ("#2b8a3e", "#c9b800", "#e8590c", "#a61e1e", "#3d0c02")
+"""Green through yellow and red to near black: a colour scale of collision probability from 0 to 1 (kept clear of
+violet and teal, which belong to futures)."""
+PLANNER_COLOURS = ("#1f5fa8", "#2b8a3e", "#b8860b", "#a61e4d", "#343a40", "#5c940d")
+"""Blue, green, dark gold, crimson, charcoal, olive: one per planner in result plots, distinct from the scene
+colours (the same values as the sweep plots use)."""
+DIAGONAL_COLOUR = "#9aa0a6"
+"""The identity line of a reliability diagram."""
