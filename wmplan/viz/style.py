@@ -62,6 +62,7 @@ def hex_to_rgb(colour: str) -> tuple[int, int, int]:
         raise ValueError(f"colour must be '#rrggbb', got {colour!r}")
     return int(text[0:2], 16), int(text[2:4], 16), int(text[4:6], 16)
 
+
 # --- predictions and statistics (figures of futures, plans and results) -----------------------------------------------
 DETERMINISTIC_COLOUR = "#3a3a3a"
 """Dark grey, drawn dashed: the least-squares (deterministic) model's single prediction, the blurry mean."""
