@@ -378,10 +378,12 @@ def cmd_stress(args: argparse.Namespace) -> int:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
-    from wmplan.report import build_report
+    from wmplan.report import cli_report
 
-    html, md = build_report(Path(args.run_dir))
-    print(f"wrote {html} and {md}")
+    info = cli_report(Path(args.run_dir))
+    print(f"wrote {info['html']} and {info['markdown']}")
+    for note in info.get("skipped", []):
+        print(f"  skipped: {note}")
     return 0
 
 

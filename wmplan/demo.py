@@ -66,11 +66,11 @@ def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> N
     det_rows = det.sample(ctx.model_batch(), plan, 1, generator=gen)["rows"][0, 0, 0].numpy()
     oracle = OraclePredictor(params, latent.ego, 0.2).predict(ctx, plan, 32, generator=gen)[0, 0].numpy()
     np.savez(out / "futures.npz", history=ctx.history[0].numpy(), model_rows=model_rows, oracle_rows=oracle,
-             deterministic_rows=det_rows)
+             deterministic_rows=det_rows, anchor_pose=ctx.ego_pose[0])
     ego_paths = res.futures[0, :, 0, :, 0, :5].numpy()  # (C, H, 5)
     np.savez(out / "candidates.npz", ego_paths=ego_paths, costs=res.costs[0].numpy(),
              p_collision=res.risk["p_collision"][0].numpy(), chosen=np.array(chosen),
-             futures=res.futures[0, chosen].numpy())
+             futures=res.futures[0, chosen].numpy(), current=ctx.history[0, -1].numpy(), anchor_pose=ctx.ego_pose[0])
 
 
 def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
