@@ -1,0 +1,386 @@
+"""Forward-model throughput: training samples per second, rollout vehicle-steps per second at planner shapes, and
+how close the rollout comes to the speed of its own matrix multiplies.
+
+What is measured (a fresh default-size latent model, ``ModelConfig()``, weights drawn from a seeded generator; the
+speed does not depend on training):
+
+* ``training``: windows per second of the training step of ``wmplan.model.train`` (loss with the default
+  ``TrainConfig`` weights, backward, gradient clipping, Adam) on batches of 256 windows cut from a small
+  onramp-merge dataset simulated into a temporary folder. ``samples_per_s`` includes building the batch from the
+  stored episodes (what ``train`` does every step); ``samples_per_s_model_only`` times the same steps on batches
+  built beforehand. Several steps after a warm-up; the median step time.
+* ``rollout``: ``WorldModel.sample`` at planner shapes, one scene (B = 1, a window of the dataset), C = 64 plans of
+  H = 15 steps, K = 8 samples, N = 9 objects, in inference mode: vehicle-steps = C x K x H x N per call; the median
+  over repeats. ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided
+  by the rollout's time.
+* ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
+  matrices with the shapes of every matrix multiply the rollout does (recorded from the ``nn.Linear`` layers it
+  calls: the scene encoder's MLPs on B x N rows, the plan encoder and the prior on B x C x N rows, the decoder on
+  B x C x K x N rows), hence the same FLOPs, timed in the same process on the same threads. The FLOPs are counted
+  twice: 2 x in x out x rows summed over those layers, and ``torch.utils.flop_counter.FlopCounterMode`` (its
+  mm/addmm/bmm counts); both are reported. They differ by the scene encoder's feed-forward layers (the hooks make
+  torch skip its fused transformer kernel, which the flop counter does not see into); the attention projections
+  are in neither; at B x N = 9 rows all of these are negligible (0.1 %). Target: >= 0.5.
+* ``breakdown_s``: the rollout replayed piece by piece with the model's own modules (median seconds per piece),
+  to show where the time goes; ``breakdown_matches_sample`` says whether the replay reproduced ``sample``'s
+  output exactly (if ``sample`` changes, the replay may no longer describe it).
+
+Threads: torch's intra-op threads are set explicitly (``--threads``, default 1) and reported. Wall-clock numbers
+depend on what else the machine is doing; the 1-minute load average at start and end is recorded, and the rollout
+and matmul loop are also timed in process CPU time (``*_cpu``), which on one thread is less disturbed by other
+programs.
+
+Usage: ``python benchmarks/model_throughput.py [--quick] [--threads N] [--json FILE]``; ``wmplan bench`` calls
+:func:`run`. Importing this module runs nothing.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import platform
+import statistics
+import sys
+import tempfile
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+
+SCENARIO = "onramp-merge"
+PLANNER_SHAPE = dict(scenes=1, candidates=64, samples=8)
+TRAIN_BATCH = 256
+FULL = dict(episodes=32, train_warmup=3, train_steps=20, rollout_warmup=5, rollout_repeats=31, matmul_repeats=31,
+            breakdown_repeats=21)
+QUICK = dict(episodes=12, train_warmup=1, train_steps=4, rollout_warmup=2, rollout_repeats=7, matmul_repeats=7,
+             breakdown_repeats=5)
+TARGET_EFFICIENCY = 0.5
+SEED = 0
+
+
+def _load() -> float | None:
+    return os.getloadavg()[0] if hasattr(os, "getloadavg") else None
+
+
+def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
+    """Wall-clock and process-CPU seconds of ``repeats`` calls of ``fn``."""
+    wall, cpu = [], []
+    for _ in range(repeats):
+        t0, c0 = time.perf_counter(), time.process_time()
+        fn()
+        wall.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
+    return wall, cpu
+
+
+def linear_shapes(model, fn) -> list[tuple[int, int, int]]:
+    """(rows, in, out) of every ``nn.Linear`` call made while ``fn()`` runs (forward hooks)."""
+    import torch
+
+    shapes: list[tuple[int, int, int]] = []
+
+    def hook(mod, inputs, _out):
+        x = inputs[0]
+        shapes.append((int(x.numel() // mod.in_features), mod.in_features, mod.out_features))
+
+    handles = [m.register_forward_hook(hook) for m in model.modules() if isinstance(m, torch.nn.Linear)]
+    try:
+        fn()
+    finally:
+        for h in handles:
+            h.remove()
+    return shapes
+
+
+def flop_counter_mm_flops(fn) -> int | None:
+    """FLOPs of mm / addmm / bmm / baddbmm counted by ``FlopCounterMode`` while ``fn()`` runs (None if unavailable)."""
+    try:
+        import torch
+        from torch.utils.flop_counter import FlopCounterMode
+    except ImportError:  # pragma: no cover - old torch
+        return None
+    with FlopCounterMode(display=False) as counter:
+        fn()
+    wanted = {torch.ops.aten.mm, torch.ops.aten.addmm, torch.ops.aten.bmm, torch.ops.aten.baddbmm}
+    return int(sum(v for k, v in counter.get_flop_counts().get("Global", {}).items() if k in wanted))
+
+
+def matmul_loop(shapes: list[tuple[int, int, int]], generator) -> Callable[[], None]:
+    """A function doing one ``torch.mm`` per shape on random matrices made beforehand."""
+    import torch
+
+    mats = [(torch.randn(r, i, generator=generator), torch.randn(i, o, generator=generator)) for r, i, o in shapes]
+
+    def go() -> None:
+        for a, b in mats:
+            torch.mm(a, b)
+
+    return go
+
+
+def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> tuple[dict, dict, bool]:
+    """Median wall-clock and process-CPU seconds of each piece of ``WorldModel.sample`` replayed with the model's
+    modules; and whether the replay's rows equal ``sample``'s for the same generator seed."""
+    import torch
+
+    from wmplan.model.nets import RESIDUAL_SCALE_M, gaussian_params
+
+    hist = batch["history"]
+    b, c = actions.shape[:2]
+    n = hist.shape[2]
+    hz = model.cfg.horizon
+    times: dict[str, list[float]] = {}
+    cpu_times: dict[str, list[float]] = {}
+    rows = None
+
+    def now() -> tuple[float, float]:
+        return time.perf_counter(), time.process_time()
+
+    def tick(name: str, t0: tuple[float, float]) -> tuple[float, float]:
+        t1 = now()
+        times.setdefault(name, []).append(t1[0] - t0[0])
+        cpu_times.setdefault(name, []).append(t1[1] - t0[1])
+        return now()
+
+    with torch.inference_mode():
+        for _ in range(repeats):
+            g = torch.Generator().manual_seed(seed)
+            t = now()
+            h = model.encoder(hist, batch["road"])
+            t = tick("scene_encoder", t)
+            ego_f = model.ego_future(batch, actions)
+            t = tick("ego_kinematics", t)
+            p = model.plan(hist[:, -1, :, :2], ego_f, actions)
+            t = tick("plan_encoder", t)
+            hb = h[:, None].expand(b, c, n, -1)
+            p_mu, p_lv = gaussian_params(model.prior(torch.cat([hb, p], -1)))
+            t = tick("prior", t)
+            eps = torch.randn((b, 1, k, n, model.zdim), generator=g)
+            z = p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps
+            t = tick("latent_draw", t)
+            x = torch.cat([hb[:, :, None].expand(b, c, k, n, -1), p[:, :, None].expand(b, c, k, n, -1), z], -1)
+            t = tick("decoder_input_concat", t)
+            for i, layer in enumerate(model.decoder):
+                x = layer(x)
+                t = tick(f"decoder_{i}_{type(layer).__name__.lower()}", t)
+            mean, logvar = gaussian_params(x)
+            mean = mean.reshape(*mean.shape[:-1], hz, 2) * RESIDUAL_SCALE_M
+            logvar = logvar.reshape(*logvar.shape[:-1], hz, 2) + 2.0 * math.log(RESIDUAL_SCALE_M)
+            logvar = logvar + 2.0 * torch.log(model.noise_scale)
+            t = tick("decoder_output_split", t)
+            xy = model.cv_positions(hist)[:, None, None] + mean
+            t = tick("constant_velocity_add", t)
+            rows = model.assemble_rows(hist, xy, ego_f)
+            t = tick("assemble_rows", t)
+            # the heading of every predicted row (part of assemble_rows), timed alone on same-size tensors
+            vy, vx = xy[..., 1].transpose(-1, -2), xy[..., 0].transpose(-1, -2).clamp_min(0.1)
+            t = now()
+            torch.atan2(vy, vx)
+            tick("assemble_rows.atan2_part", t)
+    ref = model.sample(batch, actions, k, generator=torch.Generator().manual_seed(seed))["rows"]
+    med = lambda d: {name: statistics.median(v) for name, v in d.items()}  # noqa: E731
+    return med(times), med(cpu_times), bool(torch.equal(ref, rows))
+
+
+def _training(model_cfg, windows, index, cfg: dict) -> dict:
+    """Median seconds per training step (batch building included, and excluded)."""
+    import torch
+
+    from wmplan.model.config import TrainConfig
+    from wmplan.model.train import to_torch
+    from wmplan.model.world_model import WorldModel
+
+    tc = TrainConfig()
+    model = WorldModel(model_cfg, windows_ego(windows), generator=torch.Generator().manual_seed(SEED))
+    model.train()
+    opt = torch.optim.Adam(model.parameters(), lr=tc.lr)
+    rng = np.random.default_rng(SEED)
+    gen = torch.Generator().manual_seed(SEED + 1)
+
+    def one(batch) -> None:
+        loss, _ = model.loss(batch, kl_weight=1.0, free_bits=tc.free_bits, prior_weight=tc.prior_weight, generator=gen)
+        opt.zero_grad(set_to_none=True)
+        loss.backward()
+        torch.nn.utils.clip_grad_norm_(model.parameters(), tc.grad_clip)
+        opt.step()
+
+    def with_data() -> None:
+        one(to_torch(windows.batch(index[rng.integers(0, len(index), TRAIN_BATCH)])))
+
+    prebuilt = [to_torch(windows.batch(index[rng.integers(0, len(index), TRAIN_BATCH)]))
+                for _ in range(cfg["train_steps"])]
+    it = iter(prebuilt)
+    _timed(with_data, cfg["train_warmup"])
+    wall, cpu = _timed(with_data, cfg["train_steps"])
+    wall_m, cpu_m = _timed(lambda: one(next(it)), cfg["train_steps"])
+    return {
+        "batch_size": TRAIN_BATCH,
+        "warmup_steps": cfg["train_warmup"],
+        "timed_steps": cfg["train_steps"],
+        "samples_per_s": TRAIN_BATCH / statistics.median(wall),
+        "samples_per_cpu_s": TRAIN_BATCH / statistics.median(cpu),
+        "samples_per_s_model_only": TRAIN_BATCH / statistics.median(wall_m),
+        "s_per_step": statistics.median(wall),
+        "loss_weights": {"kl_weight": 1.0, "free_bits": tc.free_bits, "prior_weight": tc.prior_weight},
+    }
+
+
+def windows_ego(windows):
+    from wmplan.model.ego import EgoKinematics
+
+    return EgoKinematics.from_scenario(windows.dataset.scenario, windows.dataset.decision_dt_s)
+
+
+def run(quick: bool = False, threads: int = 1) -> dict:
+    """Measure; return the results as a JSON-ready dict (see the module docstring for what each number means)."""
+    import torch
+
+    from wmplan.data import simulate_dataset
+    from wmplan.data.windows import Windows, WindowSpec, anchor_index
+    from wmplan.model.config import ModelConfig
+    from wmplan.model.train import to_torch
+    from wmplan.model.world_model import WorldModel
+    from wmplan.scenario import load_scenario
+
+    cfg = QUICK if quick else FULL
+    threads_before = torch.get_num_threads()
+    torch.set_num_threads(int(threads))
+    load_start = _load()
+    try:
+        model_cfg = ModelConfig()
+        spec = WindowSpec(model_cfg.history, model_cfg.horizon, model_cfg.num_objects)
+        with tempfile.TemporaryDirectory(prefix="wmplan-bench-model-") as tmp:
+            ds = simulate_dataset(load_scenario(SCENARIO), Path(tmp) / "data", episodes=cfg["episodes"], seed=SEED)
+        windows = Windows(ds, spec)
+        index = anchor_index(ds, spec)
+
+        # --- (a) training ---
+        training = _training(model_cfg, windows, index, cfg)
+
+        # --- (b) rollout at planner shapes ---
+        ego = windows_ego(windows)
+        model = WorldModel(model_cfg, ego, generator=torch.Generator().manual_seed(SEED)).eval()
+        b, c, k = PLANNER_SHAPE["scenes"], PLANNER_SHAPE["candidates"], PLANNER_SHAPE["samples"]
+        pick = index[len(index) // 2: len(index) // 2 + b]
+        batch = to_torch(windows.batch(pick))
+        g = torch.Generator().manual_seed(SEED + 2)
+        base = batch["actions"][:, None]  # the recorded plan, perturbed per candidate
+        actions = (base + torch.randn(b, c, model_cfg.horizon, 2, generator=g) * torch.tensor([1.0, 0.05])).contiguous()
+        n = model_cfg.num_rows
+        vehicle_steps = c * k * model_cfg.horizon * n * b
+
+        def rollout() -> None:
+            model.sample(batch, actions, k, generator=torch.Generator().manual_seed(SEED + 3))
+
+        def ego_only() -> None:
+            with torch.inference_mode():
+                model.ego_future(batch, actions)
+
+        _timed(rollout, cfg["rollout_warmup"])
+        r_wall, r_cpu = _timed(rollout, cfg["rollout_repeats"])
+        _timed(ego_only, cfg["rollout_warmup"])
+        e_wall, e_cpu = _timed(ego_only, cfg["rollout_repeats"])
+
+        # --- (c) the same matrix multiplies alone ---
+        with torch.inference_mode():
+            shapes = linear_shapes(model, rollout)
+        flops = int(sum(2 * r * i * o for r, i, o in shapes))
+        with torch.inference_mode():
+            fc_flops = flop_counter_mm_flops(rollout)
+        mm = matmul_loop(shapes, torch.Generator().manual_seed(SEED + 4))
+        _timed(mm, cfg["rollout_warmup"])
+        m_wall, m_cpu = _timed(mm, cfg["matmul_repeats"])
+        # a second rollout timing after the matmul loop, so that a change in machine load between the two shows
+        r2_wall, r2_cpu = _timed(rollout, cfg["rollout_repeats"])
+
+        parts, parts_cpu, matches = breakdown(model, batch, actions, k, cfg["breakdown_repeats"], SEED + 3)
+
+        t_roll, t_roll_cpu = statistics.median(r_wall + r2_wall), statistics.median(r_cpu + r2_cpu)
+        t_mm, t_mm_cpu = statistics.median(m_wall), statistics.median(m_cpu)
+        t_ego = statistics.median(e_wall)
+        by_layer: dict[str, int] = {}
+        for r, i, o in shapes:
+            key = f"{r}x{i}x{o}"
+            by_layer[key] = by_layer.get(key, 0) + 2 * r * i * o
+        result = {
+            "benchmark": "model_throughput",
+            "quick": quick,
+            "torch_threads": torch.get_num_threads(),
+            "rollout_efficiency": t_mm / t_roll,
+            "rollout_efficiency_cpu_time": t_mm_cpu / t_roll_cpu,
+            "rollout_efficiency_fastest_runs": min(m_wall) / min(r_wall + r2_wall),
+            "rollout_vehicle_steps_per_s": vehicle_steps / t_roll,
+            "training_samples_per_s": training["samples_per_s"],
+            "training": training,
+            "rollout": {
+                "scenes": b, "candidates": c, "samples": k, "horizon": model_cfg.horizon, "objects": n,
+                "vehicle_steps_per_call": vehicle_steps,
+                "s_per_call_median": t_roll,
+                "s_per_call_min": min(r_wall + r2_wall),
+                "s_per_call_median_before_matmul_loop": statistics.median(r_wall),
+                "s_per_call_median_after_matmul_loop": statistics.median(r2_wall),
+                "cpu_s_per_call_median": t_roll_cpu,
+                "vehicle_steps_per_cpu_s": vehicle_steps / t_roll_cpu,
+                "ego_kinematics_s": t_ego,
+                "ego_kinematics_cpu_s": statistics.median(e_cpu),
+                "ego_kinematics_share": t_ego / t_roll,
+                "ego_kinematics_share_cpu_time": statistics.median(e_cpu) / t_roll_cpu,
+                "repeats": 2 * cfg["rollout_repeats"],
+            },
+            "matmul": {
+                "flops_per_rollout": flops,
+                "flops_flop_counter_mm": fc_flops,
+                "matrix_multiplies": len(shapes),
+                "flops_by_shape_rows_x_in_x_out": by_layer,
+                "s_loop_median": t_mm,
+                "s_loop_min": min(m_wall),
+                "cpu_s_loop_median": t_mm_cpu,
+                "gflop_per_s_loop": flops / t_mm / 1e9,
+                "gflop_per_s_rollout": flops / t_roll / 1e9,
+            },
+            "breakdown_s": parts,
+            "breakdown_sum_s": sum(v for name, v in parts.items() if "." not in name),
+            "breakdown_cpu_s": parts_cpu,
+            "breakdown_sum_cpu_s": sum(v for name, v in parts_cpu.items() if "." not in name),
+            "breakdown_matches_sample": matches,
+            "model": {"num_parameters": model.num_parameters(), "config": model_cfg.to_dict(),
+                      "weights": f"fresh, drawn from torch.Generator seed {SEED} (speed does not depend on training)"},
+            "settings": {"scenario": SCENARIO, "dataset_episodes": cfg["episodes"], "dataset_seed": SEED,
+                         "statistic": "median over repeats", **cfg},
+            "targets": {"rollout_efficiency": TARGET_EFFICIENCY,
+                        "rollout_efficiency_met": t_mm / t_roll >= TARGET_EFFICIENCY},
+            "machine": {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
+                        "python": platform.python_version(), "torch": torch.__version__,
+                        "cpu_count": os.cpu_count(), "load_avg_1min_at_start": load_start,
+                        "load_avg_1min_at_end": _load()},
+            "note": "Speed of a model of a simplified traffic simulator on one machine; it certifies nothing about "
+                    "a real vehicle.",
+        }
+    finally:
+        torch.set_num_threads(threads_before)
+    return result
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="Forward-model throughput: training samples/s, rollout "
+                                                 "vehicle-steps/s and rollout efficiency against plain matmuls.")
+    parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
+    parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
+    parser.add_argument("--threads", type=int, default=1, help="torch intra-op threads (default 1)")
+    args = parser.parse_args(argv)
+    if args.threads < 1:
+        parser.error(f"--threads must be >= 1, got {args.threads}")
+    result = run(quick=args.quick, threads=args.threads)
+    if args.json:
+        from wmplan.io import atomic_write_json
+
+        atomic_write_json(Path(args.json), result)
+    print(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,65 @@
+"""The model benchmark counts the rollout's matrix-multiply FLOPs right.
+
+``benchmarks/model_throughput.py`` derives ``rollout_efficiency`` from the FLOPs of the rollout's matrix
+multiplies. Its count (forward hooks on ``nn.Linear``: 2 x in x out x rows) is checked here against
+``torch.utils.flop_counter.FlopCounterMode`` (reference library; a matmul of (m, k) by (k, n) counts 2 m k n) and
+against the layer sizes worked out by hand from the model's configuration (derived, no source needed).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+from pathlib import Path
+
+import pytest
+import torch
+from model_helpers import TOY_EGO, straight_batch
+
+from wmplan.model.config import ModelConfig
+from wmplan.model.world_model import WorldModel
+
+BENCH = Path(__file__).resolve().parents[2] / "benchmarks" / "model_throughput.py"
+
+
+@pytest.fixture(scope="module")
+def bench():
+    spec = importlib.util.spec_from_file_location("wmplan_bench_model_throughput_test", BENCH)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_flop_count_of_a_rollout(bench):
+    """B = 2 scenes, C = 3 plans, K = 4 samples, N = 2 objects, H = 5, a one-layer encoder: the decoder sees
+    B C K N = 48 rows, the plan encoder and prior B C N = 12, the object MLP B N = 4, the road MLP B = 2."""
+    d, hid, hz, z, w = 8, 16, 5, 2, 2
+    cfg = ModelConfig(history=w, horizon=hz, num_objects=1, d_model=d, num_heads=2, hidden=hid, num_layers=1,
+                      latent_dim=z)
+    model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(0)).eval()
+    batch = straight_batch(2, w, hz)
+    actions = torch.zeros(2, 3, hz, 2)
+
+    def rollout() -> None:
+        model.sample(batch, actions, 4, generator=torch.Generator().manual_seed(1))
+
+    with torch.inference_mode():
+        shapes = bench.linear_shapes(model, rollout)
+        counted = bench.flop_counter_mm_flops(rollout)
+    by_hand = {
+        "object mlp": 4 * ((5 * w + 3) * d + d * d),
+        "road mlp": 2 * 6 * d,
+        "encoder feed-forward": 4 * (d * 2 * d + 2 * d * d),
+        "plan encoder": 12 * (6 * hz * d + d * d),
+        "prior": 12 * (2 * d * hid + hid * 2 * z),
+        "decoder": 48 * ((2 * d + z) * hid + hid * hid + hid * 4 * hz),
+    }
+    assert sum(2 * r * i * o for r, i, o in shapes) == 2 * sum(by_hand.values())
+    # The flop counter sees the same layers except the encoder's feed-forward inside torch's fused kernel.
+    assert counted in (2 * sum(by_hand.values()), 2 * (sum(by_hand.values()) - by_hand["encoder feed-forward"]))
+
+
+def test_matmul_loop_does_the_shapes(bench):
+    """The timed loop multiplies exactly the recorded shapes: its flop count equals the sum of 2 m k n."""
+    shapes = [(7, 3, 5), (2, 4, 6)]
+    loop = bench.matmul_loop(shapes, torch.Generator().manual_seed(0))
+    assert bench.flop_counter_mm_flops(loop) == 2 * (7 * 3 * 5 + 2 * 4 * 6)
