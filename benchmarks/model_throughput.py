@@ -77,21 +77,26 @@ def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
 
 
 def linear_shapes(model, fn) -> list[tuple[int, int, int]]:
-    """(rows, in, out) of every ``nn.Linear`` call made while ``fn()`` runs (forward hooks)."""
+    """(rows, in, out) of every linear map applied while ``fn()`` runs: ``nn.Linear`` modules and direct
+    ``torch.nn.functional.linear`` calls alike (the model splits its decoder's first layer into two functional
+    calls, one per object and plan, one per sample). Attention projections inside torch's fused kernel are not
+    seen (as with the module hooks before)."""
     import torch
 
     shapes: list[tuple[int, int, int]] = []
+    original = torch.nn.functional.linear
 
-    def hook(mod, inputs, _out):
-        x = inputs[0]
-        shapes.append((int(x.numel() // mod.in_features), mod.in_features, mod.out_features))
+    def recording(x, weight, bias=None):
+        out_f, in_f = weight.shape
+        shapes.append((int(x.numel() // in_f), int(in_f), int(out_f)))
+        return original(x, weight, bias)
 
-    handles = [m.register_forward_hook(hook) for m in model.modules() if isinstance(m, torch.nn.Linear)]
+    torch.nn.functional.linear = recording
     try:
         fn()
     finally:
-        for h in handles:
-            h.remove()
+        torch.nn.functional.linear = original
+    del model
     return shapes
 
 

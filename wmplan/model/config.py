@@ -74,7 +74,7 @@ class TrainConfig:
     free_bits: float = 0.05
     """Free bits per latent dimension, in nats (Kingma et al. 2016, "Improved variational inference with inverse
     autoregressive flow")."""
-    prior_weight: float = 0.5
+    prior_weight: float = 0.1
     """Weight of the likelihood under a prior draw of z (hybrid objective of Sohn et al. 2015)."""
     kl_warmup_epochs: int = 5
     """Linear KL annealing from 0 to 1 over these epochs (Bowman et al. 2016)."""

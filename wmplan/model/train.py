@@ -99,10 +99,16 @@ def calibrate_noise_scale(model: WorldModel, batch: dict, *, target: float = 0.9
     valid[..., 0] = False
     q = (1.0 - target) / 2.0
 
+    model.noise_scale.fill_(1.0)
+    out = model.sample(batch, batch["actions"][:, None], samples, generator=torch.Generator().manual_seed(seed))
+    centre = out["rows"][:, 0, ..., :2]  # (B, K, H, N, 2): decoder means per draw of z
+    sd = (0.5 * out["logvar"][:, 0]).exp().permute(0, 1, 3, 2, 4)  # (B, K, H, N, 2)
+    eps = torch.randn(centre.shape, generator=torch.Generator().manual_seed(seed + 1))
+    ego_mask = torch.ones_like(centre)
+    ego_mask[..., 0, :] = 0.0  # the ego's own path is exact
+
     def coverage(scale: float) -> float:
-        model.noise_scale.fill_(scale)
-        xs = model.sample(batch, batch["actions"][:, None], samples, generator=torch.Generator().manual_seed(seed),
-                          noise=True)["rows"][:, 0, ..., :2]
+        xs = centre + scale * sd * eps * ego_mask
         lo, hi = torch.quantile(xs, q, dim=1), torch.quantile(xs, 1.0 - q, dim=1)
         return float(((true >= lo) & (true <= hi)).float()[valid].mean())
 
@@ -140,8 +146,10 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
         ckpt_cfg, opt_tensors, state = load_training_state(out_dir)
         model_cfg = ModelConfig.from_dict(ckpt_cfg["model"])
         train_cfg = TrainConfig(**ckpt_cfg["train"])
-        if ckpt_cfg.get("dataset", {}).get("scenario_hash") != ds.manifest["scenario_hash"]:
-            raise CheckpointError(f"{out_dir}: was trained on another dataset (scenario hash differs); cannot resume on {data_dir}")
+        stored = ckpt_cfg.get("dataset", {})
+        if stored.get("scenario_hash") != ds.manifest["scenario_hash"] or \
+                stored.get("array_sha256", ds.manifest["array_sha256"]) != ds.manifest["array_sha256"]:
+            raise CheckpointError(f"{out_dir}: was trained on another dataset (scenario or data differ); cannot resume on {data_dir}")
     elif (out_dir / "latest").exists():
         raise ConfigError(f"{out_dir}: already holds a model; pass --resume to continue it or choose another --out")
     torch.set_num_threads(train_cfg.threads)
@@ -181,6 +189,7 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
 
     meta = {"train": train_cfg.to_dict(), "dataset": {"path": str(Path(data_dir).resolve()),
             "scenario_name": ds.scenario.name, "scenario_hash": ds.manifest["scenario_hash"],
+            "array_sha256": ds.manifest["array_sha256"],
             "num_episodes": ds.traj.num_episodes}, "num_parameters": model.num_parameters(),
             "window": {"history": spec.history, "horizon": spec.horizon, "num_objects": spec.num_objects}}
     total_steps = train_cfg.max_epochs * train_cfg.steps_per_epoch

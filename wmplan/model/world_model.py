@@ -92,9 +92,20 @@ class WorldModel(nn.Module):
         return self.ego.rollout(batch["ego_speed_mps"][:, None], batch["ego_steer_rad"][:, None], actions)
 
     def _decode(self, h: torch.Tensor, p: torch.Tensor, z: torch.Tensor | None):
-        """h, p (..., N, D), z (..., N, Z) -> residual mean and log-variance (..., N, H, 2) in metres."""
-        x = torch.cat([h, p] if z is None else [h, p, z], dim=-1)
-        mean, logvar = gaussian_params(self.decoder(x))
+        """h, p (..., N, D), z (..., N, Z) -> residual mean and log-variance (..., N, H, 2) in metres.
+
+        h and p may carry fewer leading elements than z (broadcast over the samples axis): the first layer is
+        split so that its history-and-plan part runs once per object and plan, and only the z part per sample.
+        """
+        first = self.decoder[0]
+        d2 = h.shape[-1] + p.shape[-1]
+        hp = torch.cat([h, p], dim=-1)
+        if z is None:
+            x = first(hp)
+        else:
+            x = torch.nn.functional.linear(hp, first.weight[:, :d2], first.bias) + \
+                torch.nn.functional.linear(z, first.weight[:, d2:])
+        mean, logvar = gaussian_params(self.decoder[1:](x))
         hz = self.cfg.horizon
         mean = mean.reshape(*mean.shape[:-1], hz, 2) * RESIDUAL_SCALE_M
         logvar = logvar.reshape(*logvar.shape[:-1], hz, 2) + 2.0 * math.log(RESIDUAL_SCALE_M)
@@ -185,7 +196,7 @@ class WorldModel(nn.Module):
             p_mu, p_lv = gaussian_params(self.prior(torch.cat([hb, p], -1)))  # (B, C, N, Z)
             eps = torch.randn((b, 1, k, n, self.zdim), generator=generator)
             z = p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps  # (B, C, K, N, Z)
-            mean, logvar = self._decode(hb[:, :, None].expand(b, c, k, n, -1), p[:, :, None].expand(b, c, k, n, -1), z)
+            mean, logvar = self._decode(hb[:, :, None], p[:, :, None], z)
         else:
             mean, _ = self._decode(hb, p, None)
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
