@@ -159,7 +159,8 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             fin_off |= newly & state.offroad
             fin_goal |= newly & state.reached_goal
             fin_x = np.where(newly, state.x_m[:, EGO], fin_x)
-            coll_dec = np.where(live & (state.collided | state.offroad) & (coll_dec < 0), t + 1, coll_dec)
+            # calibration compares predicted collision with other vehicles to collisions (not leaving the road)
+            coll_dec = np.where(live & state.collided & (coll_dec < 0), t + 1, coll_dec)
         rows_now = state.vehicles()
         ttc = ttc_to_leader_s(torch.from_numpy(rows_now[:, None])).numpy()[:, 0]
         min_ttc = np.where(active, np.minimum(min_ttc, ttc), min_ttc)

@@ -13,8 +13,8 @@ At every decision (0.2 s) and for a batch of B scenes at once:
    staying on the road (all from the ego's own path and the road geometry), and risk from the K futures
    (:func:`wmplan.plan.risk.summarise_risk`): collision probability, CVaR of the clearance shortfall, minimum
    time to collision. Risk enters as a weighted penalty or as a chance constraint P(collision) <= epsilon.
-4. **Act.** Apply the first action of the chosen plan (CEM: the lowest-cost candidate; MPPI: the weighted mean
-   acceleration on the most-weighted lane) and update the sampler.
+4. **Act.** Apply the first action of the chosen plan (CEM: the lowest-cost candidate; MPPI: the candidate of
+   highest weight, while the weighted mean warm-starts the next decision) and update the sampler.
 """
 
 from __future__ import annotations
@@ -353,11 +353,12 @@ class SamplingPlanner:
         else:
             z = total - total.min(dim=1, keepdim=True).values
             wts = torch.softmax(-z / cfg.mppi_lambda, dim=1)  # (B, C) = softmax(-cost / lambda)
-            mean = (wts[..., None] * plans[..., 0]).sum(1)
+            mean = (wts[..., None] * plans[..., 0]).sum(1).clamp(-self.params.max_brake_mps2, self.params.max_accel_mps2)
             onehot = (wts[..., None] * torch.nn.functional.one_hot(choice, 3).float()).sum(1)
+            # The weighted mean warm-starts the next decision; the action applied now is the first step of the
+            # highest-weight candidate, so that the plan executed is one whose futures and risk were scored.
             best = wts.argmax(dim=1)
-            action = plans[bi, best, 0].clone()
-            action[:, 0] = mean[:, 0]
+            action = plans[bi, best, 0]
         lane_p = (0.5 * lane_p + 0.5 * onehot).clamp_min(cfg.lane_prob_floor)
         # --- write the sampler state back, shifted one step for the next decision (warm start) ---
         self.mean[ridx] = torch.cat([mean[:, 1:], mean[:, -1:]], dim=1)
