@@ -5,6 +5,8 @@
   ([D]), computed here from scipy.stats.norm.
 * P(X > 20), X ~ Exp(mean 1) = e^-20 = 2.061154e-9 ([D]); the cross-entropy-optimal exponential mean is
   E[X | X > 20] = 21 by memorylessness ([D]).
+* Defensive mixtures (Hesterberg 1995, from memory [M]): weights f / (alpha f + (1 - alpha) g) <= 1 / alpha
+  follows from the definition.
 * Plain Monte Carlo's variance at N samples is p (1 - p) / N (binomial variance, common practice, no source).
 * Wilson intervals: REFERENCES.md section 9.1 table ([D]) and scipy.stats.binomtest(...).proportion_ci(
   method="wilson") ([S]).
@@ -22,6 +24,7 @@ import pytest
 from scipy.stats import binom, binomtest, norm
 
 from wmplan.stress.rare_event import (
+    DefensiveMixture,
     ExponentialFamily,
     GaussianFamily,
     cross_entropy_is,
@@ -66,6 +69,25 @@ def test_cross_entropy_is_covers_the_truth_and_beats_plain_monte_carlo(run, trut
     means = np.array([float(r.proposal.mean[0]) for r in results])
     assert means.mean() == pytest.approx(ce_mean, rel=0.02)
     assert all(r.ess > 50 for r in results)
+
+
+def test_defensive_mixture_bounds_the_weights_and_keeps_the_estimate() -> None:
+    """alpha f + (1 - alpha) g: its density is the mixture of scipy's normal densities, every weight f / mixture is
+    at most 1 / alpha, and cross-entropy IS with alpha = 0.2 still covers P(Z > 4) in >= 15 of 20 seeds with a
+    spread far below plain Monte Carlo's."""
+    nominal, prop = GaussianFamily.standard(1), GaussianFamily(np.array([4.2]), np.array([1.0]))
+    mix = DefensiveMixture(nominal, prop, 0.2)
+    x = np.linspace(-6.0, 10.0, 401)[:, None]
+    dens = 0.2 * norm.pdf(x[:, 0]) + 0.8 * norm.pdf(x[:, 0], 4.2, 1.0)
+    assert np.allclose(np.exp(mix.log_pdf(x)), dens)
+    assert np.all(np.exp(nominal.log_pdf(x) - mix.log_pdf(x)) <= 1.0 / 0.2 + 1e-12)
+    truth = float(norm.sf(4.0))
+    results = [cross_entropy_is(lambda z: z[:, 0], nominal, 4.0, n_per_level=1000, n_final=4000, defensive=0.2,
+                                rng=np.random.default_rng(seed)) for seed in SEEDS]
+    assert sum(r.ci95[0] <= truth <= r.ci95[1] for r in results) >= MIN_COVERED
+    est = np.array([r.estimate for r in results])
+    assert est.var(ddof=1) < truth * (1 - truth) / results[0].num_evaluations / 100.0
+    assert results[0].proposal.describe()["family"] == "defensive mixture"
 
 
 def test_plain_monte_carlo_counts_and_uses_wilson() -> None:

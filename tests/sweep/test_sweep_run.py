@@ -166,22 +166,40 @@ def test_interrupted_run_resumes_to_the_uninterrupted_rows(tmp_path: Path, broke
     assert final["complete"] and read_results(out).equals(reference)
 
 
-def test_killed_run_resumes_without_lost_or_duplicate_rows(tmp_path: Path) -> None:
+def _children(pid: int) -> list[int]:
+    """Process ids whose parent is ``pid`` (Linux /proc)."""
+    out = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid:
+            out.append(int(stat.parent.name))
+    return out
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_killed_run_resumes_without_lost_or_duplicate_rows(tmp_path: Path, workers: int) -> None:
     """SIGKILL the process running a sweep after two cells are written: every cell file left is complete (it
-    reads back and belongs to its cell), and rerunning completes the sweep with the uninterrupted rows."""
+    reads back and belongs to its cell), no pool worker outlives the run, and rerunning completes the sweep with
+    the uninterrupted rows."""
     path = _sweep_file(tmp_path, ["rules", "rules-twin"], episodes=32)
     run_sweep(path, tmp_path / "clean", progress=False)
     reference = read_results(tmp_path / "clean")
     out = tmp_path / "out"
-    code = (f"import sys; sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); import sweep_planners; "
-            "from wmplan.sweep import register_planner, run_sweep; "
-            "register_planner('rules-twin', sweep_planners.rules_twin); "
-            f"run_sweep({str(path)!r}, {str(out)!r}, progress=False)")
-    proc = subprocess.Popen([sys.executable, "-c", code])
+    script = tmp_path / "run.py"
+    script.write_text(
+        f"import sys\nsys.path.insert(0, {str(Path(__file__).resolve().parent)!r})\nimport sweep_planners\n"
+        "from wmplan.sweep import register_planner, run_sweep\n"
+        "register_planner('rules-twin', sweep_planners.rules_twin)\n"
+        f"if __name__ == '__main__':\n    run_sweep({str(path)!r}, {str(out)!r}, workers={workers}, progress=False)\n")
+    proc = subprocess.Popen([sys.executable, str(script)], stderr=subprocess.DEVNULL)
     deadline = time.monotonic() + 120.0
     while len(list((out / "cells").glob("*.parquet"))) < 2 and proc.poll() is None and time.monotonic() < deadline:
         time.sleep(0.01)
     assert proc.poll() is None, "the sweep finished before it could be killed; give it more work"
+    kids = _children(proc.pid) if sys.platform.startswith("linux") else []
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait()
     left = sorted((out / "cells").glob("*.parquet"))
@@ -192,6 +210,12 @@ def test_killed_run_resumes_without_lost_or_duplicate_rows(tmp_path: Path) -> No
         assert read_cell(out, f.stem).num_rows == 32
     summary = run_sweep(path, out, progress=False)
     assert summary["complete"] and read_results(out).equals(reference)
+    if workers > 1 and sys.platform.startswith("linux"):
+        assert len(kids) >= workers
+        deadline = time.monotonic() + 10.0
+        while any(Path(f"/proc/{k}").exists() for k in kids) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert not any(Path(f"/proc/{k}").exists() for k in kids), "pool workers outlived the killed run"
 
 
 def test_summary_rates_and_wilson_intervals(tmp_path: Path) -> None:

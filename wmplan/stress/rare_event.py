@@ -28,9 +28,16 @@ gamma; the last fit is the proposal of a final, separate importance-sampling sta
 estimate, so it stays unbiased).
 
 Families: independent Gaussians (mean and standard deviation per coordinate) and independent exponentials (mean
-per coordinate). A Gaussian proposal narrower than sigma / sqrt(2) of a Gaussian nominal gives importance weights
-with infinite variance (the integral of f^2 / g diverges), so the standard deviations of a fit are floored
-(``std_floor``, in units of the nominal's) at 0.75 by default.
+per coordinate). A Gaussian proposal narrower than the nominal inflates the weights' second moment by
+E_f[f/g] = s / sqrt(2 - 1/s^2) per coordinate (s = proposal std / nominal std; infinite for s <= 1/sqrt(2)):
+1.59 at s = 0.75, so 10x over five coordinates. The standard deviations of a fit are therefore floored
+(``std_floor``, in units of the nominal's) at 1 by default: the cross-entropy method moves the proposal's mean, and
+may widen it, but does not narrow it.
+
+Defensive mixture (Hesterberg, "Weighted average importance sampling and defensive mixture distributions",
+Technometrics 1995, from memory): the final stage may draw from alpha f + (1 - alpha) g instead of g. Then every
+weight is at most 1 / alpha, and the estimator's variance is at most about 1 / alpha times plain Monte Carlo's, even
+when the cross-entropy levels went astray (a noisy score, failures that barely depend on the sampled variables).
 """
 
 from __future__ import annotations
@@ -120,6 +127,30 @@ class ExponentialFamily:
         return {"family": "exponential", "mean": [float(v) for v in self.mean]}
 
 
+@dataclass(frozen=True)
+class DefensiveMixture:
+    """``alpha * nominal + (1 - alpha) * proposal``: weights against the nominal are at most 1 / alpha."""
+
+    nominal: GaussianFamily | ExponentialFamily
+    proposal: GaussianFamily | ExponentialFamily
+    alpha: float
+
+    @property
+    def dim(self) -> int:
+        return self.proposal.dim
+
+    def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        from_nominal = rng.random(n) < self.alpha
+        return np.where(from_nominal[:, None], self.nominal.sample(n, rng), self.proposal.sample(n, rng))
+
+    def log_pdf(self, x: np.ndarray) -> np.ndarray:
+        return np.logaddexp(math.log(self.alpha) + self.nominal.log_pdf(x),
+                            math.log1p(-self.alpha) + self.proposal.log_pdf(x))
+
+    def describe(self) -> dict:
+        return {"family": "defensive mixture", "alpha": self.alpha, "proposal": self.proposal.describe()}
+
+
 Family = GaussianFamily | ExponentialFamily
 
 
@@ -172,7 +203,7 @@ class ISResult:
     num_evaluations: int
     reached: bool
     levels: tuple[CELevel, ...] = field(default_factory=tuple)
-    proposal: Family | None = None
+    proposal: Family | DefensiveMixture | None = None
 
     @property
     def relative_error(self) -> float:
@@ -229,7 +260,7 @@ def is_estimate(values: np.ndarray, log_w: np.ndarray) -> tuple[float, float, fl
 
 
 def cross_entropy_levels(score: ScoreFn, nominal: Family, gamma: float, *, n_per_level: int, rho: float = 0.1,
-                         max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 0.75,
+                         max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 1.0,
                          rng: np.random.Generator,
                          on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
                          ) -> tuple[Family, tuple[CELevel, ...], bool, int]:
@@ -280,26 +311,32 @@ def cross_entropy_levels(score: ScoreFn, nominal: Family, gamma: float, *, n_per
 
 
 def cross_entropy_is(score: ScoreFn, nominal: Family, gamma: float, *, n_per_level: int, n_final: int,
-                     rho: float = 0.1, max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 0.75,
-                     rng: np.random.Generator,
+                     rho: float = 0.1, max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 1.0,
+                     defensive: float = 0.0, rng: np.random.Generator,
                      on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None) -> ISResult:
     """P(S(X) >= gamma), X ~ nominal, by cross-entropy levels then a final importance-sampling stage.
 
     Arguments as :func:`cross_entropy_levels`; ``n_final`` samples for the final stage (``on_samples`` sees them
-    with level index -1).
+    with level index -1); ``defensive``: the nominal's share alpha of the final stage's mixture (0: none).
     """
     proposal, levels, reached, evaluations = cross_entropy_levels(
         score, nominal, gamma, n_per_level=n_per_level, rho=rho, max_levels=max_levels, smoothing=smoothing,
         std_floor=std_floor, rng=rng, on_samples=on_samples)
     return importance_sample(score, nominal, proposal, gamma, n_final, rng=rng, levels=levels, reached=reached,
-                             prior_evaluations=evaluations, on_samples=on_samples)
+                             prior_evaluations=evaluations, on_samples=on_samples, defensive=defensive)
 
 
 def importance_sample(score: ScoreFn, nominal: Family, proposal: Family, gamma: float, n: int, *,
                       rng: np.random.Generator, levels: tuple[CELevel, ...] = (), reached: bool = True,
                       prior_evaluations: int = 0,
-                      on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None) -> ISResult:
-    """The final stage: ``n`` samples from ``proposal``, weighted toward ``nominal``."""
+                      on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
+                      defensive: float = 0.0) -> ISResult:
+    """The final stage: ``n`` samples from ``proposal`` (mixed with a share ``defensive`` of the nominal),
+    weighted toward ``nominal``."""
+    if not 0.0 <= defensive < 1.0:
+        raise ValueError(f"defensive must lie in [0, 1), got {defensive!r}")
+    if defensive > 0.0:
+        proposal = DefensiveMixture(nominal, proposal, defensive)  # type: ignore[assignment]
     x = proposal.sample(n, rng)
     s, h = evaluate(score, x, gamma)
     if on_samples is not None:

@@ -4,8 +4,10 @@ With a budget of N episodes per estimator and m episodes per knob sample (``seed
 
 1. **Cross-entropy levels** (at most ``ce_fraction`` of the N / m knob samples, an eighth of them per level): the
    CEM search for failures over the scenario knobs and the traffic seeds (:mod:`wmplan.stress.search`).
-2. **Importance sampling**: the rest of the knob samples from the last cross-entropy proposal, m episodes each,
-   weighted toward the nominal knob distribution: the failure probability, a 95% interval, effective sample size.
+2. **Importance sampling**: the rest of the knob samples from the last cross-entropy proposal mixed with a share
+   ``defensive`` (0.2) of the nominal (a defensive mixture: no weight exceeds 5, so even a proposal that went astray
+   costs at most about 5x plain Monte Carlo's variance), m episodes each, weighted toward the nominal knob
+   distribution: the failure probability, a 95% interval, effective sample size.
 3. **Plain Monte Carlo**: N more episodes, each with its own knob sample from the nominal distribution and its own
    seed (independent episodes, so the Wilson 95% interval holds): the reference at equal budget.
 
@@ -67,7 +69,7 @@ def _progress(progress: bool | Callable[[int, int], None] | None, total: int):
 def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_dir: str | Path, seed: int, *,
                workers: int = 1, scheduler: str | None = None, knobs: Sequence[Knob] | None = None,
                z_step: float = DEFAULT_Z_STEP, rho: float = 0.1, ce_fraction: float = 0.6, max_saved: int = 10,
-               seeds_per_sample: int = 4,
+               seeds_per_sample: int = 4, defensive: float = 0.2,
                planner_options: dict[str, Any] | None = None, animate: Animate | None = None,
                progress: bool | Callable[[int, int], None] | None = None) -> dict:
     """Search for failures and estimate the failure probability under the nominal knob distribution.
@@ -85,6 +87,8 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
         rho: elite fraction of the cross-entropy levels.
         ce_fraction: most of the budget the cross-entropy levels may use.
         seeds_per_sample: episodes per knob sample in the importance-sampling stages (m).
+        defensive: share of the nominal distribution in the final stage's proposal (0: the cross-entropy proposal
+            alone).
         max_saved: most failures saved as files.
         planner_options: keyword options for the planner's runner.
         animate: ``animate(scenario_file, seed, planner, out_file) -> Path``, called per saved failure (optional).
@@ -103,6 +107,8 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
     if isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < least:
         raise ConfigError(f"budget must be an integer >= {least} episodes ({MIN_KNOB_SAMPLES} knob samples x "
                           f"{seeds_per_sample} seeds per sample), got {budget!r}")
+    if not 0.0 <= defensive < 1.0:
+        raise ConfigError(f"defensive must lie in [0, 1), got {defensive!r}")
     if not 0.0 < ce_fraction < 1.0:
         raise ConfigError(f"ce_fraction must lie in (0, 1), got {ce_fraction!r}")
     base = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
@@ -124,7 +130,8 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
             ev = StressEvaluator(base, planner, knobs, z_step, np.random.default_rng(ss_seeds), executor,
                                  dict(planner_options or {}), seeds_per_sample=seeds_per_sample, on_simulated=update)
             stage = ["ce level 0"]
-            is_res = _cross_entropy_within_budget(ev, stage, nominal, n_level, max_levels, budget_z, rho, ss_ce)
+            is_res = _cross_entropy_within_budget(ev, stage, nominal, n_level, max_levels, budget_z, rho, ss_ce,
+                                                  defensive)
             stage[0] = "plain mc"
             ev.seeds_per_sample = 1
             mc = plain_monte_carlo(ev.scorer(lambda: stage[0]), nominal, 0.0, budget, rng=np.random.default_rng(ss_mc))
@@ -137,7 +144,8 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
 
 
 def _cross_entropy_within_budget(ev: StressEvaluator, stage: list[str], nominal: GaussianFamily, n_level: int,
-                                 max_levels: int, budget_z: int, rho: float, ss: np.random.SeedSequence):
+                                 max_levels: int, budget_z: int, rho: float, ss: np.random.SeedSequence,
+                                 defensive: float = 0.0) -> ISResult:
     """Cross-entropy levels, then importance sampling with exactly the knob samples the levels left over."""
     rng = np.random.default_rng(ss)
 
@@ -149,7 +157,7 @@ def _cross_entropy_within_budget(ev: StressEvaluator, stage: list[str], nominal:
         on_samples=label)
     stage[0] = "importance sampling"
     return importance_sample(ev.scorer(lambda: stage[0]), nominal, proposal, 0.0, budget_z - used, rng=rng,
-                             levels=levels, reached=reached, prior_evaluations=used)
+                             levels=levels, reached=reached, prior_evaluations=used, defensive=defensive)
 
 
 def _report(base: Scenario, planner: str, budget: int, seed: int, knobs: Sequence[Knob], z_step: float, m: int,

@@ -29,6 +29,8 @@ import json
 import multiprocessing
 import os
 import sys
+import threading
+import time
 from collections.abc import Callable, Iterator
 from concurrent.futures import FIRST_COMPLETED, BrokenExecutor, Executor, Future, ProcessPoolExecutor, wait
 from contextlib import contextmanager
@@ -80,10 +82,19 @@ def _cell_rows(cell: Cell, fn: PlannerFn, kinds: dict[str, str]) -> list[dict]:
     return out
 
 
+def _exit_when_orphaned(parent_pid: int) -> None:
+    while True:
+        time.sleep(1.0)
+        if os.getppid() != parent_pid:  # the run was killed: its results have nowhere to go
+            os._exit(1)
+
+
 def _init_worker() -> None:
-    """Keep each worker's math libraries to one thread, so N workers use N cores and no more."""
+    """Keep each worker's math libraries to one thread, so N workers use N cores and no more; end the worker if
+    the process that started it dies (a killed run must not leave workers behind)."""
     for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
         os.environ.setdefault(var, "1")
+    threading.Thread(target=_exit_when_orphaned, args=(os.getppid(),), daemon=True).start()
 
 
 class InlineExecutor(Executor):
@@ -131,8 +142,10 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
                                    initializer=_init_worker)
         try:
             yield pool, 2 * workers
-        finally:
-            pool.shutdown(wait=True, cancel_futures=True)
+        except BaseException:  # interrupted: do not wait for the cells still running, their results are lost anyway
+            pool.shutdown(wait=False, cancel_futures=True)
+            raise
+        pool.shutdown(wait=True)
 
 
 def execute_cells(cells: list[Cell], task: Callable[..., Any], args_of: Callable[[Cell], tuple],
