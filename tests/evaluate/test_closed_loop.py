@@ -107,11 +107,6 @@ def test_rule_based_episodes_do_not_depend_on_the_batch_size():
     assert without_latency(big.rows) == without_latency(small.rows)
 
 
-@pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
-    "run_batch seeds one torch.Generator per batch (from seed + batch start) and the planner draws every "
-    "scene's candidates from it in one call (randn(B, C, H), multinomial over B rows; the oracle takes one "
-    "seed per call), so an episode's draws depend on which other episodes share its batch and when they "
-    "finish. Fix: one generator per episode, seeded from (seed, episode index)."))
 @pytest.mark.parametrize("name", ["mpc+constant-velocity", "mpc+oracle"])
 def test_planner_episodes_do_not_depend_on_the_batch_size(name):
     """Same seed, batch size 2 vs 4: identical per-episode rows except the latency (STYLE.md 9)."""

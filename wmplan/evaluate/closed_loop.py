@@ -121,7 +121,10 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     fin_x = np.full(e_n, np.nan)
     dec_ms = np.zeros(e_n)
     pred_log: list[tuple[np.ndarray, int, np.ndarray]] = []
-    gen = torch.Generator().manual_seed(int(np.random.SeedSequence([seed, 0xE7A1]).generate_state(1)[0]))
+    # one generator per episode, from (evaluation seed, scene seed): an episode's result does not depend on the
+    # batch it runs in
+    gens = [torch.Generator().manual_seed(int(np.random.SeedSequence([seed, 0xE7A1, int(s)]).generate_state(1)[0]))
+            for s in seeds]
     if planner is not None:
         planner.reset(e_n)
     for t in range(n_dec):
@@ -134,7 +137,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             actions = rule_actions(state, params)
         else:
             ctx = make_context(params, state.take(act_idx), hist[act_idx], ids[act_idx], num_objects)
-            res = planner.plan(ctx, generator=gen, rows=act_idx)
+            res = planner.plan(ctx, generator=[gens[i] for i in act_idx], rows=act_idx)
             actions = np.zeros((e_n, 2))
             actions[act_idx] = res.action
             pred_log.append((act_idx, t, res.p_collision))
@@ -216,7 +219,7 @@ def evaluate_seeds(scenario: Scenario, planner_name: str, seeds: np.ndarray, *, 
     seeds = np.asarray(seeds, dtype=np.int64)
     total = EvalOutput()
     for start in range(0, len(seeds), batch_size):
-        part = run_batch(params, planner_name, planner, seeds[start:start + batch_size], seed=seed + start,
+        part = run_batch(params, planner_name, planner, seeds[start:start + batch_size], seed=seed,
                          progress=progress)
         for r, e in zip(part.rows, range(start, start + len(part.rows)), strict=True):
             r["episode"] = e

@@ -10,6 +10,7 @@ import torch
 
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
+from wmplan.model.nets import randn_rows
 from wmplan.model.world_model import WorldModel
 
 
@@ -48,5 +49,5 @@ class ConstantVelocity:
         logvar = self.logvar.expand(b, c, k, n, hz, 2)
         xy = self._helper.cv_positions(hist)[:, None, None].expand(b, c, k, n, hz, 2)
         if noise:
-            xy = xy + (0.5 * logvar).exp() * torch.randn(xy.shape, generator=generator)
+            xy = xy + (0.5 * logvar).exp() * randn_rows(tuple(xy.shape), generator)
         return {"rows": self._helper.assemble_rows(hist, xy, ego_f), "mean": mean, "logvar": logvar}

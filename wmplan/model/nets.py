@@ -25,6 +25,19 @@ RESIDUAL_SCALE_M = 5.0
 LOGVAR_MIN, LOGVAR_MAX = -7.0, 7.0
 
 
+Generators = "torch.Generator | list[torch.Generator]"
+
+
+def randn_rows(shape: tuple[int, ...], generator) -> torch.Tensor:
+    """Standard normal draws of ``shape``. With one generator, one draw; with a list of ``shape[0]`` generators,
+    row b is drawn from generator b alone — so a scene's draws do not depend on the other scenes of its batch."""
+    if isinstance(generator, torch.Generator):
+        return torch.randn(shape, generator=generator)
+    if len(generator) != shape[0]:
+        raise ValueError(f"{len(generator)} generators for {shape[0]} rows")
+    return torch.stack([torch.randn(shape[1:], generator=g) for g in generator])
+
+
 def mlp(sizes: list[int], *, final_act: bool = False) -> nn.Sequential:
     """Linear layers with GELU between them."""
     layers: list[nn.Module] = []

@@ -32,6 +32,7 @@ from wmplan.model.nets import (
     SceneEncoder,
     gaussian_params,
     mlp,
+    randn_rows,
     reset_parameters,
 )
 from wmplan.sim.features import (
@@ -175,7 +176,8 @@ class WorldModel(nn.Module):
             batch: ``history`` (B, W, N, F), ``road`` (B, 6), ``ego_speed_mps`` (B,), ``ego_steer_rad`` (B,).
             actions: (B, C, H, 2) ego plans.
             num_samples: K futures per plan; the K draws of z are shared by all plans (common random numbers).
-            generator: the only source of randomness.
+            generator: the only source of randomness; a list of B generators draws each scene's futures from its
+                own generator (results then do not depend on the batch).
             noise: also add the decoder's per-step Gaussian noise (for predictive intervals); without it a future
                 is the decoder mean for its draw of z.
 
@@ -194,7 +196,7 @@ class WorldModel(nn.Module):
         hb = h[:, None].expand(b, c, n, -1)
         if self.zdim:
             p_mu, p_lv = gaussian_params(self.prior(torch.cat([hb, p], -1)))  # (B, C, N, Z)
-            eps = torch.randn((b, 1, k, n, self.zdim), generator=generator)
+            eps = randn_rows((b, 1, k, n, self.zdim), generator)
             z = p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps  # (B, C, K, N, Z)
             mean, logvar = self._decode(hb[:, :, None], p[:, :, None], z)
         else:
@@ -204,7 +206,7 @@ class WorldModel(nn.Module):
         logvar = logvar + 2.0 * torch.log(self.noise_scale)
         xy = self.cv_positions(hist)[:, None, None] + mean  # (B, C, K, N, H, 2)
         if noise:
-            xy = xy + (0.5 * logvar).exp() * torch.randn(xy.shape, generator=generator)
+            xy = xy + (0.5 * logvar).exp() * randn_rows(tuple(xy.shape), generator)
         rows = self.assemble_rows(hist, xy, ego_f)
         return {"rows": rows, "mean": mean, "logvar": logvar}
 

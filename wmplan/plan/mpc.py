@@ -27,6 +27,7 @@ import torch
 
 from wmplan.errors import ConfigError
 from wmplan.model.ego import EgoKinematics
+from wmplan.model.nets import randn_rows
 from wmplan.plan.predictors import DecisionContext, Predictor
 from wmplan.plan.risk import summarise_risk
 from wmplan.plan.samplers import ar1_filter_matrix
@@ -189,8 +190,12 @@ class SamplingPlanner:
         lane, lane_ok, y_road = self._lane_info(ctx)
         probs = torch.where(lane_ok, lane_p, torch.zeros_like(lane_p))
         probs = probs / probs.sum(-1, keepdim=True)
-        choice = torch.multinomial(probs, c, replacement=True, generator=generator)  # (B, C)
-        noise = torch.randn(b, c, h, generator=generator) @ self._filter.T  # smooth, unit marginal std
+        if isinstance(generator, torch.Generator):
+            choice = torch.multinomial(probs, c, replacement=True, generator=generator)  # (B, C)
+        else:  # one generator per scene: a scene's candidates do not depend on the rest of the batch
+            choice = torch.stack([torch.multinomial(probs[i], c, replacement=True, generator=g)
+                                  for i, g in enumerate(generator)])
+        noise = randn_rows((b, c, h), generator) @ self._filter.T  # smooth, unit marginal std
         accel = mean[:, None] + std[:, None] * noise
         # fixed candidates: the warm start on its best lane, keep speed, brake firmly
         best_lane = probs.argmax(-1)
@@ -201,7 +206,7 @@ class SamplingPlanner:
         accel[:, 2] = -4.0
         choice[:, 2] = 1
         accel = accel.clamp(-p.max_brake_mps2, p.max_accel_mps2)
-        steer_noise = (torch.randn(b, c, h, generator=generator) @ self._filter.T) * cfg.steer_noise_rad
+        steer_noise = (randn_rows((b, c, h), generator) @ self._filter.T) * cfg.steer_noise_rad
         steer_noise[:, :3] = 0.0
         d_lane = torch.tensor(LANE_CHOICES)[choice]  # (B, C)
         y_target = ((lane[:, None] + d_lane).double() + 0.5) * p.lane_width_m - y_road[:, None]  # relative, metres
@@ -320,7 +325,8 @@ class SamplingPlanner:
 
         Args:
             ctx: the decision context of B scenes.
-            generator: the planner's only source of randomness.
+            generator: the planner's only source of randomness: one generator, or a list with one per scene (then
+                a scene's decisions do not depend on the other scenes of the batch).
             rows: which rows of the planner's per-scene sampler state these B scenes are (default: all, and the
                 state is (re)sized to B on first use).
             keep: also return all candidates, their costs and futures (for plots).

@@ -119,7 +119,8 @@ class OraclePredictor(Predictor):
         self._calls = 0
 
     def predict(self, ctx, actions, num_futures, *, generator):
-        seed = int(torch.randint(0, 2**31 - 1, (1,), generator=generator))
+        gens = [generator] * len(ctx.scenes) if isinstance(generator, torch.Generator) else generator
+        seed = np.array([int(torch.randint(0, 2**31 - 1, (1,), generator=g)) for g in gens])
         fut = oracle_futures_batch(ctx.state, self.params, ctx.scenes, actions.double().numpy(), num_futures,
                                    mode=self.mode, plan_dt_s=self.plan_dt_s, seed=seed)
         b, c, k, h = fut.vehicles.shape[:4]

@@ -62,7 +62,7 @@ def substeps_per_plan_step(params: SimParams, plan_dt_s: float) -> int:
 
 
 def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_branches: int, *, mode: OracleMode,
-           seed: int) -> TrafficState:
+           seed: int | np.ndarray) -> TrafficState:
     """``num_branches`` copies of each given scene (scene-major), each with its own random key (and, if
     resampled, new traits). Branch k of a scene gets the same key derivation whatever the other scenes are."""
     if mode not in ("known", "resampled"):
@@ -70,7 +70,8 @@ def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_
     scenes = np.atleast_1d(np.asarray(scene, dtype=np.int64))
     base = state.take(np.repeat(scenes, num_branches))
     k_idx = np.tile(np.arange(num_branches), len(scenes))
-    keys = rng.combine(base.key, int(seed), rng.STREAM_ORACLE, k_idx)
+    seeds = np.broadcast_to(np.asarray(seed, dtype=np.int64), scenes.shape)  # one seed, or one per scene
+    keys = rng.combine(base.key, np.repeat(seeds, num_branches), rng.STREAM_ORACLE, k_idx)
     new = base.replace(key=keys, collided=np.zeros_like(base.collided), offroad=np.zeros_like(base.offroad),
                        reached_goal=np.zeros_like(base.reached_goal))
     if mode == "resampled":
@@ -109,11 +110,12 @@ def oracle_futures(state: TrafficState, params: SimParams, plans: np.ndarray, nu
 
 def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndarray, plans: np.ndarray,
                          num_futures: int, *, mode: OracleMode = "known", plan_dt_s: float = 0.2,
-                         seed: int = 0) -> OracleFutures:
+                         seed: int | np.ndarray = 0) -> OracleFutures:
     """:func:`oracle_futures` for several scenes at once: plans (S, C, H, 2) -> leading axes (S, C, K).
 
     All S x C x K futures run as one batch of the engine. The K futures of a scene are shared by its C plans
-    (common random numbers) and do not depend on which other scenes are in the batch.
+    (common random numbers) and do not depend on which other scenes are in the batch. ``seed`` is one integer or
+    one per scene (S,).
     """
     plans = np.asarray(plans, dtype=np.float64)
     scenes = np.asarray(scenes, dtype=np.int64)
