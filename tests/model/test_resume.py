@@ -96,7 +96,7 @@ def test_resume_on_another_dataset(straight, tmp_path):
     other = tmp_path / "other-data"
     simulate_dataset(load_scenario("open-road"), other, episodes=2, seed=3)
     out = straight.out_dir
-    msg = f"{out}: was trained on another dataset (scenario hash differs); cannot resume on {other}"
+    msg = f"{out}: was trained on another dataset (scenario or data differ); cannot resume on {other}"
     with pytest.raises(CheckpointError, match=re.escape(msg)) as err:
         train(other, out, resume=True)
     assert "\n" not in str(err.value)
