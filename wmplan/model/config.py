@@ -74,8 +74,9 @@ class TrainConfig:
     free_bits: float = 0.05
     """Free bits per latent dimension, in nats (Kingma et al. 2016, "Improved variational inference with inverse
     autoregressive flow")."""
-    prior_weight: float = 0.1
-    """Weight of the likelihood under a prior draw of z (hybrid objective of Sohn et al. 2015)."""
+    prior_weight: float = 0.0
+    """Weight of the likelihood under a prior draw of z (hybrid objective of Sohn et al. 2015). 0 by default: on
+    onramp-merge 0.1 and 0.5 blurred the modes (best-of-6 error up 70%) though they improved the NLL."""
     kl_warmup_epochs: int = 5
     """Linear KL annealing from 0 to 1 over these epochs (Bowman et al. 2016)."""
     val_fraction: float = 0.1
