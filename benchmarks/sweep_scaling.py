@@ -34,7 +34,7 @@ import tempfile
 import time
 from pathlib import Path
 
-FULL = dict(num_cells=24, episodes_per_cell=192, repeats=3)
+FULL = dict(num_cells=24, episodes_per_cell=384, repeats=3)
 QUICK = dict(num_cells=8, episodes_per_cell=96, repeats=1)
 TARGET_SCALING_2X = 1.8
 

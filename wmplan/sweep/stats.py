@@ -13,8 +13,6 @@ from __future__ import annotations
 
 from statistics import NormalDist
 
-from wmplan.evaluate.stats import wilson_interval as _wilson
-
 
 def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tuple[float, float]:
     """Wilson score interval of a binomial proportion (the evaluation's implementation, with plain floats).
@@ -34,5 +32,8 @@ def wilson_interval(successes: int, trials: int, confidence: float = 0.95) -> tu
         raise ValueError(f"confidence must lie in (0, 1), got {confidence!r}")
     if n == 0:
         return 0.0, 1.0
+    # Imported here: it brings scipy.stats (half a second), which sweep worker processes never need.
+    from wmplan.evaluate.stats import wilson_interval as _wilson
+
     lo, hi = _wilson(k, n, z=NormalDist().inv_cdf(0.5 + confidence / 2.0))
     return (0.0 if k == 0 else max(0.0, float(lo))), (1.0 if k == n else min(1.0, float(hi)))
