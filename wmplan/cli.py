@@ -323,12 +323,12 @@ def cmd_sweep(args: argparse.Namespace) -> int:
     summary = run_sweep(args.file, args.out, workers=args.workers, scheduler=args.scheduler, progress=True)
     _write_json(args.json, summary)
     cells = summary.get("cells", [])
-    print(f"sweep {summary.get('name', args.file)}: {len(cells)} cells; results in {Path(args.out) / 'results.parquet'}")
+    print(f"sweep {summary.get('sweep', args.file)}: {len(cells)} cells; results in {Path(args.out) / 'results.parquet'}")
     for c in cells[:40]:
         ci = c.get("collision_ci95", [float("nan")] * 2)
         params = ", ".join(f"{k}={v}" for k, v in c.get("params", {}).items())
         print(f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
-              f"[{ci[0]:.3f}, {ci[1]:.3f}] n={c.get('episodes', '')}")
+              f"[{ci[0]:.3f}, {ci[1]:.3f}] n={c.get('n', '')}")
     return 0
 
 
@@ -369,10 +369,17 @@ def cmd_stress(args: argparse.Namespace) -> int:
                         scheduler=args.scheduler, planner_options=options or None, animate=animate, progress=True)
     _write_json(args.json, report)
     fp, mc = report["failure_prob"], report["plain_mc"]
+
+    def num(v) -> str:
+        return "n/a" if v is None else f"{v:.3g}"
+
+    def interval(d: dict) -> str:
+        ci = d.get("ci95") or [None, None]
+        return f"{num(d.get('estimate'))} [{num(ci[0])}, {num(ci[1])}]"
+
     print(f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}")
-    print(f"  failure probability (importance sampling): {fp['estimate']:.3g} [{fp['ci95'][0]:.3g}, {fp['ci95'][1]:.3g}], "
-          f"ESS {fp['ess']:.0f}")
-    print(f"  plain Monte Carlo, same budget:            {mc['estimate']:.3g} [{mc['ci95'][0]:.3g}, {mc['ci95'][1]:.3g}]")
+    print(f"  failure probability (importance sampling): {interval(fp)}, ESS {num(fp.get('ess'))}")
+    print(f"  plain Monte Carlo, same budget:            {interval(mc)}")
     return 0
 
 
