@@ -38,7 +38,7 @@ class HighwaySet:
     (REFERENCES.md section 1.2); MOBIL defaults p 0.2, threshold 0.2 m/s^2, b_safe 4 m/s^2 (Kesting, Treiber,
     Helbing 2007 and the authors' notes, [S]/[C] in section 2)."""
 
-    v0_mps: float = 120.0 / 3.6
+    desired_mps: float = 120.0 / 3.6
     t_s: float = 1.0
     s0_m: float = 2.0
     a_mps2: float = 1.0
@@ -47,7 +47,7 @@ class HighwaySet:
     def traits(self, politeness: float = 0.2, threshold_mps2: float = 0.2, safe_decel_mps2: float = 4.0) -> dict:
         """Trait index -> value for one driver of this set."""
         return {
-            T_V0: self.v0_mps, T_T: self.t_s, T_S0: self.s0_m, T_A: self.a_mps2, T_B: self.b_mps2,
+            T_V0: self.desired_mps, T_T: self.t_s, T_S0: self.s0_m, T_A: self.a_mps2, T_B: self.b_mps2,
             T_P: politeness, T_TH: threshold_mps2, T_BSAFE: safe_decel_mps2, T_YIELD: 0.5,
         }
 

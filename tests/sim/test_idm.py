@@ -32,9 +32,9 @@ def test_equilibrium_gap_highway_set(highway, speed_mps, expected_gap_m):
     Source: Treiber & Kesting 2013, ch. 11 (formula [S], Table 11.2 parameters [M]); check values [D],
     REFERENCES.md section 1.3 (hand check at 20 m/s: 22 / sqrt(0.8704) = 23.581 m).
     """
-    got = idm_equilibrium_gap(speed_mps, highway.v0_mps, highway.t_s, highway.s0_m)
+    got = idm_equilibrium_gap(speed_mps, highway.desired_mps, highway.t_s, highway.s0_m)
     assert got == pytest.approx(expected_gap_m, abs=TABLE_TOL)
-    by_hand = (highway.s0_m + speed_mps * highway.t_s) / math.sqrt(1.0 - (speed_mps / highway.v0_mps) ** 4)
+    by_hand = (highway.s0_m + speed_mps * highway.t_s) / math.sqrt(1.0 - (speed_mps / highway.desired_mps) ** 4)
     assert got == pytest.approx(by_hand, rel=1e-9)
 
 
@@ -45,8 +45,8 @@ def test_zero_acceleration_at_equilibrium(highway, speed_mps):
     Source: definition of the equilibrium gap (Treiber & Kesting 2013, ch. 11, [S]); the sheet computed
     -2.2e-16 at 20 m/s and 5.6e-17 at 30 m/s ([D], REFERENCES.md section 1.3).
     """
-    gap = idm_equilibrium_gap(speed_mps, highway.v0_mps, highway.t_s, highway.s0_m)
-    acc = idm_accel(speed_mps, highway.v0_mps, gap, 0.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
+    gap = idm_equilibrium_gap(speed_mps, highway.desired_mps, highway.t_s, highway.s0_m)
+    acc = idm_accel(speed_mps, highway.desired_mps, gap, 0.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
     assert abs(acc) < 1e-12
 
 
@@ -56,7 +56,7 @@ def test_free_road_acceleration(highway, speed_mps, fraction):
 
     Source: THH 2000 / Treiber & Kesting 2013 free-road term [S]; values [D], REFERENCES.md section 1.3.
     """
-    acc = idm_accel(speed_mps, highway.v0_mps, np.inf, 0.0, highway.t_s, highway.s0_m, highway.a_mps2,
+    acc = idm_accel(speed_mps, highway.desired_mps, np.inf, 0.0, highway.t_s, highway.s0_m, highway.a_mps2,
                     highway.b_mps2)
     assert acc == pytest.approx(fraction * highway.a_mps2, rel=1e-12)
 
@@ -70,9 +70,9 @@ def test_approach_to_stopped_car(highway):
     s_star = idm_desired_gap(20.0, 20.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
     assert s_star == pytest.approx(185.2993, abs=TABLE_TOL)
     assert s_star == pytest.approx(2.0 + 20.0 * 1.0 + 20.0 * 20.0 / (2.0 * math.sqrt(1.5)), rel=1e-9)
-    acc = idm_accel(20.0, highway.v0_mps, 50.0, 20.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
+    acc = idm_accel(20.0, highway.desired_mps, 50.0, 20.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
     assert acc == pytest.approx(-12.8639, abs=TABLE_TOL)
-    assert acc == pytest.approx(1.0 - (20.0 / highway.v0_mps) ** 4 - (s_star / 50.0) ** 2, rel=1e-9)
+    assert acc == pytest.approx(1.0 - (20.0 / highway.desired_mps) ** 4 - (s_star / 50.0) ** 2, rel=1e-9)
 
 
 def test_leader_pulling_away_uses_book_form(highway):
@@ -93,8 +93,8 @@ def test_idm_broadcasts_elementwise(highway):
     v = np.array([0.0, 10.0, 20.0, 30.0])
     gap = np.array([np.inf, 15.0, 50.0, 40.0])
     dv = np.array([0.0, -2.0, 20.0, 3.0])
-    got = idm_accel(v, highway.v0_mps, gap, dv, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
-    want = [idm_accel(v[i], highway.v0_mps, gap[i], dv[i], highway.t_s, highway.s0_m, highway.a_mps2,
+    got = idm_accel(v, highway.desired_mps, gap, dv, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
+    want = [idm_accel(v[i], highway.desired_mps, gap[i], dv[i], highway.t_s, highway.s0_m, highway.a_mps2,
                       highway.b_mps2) for i in range(4)]
     np.testing.assert_allclose(got, want, rtol=0, atol=0)
 
@@ -117,7 +117,7 @@ def test_engine_applies_the_same_law(scenario_variant, place, highway):
     v_f = np.concatenate([fixed[:, 0], gen.uniform(0.0, 35.0, n_random)])
     v_l = np.concatenate([fixed[:, 1], gen.uniform(0.0, 35.0, n_random)])
     gap = np.concatenate([fixed[:, 2], gen.uniform(2.0, 120.0, n_random)])
-    traits = np.tile([highway.v0_mps, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2],
+    traits = np.tile([highway.desired_mps, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2],
                      (len(v_f), 1))
     traits[len(fixed):] = np.column_stack([
         gen.uniform(20.0, 40.0, n_random), gen.uniform(0.6, 2.5, n_random), gen.uniform(1.0, 4.0, n_random),

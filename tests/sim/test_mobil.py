@@ -36,7 +36,7 @@ def _accelerations(ex: dict, hw) -> tuple[float, ...]:
 
     def acc(follower, leader):
         (xf, vf), (xl, vl) = follower, leader
-        return float(idm_accel(vf, hw.v0_mps, xl - xf - LENGTH_M, vf - vl, hw.t_s, hw.s0_m, hw.a_mps2, hw.b_mps2))
+        return float(idm_accel(vf, hw.desired_mps, xl - xf - LENGTH_M, vf - vl, hw.t_s, hw.s0_m, hw.a_mps2, hw.b_mps2))
 
     return (acc(ex["c"], ex["ol"]), acc(ex["c"], ex["nl"]), acc(ex["of"], ex["c"]), acc(ex["of"], ex["ol"]),
             acc(ex["nf"], ex["nl"]), acc(ex["nf"], ex["c"]))
@@ -167,7 +167,7 @@ def test_engine_decisions_match_the_criteria_on_random_situations(scenario_varia
     hw = highway
 
     def acc(f, lead, gap_m):
-        return idm_accel(speed[f], hw.v0_mps, gap_m, speed[f] - speed[lead], hw.t_s, hw.s0_m, hw.a_mps2, hw.b_mps2)
+        return idm_accel(speed[f], hw.desired_mps, gap_m, speed[f] - speed[lead], hw.t_s, hw.s0_m, hw.a_mps2, hw.b_mps2)
 
     def gap(f, lead):
         return front[lead] - front[f] - LENGTH_M

@@ -211,8 +211,9 @@ def _resampled_desired_speeds(num_batches: int, per_batch: int) -> tuple[np.ndar
     return np.concatenate(draws), scn.drivers.desired_speed_mps
 
 
-def _truncnorm(d) -> scipy.stats.rv_continuous:
-    return scipy.stats.truncnorm((d.low - d.mean) / d.std, (d.high - d.mean) / d.std, loc=d.mean, scale=d.std)
+def _truncnorm(dist) -> scipy.stats.rv_continuous:
+    return scipy.stats.truncnorm((dist.low - dist.mean) / dist.std, (dist.high - dist.mean) / dist.std,
+                                 loc=dist.mean, scale=dist.std)
 
 
 def test_resampled_desired_speeds_follow_the_truncated_normal():

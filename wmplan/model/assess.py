@@ -8,8 +8,8 @@ Metrics (keys of each predictor's entry):
 
 | key                 | meaning                                                                                 |
 |---------------------|-----------------------------------------------------------------------------------------|
-| min_ade_k6_m        | per object, the best of K = 6 futures by mean displacement over the horizon; averaged    |
-| min_fde_k6_m        | per object, the best of 6 by displacement at the horizon (3 s); averaged                 |
+| min_ade_k6_m        | for each object, the best of K = 6 futures by mean displacement over the horizon; mean   |
+| min_fde_k6_m        | for each object, the best of 6 by displacement at the horizon (3 s); mean                |
 | nll                 | -log predictive density of each true position (x, y) per object and step, nats; the      |
 |                     | predictive is the mixture over 32 draws of z of the decoder's Gaussians                 |
 | coverage_90         | share of true coordinates inside the central 90% interval of 100 predictive samples      |

@@ -69,7 +69,7 @@ def split_episodes(num_episodes: int, val_fraction: float, seed: int) -> tuple[n
 
 
 def min_fde(model: WorldModel, batch: dict, k: int, generator: torch.Generator) -> float:
-    """Best-of-k final displacement error (m) per valid object at the last step, averaged."""
+    """Best-of-k final displacement error in metres for each valid object at the last step, averaged."""
     out = model.sample(batch, batch["actions"][:, None], k, generator=generator)
     pred = out["rows"][:, 0, :, -1, :, :2]  # (B, K, N, 2)
     true = batch["future"][:, -1, :, :2]  # (B, N, 2)

@@ -207,7 +207,7 @@ class Goal(_Strict):
 
 
 class Ego(_Strict):
-    """The controlled vehicle: where it starts, its size and its goal."""
+    """The ego vehicle, driven by the planner: where it starts, its size and its goal."""
 
     lane: Int = Field(ge=0)
     x_m: Finite = Field(ge=0.0)

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 # --- vehicles -----------------------------------------------------------------------------------------------------
 EGO_COLOUR = "#c8460c"
-"""Deep orange: the controlled vehicle."""
+"""Deep orange: the ego vehicle."""
 EGO_EDGE_COLOUR = "#7a2806"
 TRAFFIC_COLOUR = "#56677a"
 """Slate grey: every other vehicle."""
