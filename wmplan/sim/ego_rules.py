@@ -64,7 +64,7 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         g = g_ahead[rows, li]
         return g, np.where(np.isfinite(g), vx[rows, i_ahead[rows, li]], 0.0)
 
-    def follower_acc(l_idx, gap_to_ego_ok=True):
+    def follower_acc(l_idx):
         """(accel now, accel if the ego moved in front) of the nearest follower in lane l_idx."""
         li = np.clip(l_idx, 0, params.num_lanes - 1)
         g = g_behind[rows, li]
@@ -95,7 +95,6 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         d_end_t = params.distance_to_lane_end(np.clip(tl, 0, params.num_lanes - 1), x)
         a_after = np.minimum(a_after, _ego_idm(params, v, d_end_t - 0.5 * state.length_m[:, EGO], 0.0))
         n_now, n_after, has_n, g_n = follower_acc(tl)
-        o_now, o_after, _, _ = follower_acc(lane)  # old follower: approximate gain is small; kept for the rule
         safe = (mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n) & (g_t > 2.0) & (g_n > 2.0)
         inc = mobil_incentive(a_now, a_after, n_now, n_after, 0.0, 0.0, POLITENESS)
         forced = must_merge & (merge_to == tl)
