@@ -15,6 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import ndtr, ndtri  # imported once: an import inside a hot function costs milliseconds
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _M1 = np.uint64(0xBF58476D1CE4E5B9)
@@ -74,8 +75,6 @@ def truncated_normal(mean, std, low, high, *parts: np.ndarray | int) -> np.ndarr
     ``mean``, ``std``, ``low``, ``high`` broadcast with the counters; std = 0 gives the mean; infinite bounds are
     allowed. (Inverse transform sampling of a truncated distribution: u ~ U(F(a), F(b)), x = F^-1(u).)
     """
-    from scipy.special import ndtr, ndtri
-
     mean, std = np.asarray(mean, dtype=np.float64), np.asarray(std, dtype=np.float64)
     u = uniform(*parts)
     safe = np.where(std > 0, std, 1.0)

@@ -24,7 +24,7 @@ import numpy as np
 from wmplan import rng
 from wmplan.sim.behaviour import idm_accel_fast, mobil_incentive, mobil_safe
 from wmplan.sim.bicycle import bicycle_step, distance_and_speed
-from wmplan.sim.collision import box_corners, boxes_overlap
+from wmplan.sim.collision import boxes_overlap
 from wmplan.sim.params import (
     LANE_CHANGE_COOLDOWN_S,
     MANDATORY_BIAS_MPS2,
@@ -88,30 +88,56 @@ def _gather_rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
 class _Order:
     """Vehicles of each scene sorted by position, for nearest-neighbour queries in O(V L) per scene.
 
-    ``next_pos(mask)`` gives, for every vehicle (by slot) and lane, the sorted position of the nearest vehicle
-    ahead (by centre position) among those marked in ``mask`` (S, V, L), or V if none; ``prev_pos`` the
-    nearest behind, or -1. Ties in position are broken by slot number (a stable sort), as a plain loop would.
+    Masks and answers are lane-major, shaped (L, S, V). ``next_pos(mask)`` gives, for every lane and vehicle (by
+    slot), the sorted position of the nearest vehicle ahead (by centre position) among those marked in ``mask``,
+    or V if none; ``prev_pos`` the nearest behind, or -1. Ties in position are broken by slot number (a stable
+    sort), as a plain loop would. Internally the sorted masks are laid out (L, V, S), so that the running
+    minimum along the sorted axis works on contiguous rows of S scenes.
     """
 
     def __init__(self, x_m: np.ndarray, valid: np.ndarray):
-        v_n = x_m.shape[1]
-        self.v_n = v_n
+        s_n, v_n = x_m.shape
+        self.s_n, self.v_n = s_n, v_n
         self.order = np.argsort(np.where(valid, x_m, np.inf), axis=1, kind="stable")  # (S, V) sorted -> slot
+        flat_order = _offsets(self.order) + self.order  # (S, V) flat slot index of each sorted position
         self.rank = np.empty_like(self.order)  # slot -> sorted position
-        np.put_along_axis(self.rank, self.order, np.arange(v_n)[None, :], axis=1)
-        self._ar = np.arange(v_n)[None, :, None]
+        self.rank.reshape(-1)[flat_order.reshape(-1)] = np.tile(np.arange(v_n), s_n)
+        self._sorted_idx = np.ascontiguousarray(flat_order.T)  # (V, S): flat slot of sorted position r in scene s
+        self._back_idx = self.rank * s_n + np.arange(s_n)[:, None]  # (S, V): flat index into a (V, S) plane
+        self._ar = np.arange(v_n, dtype=np.int32)[None, :, None]
+
+    def _sorted(self, mask: np.ndarray) -> np.ndarray:
+        """(L, S, V) mask -> (L, V, S) in sorted order."""
+        return np.take(mask.reshape(mask.shape[0], -1), self._sorted_idx, axis=1)
+
+    def _back(self, per_pos: np.ndarray) -> np.ndarray:
+        """(L, V, S) values by sorted position -> (L, S, V) values by slot (int64)."""
+        return np.take(per_pos.reshape(per_pos.shape[0], -1), self._back_idx, axis=1).astype(np.int64)
+
+    def _scan(self, src: np.ndarray, ahead: bool) -> np.ndarray:
+        """Strict suffix minimum (ahead) or prefix maximum (behind) along the sorted axis of (L, V, S) positions,
+        by log2(V) doubling steps (a parallel prefix scan; numpy's accumulate along a middle axis is slower)."""
+        v_n, k = self.v_n, 1
+        out = np.empty_like(src)
+        if ahead:  # out[r] = min(src[r+1:]), V where empty
+            out[:, -1] = v_n
+            out[:, :-1] = src[:, 1:]
+            while k < v_n - 1:
+                np.minimum(out[:, :-1 - k], out[:, k:-1], out=out[:, :-1 - k])
+                k *= 2
+        else:  # out[r] = max(src[:r]), -1 where empty
+            out[:, 0] = -1
+            out[:, 1:] = src[:, :-1]
+            while k < v_n - 1:
+                np.maximum(out[:, 1 + k:], out[:, 1:-k], out=out[:, 1 + k:])
+                k *= 2
+        return out
 
     def next_pos(self, mask: np.ndarray) -> np.ndarray:
-        src = np.where(_gather_rows(mask, self.order), self._ar, self.v_n)
-        suf = np.minimum.accumulate(src[:, ::-1], axis=1)[:, ::-1]
-        nxt = np.concatenate([suf[:, 1:], np.full_like(suf[:, :1], self.v_n)], axis=1)  # strictly after
-        return _gather_rows(nxt, self.rank)
+        return self._back(self._scan(np.where(self._sorted(mask), self._ar, self.v_n).astype(np.int32), True))
 
     def prev_pos(self, mask: np.ndarray) -> np.ndarray:
-        src = np.where(_gather_rows(mask, self.order), self._ar, -1)
-        pre = np.maximum.accumulate(src, axis=1)
-        prv = np.concatenate([np.full_like(pre[:, :1], -1), pre[:, :-1]], axis=1)  # strictly before
-        return _gather_rows(prv, self.rank)
+        return self._back(self._scan(np.where(self._sorted(mask), self._ar, -1).astype(np.int32), False))
 
     def slot_of(self, pos: np.ndarray) -> np.ndarray:
         """(S, V) sorted positions -> slots, -1 where the position is out of range (no neighbour)."""
@@ -120,10 +146,19 @@ class _Order:
 
 
 def _pick(nb: np.ndarray, lane: np.ndarray) -> np.ndarray:
-    """nb[s, i, lane[s, i]] for (S, V, L) neighbour tables."""
-    s_n, v_n, l_n = nb.shape
-    flat = (_offsets(nb) + np.arange(v_n)[None, :]) * l_n + np.clip(lane, 0, l_n - 1)
+    """nb[lane[s, i], s, i] for lane-major (L, S, V) neighbour tables."""
+    l_n, s_n, v_n = nb.shape
+    flat = np.clip(lane, 0, l_n - 1) * (s_n * v_n) + (_offsets(lane) + np.arange(v_n)[None, :])
     return np.take(nb, flat)
+
+
+def _nearest_over_lanes(occ: np.ndarray, pos: np.ndarray, none: int, ahead: bool) -> np.ndarray:
+    """Per vehicle, the nearest of ``pos[l]`` over the lanes l it occupies (occ, pos lane-major (L, S, V))."""
+    best = np.where(occ[0], pos[0], none)
+    pick = np.minimum if ahead else np.maximum
+    for ln in range(1, occ.shape[0]):
+        best = pick(best, np.where(occ[ln], pos[ln], none))
+    return best
 
 
 def _gap_to(x, length, i_slot_x, i_len, j_slot, ahead: bool):
@@ -135,6 +170,21 @@ def _gap_to(x, length, i_slot_x, i_len, j_slot, ahead: bool):
     return np.where(has, gap - 0.5 * (lj + i_len), np.inf), js
 
 
+class _TraitPlanes:
+    """``planes[k]``: trait k of every slot as a contiguous (S, V) array, extracted on first use (a step needs
+    only the IDM traits on most steps, the MOBIL ones on lane-decision steps)."""
+
+    def __init__(self, traits: np.ndarray):
+        self._traits = traits
+        self._planes: dict[int, np.ndarray] = {}
+
+    def __getitem__(self, k: int) -> np.ndarray:
+        plane = self._planes.get(k)
+        if plane is None:
+            plane = self._planes[k] = np.ascontiguousarray(self._traits[..., k])
+        return plane
+
+
 class _Drivers:
     """Contiguous (S, V) arrays of the IDM traits, with 1 / (2 sqrt(a b)) worked out once per step."""
 
@@ -142,7 +192,7 @@ class _Drivers:
         self.v0, self.t, self.s0, self.a, self.c = v0, t, s0, a, c
 
     @classmethod
-    def of(cls, trc: np.ndarray) -> _Drivers:
+    def of(cls, trc: _TraitPlanes) -> _Drivers:
         return cls(trc[T_V0], trc[T_T], trc[T_S0], trc[T_A], 0.5 / np.sqrt(trc[T_A] * trc[T_B]))
 
     def take(self, idx: np.ndarray) -> _Drivers:
@@ -157,25 +207,47 @@ def _lane_end_gap(params: SimParams, lane: np.ndarray, x: np.ndarray, length: np
     return params.distance_to_lane_end(lane, x) - 0.5 * length
 
 
+def _lateral_half_extent(width_m: np.ndarray, length_m: np.ndarray, heading_rad: np.ndarray) -> np.ndarray:
+    """Half the lateral extent of rotated footprints, ``w/2 cos h + l/2 |sin h|``. Most vehicles drive straight
+    (h exactly 0, where this is w/2), so the trigonometry runs only on the others."""
+    hw = np.array(0.5 * np.asarray(width_m), dtype=np.float64, order="C")
+    turned = np.flatnonzero(heading_rad)
+    if turned.size:
+        h = np.take(heading_rad, turned)
+        hw.flat[turned] = np.take(hw, turned) * np.cos(h) + 0.5 * (np.take(length_m, turned) * np.abs(np.sin(h)))
+    return hw
+
+
+def lane_occupancy_lm(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
+                      lane: np.ndarray | None = None, heading_rad: np.ndarray | None = None,
+                      length_m: np.ndarray | None = None) -> np.ndarray:
+    """Lane-major (L, S, V) form of :func:`lane_occupancy` (contiguous per lane; what the engine uses)."""
+    hw = 0.5 * width_m if heading_rad is None else _lateral_half_extent(width_m, length_m, heading_rad)
+    top, bottom = y_m + hw, y_m - hw
+    occ = np.empty((params.num_lanes,) + np.shape(y_m), dtype=bool)
+    for ln in range(params.num_lanes):
+        lo = ln * params.lane_width_m
+        o = occ[ln]
+        np.greater(top, lo + BAND_EPS_M, out=o)
+        o &= bottom < lo + params.lane_width_m - BAND_EPS_M
+        if lane is not None:
+            o |= lane == ln
+        o &= valid
+    return occ
+
+
 def lane_occupancy(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
                    lane: np.ndarray | None = None, heading_rad: np.ndarray | None = None,
                    length_m: np.ndarray | None = None) -> np.ndarray:
     """(S, V, L) True where a vehicle's body reaches into lane l, or (given ``lane``) l is the lane it is in or
     moving to: a driver who has begun a lane change is visible in the target lane at once, as an indicator is."""
-    lanes = np.arange(params.num_lanes)
-    lo = lanes * params.lane_width_m
-    hw = 0.5 * width_m[..., None]
-    if heading_rad is not None:  # lateral half-extent of the rotated footprint
-        hw = hw * np.cos(heading_rad)[..., None] + 0.5 * (length_m * np.abs(np.sin(heading_rad)))[..., None]
-    yy = y_m[..., None]
-    occ = (yy + hw > lo + BAND_EPS_M) & (yy - hw < lo + params.lane_width_m - BAND_EPS_M)
-    if lane is not None:
-        occ |= lane[..., None] == lanes
-    return valid[..., None] & occ
+    return np.moveaxis(lane_occupancy_lm(params, y_m, width_m, valid, lane, heading_rad, length_m), 0, -1)
 
 
 def mergers(params: SimParams, state: TrafficState) -> tuple[np.ndarray, np.ndarray]:
     """(S, V) whether each vehicle must leave its ending lane soon, and the lane it must merge into."""
+    if not params.lane_ends_on_road.any():  # no lane ends: nobody must merge
+        return np.zeros(state.valid.shape, dtype=bool), np.full(state.valid.shape, -1, dtype=np.int64)
     lane = state.lane.copy()
     lane[:, EGO] = params.lane_of(state.y_m[:, EGO])
     d_end = params.distance_to_lane_end(lane, state.x_m)
@@ -205,28 +277,24 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         state.lane, state.traits
     is_traffic = valid.copy()
     is_traffic[:, EGO] = False
-    trc = np.moveaxis(tr, -1, 0).copy()  # (NT, S, V) contiguous trait planes
+    trc = _TraitPlanes(tr)  # contiguous (S, V) trait planes, made when first asked for
     drv = _Drivers.of(trc)
 
     # --- 1. neighbours ---
     order = _Order(x, valid)
-    occ = lane_occupancy(params, y, width, valid, lane, state.heading_rad, length)  # (S, V, L)
-    nxt = order.next_pos(occ)  # (S, V, L) nearest occupant ahead in each lane (sorted position)
+    occ = lane_occupancy_lm(params, y, width, valid, lane, state.heading_rad, length)  # (L, S, V)
+    nxt = order.next_pos(occ)  # (L, S, V) nearest occupant ahead in each lane (sorted position)
     # Own leader: the nearest over all lanes this vehicle occupies (body or intent).
-    lead_pos = np.where(occ[..., 0], nxt[..., 0], v_n)
-    for ln in range(1, params.num_lanes):
-        lead_pos = np.minimum(lead_pos, np.where(occ[..., ln], nxt[..., ln], v_n))
+    lead_pos = _nearest_over_lanes(occ, nxt, v_n, ahead=True)
     is_merger, merge_to = mergers(params, state)
     shutting = state.yield_state == 2
     if shutting.any() and is_merger.any():
         # A driver who decided not to yield gives the merging vehicle no room: it reacts to a merging vehicle only
         # once that vehicle's centre is in its lane (not to its body reaching over the line).
         centre_lane = params.lane_of(y)
-        occ_strict = np.where(is_merger[..., None], valid[..., None] & (centre_lane[..., None] == np.arange(params.num_lanes)), occ)
-        nxt_strict = order.next_pos(occ_strict)
-        strict_pos = np.where(occ[..., 0], nxt_strict[..., 0], v_n)
-        for ln in range(1, params.num_lanes):
-            strict_pos = np.minimum(strict_pos, np.where(occ[..., ln], nxt_strict[..., ln], v_n))
+        lanes_col = np.arange(params.num_lanes)[:, None, None]
+        occ_strict = np.where(is_merger, valid & (centre_lane == lanes_col), occ)
+        strict_pos = _nearest_over_lanes(occ, order.next_pos(occ_strict), v_n, ahead=True)
         lead_pos = np.where(shutting, strict_pos, lead_pos)
     lead_gap, lead_idx = _gap_to(x, length, x, length, order.slot_of(lead_pos), ahead=True)
     has_lead = np.isfinite(lead_gap)
@@ -240,7 +308,7 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     # --- 3. yielding to merging vehicles ---
     ys = np.zeros((s_n, v_n), dtype=np.int8)
     if is_merger.any():
-        m_occ = is_merger[..., None] & (merge_to[..., None] == np.arange(params.num_lanes))  # (S, V, L)
+        m_occ = is_merger & (merge_to == np.arange(params.num_lanes)[:, None, None])  # (L, S, V)
         p_slot = order.slot_of(_pick(order.next_pos(m_occ), lane))
         p_gap, p_idx = _gap_to(x, length, x, length, p_slot, ahead=True)
         p_dx = _gather(x, p_idx) - x
@@ -249,7 +317,7 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         new_s, new_v = np.nonzero(has_partner & (state.yield_state == 0))
         if new_s.size:  # interactions that begin now: draw the decision
             u = rng.uniform(rng.combine(state.key[new_s], state.step[new_s], rng.STREAM_YIELD), state.vehicle_id[new_s, new_v])
-            ys[new_s, new_v] = np.where(u < trc[T_YIELD, new_s, new_v], 1, 2)
+            ys[new_s, new_v] = np.where(u < tr[new_s, new_v, T_YIELD], 1, 2)
         a_yield = _idm(vx, drv, np.maximum(np.where(has_partner, p_gap, np.inf), trc[T_S0]),
                        np.where(has_partner, _gather(vx, p_idx), 0.0))
         a_yield = np.maximum(a_yield, -trc[T_BSAFE])
@@ -280,7 +348,9 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
             decel[ss, sv] = rng.truncated_normal(m, sd, lo, hi, size_key, 0)
             m, sd, lo, hi = params.brake_duration
             timer[ss, sv] = rng.truncated_normal(m, sd, lo, hi, size_key, 1)
-    acc = np.where(timer > 0.0, np.minimum(acc, -decel), acc)
+    braking = timer > 0.0
+    if braking.any():
+        acc = np.where(braking, np.minimum(acc, -decel), acc)
     acc = np.maximum(acc, -MAX_PHYSICAL_DECEL_MPS2)
 
     # --- 5. lane changes (MOBIL) ---
@@ -308,9 +378,7 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
             continue
         if tr_foll is None:  # followers are needed only on the steps where drivers reconsider their lane
             prv = order.prev_pos(occ)
-            foll_pos = np.where(occ[..., 0], prv[..., 0], -1)
-            for ln in range(1, params.num_lanes):
-                foll_pos = np.maximum(foll_pos, np.where(occ[..., ln], prv[..., ln], -1))
+            foll_pos = _nearest_over_lanes(occ, prv, -1, ahead=False)
             foll_gap, foll_idx = _gap_to(x, length, x, length, order.slot_of(foll_pos), ahead=False)
             has_foll = np.isfinite(foll_gap)
             v_foll = np.where(has_foll, _gather(vx, foll_idx), 0.0)
@@ -415,11 +483,16 @@ def ego_collisions(arrays: dict) -> np.ndarray:
 
 def ego_offroad(params: SimParams, x_m, y_m, length_m, width_m, heading_rad) -> np.ndarray:
     """True where any corner of the ego's footprint lies outside every lane that exists at that corner."""
-    corners = box_corners(x_m, y_m, length_m, width_m, heading_rad)  # (S, 4, 2)
-    cx, cy = corners[..., 0], corners[..., 1]
-    li = np.floor(cy / params.lane_width_m).astype(np.int64)
-    on = params.lane_exists(li, cx)
-    return ~on.all(axis=-1)
+    c, s = np.cos(heading_rad), np.sin(heading_rad)
+    hl, hw = 0.5 * np.asarray(length_m), 0.5 * np.asarray(width_m)
+    off = np.zeros(np.shape(x_m), dtype=bool)
+    # the four corners one at a time, in box_corners' order (each a contiguous (S,) array)
+    for sx, sy in ((1.0, 1.0), (-1.0, 1.0), (-1.0, -1.0), (1.0, -1.0)):
+        lx, ly = hl * sx, hw * sy
+        cx = x_m + c * lx - s * ly
+        cy = y_m + s * lx + c * ly
+        off |= ~params.lane_exists(np.floor(cy / params.lane_width_m).astype(np.int64), cx)
+    return off
 
 
 def _spawn(out: dict, params: SimParams) -> None:
@@ -448,17 +521,20 @@ def _spawn(out: dict, params: SimParams) -> None:
     key, new_id, stp = out["key"][cand], out["next_id"][cand], out["step"][cand]
     u_lane = rng.uniform(rng.combine(key, stp, rng.STREAM_SPAWN)[:, None], lanes)
     lane = np.where(short[cand], params.density_veh_per_m * seg[cand] - count[cand] + u_lane, -np.inf).argmax(axis=1)
-    traits = draw_traits(params, key, new_id)  # (c, NT)
+    # the traits the entry checks need (all of them only for the vehicles that enter: the same values)
+    v0, s0_c, t_c = draw_traits(params, key, new_id, which=np.array([T_V0, T_S0, T_T])).T
     length, width = draw_size(params, key, new_id)
-    v0 = traits[:, T_V0]
     from_behind = v0 > out["vx_mps"][cand, EGO] + 1.0
     xs = np.where(from_behind, lo_x[cand], hi_x[cand])
     # enter only where the lane runs on for at least the merge zone (nobody appears just before a lane end)
     want = params.lane_exists(lane, xs) & (params.distance_to_lane_end(lane, xs) >= params.merge_zone_m)
     x_c, len_c, v_c = out["x_m"][cand], out["length_m"][cand], out["vx_mps"][cand]
-    occ = lane_occupancy(params, out["y_m"][cand], out["width_m"][cand], valid[cand], out["lane"][cand],
-                         out["heading_rad"][cand], out["length_m"][cand])
-    occ = np.take_along_axis(occ, lane[:, None, None], axis=2)[..., 0]  # (c, V)
+    # occupancy of the chosen lane only (the test of lane_occupancy_lm, for one lane per scene)
+    y_c, h_c = out["y_m"][cand], out["heading_rad"][cand]
+    hw = _lateral_half_extent(out["width_m"][cand], len_c, h_c)
+    lo = (lane * params.lane_width_m)[:, None]
+    occ = (y_c + hw > lo + BAND_EPS_M) & (y_c - hw < lo + params.lane_width_m - BAND_EPS_M)
+    occ = valid[cand] & (occ | (out["lane"][cand] == lane[:, None]))  # (c, V)
     dxs = x_c - xs[:, None]
     half = 0.5 * (len_c + length[:, None])
     g_ahead = np.where(occ & (dxs >= 0), dxs - half, np.inf)
@@ -469,8 +545,8 @@ def _spawn(out: dict, params: SimParams) -> None:
     v_lead = np.where(np.isfinite(ga), v_c[rr, ia], np.inf)
     v_foll = np.where(np.isfinite(gb), v_c[rr, ib], 0.0)
     speed = np.minimum(v0 * params.initial_speed_fraction, params.speed_limit_mps * 1.15)
-    speed = np.where(ga < 2.0 * (traits[:, T_S0] + speed * traits[:, T_T]), np.minimum(speed, v_lead), speed)
-    want &= ga >= np.maximum(traits[:, T_S0] + speed * traits[:, T_T], MIN_SPAWN_GAP_M)
+    speed = np.where(ga < 2.0 * (s0_c + speed * t_c), np.minimum(speed, v_lead), speed)
+    want &= ga >= np.maximum(s0_c + speed * t_c, MIN_SPAWN_GAP_M)
     want &= gb >= 2.0 + 1.2 * v_foll + np.maximum(v_foll - speed, 0.0) ** 2 / 6.0 + MIN_SPAWN_GAP_M
     if not want.any():
         return
@@ -479,7 +555,8 @@ def _spawn(out: dict, params: SimParams) -> None:
     new_rows = {
         "valid": True, "x_m": xs[want], "y_m": params.lane_centre_m(lane[want]), "vx_mps": speed[want],
         "vy_mps": 0.0, "heading_rad": 0.0, "length_m": length[want], "width_m": width[want],
-        "vehicle_id": new_id[want], "lane": lane[want], "traits": traits[want], "yield_state": 0,
+        "vehicle_id": new_id[want], "lane": lane[want], "traits": draw_traits(params, key[want], new_id[want]),
+        "yield_state": 0,
         "brake_timer_s": 0.0, "brake_decel_mps2": 0.0, "cooldown_s": 0.0,
     }
     for name, value in new_rows.items():

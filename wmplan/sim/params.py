@@ -173,5 +173,11 @@ class SimParams:
 
     def distance_to_lane_end(self, lane_idx: np.ndarray, x_m: np.ndarray) -> np.ndarray:
         """Metres from ``x_m`` to where lane ``lane_idx`` ends on this road (inf if it runs to the road's end)."""
+        if not self._any_lane_ends:  # every lane runs to the road's end
+            return np.full(np.broadcast_shapes(np.shape(lane_idx), np.shape(x_m)), np.inf)
         li = np.clip(np.asarray(lane_idx), 0, self.num_lanes - 1)
         return np.where(self.lane_ends_on_road[li], self.lane_end_m[li] - x_m, np.inf)
+
+    @property
+    def _any_lane_ends(self) -> bool:
+        return bool(self.lane_ends_on_road.any())

@@ -14,21 +14,26 @@ from wmplan.sim.params import NUM_TRAITS, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
 
 
-def draw_traits(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0) -> np.ndarray:
+def draw_traits(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0,
+                which: np.ndarray | None = None) -> np.ndarray:
     """Hidden traits for vehicles with the given identities, (..., NT); ``key`` broadcasts against ``vehicle_id``.
 
-    Each trait follows the scenario's normal distribution truncated to [low, high].
+    Each trait follows the scenario's normal distribution truncated to [low, high]. ``which`` (trait indices)
+    draws only those traits, (..., len(which)), with the same values as the full draw has in those columns.
     """
-    trait_idx = np.arange(NUM_TRAITS)
-    return rng.truncated_normal(params.trait_mean, params.trait_std, params.trait_lo, params.trait_hi,
-                                key[..., None], rng.STREAM_TRAITS, vehicle_id[..., None], trait_idx, salt)
+    idx = np.arange(NUM_TRAITS) if which is None else np.asarray(which)
+    return rng.truncated_normal(params.trait_mean[idx], params.trait_std[idx], params.trait_lo[idx],
+                                params.trait_hi[idx], key[..., None], rng.STREAM_TRAITS, vehicle_id[..., None],
+                                idx, salt)
 
 
 def draw_size(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Length and width of vehicles with the given identities (truncated normals)."""
-    length = rng.truncated_normal(*params.length_dist, key, rng.STREAM_TRAITS, vehicle_id, 101)
-    width = rng.truncated_normal(*params.width_dist, key, rng.STREAM_TRAITS, vehicle_id, 102)
-    return length, width
+    # one call for both (elementwise the same draws as two calls with the last counter 101 and 102)
+    dist = np.array([params.length_dist, params.width_dist])  # (2, 4): mean, std, low, high
+    both = rng.truncated_normal(dist[:, 0], dist[:, 1], dist[:, 2], dist[:, 3], np.asarray(key)[..., None],
+                                rng.STREAM_TRAITS, np.asarray(vehicle_id)[..., None], np.array([101, 102]))
+    return both[..., 0], both[..., 1]
 
 
 def empty_state(params: SimParams, keys: np.ndarray) -> TrafficState:
