@@ -40,14 +40,27 @@ class EgoKinematics:
         substep is returned for each plan step)."""
         acc = actions[..., 0].clamp(-self.max_brake_mps2, self.max_accel_mps2)
         want = actions[..., 1].clamp(-self.max_steer_rad, self.max_steer_rad)
-        max_d = self.max_steer_rate_radps * self.sim_dt_s
-        steer = steer0_rad
+        return torch.stack([acc, self.applied_steer(want, steer0_rad)[..., -1]], dim=-1)
+
+    def applied_steer(self, want_rad: torch.Tensor, steer0_rad: torch.Tensor) -> torch.Tensor:
+        """Steering angle of every simulator step, (..., H, substeps), when each command of ``want_rad`` (..., H)
+        (already within +-max_steer) is held for ``substeps`` steps and the angle is rate-limited from
+        ``steer0_rad`` (...,).
+
+        The rate limiter moves the angle toward the command by at most d = max_steer_rate x sim_dt per step and
+        stops on it, so while one command is held the angle after i steps is clamp(command, s - i d, s + i d), s
+        the angle when the command began (the same as i limited steps, up to rounding); only the loop over the H
+        plan steps remains.
+        """
+        d = self.max_steer_rate_radps * self.sim_dt_s
+        reach = torch.arange(1, self.substeps + 1, dtype=want_rad.dtype) * d  # (substeps,)
+        s = steer0_rad.to(want_rad.dtype).expand(want_rad.shape[:-1])[..., None]  # (..., 1)
         out = []
-        for h in range(actions.shape[-2]):
-            for _ in range(self.substeps):
-                steer = torch.minimum(torch.maximum(want[..., h], steer - max_d), steer + max_d)
-            out.append(steer)
-        return torch.stack([acc, torch.stack(out, dim=-1)], dim=-1)
+        for want in want_rad[..., None].unbind(-2):  # (..., 1) per plan step
+            sub = torch.clamp(want, s - reach, s + reach)  # (..., substeps)
+            out.append(sub)
+            s = sub.narrow(-1, self.substeps - 1, 1)
+        return torch.stack(out, dim=-2)
 
     def substep(self, x, y, psi, v, steer, accel, steer_cmd):
         """One simulator step: steering rate-limited toward ``steer_cmd``, then the bicycle; tensors broadcast.
@@ -72,6 +85,15 @@ class EgoKinematics:
                 heading0_rad: torch.Tensor | None = None) -> torch.Tensor:
         """Ego rows over a plan; the ego starts at the origin with heading ``heading0_rad`` (0: the anchor frame).
 
+        The same simulator steps as :meth:`substep` repeated ``substeps`` times per plan step, computed for all
+        steps at once: once the steering angles of every step are known (:meth:`applied_steer`), each step's
+        speed, distance and heading change follow from running sums. The speed recursion
+        v_j = max(v_{j-1} + a_j dt, 0) is a Lindley recursion with the closed form
+        v_j = S_j - min(-v_0, min_{i<=j} S_i), S_j the running sum of a_i dt (Lindley's recursion of queueing
+        theory, D. V. Lindley 1952, cited from memory; the closed form follows by induction on j); the heading and
+        the position are running sums of the per-step increments. ``tests/model/test_ego_fast.py`` keeps the
+        step-by-step loop as the reference.
+
         Args:
             speed0_mps: (...,) speed at the anchor.
             steer0_rad: (...,) steering angle applied just before the anchor.
@@ -81,17 +103,34 @@ class EgoKinematics:
         Returns:
             (..., H, 5): x, y, vx, vy, heading after each plan step.
         """
-        acc_all = actions[..., 0].clamp(-self.max_brake_mps2, self.max_accel_mps2)
+        dtype = actions.dtype
+        m, dt = self.substeps, self.sim_dt_s
+        lead = actions.shape[:-2]
+        acc = actions[..., 0].clamp(-self.max_brake_mps2, self.max_accel_mps2)  # (..., H)
         want = actions[..., 1].clamp(-self.max_steer_rad, self.max_steer_rad)
-        shape = actions.shape[:-2]
-        x = torch.zeros(shape, dtype=actions.dtype)
-        y = torch.zeros_like(x)
-        psi = torch.zeros_like(x) if heading0_rad is None else heading0_rad.to(actions.dtype).expand(shape)
-        v = speed0_mps.to(actions.dtype).expand(shape)
-        steer = steer0_rad.to(actions.dtype).expand(shape)
-        rows = []
-        for h in range(actions.shape[-2]):
-            for _ in range(self.substeps):
-                x, y, psi, v, steer, beta = self.substep(x, y, psi, v, steer, acc_all[..., h], want[..., h])
-            rows.append(torch.stack([x, y, v * torch.cos(psi + beta), v * torch.sin(psi + beta), psi], dim=-1))
-        return torch.stack(rows, dim=-2)
+        steer = self.applied_steer(want, steer0_rad).flatten(-2)  # (..., S), S = H x substeps
+        beta = torch.atan(self.l_r_m / self.wheelbase_m * torch.tan(steer))
+        accel = acc[..., None].expand(*acc.shape, m).flatten(-2)  # (..., S): each action held for m steps
+        v0 = speed0_mps.to(dtype).expand(lead)[..., None]  # (..., 1)
+        adt = accel * dt
+        run = torch.cumsum(adt, dim=-1)
+        v_after = run - torch.minimum(torch.cummin(run, dim=-1).values, -v0)  # speed after each step (Lindley)
+        v = torch.cat([v0, v_after[..., :-1]], dim=-1)  # speed at the start of each step
+        # distance of each step: as substep() (constant acceleration, stopping at zero speed, never reversing)
+        v_new = v + adt
+        stops = v_new < 0
+        safe_a = torch.where(accel < 0, accel, -torch.ones_like(accel))
+        stop_dist = torch.where(accel < 0, -v * v / (2.0 * safe_a), torch.zeros_like(accel))
+        dist = torch.where(stops, stop_dist, v * dt + 0.5 * accel * dt * dt)
+        psi0 = torch.zeros_like(v0) if heading0_rad is None else heading0_rad.to(dtype).expand(lead)[..., None]
+        psi = torch.cumsum(torch.cat([psi0, dist / self.l_r_m * torch.sin(beta)], dim=-1), dim=-1)  # (..., S + 1)
+        course = psi[..., :-1] + beta  # direction of travel during each step
+        x = torch.cumsum(dist * torch.cos(course), dim=-1)
+        y = torch.cumsum(dist * torch.sin(course), dim=-1)
+        # rows at the end of each plan step (the last of its substeps)
+        end = slice(m - 1, None, m)
+        psi_end = psi[..., 1:][..., end]
+        v_end = v_new[..., end].clamp_min(0.0)
+        course_end = psi_end + beta[..., end]
+        return torch.stack([x[..., end], y[..., end], v_end * torch.cos(course_end), v_end * torch.sin(course_end),
+                            psi_end], dim=-1)
