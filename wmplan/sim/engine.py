@@ -17,6 +17,7 @@ Order of one step:
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -85,6 +86,14 @@ def _gather_rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
     return np.take(a.reshape(a.shape[0] * a.shape[1], -1), _offsets(a) + idx, axis=0)
 
 
+@functools.lru_cache(maxsize=8)
+def _positions(s_n: int, v_n: int) -> np.ndarray:
+    """0, 1, ..., V-1 repeated for S scenes, flat (read-only; cached per shape)."""
+    out = np.tile(np.arange(v_n), s_n)
+    out.flags.writeable = False
+    return out
+
+
 class _Order:
     """Vehicles of each scene sorted by position, for nearest-neighbour queries in O(V L) per scene.
 
@@ -101,7 +110,7 @@ class _Order:
         self.order = np.argsort(np.where(valid, x_m, np.inf), axis=1, kind="stable")  # (S, V) sorted -> slot
         flat_order = _offsets(self.order) + self.order  # (S, V) flat slot index of each sorted position
         self.rank = np.empty_like(self.order)  # slot -> sorted position
-        self.rank.reshape(-1)[flat_order.reshape(-1)] = np.tile(np.arange(v_n), s_n)
+        self.rank.reshape(-1)[flat_order.reshape(-1)] = _positions(s_n, v_n)
         self._sorted_idx = np.ascontiguousarray(flat_order.T)  # (V, S): flat slot of sorted position r in scene s
         self._back_idx = self.rank * s_n + np.arange(s_n)[:, None]  # (S, V): flat index into a (V, S) plane
         self._ar = np.arange(v_n, dtype=np.int32)[None, :, None]
@@ -172,17 +181,42 @@ def _gap_to(x, length, i_slot_x, i_len, j_slot, ahead: bool):
 
 class _TraitPlanes:
     """``planes[k]``: trait k of every slot as a contiguous (S, V) array, extracted on first use (a step needs
-    only the IDM traits on most steps, the MOBIL ones on lane-decision steps)."""
+    only the IDM traits on most steps, the MOBIL ones on lane-decision steps).
+
+    The planes are kept with the state (see :func:`_trait_planes`) and handed on to the next state while its
+    ``traits`` array is the same object, which it is on every step in which no vehicle enters. The traits array is
+    made read-only then, so that writing into it in place (which no code should do: states are immutable) fails
+    loudly instead of leaving the planes stale."""
 
     def __init__(self, traits: np.ndarray):
         self._traits = traits
         self._planes: dict[int, np.ndarray] = {}
+        self._drivers: _Drivers | None = None
+        traits.flags.writeable = False
+
+    def owns(self, traits: np.ndarray) -> bool:
+        return traits is self._traits
+
+    @property
+    def drivers(self) -> _Drivers:
+        if self._drivers is None:
+            self._drivers = _Drivers.of(self)
+        return self._drivers
 
     def __getitem__(self, k: int) -> np.ndarray:
         plane = self._planes.get(k)
         if plane is None:
             plane = self._planes[k] = np.ascontiguousarray(self._traits[..., k])
         return plane
+
+
+def _trait_planes(state: TrafficState) -> _TraitPlanes:
+    """The trait planes of a state, made once and kept on the state object (not a dataclass field)."""
+    planes = state.__dict__.get("_trait_planes")
+    if planes is None or not planes.owns(state.traits):
+        planes = _TraitPlanes(state.traits)
+        object.__setattr__(state, "_trait_planes", planes)
+    return planes
 
 
 class _Drivers:
@@ -277,8 +311,8 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         state.lane, state.traits
     is_traffic = valid.copy()
     is_traffic[:, EGO] = False
-    trc = _TraitPlanes(tr)  # contiguous (S, V) trait planes, made when first asked for
-    drv = _Drivers.of(trc)
+    trc = _trait_planes(state)  # contiguous (S, V) trait planes, made when first asked for
+    drv = trc.drivers
 
     # --- 1. neighbours ---
     order = _Order(x, valid)
@@ -458,22 +492,24 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     out["offroad"] = state.offroad | off
     out["reached_goal"] = state.reached_goal | (goal & ~state.collided & ~state.offroad)
     info = StepInfo(collision=collision, offroad=off, goal=goal, accel_mps2=acc, steer_rad=steer)
-    return TrafficState(**out), info
+    new_state = TrafficState(**out)
+    if out["traits"] is tr:  # no vehicle entered in any scene: the trait planes carry over
+        object.__setattr__(new_state, "_trait_planes", trc)
+    return new_state, info
 
 
 def ego_collisions(arrays: dict) -> np.ndarray:
     """(S,) True where the ego's footprint overlaps another vehicle's. The separating-axis test runs only on
     pairs whose bounding circles meet, which is almost never; the answer is the same as testing every pair."""
     x, y, ln, wd, hd = (arrays[k] for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
-    # Bounding circles, radius at most half the diagonal: a quick test on x alone first, then on the few near ones.
-    reach = 0.5 * (ln + wd)  # >= half the diagonal
-    near = (np.abs(x - x[:, :1]) <= reach + reach[:, :1]) & arrays["valid"]
+    # Bounding circles of radius (length + width) / 2 (at least half the diagonal), tested on every slot at once.
+    reach = 0.5 * (ln + wd)
+    dx, dy = x - x[:, :1], y - y[:, :1]
+    r = reach + reach[:, :1]
+    near = (dx * dx + dy * dy <= r * r) & arrays["valid"]
     near[:, EGO] = False
-    ss, vv = np.nonzero(near)
-    radius = 0.5 * np.hypot(ln[ss, vv], wd[ss, vv]) + 0.5 * np.hypot(ln[ss, EGO], wd[ss, EGO])
-    close = (x[ss, vv] - x[ss, EGO]) ** 2 + (y[ss, vv] - y[ss, EGO]) ** 2 <= radius**2
-    ss, vv = ss[close], vv[close]
     hit = np.zeros(x.shape[0], dtype=bool)
+    ss, vv = np.nonzero(near)
     if ss.size:
         overlap = boxes_overlap(x[ss, EGO], y[ss, EGO], ln[ss, EGO], wd[ss, EGO], hd[ss, EGO],
                                 x[ss, vv], y[ss, vv], ln[ss, vv], wd[ss, vv], hd[ss, vv])
@@ -481,18 +517,19 @@ def ego_collisions(arrays: dict) -> np.ndarray:
     return hit
 
 
+_CORNER_SIGNS = np.array([[1.0, 1.0], [-1.0, 1.0], [-1.0, -1.0], [1.0, -1.0]])  # box_corners' order
+
+
 def ego_offroad(params: SimParams, x_m, y_m, length_m, width_m, heading_rad) -> np.ndarray:
     """True where any corner of the ego's footprint lies outside every lane that exists at that corner."""
     c, s = np.cos(heading_rad), np.sin(heading_rad)
-    hl, hw = 0.5 * np.asarray(length_m), 0.5 * np.asarray(width_m)
-    off = np.zeros(np.shape(x_m), dtype=bool)
-    # the four corners one at a time, in box_corners' order (each a contiguous (S,) array)
-    for sx, sy in ((1.0, 1.0), (-1.0, 1.0), (-1.0, -1.0), (1.0, -1.0)):
-        lx, ly = hl * sx, hw * sy
-        cx = x_m + c * lx - s * ly
-        cy = y_m + s * lx + c * ly
-        off |= ~params.lane_exists(np.floor(cy / params.lane_width_m).astype(np.int64), cx)
-    return off
+    # corners laid out (4, S): each operation runs over contiguous rows of scenes
+    lx = _CORNER_SIGNS[:, :1] * (0.5 * np.asarray(length_m))
+    ly = _CORNER_SIGNS[:, 1:] * (0.5 * np.asarray(width_m))
+    cx = x_m + c * lx - s * ly
+    cy = y_m + s * lx + c * ly
+    on = params.lane_exists(np.floor(cy / params.lane_width_m).astype(np.int64), cx)
+    return ~on.all(axis=0)
 
 
 def _spawn(out: dict, params: SimParams) -> None:
