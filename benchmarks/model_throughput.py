@@ -14,9 +14,12 @@ speed does not depend on training):
   over repeats. ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided
   by the rollout's time.
 * ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
-  matrices with the shapes of every matrix multiply the rollout does (recorded from the ``nn.Linear`` layers it
-  calls: the scene encoder's MLPs on B x N rows, the plan encoder and the prior on B x C x N rows, the decoder on
-  B x C x K x N rows), hence the same FLOPs, timed in the same process on the same threads. The FLOPs are counted
+  matrices with the shapes of every matrix multiply the rollout does (recorded from every linear map it applies,
+  ``nn.Linear`` layers and direct ``torch.nn.functional.linear`` calls: the scene encoder's MLPs on B x N rows, the
+  plan encoder on B x C x N rows; the first layers of the prior and the decoder by parts, their history part on
+  B x N rows, their plan part on B x C x N rows, the decoder's latent part on B x C x K x N rows; the rest of the
+  prior on B x C x N rows, the rest of the decoder on B x C x K x N rows), hence the same FLOPs, timed in the same
+  process on the same threads. The FLOPs are counted
   twice: 2 x in x out x rows summed over those layers, and ``torch.utils.flop_counter.FlopCounterMode`` (its
   mm/addmm/bmm counts); both are reported. They differ by the scene encoder's feed-forward layers (the hooks make
   torch skip its fused transformer kernel, which the flop counter does not see into); the attention projections
@@ -38,7 +41,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import platform
 import statistics
@@ -127,16 +129,14 @@ def matmul_loop(shapes: list[tuple[int, int, int]], generator) -> Callable[[], N
 
 
 def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> tuple[dict, dict, bool]:
-    """Median wall-clock and process-CPU seconds of each piece of ``WorldModel.sample`` replayed with the model's
-    modules; and whether the replay's rows equal ``sample``'s for the same generator seed."""
+    """Median wall-clock and process-CPU seconds of each piece of ``WorldModel.sample`` replayed step by step with
+    the model's own methods (the same calls, in the same order, as ``sample`` makes for a latent model without
+    noise); and whether the replay's rows equal ``sample``'s for the same generator seed."""
     import torch
 
-    from wmplan.model.nets import RESIDUAL_SCALE_M, gaussian_params
+    from wmplan.model.world_model import run_layers
 
     hist = batch["history"]
-    b, c = actions.shape[:2]
-    n = hist.shape[2]
-    hz = model.cfg.horizon
     times: dict[str, list[float]] = {}
     cpu_times: dict[str, list[float]] = {}
     rows = None
@@ -160,30 +160,25 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
             t = tick("ego_kinematics", t)
             p = model.plan(hist[:, -1, :, :2], ego_f, actions)
             t = tick("plan_encoder", t)
-            hb = h[:, None].expand(b, c, n, -1)
-            p_mu, p_lv = gaussian_params(model.prior(torch.cat([hb, p], -1)))
+            p_mu, p_lv = model.prior_params(h, p)
             t = tick("prior", t)
-            eps = torch.randn((b, 1, k, n, model.zdim), generator=g)
-            z = p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps
+            z = model.draw_latent(p_mu, p_lv, k, g)
             t = tick("latent_draw", t)
-            x = torch.cat([hb[:, :, None].expand(b, c, k, n, -1), p[:, :, None].expand(b, c, k, n, -1), z], -1)
-            t = tick("decoder_input_concat", t)
-            for i, layer in enumerate(model.decoder):
-                x = layer(x)
-                t = tick(f"decoder_{i}_{type(layer).__name__.lower()}", t)
-            mean, logvar = gaussian_params(x)
-            mean = mean.reshape(*mean.shape[:-1], hz, 2) * RESIDUAL_SCALE_M
-            logvar = logvar.reshape(*logvar.shape[:-1], hz, 2) + 2.0 * math.log(RESIDUAL_SCALE_M)
-            logvar = logvar + 2.0 * torch.log(model.noise_scale)
+            x = model.decoder_input(h, p, z)
+            t = tick("decoder_0_linear_by_parts", t)
+            for i in range(1, len(model.decoder)):
+                x = run_layers(model.decoder[i:i + 1], x)
+                t = tick(f"decoder_{i}_{type(model.decoder[i]).__name__.lower()}", t)
+            mean, _ = model.output_params(x)
             t = tick("decoder_output_split", t)
             xy = model.cv_positions(hist)[:, None, None] + mean
             t = tick("constant_velocity_add", t)
             rows = model.assemble_rows(hist, xy, ego_f)
             t = tick("assemble_rows", t)
-            # the heading of every predicted row (part of assemble_rows), timed alone on same-size tensors
-            vy, vx = xy[..., 1].transpose(-1, -2), xy[..., 0].transpose(-1, -2).clamp_min(0.1)
+            # the headings of every predicted row (part of assemble_rows), timed alone on same-size planes
+            vx, vy = xy.movedim(-1, 0).contiguous()
             t = now()
-            torch.atan2(vy, vx)
+            torch.atan2(vy, vx.clamp_min(0.1))
             tick("assemble_rows.atan2_part", t)
     ref = model.sample(batch, actions, k, generator=torch.Generator().manual_seed(seed))["rows"]
     med = lambda d: {name: statistics.median(v) for name, v in d.items()}  # noqa: E731

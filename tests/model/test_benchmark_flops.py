@@ -31,8 +31,9 @@ def bench():
 
 def test_flop_count_of_a_rollout(bench):
     """B = 2 scenes, C = 3 plans, K = 4 samples, N = 2 objects, H = 5, a one-layer encoder: the decoder sees
-    B C K N = 48 rows (its first layer's history-and-plan part B C N = 12), the plan encoder and prior
-    B C N = 12, the object MLP B N = 4, the road MLP B = 2."""
+    B C K N = 48 rows (its first layer by parts: the history part B N = 4, the plan part B C N = 12, the latent part
+    48), the plan encoder B C N = 12, the prior B C N = 12 (its first layer's history part B N = 4), the object MLP
+    B N = 4, the road MLP B = 2."""
     d, hid, hz, z, w = 8, 16, 5, 2, 2
     cfg = ModelConfig(history=w, horizon=hz, num_objects=1, d_model=d, num_heads=2, hidden=hid, num_layers=1,
                       latent_dim=z)
@@ -51,9 +52,10 @@ def test_flop_count_of_a_rollout(bench):
         "road mlp": 2 * 6 * d,
         "encoder feed-forward": 4 * (d * 2 * d + 2 * d * d),
         "plan encoder": 12 * (6 * hz * d + d * d),
-        "prior": 12 * (2 * d * hid + hid * 2 * z),
-        # the decoder's first layer is split: history and plan once per object and plan, z once per sample
-        "decoder": 12 * (2 * d * hid) + 48 * (z * hid + hid * hid + hid * 4 * hz),
+        # the first layers of the prior and the decoder are split: history once per object, plan once per object
+        # and plan, z once per sample
+        "prior": 4 * d * hid + 12 * (d * hid + hid * 2 * z),
+        "decoder": 4 * d * hid + 12 * d * hid + 48 * (z * hid + hid * hid + hid * 4 * hz),
     }
     # Both counts miss the encoder's feed-forward when torch runs it in its fused inference kernel.
     fused_out = 2 * (sum(by_hand.values()) - by_hand["encoder feed-forward"])

@@ -2,13 +2,13 @@
 turn.
 
 ``EgoKinematics.rollout`` computes all simulator steps of a plan at once (steering angles first, then running sums
-for speed, heading and position). The reference here is the step-by-step loop it replaced, kept below
-(``stepwise_rollout``): ``EgoKinematics.substep`` once per simulator step, which is the simulator's own step
+for speed, heading and position). The reference here is the step-by-step loop it replaced, kept as
+``reference_paths.stepwise_rollout``: ``EgoKinematics.substep`` once per simulator step, the simulator's own step
 (``tests/model/test_ego.py`` checks the rollout against ``wmplan.sim.bicycle.bicycle_step`` and the engine).
 
-External references: Rajamani, *Vehicle Dynamics and Control*, 2nd ed., 2012, section 2.2 (kinematic bicycle;
-steady turn of the centre of gravity with radius R = l_r / sin(beta) and yaw rate v / R; REFERENCES.md section 3);
-a worked stop-and-restart example computed by hand below (derived, no source needed).
+External references: the steady-turn check values of REFERENCES.md section 3 (derived there from the equations of
+Rajamani, *Vehicle Dynamics and Control*, 2nd ed., 2012, section 2.2 [M]); a worked stop-and-restart example
+computed by hand below (derived, no source needed).
 """
 
 from __future__ import annotations
@@ -18,31 +18,14 @@ import math
 import numpy as np
 import pytest
 import torch
+from model_helpers import TOY_EGO
+from reference_paths import stepwise_rollout
 
 from wmplan.model.ego import EgoKinematics
 from wmplan.scenario import load_scenario
 
 PLAN_DT_S = 0.2
 HORIZON = 15
-
-
-def stepwise_rollout(ego: EgoKinematics, speed0, steer0, actions, heading0=None) -> torch.Tensor:
-    """The rollout as it was written before it was vectorised: a Python loop over plan steps and substeps, one
-    ``substep`` (the simulator's step) each. Returns (..., H, 5) rows x, y, vx, vy, heading."""
-    acc_all = actions[..., 0].clamp(-ego.max_brake_mps2, ego.max_accel_mps2)
-    want = actions[..., 1].clamp(-ego.max_steer_rad, ego.max_steer_rad)
-    shape = actions.shape[:-2]
-    x = torch.zeros(shape, dtype=actions.dtype)
-    y = torch.zeros_like(x)
-    psi = torch.zeros_like(x) if heading0 is None else heading0.to(actions.dtype).expand(shape)
-    v = speed0.to(actions.dtype).expand(shape)
-    steer = steer0.to(actions.dtype).expand(shape)
-    rows = []
-    for h in range(actions.shape[-2]):
-        for _ in range(ego.substeps):
-            x, y, psi, v, steer, beta = ego.substep(x, y, psi, v, steer, acc_all[..., h], want[..., h])
-        rows.append(torch.stack([x, y, v * torch.cos(psi + beta), v * torch.sin(psi + beta), psi], dim=-1))
-    return torch.stack(rows, dim=-2)
 
 
 def stepwise_applied_steer(ego: EgoKinematics, want, steer0) -> torch.Tensor:
@@ -124,30 +107,30 @@ def test_applied_steer_equals_the_stepwise_rate_limit(ego):
     torch.testing.assert_close(ego.clip_actions(actions, steer)[..., 1], ref[..., -1], rtol=0, atol=1e-12)
 
 
-def test_steady_turn_matches_the_bicycle_radius_and_yaw_rate(ego):
-    """Constant speed 10 m/s and a held steering angle of 0.1 rad (already applied, so no rate limit): the heading
-    grows at the yaw rate v sin(beta) / l_r and the speed stays 10 m/s (Rajamani 2012, section 2.2, with
-    beta = atan(l_r tan(delta) / L)). The positions are the vertices of a regular polygon (an explicit step per
-    0.1 s) whose circumradius tends to R = l_r / sin(beta); it differs from R by the chord factor
-    (theta / 2) / sin(theta / 2) - 1 ~ theta^2 / 24 (theta the heading change per step), below 1e-4 here."""
-    delta, v = 0.1, 10.0
-    actions = torch.tensor([[0.0, delta]], dtype=torch.float64).expand(HORIZON, 2)[None]
-    out = ego.rollout(torch.tensor([v], dtype=torch.float64), torch.tensor([delta], dtype=torch.float64), actions)[0]
-    beta = math.atan(ego.l_r_m / ego.wheelbase_m * math.tan(delta))
-    yaw_rate = v * math.sin(beta) / ego.l_r_m
+@pytest.mark.parametrize(("steer_deg", "r_cg_m", "yaw_rate_radps"), [(5.0, 30.8907, 0.32372), (10.0, 15.3719, 0.65054)])
+def test_steady_turn_matches_the_tabled_radius_and_yaw_rate(steer_deg, r_cg_m, yaw_rate_radps):
+    """L = 2.7 m, l_r = 1.35 m, 10 m/s, a held steering angle already applied (no rate limit): the heading grows at
+    the tabled yaw rate and the speed stays 10 m/s. REFERENCES.md section 3 check values [D] from the equations of
+    Rajamani 2012 section 2.2 [M]; tolerance half a unit of the last tabled decimal. The positions are the vertices
+    of a regular polygon (one explicit step per 0.1 s) whose circumradius is R_cg times the chord factor
+    (theta / 2) / sin(theta / 2), theta the heading change per step (elementary geometry): within 3e-4 of R_cg."""
+    ego = TOY_EGO
+    assert (ego.wheelbase_m, ego.l_r_m, ego.sim_dt_s) == (2.7, 1.35, 0.1)
+    delta, v = math.radians(steer_deg), 10.0
+    f64 = lambda *a: torch.tensor(a, dtype=torch.float64)  # noqa: E731
+    actions = f64(0.0, delta).expand(HORIZON, 2)[None]
+    out = ego.rollout(f64(v), f64(delta), actions)[0]
     t = torch.arange(1, HORIZON + 1, dtype=torch.float64) * PLAN_DT_S
-    torch.testing.assert_close(out[:, 4], yaw_rate * t, rtol=1e-12, atol=1e-12)
+    rate = out[:, 4] / t
+    assert torch.all((rate - yaw_rate_radps).abs() < 5e-6), rate
     torch.testing.assert_close(torch.hypot(out[:, 2], out[:, 3]), torch.full((HORIZON,), v, dtype=torch.float64))
     # circumradius of the start point and two later vertices
     a, b, c = np.zeros(2), out[6, :2].numpy(), out[14, :2].numpy()
     ab, bc, ca = np.linalg.norm(b - a), np.linalg.norm(c - b), np.linalg.norm(a - c)
-    area2 = abs((b - a)[0] * (c - a)[1] - (b - a)[1] * (c - a)[0])
-    radius = ab * bc * ca / (2.0 * area2)
-    r_cg = ego.l_r_m / math.sin(beta)
-    theta = v * ego.sim_dt_s * math.sin(beta) / ego.l_r_m
-    chord = (theta / 2) / math.sin(theta / 2)
-    assert radius == pytest.approx(r_cg * chord, rel=1e-9)
-    assert abs(radius / r_cg - 1.0) < 1e-4
+    radius = ab * bc * ca / (2.0 * abs((b - a)[0] * (c - a)[1] - (b - a)[1] * (c - a)[0]))
+    theta = yaw_rate_radps * ego.sim_dt_s
+    assert radius == pytest.approx(r_cg_m * (theta / 2) / math.sin(theta / 2), abs=5e-4)
+    assert abs(radius / r_cg_m - 1.0) < 3e-4
 
 
 def test_stop_and_restart_worked_example(ego):

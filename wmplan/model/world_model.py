@@ -23,10 +23,13 @@ import math
 
 import torch
 from torch import nn
+from torch.nn import functional as F
 
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.nets import (
+    LOGVAR_MAX,
+    LOGVAR_MIN,
     RESIDUAL_SCALE_M,
     PlanEncoder,
     SceneEncoder,
@@ -36,16 +39,43 @@ from wmplan.model.nets import (
     reset_parameters,
 )
 from wmplan.sim.features import (
+    F_HEADING,
     F_LENGTH,
     F_VALID,
     F_VX,
     F_VY,
+    F_WIDTH,
     F_X,
     F_Y,
     NUM_VEHICLE_FEATURES,
 )
 
 LOG_2PI = math.log(2.0 * math.pi)
+
+
+def run_layers(layers: nn.Sequential, x: torch.Tensor) -> torch.Tensor:
+    """``layers(x)`` for inference on a tensor the caller owns: GELU activations are applied in place (no new
+    tensor per activation, so fewer fresh pages to fault in); other layers are called as they are."""
+    for layer in layers:
+        if isinstance(layer, nn.GELU) and not torch.is_grad_enabled():
+            x = torch.ops.aten.gelu_(x, approximate=layer.approximate)
+        else:
+            x = layer(x)
+    return x
+
+
+def _put_pairs(rows: torch.Tensor, col: int, src: torch.Tensor, *, transpose: bool = True) -> None:
+    """``rows[..., col:col + 2] = src`` for rows (..., H, N, F) and src (..., N, H, 2) (``transpose``) or
+    (..., H, N, 2) broadcastable; with float32 and an even column each pair is moved as one 64-bit word (a bit copy:
+    the values are unchanged, and torch's strided copy moves half as many elements)."""
+    if transpose:
+        src = src.transpose(-2, -3)
+    if rows.dtype == src.dtype == torch.float32 and col % 2 == 0 and rows.shape[-1] % 2 == 0 \
+            and rows.is_contiguous() and src.stride(-1) == 1 and all(st % 2 == 0 for st in src.stride()[:-1]) \
+            and src.storage_offset() % 2 == 0:
+        rows.view(torch.int64)[..., col // 2] = src.view(torch.int64)[..., 0]
+    else:
+        rows[..., col:col + 2] = src
 
 
 def gaussian_kl(mu_q, logvar_q, mu_p, logvar_p):
@@ -183,7 +213,12 @@ class WorldModel(nn.Module):
 
         Returns:
             dict with ``rows`` (B, C, K, H, N, F) predicted object rows in the anchor frame (the ego's from the
-            kinematic model), and ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals.
+            kinematic model), and ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals (``mean`` and
+            ``logvar`` may be broadcast views).
+
+        Every piece runs at its own broadcast shape: the scene once per object, the plan and the prior once per
+        object and plan, only the decoder from its first layer's latent part on once per sample
+        (``benchmarks/model_throughput.py`` replays these steps one by one).
         """
         cfg = self.cfg
         hist = batch["history"]
@@ -193,40 +228,95 @@ class WorldModel(nn.Module):
         h = self.encoder(hist, batch["road"])  # (B, N, D)
         ego_f = self.ego_future(batch, actions)  # (B, C, H, 5)
         p = self.plan(hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
-        hb = h[:, None].expand(b, c, n, -1)
         if self.zdim:
-            p_mu, p_lv = gaussian_params(self.prior(torch.cat([hb, p], -1)))  # (B, C, N, Z)
-            eps = randn_rows((b, 1, k, n, self.zdim), generator)
-            z = p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps  # (B, C, K, N, Z)
-            mean, logvar = self._decode(hb[:, :, None], p[:, :, None], z)
+            p_mu, p_lv = self.prior_params(h, p)  # (B, C, N, Z)
+            z = self.draw_latent(p_mu, p_lv, k, generator)  # (B, C, K, N, Z)
+            mean, logvar = self.output_params(run_layers(self.decoder[1:], self.decoder_input(h, p, z)))
         else:
-            mean, _ = self._decode(hb, p, None)
+            mean, _ = self.output_params(run_layers(self.decoder[1:], self.decoder_input(h, p, None)))
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
-            logvar = self.fitted_logvar.expand(b, c, k, n, cfg.horizon, 2)
-        logvar = logvar + 2.0 * torch.log(self.noise_scale)
+            logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
         xy = self.cv_positions(hist)[:, None, None] + mean  # (B, C, K, N, H, 2)
         if noise:
             xy = xy + (0.5 * logvar).exp() * randn_rows(tuple(xy.shape), generator)
         rows = self.assemble_rows(hist, xy, ego_f)
         return {"rows": rows, "mean": mean, "logvar": logvar}
 
+    def prior_params(self, h: torch.Tensor, p: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Prior mean and log-variance (B, C, N, Z) from h (B, N, D) and p (B, C, N, D); the first layer is split
+        so that its history part runs once per object (the same as the prior on ``cat([h, p])``)."""
+        first = self.prior[0]
+        d = h.shape[-1]
+        x = F.linear(p, first.weight[:, d:])
+        x += F.linear(h, first.weight[:, :d], first.bias)[:, None]
+        return gaussian_params(run_layers(self.prior[1:], x))
+
+    def draw_latent(self, p_mu: torch.Tensor, p_lv: torch.Tensor, k: int, generator) -> torch.Tensor:
+        """K draws of z (B, C, K, N, Z) from the prior (B, C, N, Z); the same standard normals for every plan."""
+        b, _, n, zdim = p_mu.shape
+        eps = randn_rows((b, 1, k, n, zdim), generator)
+        return p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps
+
+    def decoder_input(self, h: torch.Tensor, p: torch.Tensor, z: torch.Tensor | None) -> torch.Tensor:
+        """The decoder's first linear layer on ``cat([h, p, z])`` computed by parts: the history part once per object
+        (h (B, N, D)), the plan part once per object and plan (p (B, C, N, D)), the latent part once per sample
+        (z (B, C, K, N, Z)), summed by broadcasting. Returns (B, C, K, N, hidden), or (B, C, N, hidden) without z."""
+        w = self.decoder[0].weight
+        d = h.shape[-1]
+        hp = F.linear(p, w[:, d:2 * d])
+        hp += F.linear(h, w[:, :d], self.decoder[0].bias)[:, None]
+        if z is None:
+            return hp
+        x = F.linear(z, w[:, 2 * d:])
+        x += hp[:, :, None]
+        return x
+
+    def output_params(self, out: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """The decoder's output (..., 4 H) as residual mean and log-variance (..., H, 2) in metres (the log-variance
+        with the calibrated noise scale): computed in place, returned as views of ``out``, which the caller gives up
+        (:func:`gaussian_params`, then the scales of :meth:`_decode`)."""
+        hz = self.cfg.horizon
+        mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
+        mean.mul_(RESIDUAL_SCALE_M)
+        logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
+        return mean, logvar
+
     def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
-        """Object rows (B, C, K, H, N, F) from predicted positions (B, C, K, N, H, 2) and the ego path (B, C, H, 5)."""
+        """Object rows (B, C, K, H, N, F) from predicted positions (B, C, K, N, H, 2) and the ego path (B, C, H, 5).
+
+        Velocities are the finite differences of the positions (from the last history row on), headings
+        atan2(vy, max(vx, 0.1)), sizes and validity from the last history row; the ego's row is its own path, the
+        same in every future; rows of empty slots are zero.
+
+        Written column by column into one preallocated tensor: positions masked and differenced in their own
+        (object-major) order, headings computed on contiguous planes (torch's vectorised atan2), and float32 pairs
+        such as (x, y) moved as one 64-bit word (a bit copy, see :func:`_put_pairs`).
+        """
         dt = self.cfg.plan_dt_s
-        last = hist[:, -1]  # (B, N, F)
         b, c, k, n, hz, _ = xy.shape
-        pos = xy.transpose(-2, -3)  # (B, C, K, H, N, 2)
-        prev = torch.cat([last[:, None, None, None, :, :2].expand(b, c, k, 1, n, 2), pos[..., :-1, :, :]], dim=-3)
-        vel = (pos - prev) / dt
+        last = hist[:, -1]  # (B, N, F)
+        valid = (last[..., F_VALID] > 0.5).to(xy.dtype)  # (B, N)
+        rows = torch.empty(b, c, k, hz, n, NUM_VEHICLE_FEATURES, dtype=xy.dtype)
+        pos = xy * valid[:, None, None, :, None, None]  # empty slots zeroed (their velocities and headings follow)
+        vel = torch.empty_like(pos)
+        torch.sub(pos[..., 1:, :], pos[..., :-1, :], out=vel[..., 1:, :])
+        torch.sub(pos[..., 0, :], (last[..., [F_X, F_Y]] * valid[..., None])[:, None, None], out=vel[..., 0, :])
+        vel /= dt
+        _put_pairs(rows, F_X, pos)
+        del pos
+        _put_pairs(rows, F_VX, vel)
+        planes = vel.movedim(-1, 0).contiguous()  # (2, B, C, K, N, H)
+        del vel
+        vx, vy = planes
+        heading = vy.atan2_(vx.clamp_min_(0.1))
+        rows[..., F_HEADING] = heading.transpose(-1, -2)
+        del planes, vx, vy, heading
+        static = (last[..., F_LENGTH:] * valid[..., None])[:, None, None, None]  # (B, 1, 1, 1, N, 3)
+        rows[..., F_LENGTH] = static[..., 0]
+        _put_pairs(rows, F_WIDTH, static[..., 1:].contiguous(), transpose=False)
         # the ego's own path, the same in every future
-        ego = ego_f[:, :, None, :, None, :].expand(b, c, k, hz, 1, 5)
-        pos = torch.cat([ego[..., :2], pos[..., 1:, :]], dim=-2)
-        vel = torch.cat([ego[..., 2:4], vel[..., 1:, :]], dim=-2)
-        heading = torch.atan2(vel[..., 1], vel[..., 0].clamp_min(0.1))
-        heading = torch.cat([ego[..., 4], heading[..., 1:]], dim=-1)
-        static = last[:, None, None, None, :, F_LENGTH:].expand(b, c, k, hz, n, NUM_VEHICLE_FEATURES - F_LENGTH)
-        rows = torch.cat([pos, vel, heading[..., None], static], dim=-1)
-        return rows * (static[..., -1:] > 0.5)
+        rows[..., 0, :F_LENGTH] = (ego_f * valid[:, 0, None, None, None])[:, :, None]
+        return rows
 
     @torch.no_grad()
     def residuals(self, batch: dict) -> tuple[torch.Tensor, torch.Tensor]:
