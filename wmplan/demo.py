@@ -88,6 +88,13 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     from wmplan.viz.anim import render_to_file
 
     t_start = time.perf_counter()
+    stages: dict[str, float] = {}  # seconds per stage, written to demo.json
+    mark = [t_start]
+
+    def lap(name: str) -> None:
+        now = time.perf_counter()
+        stages[name] = round(now - mark[0], 1)
+        mark[0] = now
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     torch.set_num_threads(2)
@@ -99,9 +106,11 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     with _bar(episodes * decisions_per_episode(scn), "simulate") as bar:
         simulate_dataset(scn, out / "data", episodes=episodes, seed=seed + 1, progress=bar.update)
     # --- pictures ---
+    lap("simulate")
     _say("2/7 drawing a scene and an episode")
     render_to_file(SCENARIO, out / "scene.png", seed=seed)
     render_to_file(SCENARIO, out / "episode.gif", seed=seed)
+    lap("pictures")
     # --- train ---
     for kind, det, minutes in (("latent", False, 0.3 if quick else 2.5), ("deterministic", True, 0.2 if quick else 1.3)):
         tcfg = TrainConfig(minutes=minutes, seed=seed, max_epochs=2 if quick else 25,
@@ -110,14 +119,17 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
         with _bar(tcfg.max_epochs * tcfg.steps_per_epoch, f"train {kind}") as bar:
             train(out / "data", out / kind, model_cfg=ModelConfig(deterministic=det), train_cfg=tcfg,
                   progress=lambda n, _m, b=bar: b.update(n))
+        lap(f"train_{kind}")
     # --- assess ---
     _say("4/7 assessing the models against constant velocity and the oracle")
     result = assess(out / "latent", scn, deterministic_dir=out / "deterministic", episodes=16 if quick else 64,
                     oracle_states=6 if quick else 24, oracle_samples=8 if quick else 32, seed=seed)
     atomic_write_json(out / "assess.json", result)
+    lap("assess")
     # --- one decision, for the figures ---
     _say("5/7 keeping one decision's futures and candidates for the figures")
     _example_decision(out, out / "latent", out / "deterministic", seed)
+    lap("example_decision")
     # --- evaluate ---
     n_eval = 6 if quick else 40
     _say(f"6/7 closed-loop evaluation of {len(PLANNER_NAMES)} planners, {n_eval} episodes each")
@@ -127,6 +139,7 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
             ev = evaluate_planner(scn, name, episodes=n_eval, seed=seed, model_dir=out / "latent",
                                   deterministic_dir=out / "deterministic", batch_size=n_eval, progress=bar.update)
         results[name] = summarise_planner(ev.rows)
+        lap(f"evaluate_{name}")
         rows += ev.rows
         if name != "rules":
             calib[name] = calibration(ev.predicted, ev.happened)
@@ -139,7 +152,9 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     # --- report ---
     _say("7/7 writing the report")
     html, md = build_report(out)
+    lap("report")
     atomic_write_json(out / "demo.json", {"seconds": round(time.perf_counter() - t_start, 1), "quick": quick,
+                                          "stage_seconds": stages,
                                           "report_html": str(html), "report_md": str(md)})
     _say(f"done in {time.perf_counter() - t_start:.0f} s")
     return html
