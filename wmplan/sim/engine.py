@@ -43,6 +43,7 @@ from wmplan.sim.params import (
 )
 from wmplan.sim.spawn import draw_size, draw_traits
 from wmplan.sim.state import EGO, TrafficState
+from wmplan.sim.tilt import MAX_TILTED_PROB, bernoulli_log_ratio
 
 LATERAL_MARGIN_M = 0.2  # two vehicles interact longitudinally if their bodies come this close sideways
 BAND_EPS_M = 0.05  # a body must reach this far into a lane to occupy it
@@ -69,6 +70,8 @@ class StepInfo:
     goal: np.ndarray
     accel_mps2: np.ndarray  # (S, V) longitudinal acceleration applied (ego: the clipped action)
     steer_rad: np.ndarray  # (S,) ego steering angle applied after clipping and rate limiting
+    # (S,) log f/g of this step's tilted random draws (``params.tilt``, see wmplan.sim.tilt); 0 when not tilted
+    log_weight: np.ndarray | None = None
 
 
 def _offsets(a: np.ndarray) -> np.ndarray:
@@ -311,6 +314,8 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         state.lane, state.traits
     is_traffic = valid.copy()
     is_traffic[:, EGO] = False
+    tilt = params.tilt if params.tilt is not None and params.tilt.active else None
+    log_w = np.zeros(s_n)
     trc = _trait_planes(state)  # contiguous (S, V) trait planes, made when first asked for
     drv = trc.drivers
 
@@ -351,7 +356,15 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
         new_s, new_v = np.nonzero(has_partner & (state.yield_state == 0))
         if new_s.size:  # interactions that begin now: draw the decision
             u = rng.uniform(rng.combine(state.key[new_s], state.step[new_s], rng.STREAM_YIELD), state.vehicle_id[new_s, new_v])
-            ys[new_s, new_v] = np.where(u < tr[new_s, new_v, T_YIELD], 1, 2)
+            p_yield = tr[new_s, new_v, T_YIELD]
+            if tilt is not None and tilt.yield_factor != 1.0:  # decisions about letting the ego in are tilted
+                to_ego = p_slot[new_s, new_v] == EGO
+                q_yield = np.where(to_ego, p_yield * tilt.yield_factor, p_yield)
+                yields = u < q_yield
+                np.add.at(log_w, new_s, np.where(to_ego, bernoulli_log_ratio(yields, p_yield, q_yield), 0.0))
+            else:
+                yields = u < p_yield
+            ys[new_s, new_v] = np.where(yields, 1, 2)
         a_yield = _idm(vx, drv, np.maximum(np.where(has_partner, p_gap, np.inf), trc[T_S0]),
                        np.where(has_partner, _gather(vx, p_idx), 0.0))
         a_yield = np.maximum(a_yield, -trc[T_BSAFE])
@@ -373,7 +386,16 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     if params.brake_prob_per_step > 0.0:
         ev_key = rng.combine(state.key, state.step, rng.STREAM_BRAKE_START)[:, None]
         u_brake = rng.uniform(ev_key, state.vehicle_id)
-        starts = is_traffic & (timer <= 0.0) & (u_brake < params.brake_prob_per_step) & (vx > 5.0)
+        p_brake = params.brake_prob_per_step
+        if tilt is not None and tilt.brake_factor != 1.0:  # starts of drivers near the ego are tilted
+            eligible = is_traffic & (timer <= 0.0) & (vx > 5.0)
+            dx_ego = x - x[:, :1]
+            near = eligible & (np.abs(dx_ego) <= tilt.radius_m) & (dx_ego > -5.0)
+            q_brake = min(p_brake * tilt.brake_factor, MAX_TILTED_PROB)
+            starts = eligible & (u_brake < np.where(near, q_brake, p_brake))
+            log_w += np.where(near, bernoulli_log_ratio(starts, p_brake, q_brake), 0.0).sum(axis=1)
+        else:
+            starts = is_traffic & (timer <= 0.0) & (u_brake < p_brake) & (vx > 5.0)
         if starts.any():
             ss, sv = np.nonzero(starts)
             size_key = rng.combine(state.key[ss], state.step[ss], rng.STREAM_BRAKE_SIZE, state.vehicle_id[ss, sv])
@@ -491,7 +513,7 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
     out["collided"] = state.collided | collision
     out["offroad"] = state.offroad | off
     out["reached_goal"] = state.reached_goal | (goal & ~state.collided & ~state.offroad)
-    info = StepInfo(collision=collision, offroad=off, goal=goal, accel_mps2=acc, steer_rad=steer)
+    info = StepInfo(collision=collision, offroad=off, goal=goal, accel_mps2=acc, steer_rad=steer, log_weight=log_w)
     new_state = TrafficState(**out)
     if out["traits"] is tr:  # no vehicle entered in any scene: the trait planes carry over
         object.__setattr__(new_state, "_trait_planes", trc)

@@ -125,6 +125,8 @@ def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndar
         raise ValueError(f"num_futures must be >= 1, got {num_futures}")
     s_n, c_n, h_n, _ = plans.shape
     k_n = int(num_futures)
+    if params.tilt is not None:  # the oracle knows the nominal world, whatever tilt the episode runs under
+        params = params.with_tilt(None)
     sub = substeps_per_plan_step(params, plan_dt_s)
     branches = branch(state, params, scenes, k_n, mode=mode, seed=seed)  # (S*K) scenes, scene-major
     # order (S, C, K): for scene s and plan c, the K branches of scene s

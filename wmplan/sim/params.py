@@ -6,11 +6,13 @@ road geometry and trait distributions from it instead of walking the pydantic mo
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
 
 from wmplan.scenario.schema import Scenario
+from wmplan.sim.tilt import EventTilt
 
 # Order of the per-vehicle hidden traits in ``TrafficState.traits`` (last axis).
 TRAIT_NAMES = (
@@ -86,6 +88,7 @@ class SimParams:
     max_steer_rate_radps: float
     goal_x_m: float
     goal_lane_mask: np.ndarray
+    tilt: EventTilt | None = None  # importance-sampling tilt of the events near the ego (wmplan.sim.tilt)
 
     @classmethod
     def from_scenario(cls, scn: Scenario) -> SimParams:
@@ -155,6 +158,10 @@ class SimParams:
     @property
     def road_width_m(self) -> float:
         return self.num_lanes * self.lane_width_m
+
+    def with_tilt(self, tilt: EventTilt | None) -> SimParams:
+        """The same parameters with the events near the ego tilted (None: the nominal simulator)."""
+        return dataclasses.replace(self, tilt=tilt)
 
     def lane_centre_m(self, lane_idx: np.ndarray) -> np.ndarray:
         """Lateral position of the centre of each given lane."""
