@@ -268,3 +268,25 @@ def test_evaluate_cli_bad_input_is_one_line(argv, named, capsys, tmp_path):
     assert "Traceback" not in err and lines[0].startswith("wmplan")
     assert named in lines[0]
     assert not (tmp_path / "never").exists()
+
+
+def test_tilted_episodes_carry_their_importance_weight():
+    """``evaluate_seeds(..., tilt=...)`` (wmplan.sim.tilt): a tilt with factors 1 leaves every outcome as the nominal
+    run has it and weighs 1; a real tilt changes episodes and gives each row the log-weight of its draws, whose
+    exponential averages to about 1 over the episodes (E_g[W] = 1, Owen 2013 ch. 9; a loose check on 48 episodes,
+    the engine-level test in tests/sim/test_tilt.py is the tight one)."""
+    from wmplan.scenario import load_scenario
+    from wmplan.sim.tilt import EventTilt
+
+    scn = load_scenario("onramp-merge")
+    seeds = np.arange(48)
+    nominal = evaluate_seeds(scn, "rules", seeds, seed=0, batch_size=48)
+    same = evaluate_seeds(scn, "rules", seeds, seed=0, batch_size=48, tilt=EventTilt())
+    assert all("log_weight" not in r for r in nominal.rows + same.rows)  # factors 1: not tilted at all
+    assert [r["progress_m"] for r in same.rows] == [r["progress_m"] for r in nominal.rows]
+    tilted = evaluate_seeds(scn, "rules", seeds, seed=0, batch_size=48,
+                            tilt=EventTilt(brake_factor=20.0, yield_factor=0.3))
+    log_w = np.array([r["log_weight"] for r in tilted.rows])
+    assert np.any(log_w != 0.0) and np.all(np.isfinite(log_w) | (log_w == -np.inf))
+    assert [r["progress_m"] for r in tilted.rows] != [r["progress_m"] for r in nominal.rows]
+    assert 0.5 < np.exp(log_w).mean() < 1.5

@@ -35,6 +35,7 @@ from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
+from wmplan.sim.tilt import EventTilt
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
 HISTORY = 5
@@ -120,6 +121,8 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     fin_goal = np.zeros(e_n, dtype=bool)
     fin_x = np.full(e_n, np.nan)
     dec_ms = np.zeros(e_n)
+    tilted = params.tilt is not None and params.tilt.active
+    log_w = np.zeros(e_n)  # log f/g of the tilted draws while the episode runs (wmplan.sim.tilt)
     pred_log: list[tuple[np.ndarray, int, np.ndarray]] = []
     # one generator per episode, from (evaluation seed, scene seed): an episode's result does not depend on the
     # batch it runs in
@@ -150,6 +153,8 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             if frames is not None:
                 frames.append(state.vehicles())
             live = ~was_done
+            if tilted:
+                log_w += np.where(live, info.log_weight, 0.0)
             speed_sum += np.where(live, state.ego_speed_mps, 0.0)
             steps += live
             acc = info.accel_mps2[:, EGO]
@@ -192,6 +197,8 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             "decision_ms": float(dec_ms[i] / max(1, end_dec[i])),
             "decisions": int(end_dec[i]),
         })
+        if tilted:  # importance weight of the episode: E_tilted[failure * weight] = P_nominal(failure)
+            out.rows[-1]["log_weight"] = float(log_w[i])
     return out
 
 
@@ -211,9 +218,13 @@ def record_episode(scenario: Scenario, planner_name: str, seed: int, *, model_di
 
 def evaluate_seeds(scenario: Scenario, planner_name: str, seeds: np.ndarray, *, seed: int = 0, model_dir=None,
                    deterministic_dir=None, planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
-                   progress: Callable[[int], None] | None = None) -> EvalOutput:
-    """Episodes of one planner for the given scene seeds, in batches of ``batch_size``."""
-    params = SimParams.from_scenario(scenario)
+                   progress: Callable[[int], None] | None = None, tilt: EventTilt | None = None) -> EvalOutput:
+    """Episodes of one planner for the given scene seeds, in batches of ``batch_size``.
+
+    ``tilt`` runs the episodes with the random events near the ego made more likely (importance sampling,
+    :mod:`wmplan.sim.tilt`); each row then carries its ``log_weight``. Planners and the oracle see the nominal
+    scenario."""
+    params = SimParams.from_scenario(scenario).with_tilt(tilt)
     planner = build_planner(planner_name, params, model_dir=model_dir, deterministic_dir=deterministic_dir,
                             cfg=planner_cfg)
     seeds = np.asarray(seeds, dtype=np.int64)
