@@ -134,7 +134,7 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
     noise); and whether the replay's rows equal ``sample``'s for the same generator seed."""
     import torch
 
-    from wmplan.model.world_model import run_layers
+    from wmplan.model.nets import run_layers
 
     hist = batch["history"]
     times: dict[str, list[float]] = {}
@@ -166,11 +166,12 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
             t = tick("latent_draw", t)
             x = model.decoder_input(h, p, z)
             t = tick("decoder_0_linear_by_parts", t)
-            for i in range(1, len(model.decoder)):
+            last = len(model.decoder) - 1
+            for i in range(1, last):
                 x = run_layers(model.decoder[i:i + 1], x)
                 t = tick(f"decoder_{i}_{type(model.decoder[i]).__name__.lower()}", t)
-            mean, _ = model.output_params(x)
-            t = tick("decoder_output_split", t)
+            mean, _ = model.decoder_output(x)
+            t = tick(f"decoder_{last}_linear_and_output_scales", t)
             xy = model.cv_positions(hist)[:, None, None] + mean
             t = tick("constant_velocity_add", t)
             rows = model.assemble_rows(hist, xy, ego_f)

@@ -1,8 +1,9 @@
 """Slow reference paths of the forward model, kept for the tests (imported by name, like ``model_helpers``).
 
 ``reference_sample`` is ``WorldModel.sample`` as it was written before its speed-up, built from the model's own
-modules: the prior and the decoder run on the concatenated inputs ``cat([h, p])`` / ``cat([h, p, z])`` expanded to
-every plan and sample, the ego path comes from the step-by-step simulator loop, and the rows are assembled by
+modules: the plan encoder, the prior and the decoder run on their full inputs (the plan encoder on the relative
+positions per object and step; the prior and decoder on ``cat([h, p])`` and ``cat([h, p, z])`` expanded to every
+plan and sample), the ego path comes from the step-by-step simulator loop, and the rows are assembled by
 concatenation. The tests compare the fast path against it; it is deliberately plain, not fast.
 """
 
@@ -13,7 +14,15 @@ import math
 import torch
 
 from wmplan.model.ego import EgoKinematics
-from wmplan.model.nets import RESIDUAL_SCALE_M, gaussian_params, randn_rows
+from wmplan.model.nets import (
+    POS_SCALE_X_M,
+    POS_SCALE_Y_M,
+    RESIDUAL_SCALE_M,
+    VEL_SCALE_X_MPS,
+    VEL_SCALE_Y_MPS,
+    gaussian_params,
+    randn_rows,
+)
 from wmplan.sim.features import F_LENGTH, NUM_VEHICLE_FEATURES
 
 
@@ -34,6 +43,17 @@ def stepwise_rollout(ego: EgoKinematics, speed0, steer0, actions, heading0=None)
             x, y, psi, v, steer, beta = ego.substep(x, y, psi, v, steer, acc_all[..., h], want[..., h])
         rows.append(torch.stack([x, y, v * torch.cos(psi + beta), v * torch.sin(psi + beta), psi], dim=-1))
     return torch.stack(rows, dim=-2)
+
+
+def reference_plan(plan, obj_xy: torch.Tensor, ego_future: torch.Tensor, actions: torch.Tensor) -> torch.Tensor:
+    """The plan encoder on its full input (B, C, N, 6 H): relative positions, ego velocities and actions per object
+    and step, each divided by its scale."""
+    rel = (ego_future[:, :, None, :, :2] - obj_xy[:, None, :, None, :]) / torch.tensor([POS_SCALE_X_M, POS_SCALE_Y_M])
+    vel = (ego_future[..., 2:4] / torch.tensor([VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS]))[:, :, None]
+    act = (actions / plan.action_scale)[:, :, None]
+    n = obj_xy.shape[1]
+    feats = torch.cat([rel, vel.expand(-1, -1, n, -1, -1), act.expand(-1, -1, n, -1, -1)], dim=-1)
+    return plan.net(feats.flatten(-2))
 
 
 def reference_rows(model, hist: torch.Tensor, xy: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
@@ -66,7 +86,7 @@ def reference_sample(model, batch: dict, actions: torch.Tensor, k: int, *, gener
     with torch.inference_mode():
         h = model.encoder(hist, batch["road"])
         ego_f = stepwise_rollout(model.ego, batch["ego_speed_mps"][:, None], batch["ego_steer_rad"][:, None], actions)
-        p = model.plan(hist[:, -1, :, :2], ego_f, actions)
+        p = reference_plan(model.plan, hist[:, -1, :, :2], ego_f, actions)
         hb = h[:, None].expand(b, c, n, -1)
         if model.zdim:
             p_mu, p_lv = gaussian_params(model.prior(torch.cat([hb, p], -1)))

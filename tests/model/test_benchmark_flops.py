@@ -32,8 +32,8 @@ def bench():
 def test_flop_count_of_a_rollout(bench):
     """B = 2 scenes, C = 3 plans, K = 4 samples, N = 2 objects, H = 5, a one-layer encoder: the decoder sees
     B C K N = 48 rows (its first layer by parts: the history part B N = 4, the plan part B C N = 12, the latent part
-    48), the plan encoder B C N = 12, the prior B C N = 12 (its first layer's history part B N = 4), the object MLP
-    B N = 4, the road MLP B = 2."""
+    48), the plan encoder B C N = 12 (its first layer by parts: the plan part B C = 6, the object part B N = 4),
+    the prior B C N = 12 (its first layer's history part B N = 4), the object MLP B N = 4, the road MLP B = 2."""
     d, hid, hz, z, w = 8, 16, 5, 2, 2
     cfg = ModelConfig(history=w, horizon=hz, num_objects=1, d_model=d, num_heads=2, hidden=hid, num_layers=1,
                       latent_dim=z)
@@ -51,7 +51,9 @@ def test_flop_count_of_a_rollout(bench):
         "object mlp": 4 * ((5 * w + 3) * d + d * d),
         "road mlp": 2 * 6 * d,
         "encoder feed-forward": 4 * (d * 2 * d + 2 * d * d),
-        "plan encoder": 12 * (6 * hz * d + d * d),
+        # the plan encoder's first layer by parts: the ego's part once per plan (B C = 6), the objects' part once
+        # per object (B N = 4, two inputs: the relative positions' weights summed over the steps)
+        "plan encoder": 6 * 6 * hz * d + 4 * 2 * d + 12 * d * d,
         # the first layers of the prior and the decoder are split: history once per object, plan once per object
         # and plan, z once per sample
         "prior": 4 * d * hid + 12 * (d * hid + hid * 2 * z),

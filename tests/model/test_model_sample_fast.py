@@ -161,7 +161,7 @@ def test_the_benchmark_replay_reproduces_sample(windows, ego):
     assert matches
     assert set(wall) == set(cpu)
     assert {"scene_encoder", "ego_kinematics", "plan_encoder", "prior", "latent_draw", "decoder_0_linear_by_parts",
-            "decoder_output_split", "assemble_rows"} <= set(wall)
+            "decoder_4_linear_and_output_scales", "assemble_rows"} <= set(wall)
 
 
 def test_float64_copy_is_the_model(windows, ego):

@@ -54,13 +54,14 @@ class EgoKinematics:
         """
         d = self.max_steer_rate_radps * self.sim_dt_s
         reach = torch.arange(1, self.substeps + 1, dtype=want_rad.dtype) * d  # (substeps,)
-        s = steer0_rad.to(want_rad.dtype).expand(want_rad.shape[:-1])[..., None]  # (..., 1)
-        out = []
-        for want in want_rad[..., None].unbind(-2):  # (..., 1) per plan step
-            sub = torch.clamp(want, s - reach, s + reach)  # (..., substeps)
-            out.append(sub)
-            s = sub.narrow(-1, self.substeps - 1, 1)
-        return torch.stack(out, dim=-2)
+        full = reach[-1]  # the most a plan step can move
+        s = steer0_rad.to(want_rad.dtype).expand(want_rad.shape[:-1])
+        start = [s]  # the angle when each command begins
+        for want in want_rad.unbind(-1)[:-1]:
+            s = torch.clamp(want, s - full, s + full)
+            start.append(s)
+        s = torch.stack(start, dim=-1)[..., None]  # (..., H, 1)
+        return torch.clamp(want_rad[..., None], s - reach, s + reach)
 
     def substep(self, x, y, psi, v, steer, accel, steer_cmd):
         """One simulator step: steering rate-limited toward ``steer_cmd``, then the bicycle; tensors broadcast.
@@ -110,18 +111,17 @@ class EgoKinematics:
         want = actions[..., 1].clamp(-self.max_steer_rad, self.max_steer_rad)
         steer = self.applied_steer(want, steer0_rad).flatten(-2)  # (..., S), S = H x substeps
         beta = torch.atan(self.l_r_m / self.wheelbase_m * torch.tan(steer))
-        accel = acc[..., None].expand(*acc.shape, m).flatten(-2)  # (..., S): each action held for m steps
+        accel = acc.repeat_interleave(m, dim=-1)  # (..., S): each action held for m steps
         v0 = speed0_mps.to(dtype).expand(lead)[..., None]  # (..., 1)
         adt = accel * dt
         run = torch.cumsum(adt, dim=-1)
         v_after = run - torch.minimum(torch.cummin(run, dim=-1).values, -v0)  # speed after each step (Lindley)
         v = torch.cat([v0, v_after[..., :-1]], dim=-1)  # speed at the start of each step
-        # distance of each step: as substep() (constant acceleration, stopping at zero speed, never reversing)
+        # distance of each step as in substep(): constant acceleration, stopping at zero speed, never reversing
+        # (-v^2 / (2 a) written v^2 / (-2 a), the same number)
         v_new = v + adt
-        stops = v_new < 0
-        safe_a = torch.where(accel < 0, accel, -torch.ones_like(accel))
-        stop_dist = torch.where(accel < 0, -v * v / (2.0 * safe_a), torch.zeros_like(accel))
-        dist = torch.where(stops, stop_dist, v * dt + 0.5 * accel * dt * dt)
+        stop_dist = torch.where(accel < 0, v * v / (accel * -2.0), 0.0)
+        dist = torch.where(v_new < 0, stop_dist, v * dt + adt * (0.5 * dt))
         psi0 = torch.zeros_like(v0) if heading0_rad is None else heading0_rad.to(dtype).expand(lead)[..., None]
         psi = torch.cumsum(torch.cat([psi0, dist / self.l_r_m * torch.sin(beta)], dim=-1), dim=-1)  # (..., S + 1)
         course = psi[..., :-1] + beta  # direction of travel during each step

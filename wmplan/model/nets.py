@@ -10,6 +10,7 @@ import math
 
 import torch
 from torch import nn
+from torch.nn import functional as F
 
 from wmplan.sim.features import F_LENGTH, F_VALID, F_VX, F_VY, F_WIDTH, F_X, F_Y
 
@@ -94,16 +95,35 @@ class PlanEncoder(nn.Module):
         super().__init__()
         self.net = mlp([6 * horizon, d_model, d_model])
         self.register_buffer("action_scale", torch.tensor(ACTION_SCALE), persistent=False)
+        self.register_buffer("input_scale", torch.tensor((POS_SCALE_X_M, POS_SCALE_Y_M, VEL_SCALE_X_MPS,
+                                                          VEL_SCALE_Y_MPS, *ACTION_SCALE)), persistent=False)
 
     def forward(self, obj_xy: torch.Tensor, ego_future: torch.Tensor, actions: torch.Tensor) -> torch.Tensor:
-        """obj_xy (B, N, 2), ego_future (B, C, H, >=4), actions (B, C, H, 2) -> (B, C, N, D)."""
-        rel = ego_future[:, :, None, :, :2] - obj_xy[:, None, :, None, :]  # (B, C, N, H, 2)
-        rel = rel / torch.tensor([POS_SCALE_X_M, POS_SCALE_Y_M])
-        vel = (ego_future[..., 2:4] / torch.tensor([VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS]))[:, :, None]
-        act = (actions / self.action_scale)[:, :, None]
-        n = obj_xy.shape[1]
-        feats = torch.cat([rel, vel.expand(-1, -1, n, -1, -1), act.expand(-1, -1, n, -1, -1)], dim=-1)
-        return self.net(feats.flatten(-2))
+        """obj_xy (B, N, 2), ego_future (B, C, H, >=4), actions (B, C, H, 2) -> (B, C, N, D).
+
+        The input seen from one object is, per plan step, the ego's position relative to the object, the ego's
+        velocity and the action, each divided by its scale (6 H numbers). The object's position is the same at
+        every step and the first layer is linear, so that layer is computed by parts: the ego's part once per plan
+        (B, C) and the object's part once per object (B, N), with the weights of the relative positions summed over
+        the steps; the two are subtracted by broadcasting (the same map as on the full input, up to rounding).
+        """
+        first = self.net[0]
+        per_plan = torch.cat([ego_future[..., :4], actions], dim=-1) / self.input_scale  # (B, C, H, 6)
+        w_obj = first.weight.unflatten(-1, (per_plan.shape[-2], 6))[..., :2].sum(-2)  # (D, 2)
+        x = F.linear(per_plan.flatten(-2), first.weight, first.bias)[:, :, None] \
+            - F.linear(obj_xy / self.input_scale[:2], w_obj)[:, None]  # (B, C, N, D)
+        return run_layers(self.net[1:], x)
+
+
+def run_layers(layers: nn.Sequential, x: torch.Tensor) -> torch.Tensor:
+    """``layers(x)``; without autograd, on a tensor the caller gives up, GELU activations are applied in place (no
+    new tensor per activation); other layers are called as they are."""
+    for layer in layers:
+        if isinstance(layer, nn.GELU) and not torch.is_grad_enabled():
+            x = torch.ops.aten.gelu_(x, approximate=layer.approximate)
+        else:
+            x = layer(x)
+    return x
 
 
 def gaussian_params(out: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:

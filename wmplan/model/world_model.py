@@ -37,6 +37,7 @@ from wmplan.model.nets import (
     mlp,
     randn_rows,
     reset_parameters,
+    run_layers,
 )
 from wmplan.sim.features import (
     F_HEADING,
@@ -51,17 +52,7 @@ from wmplan.sim.features import (
 )
 
 LOG_2PI = math.log(2.0 * math.pi)
-
-
-def run_layers(layers: nn.Sequential, x: torch.Tensor) -> torch.Tensor:
-    """``layers(x)`` for inference on a tensor the caller owns: GELU activations are applied in place (no new
-    tensor per activation, so fewer fresh pages to fault in); other layers are called as they are."""
-    for layer in layers:
-        if isinstance(layer, nn.GELU) and not torch.is_grad_enabled():
-            x = torch.ops.aten.gelu_(x, approximate=layer.approximate)
-        else:
-            x = layer(x)
-    return x
+assert (F_Y, F_VY) == (F_X + 1, F_VX + 1), "positions and velocities are read as adjacent column pairs"
 
 
 def _put_pairs(rows: torch.Tensor, col: int, src: torch.Tensor, *, transpose: bool = True) -> None:
@@ -114,8 +105,8 @@ class WorldModel(nn.Module):
     def cv_positions(self, history: torch.Tensor) -> torch.Tensor:
         """Constant-velocity positions (B, N, H, 2) from the last history rows."""
         last = history[:, -1]
-        xy0 = last[..., [F_X, F_Y]]
-        v0 = last[..., [F_VX, F_VY]]
+        xy0 = last[..., F_X:F_Y + 1]  # (x, y) and (vx, vy) are adjacent columns (wmplan.sim.features)
+        v0 = last[..., F_VX:F_VY + 1]
         return xy0[:, :, None, :] + v0[:, :, None, :] * self.times_s()[None, None, :, None]
 
     def ego_future(self, batch: dict, actions: torch.Tensor) -> torch.Tensor:
@@ -231,9 +222,9 @@ class WorldModel(nn.Module):
         if self.zdim:
             p_mu, p_lv = self.prior_params(h, p)  # (B, C, N, Z)
             z = self.draw_latent(p_mu, p_lv, k, generator)  # (B, C, K, N, Z)
-            mean, logvar = self.output_params(run_layers(self.decoder[1:], self.decoder_input(h, p, z)))
+            mean, logvar = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, z)))
         else:
-            mean, _ = self.output_params(run_layers(self.decoder[1:], self.decoder_input(h, p, None)))
+            mean, _ = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, None)))
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
         xy = self.cv_positions(hist)[:, None, None] + mean  # (B, C, K, N, H, 2)
@@ -271,14 +262,22 @@ class WorldModel(nn.Module):
         x += hp[:, :, None]
         return x
 
-    def output_params(self, out: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """The decoder's output (..., 4 H) as residual mean and log-variance (..., H, 2) in metres (the log-variance
-        with the calibrated noise scale): computed in place, returned as views of ``out``, which the caller gives up
-        (:func:`gaussian_params`, then the scales of :meth:`_decode`)."""
+    def decoder_output(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """The decoder's last layer on its hidden activations x (..., hidden), returned as the residual mean and
+        log-variance (..., H, 2) in metres, the log-variance with the calibrated noise scale (what
+        :func:`gaussian_params` and the scales of :meth:`_decode` give). The scales are folded into the layer (its
+        mean rows times ``RESIDUAL_SCALE_M``, the log-variance's offset into its bias and clamp bounds), so the
+        output needs one pass (the clamp) instead of three; mean and log-variance are views of one tensor."""
+        last = self.decoder[-1]
         hz = self.cfg.horizon
+        offset = 2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale)  # () log-variance offset
+        scale = torch.ones(4 * hz, dtype=last.weight.dtype)
+        scale[: 2 * hz] = RESIDUAL_SCALE_M
+        shift = torch.zeros(4 * hz, dtype=last.weight.dtype)
+        shift[2 * hz:] = offset
+        out = F.linear(x, last.weight * scale[:, None], torch.addcmul(shift, last.bias, scale))
         mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
-        mean.mul_(RESIDUAL_SCALE_M)
-        logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
+        logvar.clamp_(LOGVAR_MIN + offset, LOGVAR_MAX + offset)
         return mean, logvar
 
     def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
@@ -300,7 +299,7 @@ class WorldModel(nn.Module):
         pos = xy * valid[:, None, None, :, None, None]  # empty slots zeroed (their velocities and headings follow)
         vel = torch.empty_like(pos)
         torch.sub(pos[..., 1:, :], pos[..., :-1, :], out=vel[..., 1:, :])
-        torch.sub(pos[..., 0, :], (last[..., [F_X, F_Y]] * valid[..., None])[:, None, None], out=vel[..., 0, :])
+        torch.sub(pos[..., 0, :], (last[..., F_X:F_Y + 1] * valid[..., None])[:, None, None], out=vel[..., 0, :])
         vel /= dt
         _put_pairs(rows, F_X, pos)
         del pos
