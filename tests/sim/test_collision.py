@@ -213,7 +213,7 @@ def _all_pairs(arrays: dict) -> np.ndarray:
 
 @pytest.mark.parametrize("seed_", [0, 1, 2])
 def test_ego_collisions_matches_all_pairs(seed_):
-    """``engine.ego_collisions`` (bounding-circle pre-filter, then SAT) equals the plain all-pairs test on 2,000
+    """``engine.ego_collisions`` (bounding-box pre-filters, then SAT) equals the plain all-pairs test on 2,000
     random scenes of 10 slots, with invalid slots placed on top of the ego that must be ignored (equivalence
     test, STYLE.md section 9; no external source)."""
     gen = np.random.default_rng(seed_)

@@ -522,16 +522,23 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[Tr
 
 def ego_collisions(arrays: dict) -> np.ndarray:
     """(S,) True where the ego's footprint overlaps another vehicle's. The separating-axis test runs only on
-    pairs whose bounding circles meet, which is almost never; the answer is the same as testing every pair."""
+    pairs whose bounding boxes meet, which is almost never; the answer is the same as testing every pair."""
     x, y, ln, wd, hd = (arrays[k] for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
-    # Bounding circles of radius (length + width) / 2 (at least half the diagonal), tested on every slot at once.
+    # 1. along the road, on every slot: a footprint reaches at most (length + width) / 2 from its centre
     reach = 0.5 * (ln + wd)
-    dx, dy = x - x[:, :1], y - y[:, :1]
-    r = reach + reach[:, :1]
-    near = (dx * dx + dy * dy <= r * r) & arrays["valid"]
+    near = (np.abs(x - x[:, :1]) <= reach + reach[:, :1]) & arrays["valid"]
     near[:, EGO] = False
     hit = np.zeros(x.shape[0], dtype=bool)
     ss, vv = np.nonzero(near)
+    if ss.size == 0:
+        return hit
+    # 2. on the few pairs left, axis-aligned bounds of the rotated footprints (|sin h| <= |h|, |cos h| <= 1):
+    #    half-extents at most l/2 + w/2 |h| along the road and w/2 + l/2 |h| across it
+    h_o, h_e = np.abs(hd[ss, vv]), np.abs(hd[ss, EGO])
+    l_o, w_o, l_e, w_e = 0.5 * ln[ss, vv], 0.5 * wd[ss, vv], 0.5 * ln[ss, EGO], 0.5 * wd[ss, EGO]
+    meet = np.abs(x[ss, vv] - x[ss, EGO]) <= l_o + w_o * h_o + l_e + w_e * h_e
+    meet &= np.abs(y[ss, vv] - y[ss, EGO]) <= w_o + l_o * h_o + w_e + l_e * h_e
+    ss, vv = ss[meet], vv[meet]
     if ss.size:
         overlap = boxes_overlap(x[ss, EGO], y[ss, EGO], ln[ss, EGO], wd[ss, EGO], hd[ss, EGO],
                                 x[ss, vv], y[ss, vv], ln[ss, vv], wd[ss, vv], hd[ss, vv])
