@@ -16,7 +16,7 @@ import pytest
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import load_scenario, parse_scenario, scenario_to_dict
-from wmplan.sim.ego_rules import rule_actions
+from wmplan.sim.ego_rules import RULE_DECISION_PERIOD_S, rule_actions
 from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import empty_state, initial_state
@@ -33,12 +33,16 @@ from wmplan.sweep.episodes import _clearance_and_ttc
 
 
 def _reference_episode(params: SimParams, seed: int) -> dict:
-    """One episode alone, stepped in a plain loop that stops at the engine's ``done`` (obviously correct)."""
+    """One episode alone, stepped in a plain loop that stops at the engine's ``done`` (obviously correct); the
+    rule-based driver decides every ``RULE_DECISION_PERIOD_S`` and holds its action in between."""
     state = initial_state(params, [seed])
     x0 = float(state.x_m[0, EGO])
     speeds = []
-    for _ in range(params.num_steps):
-        state, _ = step(state, rule_actions(state, params), params)
+    hold = round(RULE_DECISION_PERIOD_S / params.dt_s)
+    for t in range(params.num_steps):
+        if t % hold == 0:
+            action = rule_actions(state, params)
+        state, _ = step(state, action, params)
         speeds.append(float(state.ego_speed_mps[0]))
         if state.done[0]:
             break

@@ -20,7 +20,7 @@ from PIL import Image
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import load_scenario
-from wmplan.sim.ego_rules import rule_actions
+from wmplan.sim.ego_rules import RULE_DECISION_PERIOD_S, rule_actions
 from wmplan.sim.env import LaneEnv
 from wmplan.sim.features import F_VALID, F_X, F_Y
 from wmplan.sim.params import SimParams
@@ -198,8 +198,9 @@ def test_viz_imports_neither_pyplot_nor_torch():
 
 
 def test_episode_frames_follow_the_env_under_the_rules():
-    """episode_frames gives the same world rows as a LaneEnv driven by the same rule-based actions, frame 0 being
-    the initial state, and outcome flags that match the env's."""
+    """episode_frames gives the same world rows as a LaneEnv driven by the same rule-based actions (decided every
+    ``RULE_DECISION_PERIOD_S``, held in between), frame 0 being the initial state, and outcome flags that match
+    the env's."""
     params = _params("cut-in")
     frames, oc = episode_frames(params, seed=4)
     assert frames.shape == (oc.num_steps + 1, params.num_vehicles, 8)
@@ -207,8 +208,11 @@ def test_episode_frames_follow_the_env_under_the_rules():
     env.reset(options={"scene_seed": 4})
     np.testing.assert_array_equal(frames[0], env.state.vehicles()[0])
     info = {}
+    hold = round(RULE_DECISION_PERIOD_S / params.dt_s)
     for t in range(1, oc.num_steps + 1):
-        _, _, term, trunc, info = env.step(rule_actions(env.state, env.params)[0])
+        if (t - 1) % hold == 0:
+            action = rule_actions(env.state, env.params)[0]
+        _, _, term, trunc, info = env.step(action)
         np.testing.assert_array_equal(frames[t], env.state.vehicles()[0])
     assert term or trunc
     assert (info["collision"], info["offroad"], info["goal"]) == (oc.collided, oc.offroad, oc.reached_goal)

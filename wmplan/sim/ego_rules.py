@@ -23,6 +23,9 @@ from wmplan.sim.engine import lane_occupancy
 from wmplan.sim.params import EGO_RULE_TRAITS, T_A, T_B, T_S0, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
 
+# The rule-based driver decides every 0.2 s and holds its action in between, as the planners do (the decision
+# period of ``wmplan.plan.mpc.PlannerConfig``): one "rules" driver wherever the name appears.
+RULE_DECISION_PERIOD_S = 0.2
 POLITENESS = 0.2
 THRESHOLD_MPS2 = 0.2
 SAFE_DECEL_MPS2 = 4.0
@@ -122,3 +125,19 @@ def steer_to_lane(state: TrafficState, params: SimParams, target_lane: np.ndarra
     yaw_rate = HEADING_GAIN_PER_S * (heading_des - heading)
     steer = np.arctan(params.wheelbase_m * yaw_rate / v)
     return np.clip(steer, -params.max_steer_rad, params.max_steer_rad)
+
+
+def held_rule_policy(params: SimParams, period_s: float = RULE_DECISION_PERIOD_S):
+    """A fresh rule-based driver ``policy(state, params=None) -> actions (S, 2)`` that recomputes
+    :func:`rule_actions` on the steps that are multiples of the decision period and holds them in between (call it
+    once per simulator step; it keeps the last actions)."""
+    sub = max(1, int(round(period_s / params.dt_s)))
+    held: dict[str, np.ndarray] = {}
+
+    def policy(state: TrafficState, _params: SimParams | None = None) -> np.ndarray:
+        last = held.get("actions")
+        if last is None or last.shape[0] != state.num_scenes or bool(np.any(state.step % sub == 0)):
+            last = held["actions"] = rule_actions(state, params)
+        return last
+
+    return policy

@@ -46,7 +46,7 @@ import numpy as np
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, load_scenario
-from wmplan.sim.ego_rules import rule_actions
+from wmplan.sim.ego_rules import held_rule_policy
 from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
@@ -188,10 +188,8 @@ def closed_loop(scenario: Scenario, seeds: Sequence[int] | np.ndarray,
 
 
 def _rules_policy(params: SimParams) -> Policy:
-    def policy(state: TrafficState) -> np.ndarray:
-        return rule_actions(state, params)
-
-    return policy
+    # decides every 0.2 s and holds the action, like the "rules" row of ``wmplan evaluate``
+    return held_rule_policy(params)
 
 
 def rules_episodes(scenario: Scenario, seeds: Sequence[int] | np.ndarray, **options: Any) -> list[dict]:

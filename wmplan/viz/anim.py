@@ -22,7 +22,7 @@ import numpy as np
 from wmplan.errors import ConfigError
 from wmplan.io import atomic_write_bytes
 from wmplan.scenario import load_scenario
-from wmplan.sim.ego_rules import rule_actions
+from wmplan.sim.ego_rules import held_rule_policy
 from wmplan.sim.engine import step as engine_step
 from wmplan.sim.features import F_VX, F_VY, NUM_VEHICLE_FEATURES
 from wmplan.sim.params import SimParams
@@ -56,11 +56,11 @@ class EpisodeOutcome:
     goal_at: int | None
 
 
-def _resolve_policy(policy: str | Policy) -> Policy:
+def _resolve_policy(policy: str | Policy, params: SimParams) -> Policy:
     if callable(policy):
         return policy
-    if policy == "rules":
-        return rule_actions
+    if policy == "rules":  # the same driver as the "rules" planner: decides every 0.2 s, holds in between
+        return held_rule_policy(params)
     raise ConfigError(f"policy must be 'rules' or a callable (state, params) -> actions (S, 2), got {policy!r}")
 
 
@@ -82,7 +82,7 @@ def episode_frames(params: SimParams, seed: int, policy: str | Policy = "rules",
         frames (T, V, 8) world-frame rows in ``VEHICLE_FEATURES`` order (frame 0 the initial state), and the
         :class:`EpisodeOutcome`.
     """
-    act = _resolve_policy(policy)
+    act = _resolve_policy(policy, params)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ConfigError(f"seed must be an integer >= 0, got {seed!r}")
     limit = params.num_steps if num_steps is None else int(num_steps)
