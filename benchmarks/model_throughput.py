@@ -15,15 +15,16 @@ speed does not depend on training):
   by the rollout's time.
 * ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
   matrices with the shapes of every matrix multiply the rollout does (recorded from every linear map it applies,
-  ``nn.Linear`` layers and direct ``torch.nn.functional.linear`` calls: the scene encoder's MLPs on B x N rows, the
-  plan encoder on B x C x N rows; the first layers of the prior and the decoder by parts, their history part on
-  B x N rows, their plan part on B x C x N rows, the decoder's latent part on B x C x K x N rows; the rest of the
-  prior on B x C x N rows, the rest of the decoder on B x C x K x N rows), hence the same FLOPs, timed in the same
-  process on the same threads. The FLOPs are counted
+  ``nn.Linear`` layers and direct ``torch.nn.functional.linear`` calls: the scene encoder's MLPs, attention
+  projections and feed-forward layers on B x N rows; the plan encoder's first layer by parts, the plan's part on
+  B x C rows and the objects' part on B x N rows, its second layer on B x C x N rows; the first layers of the prior
+  and the decoder by parts, their history part on B x N rows, their plan part on B x C x N rows, the decoder's
+  latent part on B x C x K x N rows; the rest of the prior on B x C x N rows, the rest of the decoder on
+  B x C x K x N rows), hence the same FLOPs, timed in the same process on the same threads. The FLOPs are counted
   twice: 2 x in x out x rows summed over those layers, and ``torch.utils.flop_counter.FlopCounterMode`` (its
-  mm/addmm/bmm counts); both are reported. They differ by the scene encoder's feed-forward layers (the hooks make
-  torch skip its fused transformer kernel, which the flop counter does not see into); the attention projections
-  are in neither; at B x N = 9 rows all of these are negligible (0.1 %). Target: >= 0.5.
+  mm/addmm/bmm counts); both are reported and agree. The attention's own products (queries times keys, weights
+  times values, on B x heads x N x N) are in neither; at N = 9 objects they are 0.02 % of the FLOPs.
+  Target: >= 0.5.
 * ``breakdown_s``: the rollout replayed piece by piece with the model's own modules (median seconds per piece),
   to show where the time goes; ``breakdown_matches_sample`` says whether the replay reproduced ``sample``'s
   output exactly (if ``sample`` changes, the replay may no longer describe it).
@@ -80,9 +81,9 @@ def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
 
 def linear_shapes(model, fn) -> list[tuple[int, int, int]]:
     """(rows, in, out) of every linear map applied while ``fn()`` runs: ``nn.Linear`` modules and direct
-    ``torch.nn.functional.linear`` calls alike (the model splits its decoder's first layer into two functional
-    calls, one per object and plan, one per sample). Attention projections inside torch's fused kernel are not
-    seen (as with the module hooks before)."""
+    ``torch.nn.functional.linear`` calls alike (the model computes several first layers by parts with functional
+    calls, and its scene encoder's attention projections too). A linear map computed inside a fused torch kernel
+    would not be seen; the rollout uses none."""
     import torch
 
     shapes: list[tuple[int, int, int]] = []

@@ -205,7 +205,7 @@ class WorldModel(nn.Module):
         Returns:
             dict with ``rows`` (B, C, K, H, N, F) predicted object rows in the anchor frame (the ego's from the
             kinematic model), and ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals (``mean`` and
-            ``logvar`` may be broadcast views).
+            ``logvar`` may be views: broadcast, or the two halves of one tensor).
 
         Every piece runs at its own broadcast shape: the scene once per object, the plan and the prior once per
         object and plan, only the decoder from its first layer's latent part on once per sample
@@ -265,19 +265,16 @@ class WorldModel(nn.Module):
     def decoder_output(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """The decoder's last layer on its hidden activations x (..., hidden), returned as the residual mean and
         log-variance (..., H, 2) in metres, the log-variance with the calibrated noise scale (what
-        :func:`gaussian_params` and the scales of :meth:`_decode` give). The scales are folded into the layer (its
-        mean rows times ``RESIDUAL_SCALE_M``, the log-variance's offset into its bias and clamp bounds), so the
-        output needs one pass (the clamp) instead of three; mean and log-variance are views of one tensor."""
+        :func:`gaussian_params` and the scales of :meth:`_decode` give). The residual scale is folded into the
+        layer's mean rows, so the output takes two passes (clamp and offset of the log-variance) instead of four;
+        mean and log-variance are views of one tensor."""
         last = self.decoder[-1]
         hz = self.cfg.horizon
-        offset = 2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale)  # () log-variance offset
         scale = torch.ones(4 * hz, dtype=last.weight.dtype)
         scale[: 2 * hz] = RESIDUAL_SCALE_M
-        shift = torch.zeros(4 * hz, dtype=last.weight.dtype)
-        shift[2 * hz:] = offset
-        out = F.linear(x, last.weight * scale[:, None], torch.addcmul(shift, last.bias, scale))
+        out = F.linear(x, last.weight * scale[:, None], last.bias * scale)
         mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
-        logvar.clamp_(LOGVAR_MIN + offset, LOGVAR_MAX + offset)
+        logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
         return mean, logvar
 
     def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
