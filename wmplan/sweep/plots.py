@@ -105,7 +105,9 @@ def heatmap_figure(cells: list[dict], path_x: str, path_y: str, planners: list[s
     counts = _pooled(cells, (path_x, path_y))
     xs = sorted({k[1] for k in counts})
     ys = sorted({k[2] for k in counts})
-    fig = Figure(figsize=(1.0 + 0.95 * len(xs) * len(planners) + 1.2, 1.2 + 0.6 * len(ys)), layout="constrained")
+    # at least about 3 x 2.2 inches of map per planner, so that a 2 x 2 grid still reads (labels, intervals)
+    panel_w, panel_h = max(3.0, 1.05 * len(xs)), max(2.2, 0.7 * len(ys))
+    fig = Figure(figsize=(1.4 + panel_w * len(planners) + 1.0, 1.5 + panel_h), layout="constrained")
     axes = fig.subplots(1, len(planners), squeeze=False)[0]
     vmax = max(max(k / n for k, n in counts.values() if n), 0.05)
     image = None
@@ -116,13 +118,14 @@ def heatmap_figure(cells: list[dict], path_x: str, path_y: str, planners: list[s
                 grid[ys.index(y), xs.index(x)] = k / n
                 lo, hi = wilson_interval(k, n)
                 rate = k / n
-                ax.text(xs.index(x), ys.index(y), f"{rate:.2f}\n[{lo:.2f}, {hi:.2f}]", ha="center", va="center",
-                        fontsize=7, color="white" if rate > 0.55 * vmax else TEXT_COLOUR)
+                ax.text(xs.index(x), ys.index(y), f"{rate:.2f}\n[{lo:.2f}, {hi:.2f}]\nn = {n}", ha="center",
+                        va="center", fontsize=8, color="white" if rate > 0.55 * vmax else TEXT_COLOUR)
         image = ax.imshow(grid, origin="lower", cmap=RATE_CMAP, vmin=0.0, vmax=vmax, aspect="auto")
         ax.set_xticks(range(len(xs)), [f"{x:.3g}" for x in xs])
         ax.set_yticks(range(len(ys)), [f"{y:.3g}" for y in ys])
         ax.set_xlabel(axis_label(path_x))
-        ax.set_ylabel(axis_label(path_y))
+        y_label = axis_label(path_y)
+        ax.set_ylabel(y_label.replace(" (", "\n(", 1) if len(y_label) > 26 else y_label)
         ax.set_title(f"planner {planner}", color=TEXT_COLOUR)
     assert image is not None
     fig.colorbar(image, ax=list(axes), label="collision rate")
