@@ -293,10 +293,11 @@ class WorldModel(nn.Module):
         last = hist[:, -1]  # (B, N, F)
         valid = (last[..., F_VALID] > 0.5).to(xy.dtype)  # (B, N)
         rows = torch.empty(b, c, k, hz, n, NUM_VEHICLE_FEATURES, dtype=xy.dtype)
-        pos = xy * valid[:, None, None, :, None, None]  # empty slots zeroed (their velocities and headings follow)
+        pos = xy * valid.view(b, 1, 1, n, 1, 1)  # empty slots zeroed (their velocities and headings follow)
         vel = torch.empty_like(pos)
-        torch.sub(pos[..., 1:, :], pos[..., :-1, :], out=vel[..., 1:, :])
-        torch.sub(pos[..., 0, :], (last[..., F_X:F_Y + 1] * valid[..., None])[:, None, None], out=vel[..., 0, :])
+        torch.sub(pos.narrow(-2, 1, hz - 1), pos.narrow(-2, 0, hz - 1), out=vel.narrow(-2, 1, hz - 1))
+        prev = last[..., F_X:F_Y + 1] * valid[..., None]  # (B, N, 2) positions at the anchor
+        torch.sub(pos.select(-2, 0), prev.view(b, 1, 1, n, 2), out=vel.select(-2, 0))
         vel /= dt
         _put_pairs(rows, F_X, pos)
         del pos
@@ -307,11 +308,11 @@ class WorldModel(nn.Module):
         heading = vy.atan2_(vx.clamp_min_(0.1))
         rows[..., F_HEADING] = heading.transpose(-1, -2)
         del planes, vx, vy, heading
-        static = (last[..., F_LENGTH:] * valid[..., None])[:, None, None, None]  # (B, 1, 1, 1, N, 3)
+        static = (last[..., F_LENGTH:] * valid[..., None]).view(b, 1, 1, 1, n, NUM_VEHICLE_FEATURES - F_LENGTH)
         rows[..., F_LENGTH] = static[..., 0]
         _put_pairs(rows, F_WIDTH, static[..., 1:].contiguous(), transpose=False)
         # the ego's own path, the same in every future
-        rows[..., 0, :F_LENGTH] = (ego_f * valid[:, 0, None, None, None])[:, :, None]
+        rows[..., 0, :F_LENGTH] = (ego_f * valid[:, :1].view(b, 1, 1, 1)).view(b, c, 1, hz, F_LENGTH)
         return rows
 
     @torch.no_grad()
