@@ -348,7 +348,9 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
             results = summary.get("results")
             if not isinstance(results, dict) or not results or not all(isinstance(r, dict) for r in results.values()):
                 raise ConfigError(f"{path}: 'results' must map each planner to its summary")
-            facts = [f"{k} {summary[k]}" for k in ("scenario", "episodes", "seed") if k in summary]
+            facts = [f"{label} {summary[k]}" for k, label in (("scenario", "scenario"), ("episodes", "episodes"),
+                                                               ("episodes_oracle", "episodes of mpc+oracle"),
+                                                               ("seed", "seed")) if k in summary]
             if facts:
                 doc.add(_Para("Episodes in the true simulator, " + "; ".join(facts)
                               + ". Rates with Wilson 95% intervals, means with t intervals."))
