@@ -4,9 +4,12 @@ Every planner meets the same episodes (the same scene seeds: a paired comparison
 simulator state and one planner call per decision; finished episodes drop out of the planner's batch.
 
 Per-episode rows (keys): planner, episode, seed, collision, offroad, success (goal reached without collision or
-leaving the road), progress_m, mean_speed_mps, min_ttc_s (smallest time to collision with the vehicle ahead in
-the ego's path over the episode), rms_jerk_mps3, decision_ms (planner wall time per decision, divided among the
-episodes of the batch), decisions.
+leaving the road), outcome (how the episode ended, one of OUTCOMES: 'collision', 'offroad', 'goal', or 'timeout'
+when the time ran out first; a collision outranks leaving the road in the same step), final_lane (the lane holding
+the ego's centre when the episode ended), in_goal_lane (whether that lane is one of the goal's lanes: a timeout
+outside them is a stall before the merge, a timeout inside them is slow progress after it), progress_m,
+mean_speed_mps, min_ttc_s (smallest time to collision with the vehicle ahead in the ego's path over the episode),
+rms_jerk_mps3, decision_ms (planner wall time per decision, divided among the episodes of the batch), decisions.
 
 Calibration records: at every decision of a risk-predicting planner, the predicted probability that the chosen plan
 collides within its horizon, beside whether the ego then collided within that horizon.
@@ -38,6 +41,7 @@ from wmplan.sim.state import EGO, TrafficState
 from wmplan.sim.tilt import EventTilt
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
+OUTCOMES = ("goal", "collision", "offroad", "timeout")
 HISTORY = 5
 NUM_OBJECTS = 8
 
@@ -120,6 +124,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     fin_off = np.zeros(e_n, dtype=bool)
     fin_goal = np.zeros(e_n, dtype=bool)
     fin_x = np.full(e_n, np.nan)
+    fin_y = np.full(e_n, np.nan)
     dec_ms = np.zeros(e_n)
     tilted = params.tilt is not None and params.tilt.active
     log_w = np.zeros(e_n)  # log f/g of the tilted draws while the episode runs (wmplan.sim.tilt)
@@ -167,6 +172,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             fin_off |= newly & state.offroad
             fin_goal |= newly & state.reached_goal
             fin_x = np.where(newly, state.x_m[:, EGO], fin_x)
+            fin_y = np.where(newly, state.y_m[:, EGO], fin_y)
             # calibration compares predicted collision with other vehicles to collisions (not leaving the road)
             coll_dec = np.where(live & state.collided & (coll_dec < 0), t + 1, coll_dec)
         rows_now = state.vehicles()
@@ -183,6 +189,10 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
         out.predicted.extend(p.tolist())
         out.happened.extend(happened.astype(int).tolist())
     fin_x = np.where(np.isnan(fin_x), state.x_m[:, EGO], fin_x)
+    fin_y = np.where(np.isnan(fin_y), state.y_m[:, EGO], fin_y)
+    final_lane = params.lane_of(fin_y)
+    in_goal = params.goal_lane_mask[final_lane]
+    outcome = np.where(fin_coll, "collision", np.where(fin_off, "offroad", np.where(fin_goal, "goal", "timeout")))
     for i in range(e_n):
         out.rows.append({
             "planner": planner_name,
@@ -190,6 +200,9 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             "collision": bool(fin_coll[i]),
             "offroad": bool(fin_off[i]),
             "success": bool(fin_goal[i] and not fin_coll[i] and not fin_off[i]),
+            "outcome": str(outcome[i]),
+            "final_lane": int(final_lane[i]),
+            "in_goal_lane": bool(in_goal[i]),
             "progress_m": float(fin_x[i] - x0[i]),
             "mean_speed_mps": float(speed_sum[i] / max(1, steps[i])),
             "min_ttc_s": float(min_ttc[i]),

@@ -45,13 +45,21 @@ def _mean(values: np.ndarray) -> tuple[float, list[float]]:
 
 
 def summarise_planner(rows: list[dict]) -> dict:
-    """Rates with Wilson 95% intervals and means with t intervals for one planner's episodes."""
+    """Rates with Wilson 95% intervals and means with t intervals for one planner's episodes.
+
+    Besides collisions, leaving the road and success, the timeouts (episodes that ran out of time without reaching
+    the goal, colliding or leaving the road) and how many of them ended outside the goal's lanes (a stall before
+    the merge; rows without ``in_goal_lane`` count as inside)."""
     col = np.array([r["collision"] for r in rows])
     off = np.array([r["offroad"] for r in rows])
     suc = np.array([r["success"] for r in rows])
+    # timed out: neither reached the goal nor ended by a collision or by leaving the road
+    timeout = ~col & ~off & ~suc
+    stalled = timeout & ~np.array([r.get("in_goal_lane", True) for r in rows], dtype=bool)
     coll_rate, coll_ci = _rate(col)
     off_rate, off_ci = _rate(off)
     succ_rate, succ_ci = _rate(suc)
+    timeout_rate, timeout_ci = _rate(timeout)
     speed, speed_ci = _mean(np.array([r["mean_speed_mps"] for r in rows]))
     prog, prog_ci = _mean(np.array([r["progress_m"] for r in rows]))
     jerk, jerk_ci = _mean(np.array([r["rms_jerk_mps3"] for r in rows]))
@@ -62,6 +70,8 @@ def summarise_planner(rows: list[dict]) -> dict:
         "collision_rate": coll_rate, "collision_ci95": coll_ci,
         "offroad_rate": off_rate, "offroad_ci95": off_ci,
         "success_rate": succ_rate, "success_ci95": succ_ci,
+        "timeout_rate": timeout_rate, "timeout_ci95": timeout_ci,
+        "timeouts_outside_goal_lanes": int(stalled.sum()),
         "mean_speed_mps": speed, "mean_speed_ci95": speed_ci,
         "progress_m": prog, "progress_ci95": prog_ci,
         "rms_jerk_mps3": jerk, "rms_jerk_ci95": jerk_ci,
@@ -79,7 +89,9 @@ def calibration(predicted: list[float], happened: list[int], num_bins: int = 10)
         return {"decisions": 0}
     bins = reliability_bins(p, y, num_bins)
     clean = [{k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in b.items()} for b in bins]
-    return {"decisions": int(len(p)), "brier": float(brier_score(p, y)),
+    # "positives": decisions followed by a collision within the horizon; with none or few, a small ECE only says
+    # that the predictions were small, not that they were calibrated where it matters
+    return {"decisions": int(len(p)), "positives": int(y.sum()), "brier": float(brier_score(p, y)),
             "ece": float(expected_calibration_error(p, y, num_bins)), "num_bins": num_bins,
             "mean_predicted": float(p.mean()), "observed_rate": float(y.mean()), "bins": clean}
 
@@ -104,15 +116,24 @@ def write_outputs(out_dir: Path, summary: dict, rows: list[dict], calib_rows: li
     atomic_write_json(out_dir / "summary.json", summary)
 
 
-def format_table(results: dict[str, dict]) -> str:
-    """The terminal table: one row per planner, rates with their 95% intervals."""
-    head = f"{'planner':<24}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}{'speed m/s':>11}{'decision ms':>13}"
+def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None) -> str:
+    """The terminal table: one row per planner, rates with their 95% intervals; with ``calib`` (planner ->
+    :func:`calibration` output) also the ECE and, beside it, how many decisions were followed by a collision."""
+    head = (f"{'planner':<24}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}"
+            f"{'timeout':>9}{'speed m/s':>11}{'decision ms':>13}")
+    if calib is not None:
+        head += f"{'ECE (positives)':>18}"
     lines = [head, "-" * len(head)]
     for name, r in results.items():
         c, s = r["collision_ci95"], r["success_ci95"]
-        lines.append(
+        line = (
             f"{name:<24}{r['episodes']:>5}  {r['collision_rate']:.3f} [{c[0]:.3f}, {c[1]:.3f}]   "
-            f"{r['success_rate']:.3f} [{s[0]:.3f}, {s[1]:.3f}]   {r['offroad_rate']:>7.3f}{r['mean_speed_mps']:>11.1f}"
-            f"{r['decision_ms_median']:>13.1f}"
+            f"{r['success_rate']:.3f} [{s[0]:.3f}, {s[1]:.3f}]   {r['offroad_rate']:>7.3f}"
+            f"{r.get('timeout_rate', math.nan):>9.3f}{r['mean_speed_mps']:>11.1f}{r['decision_ms_median']:>13.1f}"
         )
+        if calib is not None:
+            cal = calib.get(name, {})
+            line += (f"{cal['ece']:>10.4f} ({cal.get('positives', '?')})".rjust(18) if cal.get("decisions")
+                     else f"{'-':>18}")
+        lines.append(line)
     return "\n".join(lines)
