@@ -84,11 +84,6 @@ def _gather(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
     return np.take(a, _offsets(a) + idx)
 
 
-def _gather_rows(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
-    """a[s, idx[s, i], :] for (S, V, K) arrays."""
-    return np.take(a.reshape(a.shape[0] * a.shape[1], -1), _offsets(a) + idx, axis=0)
-
-
 @functools.lru_cache(maxsize=8)
 def _positions(s_n: int, v_n: int) -> np.ndarray:
     """0, 1, ..., V-1 repeated for S scenes, flat (read-only; cached per shape)."""
