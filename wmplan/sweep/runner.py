@@ -84,17 +84,23 @@ def _cell_rows(cell: Cell, fn: PlannerFn, kinds: dict[str, str]) -> list[dict]:
 
 def _exit_when_orphaned(parent_pid: int) -> None:
     while True:
-        time.sleep(1.0)
         if os.getppid() != parent_pid:  # the run was killed: its results have nowhere to go
             os._exit(1)
+        time.sleep(0.5)
 
 
-def _init_worker() -> None:
+def _init_worker(parent_pid: int) -> None:
     """Keep each worker's math libraries to one thread, so N workers use N cores and no more; end the worker if
-    the process that started it dies (a killed run must not leave workers behind)."""
+    the process that started it dies (a killed run must not leave workers behind).
+
+    ``parent_pid`` is the run's process id, passed in rather than read here: a worker still importing when the run
+    is killed has already been re-parented by the time this runs, and ``os.getppid()`` would name its new parent.
+    """
     for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
         os.environ.setdefault(var, "1")
-    threading.Thread(target=_exit_when_orphaned, args=(os.getppid(),), daemon=True).start()
+    if os.getppid() != parent_pid:
+        os._exit(1)
+    threading.Thread(target=_exit_when_orphaned, args=(parent_pid,), daemon=True).start()
 
 
 class InlineExecutor(Executor):
@@ -139,7 +145,7 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
         yield InlineExecutor(), 1
     else:
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=_init_worker)
+                                   initializer=_init_worker, initargs=(os.getpid(),))
         try:
             yield pool, 2 * workers
         except BaseException:  # interrupted: do not wait for the cells still running, their results are lost anyway
