@@ -34,6 +34,16 @@ E_f[f/g] = s / sqrt(2 - 1/s^2) per coordinate (s = proposal std / nominal std; i
 (``std_floor``, in units of the nominal's) at 1 by default: the cross-entropy method moves the proposal's mean, and
 may widen it, but does not narrow it.
 
+How much importance sampling over X can gain when each sample's value is a failure rate h(X) measured from m
+episodes (conditional Monte Carlo): the variance per episode is m Var_g(v W) with v = k / m, k ~ Binomial(m, h(X)),
+and its binomial part alone is E_f[h (1 - h) f / g] >= (E_f[sqrt(h)])^2 (1 - max h), reached by g proportional to
+f sqrt(h) (Cauchy-Schwarz). Plain Monte Carlo's is p (1 - p). So the gain is bounded by about
+p / (E_f[sqrt(h)])^2 unless h comes close to 1 somewhere: if failures stay rare for every X (they hinge on the
+traffic seed more than on X), importance sampling over X cannot beat plain Monte Carlo by much, whatever the
+proposal. Worked numbers (numerical integration, h = min(1, p0 exp(beta x)), x standard normal, m = 4, best
+Gaussian proposal N(mu, 1)): p0 = 1e-3, beta = 1 -> p = 1.7e-3, gain 1.3; beta = 2 -> p = 7.1e-3, gain 2.5;
+p0 = 1e-4, beta = 3 -> p = 5.8e-3, gain 5.7. A tenfold gain needs X that make failure likely, not merely likelier.
+
 Defensive mixture (Hesterberg, "Weighted average importance sampling and defensive mixture distributions",
 Technometrics 1995, from memory): the final stage may draw from alpha f + (1 - alpha) g instead of g. Then every
 weight is at most 1 / alpha, and the estimator's variance is at most about 1 / alpha times plain Monte Carlo's, even
