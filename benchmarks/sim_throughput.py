@@ -12,6 +12,9 @@ heading):
 * ``speedup_vs_loop``: seconds per step of ``benchmarks/loop_reference.step_loop`` (Python loops over scenes
   and vehicles, ``math`` on floats) divided by those of ``engine.step``, on identical states (same scenes, same
   steps), in the same process; the two final states are compared, and the result says whether they agree.
+* ``threaded``: 8192 scenes (the oracle's batch size) stepped on one thread and split into contiguous chunks
+  stepped in parallel threads of this process (``wmplan.sim.threads``), alternately, side by side: both rates, the
+  ``speedup``, and whether the final states are equal. Smaller batches are not split (they lose: see that module).
 
 Usage: ``python benchmarks/sim_throughput.py [--quick] [--json FILE]``; ``wmplan bench`` calls :func:`run`.
 Importing this module runs nothing. Numbers depend on the machine and on what else it is doing; the load average
@@ -35,6 +38,7 @@ import numpy as np
 
 SCENARIO = "open-road"
 SCENE_COUNTS = (64, 512, 2048)
+THREADED_SCENES = 8192  # 16 scenes x 64 plans x 8 futures: the oracle's batch at the default planner budget
 FULL = dict(warmup_steps=30, timed_steps=30, repeats=7, loop_scenes=512, loop_steps=6, loop_repeats=3,
             engine_repeats_vs_loop=15)
 QUICK = dict(warmup_steps=6, timed_steps=6, repeats=3, loop_scenes=512, loop_steps=3, loop_repeats=1,
@@ -95,6 +99,7 @@ def run(quick: bool = False) -> dict:
     """Measure; return the results as a JSON-ready dict (see the module docstring for what each number means)."""
     from wmplan.scenario import load_scenario
     from wmplan.sim import SimParams, initial_state, step
+    from wmplan.sim.threads import chunk_bounds, map_chunks, sim_threads
 
     cfg = QUICK if quick else FULL
     machine = _machine()
@@ -114,6 +119,33 @@ def run(quick: bool = False) -> dict:
         occupied_rates[str(num_scenes)] = num_scenes * mean_valid * cfg["timed_steps"] / sec
         occupancy[str(num_scenes)] = mean_valid
 
+    # --- a large batch (the oracle's size) on one thread and split over threads of this process, side by side ---
+    threads = max(2, sim_threads())
+    n_big = THREADED_SCENES
+    action = np.zeros((n_big, 2))
+    state = _advance(step, initial_state(params, list(range(n_big))), action, params, cfg["warmup_steps"])
+    bounds = chunk_bounds(n_big, threads)
+    ends: list = [None] * len(bounds)
+
+    def run_chunk(a: int, b: int) -> None:
+        ends[bounds.index((a, b))] = _advance(step, state.rows(a, b), action[a:b], params, cfg["timed_steps"])
+
+    one_wall, many_wall = [], []
+    for _ in range(max(3, cfg["repeats"] // 2)):
+        t0 = time.perf_counter()
+        one_end = _advance(step, state, action, params, cfg["timed_steps"])
+        one_wall.append(time.perf_counter() - t0)
+        t0 = time.perf_counter()
+        map_chunks(run_chunk, n_big, threads)
+        many_wall.append(time.perf_counter() - t0)
+    same, _ = _max_abs_diff(one_end, type(one_end).concat(ends))
+    work = n_big * num_slots * cfg["timed_steps"]
+    threaded = {"scenes": n_big, "threads": len(bounds),
+                "one_thread_vehicle_steps_per_s": work / statistics.median(one_wall),
+                "threaded_vehicle_steps_per_s": work / statistics.median(many_wall),
+                "speedup": statistics.median(one_wall) / statistics.median(many_wall),
+                "same_states_as_one_thread": same}
+
     # --- the same steps done by the engine and by the per-vehicle loop ---
     loop_step = _loop_reference().step_loop
     n_s, n_k = cfg["loop_scenes"], cfg["loop_steps"]
@@ -130,6 +162,7 @@ def run(quick: bool = False) -> dict:
         "quick": quick,
         "vehicle_steps_per_s": rates,
         "vehicle_steps_per_cpu_s": cpu_rates,
+        "threaded": threaded,
         "occupied_vehicle_steps_per_s": occupied_rates,
         "mean_occupied_slots": occupancy,
         "speedup_vs_loop": loop_sec / eng_sec,

@@ -25,6 +25,7 @@ from wmplan.sim.features import ACTION_DIM
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import draw_traits
 from wmplan.sim.state import EGO, TrafficState
+from wmplan.sim.threads import map_chunks
 
 OracleMode = Literal["known", "resampled"]
 
@@ -110,12 +111,13 @@ def oracle_futures(state: TrafficState, params: SimParams, plans: np.ndarray, nu
 
 def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndarray, plans: np.ndarray,
                          num_futures: int, *, mode: OracleMode = "known", plan_dt_s: float = 0.2,
-                         seed: int | np.ndarray = 0) -> OracleFutures:
+                         seed: int | np.ndarray = 0, threads: int | None = None) -> OracleFutures:
     """:func:`oracle_futures` for several scenes at once: plans (S, C, H, 2) -> leading axes (S, C, K).
 
     All S x C x K futures run as one batch of the engine. The K futures of a scene are shared by its C plans
     (common random numbers) and do not depend on which other scenes are in the batch. ``seed`` is one integer or
-    one per scene (S,).
+    one per scene (S,). Large batches are split over ``threads`` threads (default: ``threads.sim_threads()``);
+    the futures are the same for any thread count.
     """
     plans = np.asarray(plans, dtype=np.float64)
     scenes = np.asarray(scenes, dtype=np.int64)
@@ -138,17 +140,26 @@ def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndar
     rows = np.empty((n, h_n, v_n, 8))
     ids = np.empty((n, h_n, v_n), dtype=np.int64)
     first = np.full(n, h_n, dtype=np.int64)
-    for h in range(h_n):
-        for _ in range(sub):
-            st, _info = step(st, actions[:, h], params)
-        rows[:, h] = st.vehicles()
-        ids[:, h] = st.vehicle_id
-        first = np.where((first == h_n) & (st.collided | st.offroad), h, first)
+    collided = np.empty(n, dtype=bool)
+    offroad = np.empty(n, dtype=bool)
+
+    def run(a: int, b: int) -> None:  # futures [a, b): each chunk writes only its own rows
+        chunk = st.rows(a, b)
+        for h in range(h_n):
+            act = actions[a:b, h]
+            for _ in range(sub):
+                chunk, _info = step(chunk, act, params)
+            rows[a:b, h] = chunk.vehicles()
+            ids[a:b, h] = chunk.vehicle_id
+            first[a:b] = np.where((first[a:b] == h_n) & (chunk.collided | chunk.offroad), h, first[a:b])
+        collided[a:b], offroad[a:b] = chunk.collided, chunk.offroad
+
+    map_chunks(run, n, threads)
     lead = (s_n, c_n, k_n)
     return OracleFutures(
         vehicles=rows.reshape(*lead, h_n, v_n, -1),
         vehicle_id=ids.reshape(*lead, h_n, v_n),
-        collided=st.collided.reshape(lead),
-        offroad=st.offroad.reshape(lead),
+        collided=collided.reshape(lead),
+        offroad=offroad.reshape(lead),
         first_collision_step=first.reshape(lead),
     )

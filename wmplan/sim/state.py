@@ -87,6 +87,10 @@ class TrafficState:
         idx = np.atleast_1d(np.asarray(scene_idx, dtype=np.int64))
         return TrafficState(**{f.name: getattr(self, f.name)[idx] for f in dataclasses.fields(self)})
 
+    def rows(self, start: int, stop: int) -> TrafficState:
+        """Scenes [start, stop) as views of this state's arrays (no copy; states are never written in place)."""
+        return TrafficState(**{f.name: getattr(self, f.name)[start:stop] for f in dataclasses.fields(self)})
+
     def vehicles(self) -> np.ndarray:
         """World-frame vehicle rows (S, V, F) in the order of ``features.VEHICLE_FEATURES``."""
         cols = [self.x_m, self.y_m, self.vx_mps, self.vy_mps, self.heading_rad, self.length_m, self.width_m,

@@ -90,13 +90,14 @@ def _exit_when_orphaned(parent_pid: int) -> None:
 
 
 def _init_worker(parent_pid: int) -> None:
-    """Keep each worker's math libraries to one thread, so N workers use N cores and no more; end the worker if
-    the process that started it dies (a killed run must not leave workers behind).
+    """Keep each worker's math libraries and the engine (``wmplan.sim.threads``) to one thread, so N workers use
+    N cores and no more; end the worker if the process that started it dies (a killed run must not leave workers
+    behind).
 
     ``parent_pid`` is the run's process id, passed in rather than read here: a worker still importing when the run
     is killed has already been re-parented by the time this runs, and ``os.getppid()`` would name its new parent.
     """
-    for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS"):
+    for var in ("OMP_NUM_THREADS", "MKL_NUM_THREADS", "OPENBLAS_NUM_THREADS", "WMPLAN_SIM_THREADS"):
         os.environ.setdefault(var, "1")
     if os.getppid() != parent_pid:
         os._exit(1)
