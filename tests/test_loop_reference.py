@@ -226,5 +226,7 @@ def test_throughput_benchmark_quick_run(tmp_path, capsys):
     assert set(result["vehicle_steps_per_s"]) == {"64", "512", "2048"}
     assert all(np.isfinite(v) and v > 0 for v in result["vehicle_steps_per_s"].values())
     assert result["vs_loop"]["states_agree"] is True and result["speedup_vs_loop"] > 1.0
+    threaded = result["threaded"]  # the split over threads gives the one-thread states bit for bit
+    assert threaded["same_states_as_one_thread"] is True and threaded["threads"] >= 2 and threaded["speedup"] > 0
     assert {"platform", "numpy", "cpu_count"} <= set(result["machine"])
     assert not list(tmp_path.glob("*.tmp"))  # the atomic write left no temporary file behind
