@@ -334,6 +334,8 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
 def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path, *, options: dict | None = None) -> Path:
     """Replay one saved failure with its planner and draw it as an animation (stress tests call this)."""
+    import numpy as np
+
     from wmplan.evaluate.closed_loop import record_episode
     from wmplan.scenario import load_scenario
     from wmplan.sim.params import SimParams
@@ -346,9 +348,10 @@ def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path
     frames, row = record_episode(scn, planner, seed, model_dir=options.get("model"),
                                  deterministic_dir=options.get("deterministic"))
     params = SimParams.from_scenario(scn)
-    shown = frames[::2]
-    last = len(shown) - 1
-    return save_episode_animation(shown, params, out_file, fps=5.0, collided_at=last if row["collision"] else None,
+    keep = np.unique(np.r_[np.arange(0, len(frames), 2), len(frames) - 1])  # every other step, and the last one
+    last = len(keep) - 1
+    return save_episode_animation(frames[keep], params, out_file, fps=5.0, frame_steps=keep,
+                                  collided_at=last if row["collision"] else None,
                                   offroad_at=last if row["offroad"] else None, title=f"{planner}, seed {seed}")
 
 
@@ -381,6 +384,24 @@ def cmd_stress(args: argparse.Namespace) -> int:
     print(f"  failure probability (importance sampling): {interval(fp)}, ESS {num(fp.get('ess'))}")
     print(f"  plain Monte Carlo, same budget:            {interval(mc)}")
     return 0
+
+
+def cmd_replay(args: argparse.Namespace) -> int:
+    from wmplan.stress.search import is_failure, replay_episode
+
+    options = {k: v for k, v in (("model", args.model), ("deterministic", args.deterministic)) if v}
+    info, row = replay_episode(args.failure, options)
+    what = row.get("outcome") or ("collision" if row["collision"] else "off-road" if row["offroad"] else "no failure")
+    again = is_failure(row)
+    print(f"{args.failure}: {info['planner']} on {info['scenario_file']}, seed {info['seed']}: "
+          f"{'fails again' if again else 'does NOT fail again'} ({what} at t = {row['time_s']:.1f} s)")
+    if args.out:
+        folder = Path(args.failure).parent
+        merged = {**(info.get("planner_options") or {}), **options}
+        path = animate_failure(folder / info["scenario_file"], int(info["seed"]), info["planner"], Path(args.out),
+                               options=merged)
+        print(f"wrote {path}")
+    return 0 if again else 1
 
 
 def cmd_report(args: argparse.Namespace) -> int:
@@ -501,6 +522,13 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_stress)
+
+    sp = sub.add_parser("replay", help="run a failure saved by `wmplan stress` again; exit 0 if it fails again, 1 if not")
+    sp.add_argument("failure", help="the failure's .json record (or the .yaml beside it)")
+    sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
+    sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
+    sp.add_argument("--out", metavar="FILE", help="also draw the replayed episode: FILE.gif (or .mp4 with ffmpeg)")
+    sp.set_defaults(func=cmd_replay)
 
     sp = sub.add_parser("report", help="write report.html and report.md from what a run left in RUN_DIR")
     sp.add_argument("run_dir")

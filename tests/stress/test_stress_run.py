@@ -148,3 +148,39 @@ def test_bad_arguments_are_one_line(harsh: Scenario, tmp_path: Path) -> None:
     with pytest.raises(ConfigError, match=re.escape("knob x: path 'drivers.yield' is not a field of the scenario")):
         run_stress(harsh, "rules", 200, tmp_path, 0, knobs=[Knob("x", "drivers.yield", "shift", 1.0)])
     assert yaml.safe_load(scenario_to_yaml(harsh))["name"] == "harsh-merge"
+
+
+def test_replay_verb_reruns_a_saved_failure(stress_run: tuple[dict, Path], tmp_path: Path, capsys) -> None:
+    """``wmplan replay FAILURE.json``: one line saying the episode fails again, exit 0; ``--out`` draws it; a
+    record of an episode that does not fail exits 1; a missing record is a one-line error with exit 2."""
+    from wmplan.cli import main
+
+    report, out = stress_run
+    record = out / "failures" / report["failures_saved"][0]
+    assert main(["replay", str(record), "--out", str(tmp_path / "again.gif")]) == 0
+    said = capsys.readouterr().out.splitlines()
+    assert said[0].startswith(f"{record}: rules on ") and "fails again (" in said[0]
+    assert (tmp_path / "again.gif").stat().st_size > 0
+    (tmp_path / "calm.yaml").write_text(scenario_to_yaml(load_scenario("open-road")))
+    (tmp_path / "calm.json").write_text(json.dumps({"scenario_file": "calm.yaml", "planner": "rules", "seed": 1}))
+    assert main(["replay", str(tmp_path / "calm.json")]) == 1
+    assert "does NOT fail again" in capsys.readouterr().out
+    assert main(["replay", str(tmp_path / "nope.json")]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "no such failure record" in err[0]
+
+
+def test_recorded_episode_is_the_episode_stress_runs_saw() -> None:
+    """The animation of a saved failure replays it with ``record_episode``; that must be the same episode the
+    stress run simulated through ``run_episodes`` (same scene seed, same seeding of the planner's sampling), not a
+    look-alike. Checked on a sampling planner, whose episodes depend on that seeding (common practice, no source)."""
+    from wmplan.evaluate.closed_loop import record_episode
+    from wmplan.sweep.episodes import run_episodes
+
+    scn = load_scenario("cut-in")
+    seed = 12345
+    frames, row = record_episode(scn, "mpc+constant-velocity", seed)
+    (ref,) = run_episodes(scn, "mpc+constant-velocity", [seed])
+    for key in ("collision", "offroad", "success", "decisions", "progress_m", "mean_speed_mps"):
+        assert row[key] == ref[key], key
+    assert frames.shape[0] == row["decisions"] * 2 + 1

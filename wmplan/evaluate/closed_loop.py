@@ -216,14 +216,17 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
 
 
 def record_episode(scenario: Scenario, planner_name: str, seed: int, *, model_dir=None, deterministic_dir=None,
-                   planner_cfg: PlannerConfig | None = None) -> tuple[np.ndarray, dict]:
-    """World rows (T, V, F) of one closed-loop episode (scene seed ``seed``) and its outcome row."""
+                   planner_cfg: PlannerConfig | None = None, eval_seed: int = 0) -> tuple[np.ndarray, dict]:
+    """World rows (T, V, F) of one closed-loop episode (scene seed ``seed``) and its outcome row.
+
+    ``eval_seed`` seeds the planner's sampling as the ``seed`` of :func:`evaluate_seeds` does (sweeps and stress
+    tests run with 0): with the same value the recorded episode is the one those runs saw."""
     params = SimParams.from_scenario(scenario)
     planner = build_planner(planner_name, params, model_dir=model_dir, deterministic_dir=deterministic_dir,
                             cfg=planner_cfg)
     state0 = initial_state(params, [seed])
     frames: list[np.ndarray] = [state0.vehicles()]
-    out = run_batch(params, planner_name, planner, np.array([seed]), seed=seed, frames=frames)
+    out = run_batch(params, planner_name, planner, np.array([seed]), seed=eval_seed, frames=frames)
     row = out.rows[0]
     steps = int(round(row["decisions"] * (planner.cfg.plan_dt_s if planner is not None else 0.2) / params.dt_s))
     return np.stack(frames)[: steps + 1, 0], row

@@ -17,7 +17,7 @@ from wmplan.stress.rare_event import (
     plain_monte_carlo,
 )
 from wmplan.stress.runner import cli_stress, nominal_reference, run_stress
-from wmplan.stress.search import replay, search_failures
+from wmplan.stress.search import replay, replay_episode, search_failures
 
 __all__ = [
     "DEFAULT_KNOBS",
@@ -33,6 +33,7 @@ __all__ = [
     "nominal_reference",
     "plain_monte_carlo",
     "replay",
+    "replay_episode",
     "run_stress",
     "search_failures",
 ]

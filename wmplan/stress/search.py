@@ -227,6 +227,13 @@ def replay(failure_file: str | Path) -> bool:
     Args:
         failure_file: the ``.json`` written by :func:`save_failures`, or the ``.yaml`` beside it.
     """
+    _info, row = replay_episode(failure_file)
+    return is_failure(row)
+
+
+def replay_episode(failure_file: str | Path, planner_options: dict[str, Any] | None = None) -> tuple[dict, dict]:
+    """Run a saved failure again: (its record, the new episode row). ``planner_options`` replace the recorded
+    ones key by key (e.g. a model folder that has moved since)."""
     path = Path(failure_file)
     json_path = path.with_suffix(".json")
     if not json_path.is_file():
@@ -237,8 +244,9 @@ def replay(failure_file: str | Path) -> bool:
         planner, seed, options = info["planner"], int(info["seed"]), dict(info.get("planner_options") or {})
     except (OSError, ValueError, KeyError, TypeError) as err:
         raise ConfigError(f"{json_path}: not a failure record ({type(err).__name__}: {err})") from None
+    options.update(planner_options or {})
     row = run_episodes(load_scenario(scenario_file), planner, [seed], **options)[0]
-    return is_failure(row)
+    return info, row
 
 
 def search_failures(scenario: Scenario | str | Path, planner: str, budget: int, out_dir: str | Path, seed: int, *,

@@ -115,6 +115,7 @@ def _check_frames(frames: np.ndarray) -> np.ndarray:
 
 
 def _frame_title(prefix: str | None, t: int, params: SimParams, ego_row: np.ndarray, events: str) -> str:
+    """Title of a frame drawn at simulator step ``t``."""
     speed = float(np.hypot(ego_row[F_VX], ego_row[F_VY]))
     head = f"{prefix}   " if prefix else ""
     return f"{head}t = {t * params.dt_s:4.1f} s   ego {speed:4.1f} m/s{events}"
@@ -128,7 +129,8 @@ def _events_text(t: int, collided_at: int | None, offroad_at: int | None, goal_a
 
 def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Path, *, fps: float = 10.0,
                            collided_at: int | None = None, offroad_at: int | None = None,
-                           goal_at: int | None = None, title: str | None = None, width_px: int = 1000) -> Path:
+                           goal_at: int | None = None, title: str | None = None, width_px: int = 1000,
+                           frame_steps: np.ndarray | None = None) -> Path:
     """Write an animation of an episode: a GIF (through pillow), or an MP4 if ``path`` ends in ``.mp4`` and the
     ``ffmpeg`` program is on PATH.
 
@@ -141,6 +143,8 @@ def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Pa
             ``collided_at`` on, and the title names the events.
         title: text before the time stamp in every frame's title (e.g. the scenario name and seed).
         width_px: frame width in pixels.
+        frame_steps: the simulator step each frame shows, for the time stamps (default 0, 1, 2, ...: every step;
+            pass them when drawing a subset of the steps).
 
     Returns:
         The path written.
@@ -156,10 +160,13 @@ def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Pa
         raise ConfigError(f"{path}: writing .mp4 needs the ffmpeg program on PATH, which was not found; "
                           "install ffmpeg or write a .gif")
     frames = _check_frames(frames)
+    steps = np.arange(len(frames)) if frame_steps is None else np.asarray(frame_steps, dtype=np.int64)
+    if steps.shape != (len(frames),):
+        raise ConfigError(f"frame_steps must give one step per frame ({len(frames)}), got shape {steps.shape}")
     renderer = SceneRenderer(params, width_px=width_px)
     images = []
     for t, rows in enumerate(frames):
-        text = _frame_title(title, t, params, rows[EGO], _events_text(t, collided_at, offroad_at, goal_at))
+        text = _frame_title(title, int(steps[t]), params, rows[EGO], _events_text(t, collided_at, offroad_at, goal_at))
         images.append(renderer.render(rows, title=text, collided=collided_at is not None and t >= collided_at))
     renderer.close()
     data = _gif_bytes(images, fps) if suffix == ".gif" else _mp4_bytes(images, fps, ffmpeg, path)
