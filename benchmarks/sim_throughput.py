@@ -125,10 +125,9 @@ def run(quick: bool = False) -> dict:
     action = np.zeros((n_big, 2))
     state = _advance(step, initial_state(params, list(range(n_big))), action, params, cfg["warmup_steps"])
     bounds = chunk_bounds(n_big, threads)
-    ends: list = [None] * len(bounds)
 
-    def run_chunk(a: int, b: int) -> None:
-        ends[bounds.index((a, b))] = _advance(step, state.rows(a, b), action[a:b], params, cfg["timed_steps"])
+    def run_chunk(a: int, b: int):
+        return _advance(step, state.rows(a, b), action[a:b], params, cfg["timed_steps"])
 
     one_wall, many_wall = [], []
     for _ in range(max(3, cfg["repeats"] // 2)):
@@ -136,7 +135,7 @@ def run(quick: bool = False) -> dict:
         one_end = _advance(step, state, action, params, cfg["timed_steps"])
         one_wall.append(time.perf_counter() - t0)
         t0 = time.perf_counter()
-        map_chunks(run_chunk, n_big, threads)
+        ends = map_chunks(run_chunk, n_big, threads)  # final states, in chunk order
         many_wall.append(time.perf_counter() - t0)
     same, _ = _max_abs_diff(one_end, type(one_end).concat(ends))
     work = n_big * num_slots * cfg["timed_steps"]

@@ -4,9 +4,10 @@ Scenes never interact and every random draw is a hash of the scene's own key and
 own gives bit for bit what it gives inside the whole batch (the determinism tests check this across batch sizes).
 numpy releases the interpreter lock inside its array loops, so two threads stepping two halves of a batch overlap
 most of their work; the Python between the numpy calls still runs one thread at a time, so only large batches
-gain. Measured on a 2-core machine (``benchmarks/sim_throughput.py``, ``threaded``): 512 scenes ran at half the
-one-thread speed on two threads, 2048 about even, and the oracle's 8192 futures (16 scenes x 64 plans x 8) 1.8x
-faster.
+gain. Measured side by side on a 2-core machine while this module was written (open-road stepping, and the oracle
+itself): 512 scenes ran at about half the one-thread speed on two threads, 2048 about even, and the oracle's 8192
+futures (16 scenes x 64 plans x 8) 1.8x faster. ``benchmarks/sim_throughput.py`` (``threaded``) keeps measuring
+the large-batch case.
 
 The thread count is ``WMPLAN_SIM_THREADS`` if set, else the number of cores this process may use, at most 4.
 Workers of a process pool (sweeps, stress tests) set it to 1, so that N workers use N cores, not N^2 threads.
