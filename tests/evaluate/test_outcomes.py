@@ -100,8 +100,10 @@ def test_a_collision_is_the_outcome_when_the_ego_hits_a_stopped_vehicle():
     _, out, _ = run_with_frames(scn, "mpc+constant-velocity", np.array([0]), cfg=cfg)
     row = out.rows[0]
     assert row["collision"] and row["outcome"] == "collision"
+    assert row["contact_side"] == "front"  # it ran into the stopped car ahead (wmplan.sim.engine.contact_sides)
     assert row["final_lane"] == 0 and row["in_goal_lane"]
     assert summarise_planner(out.rows)["timeout_rate"] == 0.0
+    assert summarise_planner(out.rows)["collisions_by_contact_side"] == {"front": 1}
 
 
 def _row(outcome: str, in_goal_lane: bool) -> dict:
@@ -120,6 +122,11 @@ def test_timeout_rate_has_a_wilson_interval():
     assert s["timeout_rate"] == pytest.approx(7 / 40)
     assert s["timeout_ci95"] == pytest.approx([ci.low, ci.high], abs=1e-9)
     assert s["timeouts_outside_goal_lanes"] == 3
+    assert s["collisions_by_contact_side"] == {}  # these rows carry no contact side
+    s2 = summarise_planner([{**_row("collision", True), "contact_side": "rear"}, _row("goal", True),
+                            {**_row("collision", True), "contact_side": "left"},
+                            {**_row("collision", True), "contact_side": "rear"}])
+    assert s2["collisions_by_contact_side"] == {"rear": 2, "left": 1}
     assert s["success_rate"] + s["collision_rate"] + s["offroad_rate"] + s["timeout_rate"] == pytest.approx(1.0)
 
 

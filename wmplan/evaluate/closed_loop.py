@@ -3,7 +3,8 @@
 Every planner meets the same episodes (the same scene seeds: a paired comparison). A batch of episodes runs as one
 simulator state and one planner call per decision; finished episodes drop out of the planner's batch.
 
-Per-episode rows (keys): planner, episode, seed, collision, offroad, success (goal reached without collision or
+Per-episode rows (keys): planner, episode, seed, collision, contact_side (the side of the ego touched in a
+collision: front, rear, left or right, empty without one; :func:`wmplan.sim.engine.contact_sides`), offroad, success (goal reached without collision or
 leaving the road), outcome (how the episode ended, one of OUTCOMES: 'collision', 'offroad', 'goal', or 'timeout'
 when the time ran out first; a collision outranks leaving the road in the same step), final_lane (the lane holding
 the ego's centre when the episode ended), in_goal_lane (whether that lane is one of the goal's lanes: a timeout
@@ -34,7 +35,7 @@ from wmplan.plan.predictors import ModelPredictor, OraclePredictor, make_context
 from wmplan.plan.risk import ttc_to_leader_s
 from wmplan.scenario import Scenario
 from wmplan.sim.ego_rules import rule_actions
-from wmplan.sim.engine import step
+from wmplan.sim.engine import contact_sides, step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
@@ -125,6 +126,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     fin_goal = np.zeros(e_n, dtype=bool)
     fin_x = np.full(e_n, np.nan)
     fin_y = np.full(e_n, np.nan)
+    contact = [""] * e_n  # side of the ego touched in a collision (wmplan.sim.engine.contact_sides)
     dec_ms = np.zeros(e_n)
     tilted = params.tilt is not None and params.tilt.active
     log_w = np.zeros(e_n)  # log f/g of the tilted draws while the episode runs (wmplan.sim.tilt)
@@ -154,6 +156,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
         dec_ms[act_idx] += elapsed_ms / len(act_idx)
         for _ in range(sub):
             was_done = state.done
+            before = state
             state, info = step(state, actions, params)
             if frames is not None:
                 frames.append(state.vehicles())
@@ -169,6 +172,9 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             newly = live & state.done
             end_dec = np.where(newly, t + 1, end_dec)
             fin_coll |= newly & state.collided
+            hit_now = np.nonzero(newly & state.collided)[0]
+            for i, side in zip(hit_now, contact_sides(state, hit_now, before), strict=True):
+                contact[i] = side
             fin_off |= newly & state.offroad
             fin_goal |= newly & state.reached_goal
             fin_x = np.where(newly, state.x_m[:, EGO], fin_x)
@@ -198,6 +204,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             "planner": planner_name,
             "seed": int(seeds[i]),
             "collision": bool(fin_coll[i]),
+            "contact_side": contact[i],
             "offroad": bool(fin_off[i]),
             "success": bool(fin_goal[i] and not fin_coll[i] and not fin_off[i]),
             "outcome": str(outcome[i]),

@@ -22,6 +22,7 @@ from wmplan.evaluate.stats import (
     wilson_interval,
 )
 from wmplan.io import atomic_write_bytes, atomic_write_json
+from wmplan.sim.engine import CONTACT_SIDES
 
 CAUTION = ("Results on a simplified traffic model; they certify nothing about a real vehicle. Real programmes "
            "follow ISO 26262, ISO 21448, local regulation and licensed engineering practice.")
@@ -47,7 +48,8 @@ def _mean(values: np.ndarray) -> tuple[float, list[float]]:
 def summarise_planner(rows: list[dict]) -> dict:
     """Rates with Wilson 95% intervals and means with t intervals for one planner's episodes.
 
-    Besides collisions, leaving the road and success, the timeouts (episodes that ran out of time without reaching
+    Collisions are also counted by the side of the ego that was touched (``collisions_by_contact_side``: front,
+    rear, left, right; see :func:`wmplan.sim.engine.contact_sides`). Besides collisions, leaving the road and success, the timeouts (episodes that ran out of time without reaching
     the goal, colliding or leaving the road) and how many of them ended outside the goal's lanes (a stall before
     the merge; rows without ``in_goal_lane`` count as inside)."""
     col = np.array([r["collision"] for r in rows])
@@ -65,9 +67,11 @@ def summarise_planner(rows: list[dict]) -> dict:
     jerk, jerk_ci = _mean(np.array([r["rms_jerk_mps3"] for r in rows]))
     ttc = np.array([r["min_ttc_s"] for r in rows])
     dec = np.array([r["decision_ms"] for r in rows])
+    sides = [r.get("contact_side", "") for r in rows if r["collision"]]
     return {
         "episodes": len(rows),
         "collision_rate": coll_rate, "collision_ci95": coll_ci,
+        "collisions_by_contact_side": {k: sides.count(k) for k in CONTACT_SIDES if k in sides},
         "offroad_rate": off_rate, "offroad_ci95": off_ci,
         "success_rate": succ_rate, "success_ci95": succ_ci,
         "timeout_rate": timeout_rate, "timeout_ci95": timeout_ci,

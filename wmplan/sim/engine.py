@@ -541,6 +541,60 @@ def ego_collisions(arrays: dict) -> np.ndarray:
     return hit
 
 
+CONTACT_SIDES = ("front", "rear", "left", "right")
+
+
+def _in_ego_frame(state: TrafficState, scenes: np.ndarray, ce: np.ndarray, se: np.ndarray, ox: np.ndarray,
+                  oy: np.ndarray, oh: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Centres (n, V) of the given scenes' vehicles in a frame at (ox, oy) turned by oh (n, 1), and headings."""
+    dx, dy = state.x_m[scenes] - ox, state.y_m[scenes] - oy
+    return ce * dx + se * dy, -se * dx + ce * dy, state.heading_rad[scenes] - oh
+
+
+def contact_sides(state: TrafficState, scenes: np.ndarray, before: TrafficState | None = None) -> list[str]:
+    """The side of the ego's footprint that another vehicle touches, for the given scenes (a few: those that
+    collided this step); ``""`` where the ego touches nothing.
+
+    In the ego's frame (x forward, y to the left) each other vehicle is bounded by a box aligned with the ego's
+    axes. With ``before`` (the state one step earlier) the side is found as for two moving boxes: along each axis
+    the fraction of the step at which the projections began to overlap, and the axis that closed last is the one
+    of contact (Ericson, *Real-Time Collision Detection*, 2005, section 5.5.8, moving AABBs; from memory). A fast
+    run into the car ahead is thus ``"front"`` even when the step ends with the cars overlapping by more lengthwise
+    than sideways. Without ``before``, or where the other vehicle already overlapped along both axes a step
+    earlier, the axis of least overlap now decides. ``"rear"``: run into from behind; ``"left"`` / ``"right"``: a
+    contact beside the ego, as when either changes lane. Naming crashes by the first point of contact is common
+    practice, no source. Where several vehicles touch the ego, the one whose centre is nearest decides."""
+    scenes = np.asarray(scenes, dtype=np.int64)
+    if scenes.size == 0:
+        return []
+    x, y, ln, wd, hd = (getattr(state, k)[scenes] for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
+    valid = state.valid[scenes].copy()
+    valid[:, EGO] = False
+    touch = boxes_overlap(x[:, :1], y[:, :1], ln[:, :1], wd[:, :1], hd[:, :1], x, y, ln, wd, hd) & valid
+    ox, oy, oh = x[:, :1], y[:, :1], hd[:, :1]
+    ce, se = np.cos(oh), np.sin(oh)
+    fx, fy, rel = _in_ego_frame(state, scenes, ce, se, ox, oy, oh)
+    # reach of the two footprints along the ego's axes (the other's bounds in the ego's frame)
+    reach_x = 0.5 * ln[:, :1] + 0.5 * ln * np.abs(np.cos(rel)) + 0.5 * wd * np.abs(np.sin(rel))
+    reach_y = 0.5 * wd[:, :1] + 0.5 * ln * np.abs(np.sin(rel)) + 0.5 * wd * np.abs(np.cos(rel))
+    gap_x, gap_y = np.abs(fx) - reach_x, np.abs(fy) - reach_y  # <= 0: the projections overlap now
+    lengthwise = -gap_x <= -gap_y  # least overlap now
+    if before is not None:
+        # the same vehicles a step earlier, relative to the ego then, along the ego's present axes
+        bfx, bfy, _ = _in_ego_frame(before, scenes, ce, se, before.x_m[scenes, :1], before.y_m[scenes, :1], oh)
+        g0x, g0y = np.abs(bfx) - reach_x, np.abs(bfy) - reach_y
+        with np.errstate(divide="ignore", invalid="ignore"):
+            enter_x = np.where(g0x > 0, g0x / (g0x - gap_x), -np.inf)
+            enter_y = np.where(g0y > 0, g0y / (g0y - gap_y), -np.inf)
+        same = before.vehicle_id[scenes] == state.vehicle_id[scenes]
+        known = same & ((g0x > 0) | (g0y > 0))
+        lengthwise = np.where(known, enter_x >= enter_y, lengthwise)
+    side = np.where(lengthwise, np.where(fx >= 0, 0, 1), np.where(fy >= 0, 2, 3))
+    dist = np.where(touch, np.hypot(fx, fy), np.inf)
+    j = dist.argmin(axis=1)
+    return [CONTACT_SIDES[int(side[r, j[r]])] if touch[r, j[r]] else "" for r in range(scenes.size)]
+
+
 _CORNER_SIGNS = np.array([[1.0, 1.0], [-1.0, 1.0], [-1.0, -1.0], [1.0, -1.0]])  # box_corners' order
 
 
