@@ -167,7 +167,7 @@ def cmd_render(args: argparse.Namespace) -> int:
 # --- bench -----------------------------------------------------------------------------------------------------------
 
 BENCHMARKS = {"sim": "sim_throughput.py", "model": "model_throughput.py", "plan": "plan_latency.py",
-              "sweep": "sweep_scaling.py"}
+              "sweep": "sweep_scaling.py", "stress": "stress_batching.py"}
 
 
 def _load_benchmark(file_name: str):

@@ -29,7 +29,13 @@ import torch
 
 from wmplan.cli import main
 from wmplan.evaluate import stats
-from wmplan.evaluate.closed_loop import build_planner, evaluate_planner, evaluate_seeds, run_batch
+from wmplan.evaluate.closed_loop import (
+    build_planner,
+    evaluate_planner,
+    evaluate_seeds,
+    evaluate_variants,
+    run_batch,
+)
 from wmplan.evaluate.report import calibration
 from wmplan.plan.mpc import CostWeights, PlannerConfig
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict
@@ -37,6 +43,7 @@ from wmplan.sim.features import F_HEADING, F_LENGTH, F_VALID, F_WIDTH, F_X, F_Y
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO
+from wmplan.sim.variants import batchable
 
 SMALL = PlannerConfig(num_candidates=16, num_futures=2)
 ORACLE_SMALL = PlannerConfig(num_candidates=8, num_futures=2)
@@ -116,6 +123,47 @@ def test_planner_episodes_do_not_depend_on_the_batch_size(name):
     small = evaluate_planner(scn, name, episodes=4, seed=5, planner_cfg=cfg, batch_size=2)
     assert [r["seed"] for r in big.rows] == [r["seed"] for r in small.rows]
     assert without_latency(big.rows) == without_latency(small.rows)
+
+
+def _variants(duration_s: float) -> list[Scenario]:
+    """Four variants of a shortened onramp-merge that differ in traffic, drivers and the ego's start speed."""
+    out = []
+    for k, (density, speed, rate) in enumerate([(1.0, 22.0, 0.1), (1.6, 18.0, 2.0), (0.6, 26.0, 0.0),
+                                                (1.2, 22.0, 6.0)]):
+        d = copy.deepcopy(scenario_to_dict(short_scenario("onramp-merge", duration_s)))
+        d["traffic"]["density_veh_per_km"] = [density * v for v in d["traffic"]["density_veh_per_km"]]
+        d["ego"]["speed_mps"] = speed
+        d["drivers"]["hard_brake_rate_per_min"] = rate
+        d["drivers"]["yield_prob"]["mean"] = 0.2 * k + 0.1
+        out.append(parse_scenario(d, source=f"variant-{k}"))
+    return out
+
+
+@pytest.mark.parametrize("name", ["rules", "mpc+constant-velocity"])
+def test_variants_sharing_batches_give_the_rows_of_separate_runs(name):
+    """Episodes of four scenario variants run in shared batches (batch size 3, so batches straddle variants) give
+    exactly the rows each variant gives on its own (STYLE.md 9: results do not depend on the batching)."""
+    scenarios = _variants(4.0)
+    seeds = [np.array([11]), np.array([12, 13, 14]), np.array([15, 16]), np.array([17])]
+    cfg = planner_cfg(name)
+    shared = evaluate_variants(scenarios, seeds, name, seed=5, planner_cfg=cfg, batch_size=3)
+    alone = [evaluate_seeds(scn, name, s, seed=5, planner_cfg=cfg, batch_size=4).rows
+             for scn, s in zip(scenarios, seeds, strict=True)]
+    assert [len(g) for g in shared] == [1, 3, 2, 1]
+    assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
+    # the variants do differ: the start speeds show in the rows
+    assert len({round(g[0]["mean_speed_mps"], 3) for g in shared}) == 4
+
+
+def test_variants_that_differ_in_the_road_run_one_by_one():
+    """A variant with another road cannot share the planner's batch; it still gives its own rows."""
+    a, b = _variants(3.0)[:2]
+    d = copy.deepcopy(scenario_to_dict(b))
+    d["road"]["lane_width_m"] = 3.4
+    c = parse_scenario(d, source="narrow")
+    assert batchable([a, b]) and not batchable([a, c])
+    shared = evaluate_variants([a, c], [np.array([1]), np.array([2])], "rules", seed=0)
+    assert without_latency(shared[1]) == without_latency(evaluate_seeds(c, "rules", np.array([2])).rows)
 
 
 # --- 6. calibration records -----------------------------------------------------------------------------------

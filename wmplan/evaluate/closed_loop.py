@@ -19,7 +19,7 @@ collides within its horizon, beside whether the ego then collided within that ho
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -40,6 +40,7 @@ from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
 from wmplan.sim.tilt import EventTilt
+from wmplan.sim.variants import VariantBatch, batchable
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
 OUTCOMES = ("goal", "collision", "offroad", "timeout")
@@ -100,16 +101,19 @@ def _initial_history(state: TrafficState, history: int, dt_s: float) -> tuple[np
 
 def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, *, seed: int,
               progress: Callable[[int], None] | None = None, num_objects: int = NUM_OBJECTS,
-              history: int = HISTORY, frames: list | None = None) -> EvalOutput:
+              history: int = HISTORY, frames: list | None = None,
+              variants: VariantBatch | None = None) -> EvalOutput:
     """Run one batch of episodes (one per seed) with one planner.
 
     ``frames``: if given, the world rows (S, V, F) of every simulator step are appended to it (for animations).
+    ``variants``: scenes of several scenario variants (``wmplan.sim.variants``), seeds in its group order;
+    ``params`` is then the first variant's (the road and limits the planner sees are the same in all).
     """
     out = EvalOutput()
     cfg = planner.cfg if planner is not None else PlannerConfig()
     sub = int(round(cfg.plan_dt_s / params.dt_s))
     n_dec = params.num_steps // sub
-    state = initial_state(params, seeds)
+    state = initial_state(params, seeds) if variants is None else variants.initial_state(seeds)
     e_n = state.num_scenes
     hist, ids = _initial_history(state, history, cfg.plan_dt_s)
     x0 = state.x_m[:, EGO].copy()
@@ -157,7 +161,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
         for _ in range(sub):
             was_done = state.done
             before = state
-            state, info = step(state, actions, params)
+            state, info = step(state, actions, params) if variants is None else variants.step(state, actions)
             if frames is not None:
                 frames.append(state.vehicles())
             live = ~was_done
@@ -263,6 +267,46 @@ def evaluate_seeds(scenario: Scenario, planner_name: str, seeds: np.ndarray, *, 
         total.happened += part.happened
         total.decision_ms += part.decision_ms
     return total
+
+
+def evaluate_variants(scenarios: Sequence[Scenario], seeds: Sequence[np.ndarray], planner_name: str, *,
+                      seed: int = 0, model_dir=None, deterministic_dir=None,
+                      planner_cfg: PlannerConfig | None = None, batch_size: int = 50,
+                      progress: Callable[[int], None] | None = None) -> list[list[dict]]:
+    """Episodes of one planner in several variants of a scenario: ``seeds[g]`` in ``scenarios[g]``; rows per
+    variant, in seed order, the same as :func:`evaluate_seeds` gives variant by variant.
+
+    Episodes of different variants share planner batches (``wmplan.sim.variants``) when the variants differ only in
+    traffic, drivers and the ego's start: a stress test's hundreds of variants with a few episodes each then cost
+    about what as many episodes of one scenario cost. Otherwise (and for ``mpc+oracle``, whose futures are drawn
+    from its own scenario's distributions) each variant runs on its own.
+    """
+    if len(scenarios) != len(seeds):
+        raise ConfigError(f"evaluate_variants: {len(scenarios)} scenarios but {len(seeds)} seed lists")
+    seeds = [np.asarray(s, dtype=np.int64).reshape(-1) for s in seeds]
+    kw = dict(seed=seed, model_dir=model_dir, deterministic_dir=deterministic_dir, planner_cfg=planner_cfg,
+              batch_size=batch_size, progress=progress)
+    if planner_name == "mpc+oracle" or not batchable(list(scenarios)):
+        return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    all_params = [SimParams.from_scenario(scn) for scn in scenarios]
+    planner = build_planner(planner_name, all_params[0], model_dir=model_dir, deterministic_dir=deterministic_dir,
+                            cfg=planner_cfg)
+    plan_dt = planner.cfg.plan_dt_s if planner is not None else PlannerConfig().plan_dt_s
+    owner = np.concatenate([np.full(len(s), g, dtype=np.int64) for g, s in enumerate(seeds)])
+    flat = np.concatenate(seeds) if seeds else np.zeros(0, dtype=np.int64)
+    index = np.concatenate([np.arange(len(s)) for s in seeds]) if seeds else np.zeros(0, dtype=np.int64)
+    rows: list[list[dict | None]] = [[None] * len(s) for s in seeds]
+    for start in range(0, len(flat), batch_size):
+        part = slice(start, start + batch_size)
+        used, counts = np.unique(owner[part], return_counts=True)  # owners are sorted: contiguous groups
+        batch = VariantBatch(tuple(all_params[g] for g in used), tuple(int(c) for c in counts))
+        out = run_batch(all_params[int(used[0])], planner_name, planner, flat[part], seed=seed, progress=progress,
+                        variants=batch)
+        for r, g, e in zip(out.rows, owner[part], index[part], strict=True):
+            r["episode"] = int(e)
+            r["time_s"] = r["decisions"] * plan_dt
+            rows[int(g)][int(e)] = r
+    return rows  # type: ignore[return-value]
 
 
 def evaluate_planner(scenario: Scenario, planner_name: str, *, episodes: int, seed: int = 0, model_dir=None,

@@ -56,7 +56,7 @@ from wmplan.stress.knobs import (
     variant,
 )
 from wmplan.stress.rare_event import GaussianFamily, cross_entropy_levels
-from wmplan.sweep.episodes import call_planner, get_planner, run_episodes
+from wmplan.sweep.episodes import call_planner_variants, get_planner, run_episodes
 from wmplan.sweep.runner import CAUTION, InlineExecutor
 
 FAILURE_DEFINITION = "collision or leaving the road before the episode ends"
@@ -83,9 +83,14 @@ def sample_score(rows: Sequence[dict]) -> tuple[float, float]:
     return max(closeness_s(r) for r in rows), 0.0
 
 
-def _episode_rows(planner: str, fn: Callable, scenario: dict, seeds: list[int], options: dict) -> list[dict]:
-    """One batch of episodes of one variant (runs in a worker)."""
-    return call_planner(planner, fn, parse_scenario(scenario), seeds, options)
+EPISODES_PER_TASK = 64
+"""Episodes handed to one worker task (several variants share it; the sampling planners batch them together)."""
+
+
+def _variant_rows(planner: str, fn: Callable, scenarios: list[dict], seeds: list[list[int]],
+                  options: dict) -> list[list[dict]]:
+    """Episodes of several variants, rows per variant (runs in a worker)."""
+    return call_planner_variants(planner, fn, [parse_scenario(d) for d in scenarios], seeds, options)
 
 
 @dataclass
@@ -148,19 +153,31 @@ class StressEvaluator:
             vid, scn = self._variant(row)
             groups.setdefault(vid, []).append(i)
             scenarios[vid] = scn
-        futures = {vid: self.executor.submit(_episode_rows, self.planner, self._fn, scenarios[vid],
-                                             [int(s) for i in idx for s in seeds[i]], self.planner_options)
-                   for vid, idx in groups.items()}
-        rows: list[list[dict]] = [[] for _ in range(len(zq))]
+        # tasks of whole variants, about EPISODES_PER_TASK episodes each, in the order the variants were first drawn
+        # (so the tasks, and the rows, do not depend on the executor or on the number of workers)
+        tasks: list[list[str]] = [[]]
+        size = 0
         for vid, idx in groups.items():
-            flat = futures[vid].result()
-            for j, i in enumerate(idx):
-                rows[i] = flat[j * m:(j + 1) * m]
-                for r in rows[i]:
-                    self.samples.append(Sample(z=zq[i].copy(), seed=int(r["seed"]), variant_id=vid, row=r,
-                                               stage=stage))
+            if tasks[-1] and size + len(idx) * m > EPISODES_PER_TASK:
+                tasks.append([])
+                size = 0
+            tasks[-1].append(vid)
+            size += len(idx) * m
+        futures = [self.executor.submit(_variant_rows, self.planner, self._fn, [scenarios[v] for v in task],
+                                        [[int(s) for i in groups[v] for s in seeds[i]] for v in task],
+                                        self.planner_options)
+                   for task in tasks if task]
+        rows: list[list[dict]] = [[] for _ in range(len(zq))]
+        for task, fut in zip([t for t in tasks if t], futures, strict=True):
+            for vid, flat in zip(task, fut.result(), strict=True):
+                idx = groups[vid]
+                for j, i in enumerate(idx):
+                    rows[i] = flat[j * m:(j + 1) * m]
+                    for r in rows[i]:
+                        self.samples.append(Sample(z=zq[i].copy(), seed=int(r["seed"]), variant_id=vid, row=r,
+                                                   stage=stage))
             if self.on_simulated is not None:
-                self.on_simulated(len(idx) * m)
+                self.on_simulated(sum(len(groups[v]) for v in task) * m)
         return rows
 
     def scorer(self, stage: Callable[[], str]) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:

@@ -243,6 +243,24 @@ def call_planner(name: str, fn: PlannerFn, scenario: Scenario, seeds: Sequence[i
     return _check_rows(name, fn(scenario, seeds, **(options or {})), seeds)
 
 
+def call_planner_variants(name: str, fn: PlannerFn, scenarios: Sequence[Scenario],
+                          seeds: Sequence[Sequence[int] | np.ndarray],
+                          options: dict[str, Any] | None = None) -> list[list[dict]]:
+    """Episodes of one runner in several scenario variants, ``seeds[g]`` in ``scenarios[g]``; checked rows per
+    variant. A runner that carries a ``run_variants(scenarios, seeds, **options)`` attribute (the sampling
+    planners do) runs them all in shared batches; any other runner is called once per variant. Either way the rows
+    are those of :func:`call_planner` variant by variant."""
+    seeds = [np.asarray(s, dtype=np.int64).reshape(-1) for s in seeds]
+    multi = getattr(fn, "run_variants", None)
+    if multi is None or len(scenarios) < 2:
+        return [call_planner(name, fn, scn, s, options) for scn, s in zip(scenarios, seeds, strict=True)]
+    groups = multi(list(scenarios), seeds, **(options or {}))
+    if not isinstance(groups, list) or len(groups) != len(seeds):
+        raise ConfigError(f"planner {name!r}: run_variants returned {type(groups).__name__} for {len(seeds)} "
+                          "variants; expected one list of rows per variant")
+    return [_check_rows(name, rows, s) for rows, s in zip(groups, seeds, strict=True)]
+
+
 def run_episodes(scenario: Scenario | str | Path, planner: str, seeds: Sequence[int] | np.ndarray,
                  **kw: Any) -> list[dict]:
     """Closed-loop episodes of ``planner`` in ``scenario``, one per seed, batched.

@@ -1,0 +1,115 @@
+"""Scenes of several variants of one scenario in one batch: contiguous groups, each stepped with its own numbers.
+
+Stress tests draw a new scenario variant (traffic density, driver traits, the ego's start speed, ...) for almost
+every episode, so batching episodes per variant leaves the planner with batches of one to four episodes, and a
+sampling planner spends most of its time on per-call overhead. A :class:`VariantBatch` lets a planner decide for
+the episodes of many variants at once: the engine steps each group of scenes with its own :class:`SimParams`
+(scenes never interact, and a scene's random draws depend only on its own key, so each scene evolves exactly as it
+would alone), while the planner sees one batch.
+
+The variants must agree on everything the planner and the batch bookkeeping read from the parameters: the road,
+the ego's limits, lane and goal, the time step and duration, the number of vehicle slots and the importance
+sampling tilt (:func:`batchable`). What may differ is the traffic (densities, driver trait distributions, random
+event rates) and the ego's start position and speed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from wmplan.errors import ConfigError
+from wmplan.scenario import Scenario, scenario_to_dict
+from wmplan.sim.engine import StepInfo, step
+from wmplan.sim.params import SimParams
+from wmplan.sim.spawn import initial_state
+from wmplan.sim.state import TrafficState
+
+FREE_SECTIONS = ("traffic", "drivers")
+"""Scenario sections that may differ between the variants of one batch (besides the ego's start x and speed);
+``traffic.max_vehicles`` must still agree (it sets the array shapes)."""
+
+
+def _fixed_part(scn: Scenario) -> dict:
+    d = scenario_to_dict(scn)
+    for key in ("name", "description", *FREE_SECTIONS):
+        d.pop(key, None)
+    ego = dict(d.get("ego", {}))
+    ego.pop("x_m", None)
+    ego.pop("speed_mps", None)
+    d["ego"] = ego
+    d["max_vehicles"] = scn.traffic.max_vehicles
+    return d
+
+
+def batchable(scenarios: Sequence[Scenario]) -> bool:
+    """Whether these scenario variants can share one batch (see the module docstring)."""
+    if not scenarios:
+        return False
+    first = _fixed_part(scenarios[0])
+    return all(_fixed_part(s) == first for s in scenarios[1:])
+
+
+@dataclass(frozen=True)
+class VariantBatch:
+    """Contiguous groups of scenes: scenes ``[bounds[g][0], bounds[g][1])`` run with ``params[g]``."""
+
+    params: tuple[SimParams, ...]
+    counts: tuple[int, ...]
+
+    def __post_init__(self) -> None:
+        if len(self.params) != len(self.counts) or not self.params:
+            raise ConfigError("VariantBatch needs one scene count per parameter set, and at least one of each")
+        if any(c < 0 for c in self.counts):
+            raise ConfigError(f"VariantBatch scene counts must be >= 0, got {self.counts}")
+        p0 = self.params[0]
+        for p in self.params[1:]:
+            if (p.dt_s, p.num_steps, p.num_vehicles, p.tilt) != (p0.dt_s, p0.num_steps, p0.num_vehicles, p0.tilt):
+                raise ConfigError("the variants of one batch must share the time step, the duration, the number of "
+                                  "vehicle slots and the tilt")
+
+    @staticmethod
+    def single(params: SimParams, num_scenes: int) -> VariantBatch:
+        return VariantBatch((params,), (int(num_scenes),))
+
+    @property
+    def num_scenes(self) -> int:
+        return int(sum(self.counts))
+
+    @property
+    def bounds(self) -> list[tuple[int, int]]:
+        edges = np.concatenate([[0], np.cumsum(self.counts)]).astype(int)
+        return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
+
+    def _groups(self):
+        return [(p, a, b) for p, (a, b) in zip(self.params, self.bounds, strict=True) if b > a]
+
+    def initial_state(self, seeds: np.ndarray) -> TrafficState:
+        """Start every scene with its group's parameters; ``seeds`` (S,) in group order."""
+        seeds = np.asarray(seeds, dtype=np.int64)
+        if len(seeds) != self.num_scenes:
+            raise ConfigError(f"VariantBatch holds {self.num_scenes} scenes, got {len(seeds)} seeds")
+        parts = [initial_state(p, seeds[a:b]) for p, a, b in self._groups()]
+        return parts[0] if len(parts) == 1 else TrafficState.concat(parts)
+
+    def step(self, state: TrafficState, action: np.ndarray) -> tuple[TrafficState, StepInfo]:
+        """One engine step of every scene with its own group's parameters."""
+        groups = self._groups()
+        if len(groups) == 1:
+            return step(state, action, groups[0][0])
+        results = [step(state.rows(a, b), action[a:b], p) for p, a, b in groups]
+        new = TrafficState.concat([r[0] for r in results])
+        infos = [r[1] for r in results]
+        merged = {f.name: (None if getattr(infos[0], f.name) is None
+                           else np.concatenate([getattr(i, f.name) for i in infos]))
+                  for f in dataclasses.fields(StepInfo)}
+        return new, StepInfo(**merged)
+
+    def take(self, keep: np.ndarray) -> VariantBatch:
+        """The groups restricted to the scenes where ``keep`` (S,) is True (order kept)."""
+        keep = np.asarray(keep, dtype=bool)
+        counts = tuple(int(keep[a:b].sum()) for a, b in self.bounds)
+        return VariantBatch(self.params, counts)
