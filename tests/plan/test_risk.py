@@ -407,6 +407,30 @@ def test_summarise_risk_on_a_crafted_scene():
     assert summary.collided.shape == (2, 4) and summary.ttc_s.shape == (2, 4)
 
 
+def test_summarise_risk_counts_near_contacts_within_the_margin():
+    """``p_near``: the fraction of futures whose clearance falls to ``margin_m`` or below (an inflated footprint,
+    common practice, no source); its Wilson upper end against scipy [S]. Contact itself (``p_collision``) is
+    unchanged, and with no margin the two agree.
+
+    C = 1 candidate x K = 4 futures x H = 2 steps; the leader (4.5 m long, like the ego) is 4.70 m ahead, centre to
+    centre, in two futures (bumper clearance 0.20 m) and 30 m ahead in the other two.
+    """
+    futures = torch.zeros(1, 4, 2, 2, 8, dtype=torch.float64)
+    futures[..., 0, :] = torch.tensor(vehicle_row(0.0, 0.0, vx=20.0), dtype=torch.float64)
+    futures[..., 1, :] = torch.tensor(vehicle_row(30.0, 0.0, vx=20.0), dtype=torch.float64)
+    futures[0, :2, 1, 1, F_X] = 4.7
+    assert R.clearance_m(futures)[0, :, 1].tolist() == pytest.approx([0.2, 0.2, 25.5, 25.5])
+    near = R.summarise_risk(futures, margin_m=0.3)
+    assert near.p_collision.tolist() == [0.0] and near.p_near.tolist() == [0.5]
+    ref = scipy.stats.binomtest(2, 4).proportion_ci(method="wilson")
+    assert near.p_near_high[0].item() == pytest.approx(ref.high, rel=1e-6)
+    assert R.summarise_risk(futures, margin_m=0.1).p_near.tolist() == [0.0]
+    plain = R.summarise_risk(futures)
+    assert plain.p_near.tolist() == plain.p_collision.tolist() == [0.0]
+    with pytest.raises(ConfigError, match="margin_m"):
+        R.summarise_risk(futures, margin_m=-0.1)
+
+
 # --- errors ---------------------------------------------------------------------------------------------------
 
 

@@ -7,7 +7,7 @@ At every decision (0.2 s) and for a batch of B scenes at once:
    kinematic bicycle model, plus a small smooth steering perturbation. The sampler (CEM or MPPI, published
    methods, :mod:`wmplan.plan.samplers`) keeps, per scene, a mean acceleration sequence, its spread and the
    probabilities of the three target lanes, warm-started from the previous decision shifted by one step. A few
-   fixed candidates (the warm start itself, keeping speed, braking firmly) are always included.
+   fixed candidates (the warm start itself, keeping speed, braking firmly, braking fully) are always included.
 2. **Futures.** One batched predictor call: rows (B, C, K, H, N, F).
 3. **Costs.** Progress, speed, comfort (acceleration, jerk, steering rate), lane keeping, the merge deadline and
    staying on the road (all from the ego's own path and the road geometry), and risk from the K futures
@@ -34,6 +34,9 @@ from wmplan.plan.samplers import ar1_filter_matrix
 from wmplan.sim.params import SimParams
 
 LANE_CHOICES = (-1, 0, 1)
+NUM_FIXED = 4
+"""Fixed candidates at the head of every batch: the warm start, keep speed, brake firmly, brake fully."""
+FIRM_BRAKE_MPS2 = 4.0
 
 
 @dataclass(frozen=True)
@@ -57,7 +60,8 @@ class CostWeights:
     offroad: float = 100.0
     """Per step any corner of the ego is off the road."""
     collision: float = 200.0
-    """Per unit of collision probability (penalty mode)."""
+    """Per unit of collision probability (penalty mode), counting futures that come within
+    ``PlannerConfig.collision_margin_m`` of contact."""
     cvar: float = 2.0
     """Per metre of CVaR of the clearance shortfall."""
     ttc: float = 1.0
@@ -95,6 +99,10 @@ class PlannerConfig:
     lane_prob_floor: float = 0.05
     cvar_alpha: float = 0.8
     safe_distance_m: float = 2.0
+    collision_margin_m: float = 0.3
+    """Clearance (m) at or below which a predicted future counts as a collision in the cost and the chance
+    constraint (the footprints inflated by this buffer). The logged and calibrated P(collision) stays that of
+    actual contact."""
     ttc_threshold_s: float = 2.0
     headway_s: float = 1.2
     """Desired minimum time gap to the vehicle ahead in the ego's path."""
@@ -114,6 +122,11 @@ class PlannerConfig:
                 raise ConfigError(f"PlannerConfig.{name} must be >= 1, got {getattr(self, name)}")
         if self.num_elites > self.num_candidates:
             raise ConfigError("PlannerConfig.num_elites must not exceed num_candidates")
+        if self.num_candidates < NUM_FIXED:
+            raise ConfigError(f"PlannerConfig.num_candidates must be >= {NUM_FIXED} (the fixed candidates)")
+        if not 0.0 <= self.collision_margin_m <= self.safe_distance_m:
+            raise ConfigError(f"PlannerConfig.collision_margin_m must lie in [0, safe_distance_m], "
+                              f"got {self.collision_margin_m}")
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -197,17 +210,20 @@ class SamplingPlanner:
                                   for i, g in enumerate(generator)])
         noise = randn_rows((b, c, h), generator) @ self._filter.T  # smooth, unit marginal std
         accel = mean[:, None] + std[:, None] * noise
-        # fixed candidates: the warm start on its best lane, keep speed, brake firmly
+        # fixed candidates: the warm start on its best lane, keep speed, brake firmly, brake as hard as the limits
+        # allow (the way out when a vehicle cuts in close ahead: sampled plans seldom reach full braking)
         best_lane = probs.argmax(-1)
         accel[:, 0] = mean
         choice[:, 0] = best_lane
         accel[:, 1] = 0.0
         choice[:, 1] = 1
-        accel[:, 2] = -4.0
+        accel[:, 2] = -FIRM_BRAKE_MPS2
         choice[:, 2] = 1
+        accel[:, 3] = -p.max_brake_mps2
+        choice[:, 3] = 1
         accel = accel.clamp(-p.max_brake_mps2, p.max_accel_mps2)
         steer_noise = (randn_rows((b, c, h), generator) @ self._filter.T) * cfg.steer_noise_rad
-        steer_noise[:, :3] = 0.0
+        steer_noise[:, :NUM_FIXED] = 0.0
         d_lane = torch.tensor(LANE_CHOICES)[choice]  # (B, C)
         y_target = ((lane[:, None] + d_lane).double() + 0.5) * p.lane_width_m - y_road[:, None]  # relative, metres
         steer = self.track_lane(ctx, accel, y_target.float(), steer_noise)
@@ -282,8 +298,9 @@ class SamplingPlanner:
         off = self._offroad(ex, ey, heading, start, end)
         offroad_cost = off.double().sum(-1)
         # risk from the K futures
-        risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=cfg.safe_distance_m)
-        p_coll = risk.p_collision.double()
+        risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=cfg.safe_distance_m,
+                              margin_m=cfg.collision_margin_m)
+        p_coll = risk.p_near.double()  # contact within the margin: what the cost and the constraint see
         ttc_short = (cfg.ttc_threshold_s - risk.min_ttc_s.double().clamp(max=cfg.ttc_threshold_s)) ** 2
         gap = risk.leader_gap_m  # (B, C, K, H)
         ego_v = torch.hypot(rows[..., 0, 2], rows[..., 0, 3]).clamp_min(1.0)
@@ -295,7 +312,7 @@ class SamplingPlanner:
         if cfg.risk_mode == "penalty":
             total = total + w.collision * p_coll
         else:
-            bound = risk.p_collision_high.double() if cfg.use_upper_bound else p_coll
+            bound = risk.p_near_high.double() if cfg.use_upper_bound else p_coll
             infeasible = bound > cfg.epsilon
             # infeasible plans rank after every feasible one, by their collision probability
             total = torch.where(infeasible, 1e6 + 1e3 * bound + total * 1e-3, total)

@@ -513,6 +513,11 @@ class RiskSummary:
     ttc_s: Tensor
     leader_gap_m: Tensor | None = None
     """(B*, K, H) gap to the vehicle ahead in the ego's path (+inf if none)."""
+    p_near: Tensor | None = None
+    """(B*,) fraction of futures whose clearance falls to ``margin_m`` or below at some step (the footprint
+    inflated by the margin); equals ``p_collision`` when the margin is 0."""
+    p_near_high: Tensor | None = None
+    """(B*,) upper end of its Wilson interval."""
 
 
 def summarise_risk(
@@ -521,6 +526,7 @@ def summarise_risk(
     cvar_alpha: float = 0.9,
     safe_distance_m: float = 2.0,
     lateral_margin_m: float = 0.0,
+    margin_m: float = 0.0,
     z: float = Z_95,
 ) -> RiskSummary:
     """Collision probability (with Wilson interval), CVaR of the clearance shortfall and min TTC per candidate.
@@ -530,6 +536,9 @@ def summarise_risk(
         cvar_alpha: CVaR level over the K futures, in [0, 1).
         safe_distance_m: clearance below which the shortfall cost starts.
         lateral_margin_m: path half-width margin for the TTC leader search.
+        margin_m: clearance at or below which a future counts as a near contact (``p_near``); the planner ranks
+            candidates by it so that prediction errors of a few decimetres do not turn a predicted near miss into
+            a contact (inflating footprints by a buffer is common practice, no source).
         z: normal quantile of the Wilson interval.
 
     Returns:
@@ -542,12 +551,19 @@ def summarise_risk(
         )
     if not lateral_margin_m >= 0:
         raise ConfigError(f"lateral_margin_m must be >= 0, got {lateral_margin_m!r}")
+    if not 0 <= margin_m <= safe_distance_m + 1.0:
+        raise ConfigError(f"margin_m must lie in [0, safe_distance_m + 1], got {margin_m!r}")
     rel = _relative(rows)  # shared by the clearance and the leader search
     # exact box distances only where they can matter: below the safe distance (plus a margin)
     clear = _clearance(rel, exact_below_m=safe_distance_m + 1.0)  # (B*, K, H)
     collided = (clear <= 0).any(dim=-1)  # (B*, K)
     p = collision_probability(collided)
     low, high = wilson_interval(collided.sum(dim=-1), collided.shape[-1], z=z)
+    if margin_m > 0:
+        near = (clear <= margin_m).any(dim=-1)
+        p_near, p_near_high = collision_probability(near), wilson_interval(near.sum(dim=-1), near.shape[-1], z=z)[1]
+    else:
+        p_near, p_near_high = p, high
     shortfall = clearance_shortfall_m(clear, safe_distance_m)  # (B*, K)
     gap, closing = _leader(rel, lateral_margin_m)  # (B*, K, H)
     ttc = time_to_collision(gap, closing).amin(dim=-1)  # (B*, K)
@@ -561,4 +577,6 @@ def summarise_risk(
         shortfall_m=shortfall,
         ttc_s=ttc,
         leader_gap_m=gap,
+        p_near=p_near,
+        p_near_high=p_near_high,
     )
