@@ -84,8 +84,8 @@ def _write_run(run: Path, *, gif: bool = True) -> dict:
     p = gen.beta(0.4, 5.0, 300)
     y = (gen.random(300) < p).astype(int)
     summary = {"scenario": "onramp-merge", "episodes": 200, "seed": 0,
-               "results": {"rules": _planner(3, 200), "mpc+latent": _planner(0, 200),
-                           "mpc+constant-velocity": _planner(7, 50)},
+               "results": {"rules": {**_planner(3, 200), "collisions_by_contact_side": {"front": 2, "left": 1}},
+                           "mpc+latent": _planner(0, 200), "mpc+constant-velocity": _planner(7, 50)},
                "calibration": {"mpc+latent": calibration(P_93, Y_93, 2),
                                "mpc+constant-velocity": calibration(p.tolist(), y.tolist())}}
     (run / "evaluate").mkdir(exist_ok=True)
@@ -166,6 +166,8 @@ def test_full_report_shows_tables_figures_and_cautions(tmp_path):
 
     md = md_path.read_text(encoding="utf-8")
     assert "| rules | 200 | 0.015 [0.005, 0.043] |" in md
+    assert re.search(r"\| rules \| 200 \|.*\| front 2, left 1 \|", md)  # collisions by the side touched
+    assert re.search(r"\| mpc\+latent \| 200 \|.*\| - \|", md)
     assert "certify nothing about a real vehicle" in md
     linked = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", md)
     assert set(linked) == {"figures/training.png", "figures/futures.png", "figures/closed_loop.png",

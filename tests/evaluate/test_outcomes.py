@@ -127,6 +127,8 @@ def test_timeout_rate_has_a_wilson_interval():
                             {**_row("collision", True), "contact_side": "left"},
                             {**_row("collision", True), "contact_side": "rear"}])
     assert s2["collisions_by_contact_side"] == {"rear": 2, "left": 1}
+    table = format_table({"a": s2, "b": s})
+    assert table.splitlines()[-1] == "collisions by the side of the ego touched: a rear 2, left 1"
     assert s["success_rate"] + s["collision_rate"] + s["offroad_rate"] + s["timeout_rate"] == pytest.approx(1.0)
 
 

@@ -140,4 +140,13 @@ def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None)
             line += (f"{cal['ece']:>10.4f} ({cal.get('positives', '?')})".rjust(18) if cal.get("decisions")
                      else f"{'-':>18}")
         lines.append(line)
+    sides = [f"{name} {_sides_text(r['collisions_by_contact_side'])}" for name, r in results.items()
+             if r.get("collisions_by_contact_side")]
+    if sides:
+        lines.append("collisions by the side of the ego touched: " + "; ".join(sides))
     return "\n".join(lines)
+
+
+def _sides_text(counts: dict[str, int]) -> str:
+    """``{"front": 2, "rear": 1}`` -> ``"front 2, rear 1"``."""
+    return ", ".join(f"{k} {v}" for k, v in counts.items())
