@@ -37,7 +37,7 @@ from wmplan.evaluate.stats import wilson_interval
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.world_model import WorldModel
-from wmplan.plan.mpc import PlannerConfig, SamplingPlanner
+from wmplan.plan.mpc import CostWeights, PlannerConfig, SamplingPlanner
 from wmplan.plan.predictors import ModelPredictor, make_context
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict
 from wmplan.sim.features import F_LENGTH, F_VALID, F_VX, F_VY, F_X
@@ -288,6 +288,31 @@ def test_oracle_planner_brakes_fully_when_firm_braking_is_not_enough(cfg):
         gap = _gap_to_stopped_vehicle(params, rows[:, s])
         assert gap[0] == pytest.approx(60.0, abs=0.5)
         assert not out.rows[s]["collision"] and np.all(gap > 0.0), (seeds[s], float(gap.min()))
+
+
+def test_a_follower_the_predictor_thinks_will_not_brake_does_not_stop_the_ego_braking():
+    """One lane, 100 km/h, a vehicle stopped 60 m ahead and a follower 20 m behind (bumper gap) at the same speed.
+    The constant-velocity predictor says the follower keeps its speed, so every plan that stops in time is
+    predicted to be run into from behind. Charging such futures a quarter of the collision cost (the driver
+    behind must keep a safe distance: common practice, no source) lets the planner brake; the true simulator's
+    follower (IDM) then brakes too, and nobody collides. Charged in full, the planner found no plan better than
+    the others and ran into the stopped vehicle (measured: both scenes collided within 2.2 s)."""
+    scn = stopped_vehicle_scenario(num_lanes=1, offset_m=60.0 + 4.7, duration_s=8.0)
+    d = copy.deepcopy(scenario_to_dict(scn))
+    d["traffic"]["placed"].append({"lane": 0, "offset_m": -25.0, "speed_mps": SPEED_100_KMH_MPS,
+                                   "desired_speed_mps": SPEED_100_KMH_MPS})
+    d["traffic"]["window_behind_m"] = 60.0
+    params = SimParams.from_scenario(parse_scenario(d, source="stopped-ahead-follower-behind"))
+    state = initial_state(params, [0, 1])
+    assert np.all(state.valid.sum(axis=1) == 3)
+    outcomes = {}
+    for share in (1.0, CostWeights().from_behind):
+        planner = build_planner("mpc+constant-velocity", params, cfg=PlannerConfig(weights=CostWeights(from_behind=share)))
+        out = run_batch(params, "mpc+constant-velocity", planner, np.array([0, 1]), seed=0)
+        outcomes[share] = [r["collision"] for r in out.rows]
+    assert CostWeights().from_behind < 1.0
+    assert outcomes[CostWeights().from_behind] == [False, False]
+    assert outcomes[1.0] == [True, True]
 
 
 # --- 2. actions within the scenario's limits ------------------------------------------------------------------

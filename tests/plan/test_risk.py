@@ -431,6 +431,29 @@ def test_summarise_risk_counts_near_contacts_within_the_margin():
         R.summarise_risk(futures, margin_m=-0.1)
 
 
+def test_near_contacts_from_behind_are_told_apart():
+    """``p_near_from_behind``: futures whose first near contact is only with a faster vehicle coming up from behind
+    in the ego's lane (being run into, which the driver behind must avoid: common practice, no source).
+
+    C = 1 x K = 4 futures x H = 2 steps, the ego at 10 m/s. Future 0: a car at 20 m/s touches the ego's rear at
+    step 1. Future 1: the ego touches a slower car ahead at step 1. Future 2: both at step 1 (it counts as the
+    ego's own). Future 3: a car from behind in the next lane passes 0.1 m away beside the ego (not in its lane:
+    not "from behind") at step 1.
+    """
+    futures = torch.zeros(1, 4, 2, 3, 8, dtype=torch.float64)
+    futures[..., 0, :] = torch.tensor(vehicle_row(0.0, 0.0, vx=10.0), dtype=torch.float64)
+    futures[..., 1, :] = torch.tensor(vehicle_row(-30.0, 0.0, vx=20.0), dtype=torch.float64)  # behind
+    futures[..., 2, :] = torch.tensor(vehicle_row(40.0, 0.0, vx=5.0), dtype=torch.float64)  # ahead
+    futures[0, 0, 1, 1, F_X] = -4.55  # 0.05 m from the ego's rear
+    futures[0, 1, 1, 2, F_X] = 4.55
+    futures[0, 2, 1, 1, F_X], futures[0, 2, 1, 2, F_X] = -4.55, 4.55
+    futures[0, 3, 1, 1, F_X], futures[0, 3, 1, 1, F_Y] = -2.0, 1.9  # beside, 0.1 m apart sideways
+    risk = R.summarise_risk(futures, margin_m=0.3)
+    assert risk.p_near.tolist() == [1.0]
+    assert risk.p_near_from_behind.tolist() == [0.25]
+    assert risk.p_collision.tolist() == [0.0]
+
+
 # --- errors ---------------------------------------------------------------------------------------------------
 
 

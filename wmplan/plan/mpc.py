@@ -62,6 +62,11 @@ class CostWeights:
     collision: float = 200.0
     """Per unit of collision probability (penalty mode), counting futures that come within
     ``PlannerConfig.collision_margin_m`` of contact."""
+    from_behind: float = 0.25
+    """Share of ``collision`` charged for a future whose first near contact is a vehicle running into the ego from
+    behind in its lane (penalty mode). The driver behind must keep a safe distance (common practice, no source),
+    and a predictor that gets the follower's reaction wrong (a learned model seldom sees the ego brake hard) would
+    otherwise forbid the hard braking that avoids running into the vehicle ahead."""
     cvar: float = 2.0
     """Per metre of CVaR of the clearance shortfall."""
     ttc: float = 1.0
@@ -310,7 +315,8 @@ class SamplingPlanner:
                  + w.offroad * offroad_cost + w.cvar * risk.cvar_shortfall_m.double() + w.ttc * ttc_short
                  + w.headway * headway_short)
         if cfg.risk_mode == "penalty":
-            total = total + w.collision * p_coll
+            behind = risk.p_near_from_behind.double()
+            total = total + w.collision * (p_coll - (1.0 - w.from_behind) * behind)
         else:
             bound = risk.p_near_high.double() if cfg.use_upper_bound else p_coll
             infeasible = bound > cfg.epsilon

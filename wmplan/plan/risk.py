@@ -375,13 +375,18 @@ def clearance_m(futures: object) -> Tensor:
 
 
 def _clearance(r: _Relative, exact_below_m: float | None = None) -> Tensor:
-    """Clearance per step (B*, H). With ``exact_below_m``, pairs whose centres are so far apart that even their
+    return _clearances(r, exact_below_m).amin(dim=0)
+
+
+def _clearances(r: _Relative, exact_below_m: float | None = None) -> Tensor:
+    """Clearance to each other vehicle per step (V-1, B*, H), +inf for empty slots (``_clearance``: the
+    smallest, (B*, H)). With ``exact_below_m``, pairs whose centres are so far apart that even their
     circumscribed discs are more than ``exact_below_m`` apart get that disc bound (a lower bound of their true
     distance, itself above ``exact_below_m``) instead of the exact box distance: the result is exact wherever the
     true clearance is below ``exact_below_m``, and above ``exact_below_m`` elsewhere. The planner uses this to skip
     the exact computation for the many far-away pairs."""
     if r.ahead_m.shape[0] == 0:
-        return torch.full(r.ahead_m.shape[1:], torch.inf, dtype=r.ahead_m.dtype)
+        return torch.full((1, *r.ahead_m.shape[1:]), torch.inf, dtype=r.ahead_m.dtype)
     args = (r.ahead_m, r.lateral_m, r.cos_rel, r.sin_rel, r.ego_half_length_m, r.ego_half_width_m,
             r.half_length_m, r.half_width_m)
     if exact_below_m is None:
@@ -393,7 +398,7 @@ def _clearance(r: _Relative, exact_below_m: float | None = None) -> Tensor:
         idx = near.nonzero(as_tuple=True)
         if idx[0].numel():
             dist = dist.index_put(idx, _signed_distance(*(a[idx] for a in args)))
-    return torch.where(r.is_valid, dist, torch.inf).amin(dim=0)
+    return torch.where(r.is_valid, dist, torch.inf)
 
 
 def collides(futures: object) -> Tensor:
@@ -518,6 +523,9 @@ class RiskSummary:
     inflated by the margin); equals ``p_collision`` when the margin is 0."""
     p_near_high: Tensor | None = None
     """(B*,) upper end of its Wilson interval."""
+    p_near_from_behind: Tensor | None = None
+    """(B*,) fraction of futures whose first near contact is only with vehicles coming up from behind in the
+    ego's lane (faster than the ego, behind it, overlapping it sideways): being run into, not running into."""
 
 
 def summarise_risk(
@@ -555,7 +563,8 @@ def summarise_risk(
         raise ConfigError(f"margin_m must lie in [0, safe_distance_m + 1], got {margin_m!r}")
     rel = _relative(rows)  # shared by the clearance and the leader search
     # exact box distances only where they can matter: below the safe distance (plus a margin)
-    clear = _clearance(rel, exact_below_m=safe_distance_m + 1.0)  # (B*, K, H)
+    each = _clearances(rel, exact_below_m=safe_distance_m + 1.0)  # (V-1, B*, K, H)
+    clear = each.amin(dim=0)  # (B*, K, H)
     collided = (clear <= 0).any(dim=-1)  # (B*, K)
     p = collision_probability(collided)
     low, high = wilson_interval(collided.sum(dim=-1), collided.shape[-1], z=z)
@@ -564,6 +573,13 @@ def summarise_risk(
         p_near, p_near_high = collision_probability(near), wilson_interval(near.sum(dim=-1), near.shape[-1], z=z)[1]
     else:
         p_near, p_near_high = p, high
+    # near contacts only with vehicles coming up from behind in the ego's lane, at the first step of near contact
+    near_v = each <= margin_m  # (V-1, B*, K, H)
+    behind = (rel.ahead_m < 0) & (rel.closing_mps < 0) & (rel.lateral_m.abs() < rel.ego_half_width_m + rel.half_width_m)
+    near_t = near_v.any(dim=0)  # (B*, K, H)
+    first = near_t.to(torch.int8).argmax(dim=-1, keepdim=True)  # first step of near contact (0 if none)
+    other_t = (near_v & ~behind).any(dim=0)
+    from_behind = near_t.any(dim=-1) & ~other_t.gather(-1, first).squeeze(-1)  # (B*, K)
     shortfall = clearance_shortfall_m(clear, safe_distance_m)  # (B*, K)
     gap, closing = _leader(rel, lateral_margin_m)  # (B*, K, H)
     ttc = time_to_collision(gap, closing).amin(dim=-1)  # (B*, K)
@@ -579,4 +595,5 @@ def summarise_risk(
         leader_gap_m=gap,
         p_near=p_near,
         p_near_high=p_near_high,
+        p_near_from_behind=from_behind.to(clear.dtype).mean(dim=-1),
     )
