@@ -109,9 +109,3 @@ class VariantBatch:
                            else np.concatenate([getattr(i, f.name) for i in infos]))
                   for f in dataclasses.fields(StepInfo)}
         return new, StepInfo(**merged)
-
-    def take(self, keep: np.ndarray) -> VariantBatch:
-        """The groups restricted to the scenes where ``keep`` (S,) is True (order kept)."""
-        keep = np.asarray(keep, dtype=bool)
-        counts = tuple(int(keep[a:b].sum()) for a, b in self.bounds)
-        return VariantBatch(self.params, counts)
