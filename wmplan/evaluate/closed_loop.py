@@ -4,8 +4,8 @@ Every planner meets the same episodes (the same scene seeds: a paired comparison
 simulator state and one planner call per decision; finished episodes drop out of the planner's batch.
 
 Per-episode rows (keys): planner, episode, seed, collision, contact_side (the side of the ego touched in a
-collision: front, rear, left or right, empty without one; :func:`wmplan.sim.engine.contact_sides`), offroad, success (goal reached without collision or
-leaving the road), outcome (how the episode ended, one of OUTCOMES: 'collision', 'offroad', 'goal', or 'timeout'
+collision: front, rear, left or right, empty without one; :func:`wmplan.sim.engine.contact_sides`), offroad,
+success (goal reached without collision or leaving the road), outcome (how the episode ended, one of OUTCOMES: 'collision', 'offroad', 'goal', or 'timeout'
 when the time ran out first; a collision outranks leaving the road in the same step), final_lane (the lane holding
 the ego's centre when the episode ended), in_goal_lane (whether that lane is one of the goal's lanes: a timeout
 outside them is a stall before the merge, a timeout inside them is slow progress after it), progress_m,

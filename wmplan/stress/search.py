@@ -155,10 +155,10 @@ class StressEvaluator:
             scenarios[vid] = scn
         # tasks of whole variants, about EPISODES_PER_TASK episodes each, in the order the variants were first drawn
         # (so the tasks, and the rows, do not depend on the executor or on the number of workers)
-        tasks: list[list[str]] = [[]]
+        tasks: list[list[str]] = []
         size = 0
         for vid, idx in groups.items():
-            if tasks[-1] and size + len(idx) * m > EPISODES_PER_TASK:
+            if not tasks or size + len(idx) * m > EPISODES_PER_TASK:
                 tasks.append([])
                 size = 0
             tasks[-1].append(vid)
@@ -166,9 +166,9 @@ class StressEvaluator:
         futures = [self.executor.submit(_variant_rows, self.planner, self._fn, [scenarios[v] for v in task],
                                         [[int(s) for i in groups[v] for s in seeds[i]] for v in task],
                                         self.planner_options)
-                   for task in tasks if task]
+                   for task in tasks]
         rows: list[list[dict]] = [[] for _ in range(len(zq))]
-        for task, fut in zip([t for t in tasks if t], futures, strict=True):
+        for task, fut in zip(tasks, futures, strict=True):
             for vid, flat in zip(task, fut.result(), strict=True):
                 idx = groups[vid]
                 for j, i in enumerate(idx):
