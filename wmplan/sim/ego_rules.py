@@ -81,7 +81,14 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         after = idm_accel(vf, tr[:, T_V0], g, vf - v, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B])
         return np.where(has, now, 0.0), np.where(has, after, 0.0), has, g
 
-    d_end = params.distance_to_lane_end(lane, x) - 0.5 * state.length_m[:, EGO]
+    # The end of every lane the ego's body still reaches into counts, not only the lane of its centre: half-way
+    # through a merge its rear corner may still be in the ending lane.
+    body = lane_occupancy(params, y[:, None], state.width_m[:, :1], np.ones((s_n, 1), dtype=bool), None,
+                          state.heading_rad[:, :1], state.length_m[:, :1])[:, 0]  # (S, L)
+    body[rows, lane] = True
+    lanes = np.arange(params.num_lanes)
+    d_lanes = params.distance_to_lane_end(np.broadcast_to(lanes, body.shape), x[:, None])  # (S, L)
+    d_end = np.where(body, d_lanes, np.inf).min(axis=1) - 0.5 * state.length_m[:, EGO]
     g_own, v_own = lead(lane)
     a_now = np.minimum(_ego_idm(params, v, g_own, v_own), _ego_idm(params, v, d_end, 0.0))
 
@@ -98,7 +105,10 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         d_end_t = params.distance_to_lane_end(np.clip(tl, 0, params.num_lanes - 1), x)
         a_after = np.minimum(a_after, _ego_idm(params, v, d_end_t - 0.5 * state.length_m[:, EGO], 0.0))
         n_now, n_after, has_n, g_n = follower_acc(tl)
-        safe = (mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n) & (g_t > 2.0) & (g_n > 2.0)
+        # MOBIL's safety criterion for the new follower, and the same bound on the ego's own braking toward the
+        # new leader (a merge into a short gap behind a slower car is not taken; the ego falls in behind instead)
+        safe = ((mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n) & (g_t > 2.0) & (g_n > 2.0)
+                & mobil_safe(a_after, SAFE_DECEL_MPS2))
         inc = mobil_incentive(a_now, a_after, n_now, n_after, 0.0, 0.0, POLITENESS)
         forced = must_merge & (merge_to == tl)
         inc = np.where(forced, np.inf, inc)
