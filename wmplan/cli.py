@@ -358,8 +358,10 @@ def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path
 def cmd_stress(args: argparse.Namespace) -> int:
     import functools
 
+    from wmplan.stress.knobs import select_knobs
     from wmplan.stress.runner import run_stress
 
+    knobs = select_knobs(args.knobs) if args.knobs is not None else None
     options = {}
     if args.model:
         options["model"] = args.model
@@ -369,7 +371,8 @@ def cmd_stress(args: argparse.Namespace) -> int:
     if not args.no_animation:
         animate = functools.partial(animate_failure, options=options)
     report = run_stress(args.scenario, args.planner, args.budget, args.out, args.seed, workers=args.workers,
-                        scheduler=args.scheduler, planner_options=options or None, animate=animate, progress=True)
+                        scheduler=args.scheduler, planner_options=options or None, animate=animate, progress=True,
+                        knobs=knobs)
     _write_json(args.json, report)
     fp, mc = report["failure_prob"], report["plain_mc"]
 
@@ -519,6 +522,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--workers", type=_positive_int, default=1)
     sp.add_argument("--scheduler", metavar="ADDRESS")
     sp.add_argument("--no-animation", action="store_true", help="do not draw the saved failures")
+    sp.add_argument("--knobs", metavar="NAMES", help="vary only these scenario knobs, comma-separated (default all: "
+                    "density, yield_prob, hard_brake_rate, desired_speed, ego_speed, ego_brake)")
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_stress)

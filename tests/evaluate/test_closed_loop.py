@@ -43,7 +43,7 @@ from wmplan.sim.features import F_HEADING, F_LENGTH, F_VALID, F_WIDTH, F_X, F_Y
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO
-from wmplan.sim.variants import batchable
+from wmplan.sim.variants import batch_classes, batchable
 
 SMALL = PlannerConfig(num_candidates=16, num_futures=2)
 ORACLE_SMALL = PlannerConfig(num_candidates=8, num_futures=2)
@@ -164,6 +164,24 @@ def test_variants_that_differ_in_the_road_run_one_by_one():
     assert batchable([a, b]) and not batchable([a, c])
     shared = evaluate_variants([a, c], [np.array([1]), np.array([2])], "rules", seed=0)
     assert without_latency(shared[1]) == without_latency(evaluate_seeds(c, "rules", np.array([2])).rows)
+
+
+@pytest.mark.parametrize("name", ["rules", "mpc+constant-velocity"])
+def test_variants_of_two_braking_limits_share_batches_within_each_limit(name):
+    """Variants that differ in the ego's braking limit (a stress knob) fall into two classes
+    (``batch_classes``); each class shares batches, and every variant still gives exactly its own rows."""
+    base = _variants(3.0)
+    scenarios = []
+    for k, scn in enumerate(base):
+        d = copy.deepcopy(scenario_to_dict(scn))
+        d["limits"]["max_brake_mps2"] = 3.0 if k % 2 else 8.0
+        scenarios.append(parse_scenario(d, source=f"brake-{k}"))
+    assert batch_classes(scenarios) == [[0, 2], [1, 3]] and not batchable(scenarios)
+    seeds = [np.array([21]), np.array([22, 23]), np.array([24]), np.array([25])]
+    cfg = planner_cfg(name)
+    shared = evaluate_variants(scenarios, seeds, name, seed=5, planner_cfg=cfg, batch_size=3)
+    alone = [evaluate_seeds(scn, name, s, seed=5, planner_cfg=cfg).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
 
 
 # --- 6. calibration records -----------------------------------------------------------------------------------

@@ -2,7 +2,8 @@
 values, determinism, and errors.
 
 The statistics of the estimators are tested on known answers in test_rare_event.py; here the scenario is made
-harsh on purpose (dense traffic that never yields, frequent hard braking: a few percent of episodes fail) so that a
+harsh on purpose (dense traffic that never yields, frequent hard braking, an ego with 1.5 m/s^2 of braking: about
+one episode in eight fails) so that a
 small budget meets failures whatever the seed. That is a test set-up, not a claim about any planner. Knob values
 are checked against the formulas of wmplan.stress.knobs written out by hand (common practice, no source).
 """
@@ -21,7 +22,7 @@ import yaml
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict, scenario_to_yaml
 from wmplan.stress import DEFAULT_KNOBS, nominal_reference, replay, run_stress, search_failures
-from wmplan.stress.knobs import knob_values, quantise, variant
+from wmplan.stress.knobs import knob_values, quantise, select_knobs, variant
 from wmplan.stress.search import sample_score
 
 KNOBS = tuple(k for k in DEFAULT_KNOBS if k.name in ("density", "ego_speed"))
@@ -34,6 +35,7 @@ def harsh() -> Scenario:
     d["traffic"]["density_veh_per_km"] = [10.0, 100.0, 60.0]
     d["drivers"]["yield_prob"].update(mean=0.0, std=0.0)
     d["drivers"]["hard_brake_rate_per_min"] = 30.0
+    d["limits"]["max_brake_mps2"] = 1.5  # and an ego whose brakes barely work (ice)
     return parse_scenario(d)
 
 
@@ -108,9 +110,10 @@ def test_nominal_reference_is_the_failed_fraction(harsh: Scenario) -> None:
 
 def test_knob_values_follow_their_formulas() -> None:
     """density x exp(0.3 z) per lane; yield mean + 0.15 z clipped to the distribution's [low, high]; hard-brake
-    rate x exp(0.8 z); desired speed mean + 1.5 z; ego speed + 2 z."""
+    rate x exp(0.8 z); desired speed mean + 1.5 z; ego speed + 2 z; ego braking x exp(0.5 z) clipped to
+    [0.5, 12] m/s^2."""
     base = load_scenario("onramp-merge")
-    z = np.array([1.0, 4.0, -0.5, 2.0, -1.5])
+    z = np.array([1.0, 4.0, -0.5, 2.0, -1.5, -2.0])
     vals = knob_values(base, DEFAULT_KNOBS, z)
     assert vals["density"] == pytest.approx([d * math.exp(0.3) for d in base.traffic.density_veh_per_km])
     dr = base.drivers
@@ -118,14 +121,40 @@ def test_knob_values_follow_their_formulas() -> None:
     assert vals["hard_brake_rate"] == pytest.approx(dr.hard_brake_rate_per_min * math.exp(-0.4))
     assert vals["desired_speed"] == pytest.approx(min(dr.desired_speed_mps.mean + 3.0, dr.desired_speed_mps.hi))
     assert vals["ego_speed"] == pytest.approx(base.ego.speed_mps - 3.0)
+    assert vals["ego_brake"] == pytest.approx(base.limits.max_brake_mps2 * math.exp(-1.0))
+    assert knob_values(base, DEFAULT_KNOBS, np.array([0, 0, 0, 0, 0, 9.0]))["ego_brake"] == 12.0
+    assert knob_values(base, DEFAULT_KNOBS, np.array([0, 0, 0, 0, 0, -9.0]))["ego_brake"] == 0.5
     scn = variant(base, DEFAULT_KNOBS, z)
+    assert scn.limits.max_brake_mps2 == pytest.approx(base.limits.max_brake_mps2 * math.exp(-1.0))
     assert scn.traffic.density_veh_per_km == pytest.approx(tuple(vals["density"]))
     assert scn.ego.speed_mps == pytest.approx(base.ego.speed_mps - 3.0)
     assert np.allclose(quantise(np.array([[0.13, -0.37]]), 0.25), [[0.25, -0.25]])
 
 
+def test_sample_score_by_brake_threat() -> None:
+    """With brake threats in the rows (both built-in loops write them): failures score their failed fraction;
+    otherwise the largest threat, capped at 1, minus 1."""
+    calm = {"collision": False, "offroad": False, "min_ttc_s": 1.0, "max_brake_threat": 0.2}
+    closer = {"collision": False, "offroad": False, "min_ttc_s": 4.0, "max_brake_threat": 0.7}
+    beyond = {"collision": False, "offroad": False, "min_ttc_s": 4.0, "max_brake_threat": 3.0}
+    hit = {"collision": True, "offroad": False, "min_ttc_s": 0.1, "max_brake_threat": 10.0}
+    assert sample_score([calm, closer]) == (pytest.approx(-0.3), 0.0)
+    assert sample_score([calm, beyond]) == (0.0, 0.0)
+    assert sample_score([calm, hit, closer, hit]) == (0.5, 0.5)
+
+
+def test_select_knobs() -> None:
+    assert [k.name for k in select_knobs("ego_brake,density")] == ["ego_brake", "density"]
+    with pytest.raises(ConfigError, match=r"^knobs: unknown knob 'brakes'; allowed: density, yield_prob, "
+                                          r"hard_brake_rate, desired_speed, ego_speed, ego_brake$"):
+        select_knobs("brakes")
+    with pytest.raises(ConfigError, match="each knob at most once"):
+        select_knobs(["density", "density"])
+
+
 def test_sample_score() -> None:
-    """Failures score their failed fraction; otherwise minus the smallest TTC of the closest call."""
+    """Rows without brake threats (a user's runner): failures score their failed fraction; otherwise minus the
+    smallest TTC of the closest call."""
     calm = {"collision": False, "offroad": False, "min_ttc_s": 4.0}
     closer = {"collision": False, "offroad": False, "min_ttc_s": 1.5}
     hit = {"collision": True, "offroad": False, "min_ttc_s": 0.1}

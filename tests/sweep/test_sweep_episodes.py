@@ -182,8 +182,8 @@ def _onramp_variants() -> list:
 
 
 def test_variants_in_shared_batches_match_one_variant_at_a_time() -> None:
-    """``call_planner_variants``: a sampling planner's runner (which runs the variants in shared batches) gives
-    the checked rows of ``call_planner`` variant by variant; so does a runner without that ability."""
+    """``call_planner_variants``: the runners of a sampling planner and of the rule-based ego (which run the
+    variants in shared batches) give the checked rows of ``call_planner`` variant by variant."""
     from wmplan.sweep.episodes import call_planner, call_planner_variants, get_planner
     from wmplan.sweep.mpc_planners import register_mpc_planners
 
@@ -193,13 +193,37 @@ def test_variants_in_shared_batches_match_one_variant_at_a_time() -> None:
     options = {"num_candidates": 8, "num_futures": 2, "batch_size": 4}
     for name in ("mpc+constant-velocity", "rules"):
         fn = get_planner(name)
-        assert (getattr(fn, "run_variants", None) is not None) == name.startswith("mpc")
+        assert getattr(fn, "run_variants", None) is not None
         opts = options if name.startswith("mpc") else {}
         together = call_planner_variants(name, fn, scenarios, seeds, opts)
         alone = [call_planner(name, fn, scn, s, opts) for scn, s in zip(scenarios, seeds, strict=True)]
         strip = lambda groups: [[{k: v for k, v in r.items() if k != "decision_ms"} for r in g] for g in groups]  # noqa: E731
         assert strip(together) == strip(alone)
         assert [[r["seed"] for r in g] for g in together] == seeds
+
+
+def test_rules_variants_of_other_limits_or_merge_zone_run_in_their_own_batches() -> None:
+    """The rule-based ego reads the ego's limits and the merge zone from the parameters: variants that differ in
+    them fall into their own batch classes, and every variant still gives the rows it gives alone."""
+    from wmplan.sweep.episodes import closed_loop_variants, rules_episodes
+    from wmplan.sim.variants import batch_classes
+
+    scenarios = list(_onramp_variants())
+    d = copy.deepcopy(scenario_to_dict(scenarios[0]))
+    d["limits"]["max_brake_mps2"] = 1.5
+    scenarios.append(parse_scenario(d, source="weak brakes"))
+    d = copy.deepcopy(scenario_to_dict(scenarios[1]))
+    d["drivers"]["merge_zone_m"] = 120.0
+    scenarios.append(parse_scenario(d, source="short merge zone"))
+    classes = batch_classes(scenarios, also=lambda scn: scn.drivers.merge_zone_m)
+    assert len(classes) == 3 and sorted(len(c) for c in classes) == [1, 1, 3]
+    seeds = [[5, 6], [7], [8, 9], [10, 11], [12]]
+    together = rules_episodes.run_variants(scenarios, seeds)
+    alone = [rules_episodes(scn, s) for scn, s in zip(scenarios, seeds, strict=True)]
+    assert together == alone
+    with pytest.raises(ConfigError, match="planner 'rules' takes no options"):
+        rules_episodes.run_variants(scenarios, seeds, horizon=3)
+    assert closed_loop_variants([], [], None) == []
 
 
 def test_a_runner_whose_variant_rows_do_not_fit_is_refused() -> None:

@@ -40,7 +40,8 @@ from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
 from wmplan.sim.tilt import EventTilt
-from wmplan.sim.variants import VariantBatch, batchable
+from wmplan.sim.threat import brake_threat
+from wmplan.sim.variants import VariantBatch, batch_classes, batchable
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
 OUTCOMES = ("goal", "collision", "offroad", "timeout")
@@ -120,6 +121,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
     speed_sum = np.zeros(e_n)
     steps = np.zeros(e_n, dtype=np.int64)
     min_ttc = np.full(e_n, np.inf)
+    threat = brake_threat(state, params)  # with the first variant's braking limit (shared by a variant batch)
     jerk_sq = np.zeros(e_n)
     prev_acc = np.full(e_n, np.nan)
     end_dec = np.full(e_n, n_dec, dtype=np.int64)
@@ -188,6 +190,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
         rows_now = state.vehicles()
         ttc = ttc_to_leader_s(torch.from_numpy(rows_now[:, None])).numpy()[:, 0]
         min_ttc = np.where(active, np.minimum(min_ttc, ttc), min_ttc)
+        threat = np.where(active, np.maximum(threat, brake_threat(state, params)), threat)
         hist = np.concatenate([hist[:, 1:], rows_now[:, None]], axis=1)
         ids = np.concatenate([ids[:, 1:], state.vehicle_id[:, None]], axis=1)
         if progress is not None:
@@ -217,6 +220,7 @@ def run_batch(params: SimParams, planner_name: str, planner, seeds: np.ndarray, 
             "progress_m": float(fin_x[i] - x0[i]),
             "mean_speed_mps": float(speed_sum[i] / max(1, steps[i])),
             "min_ttc_s": float(min_ttc[i]),
+            "max_brake_threat": float(threat[i]),
             "rms_jerk_mps3": float(np.sqrt(jerk_sq[i] / max(1, steps[i]))),
             "decision_ms": float(dec_ms[i] / max(1, end_dec[i])),
             "decisions": int(end_dec[i]),
@@ -286,8 +290,20 @@ def evaluate_variants(scenarios: Sequence[Scenario], seeds: Sequence[np.ndarray]
     seeds = [np.asarray(s, dtype=np.int64).reshape(-1) for s in seeds]
     kw = dict(seed=seed, model_dir=model_dir, deterministic_dir=deterministic_dir, planner_cfg=planner_cfg,
               batch_size=batch_size, progress=progress)
-    if planner_name == "mpc+oracle" or not batchable(list(scenarios)):
+    if planner_name == "mpc+oracle":
         return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    if not batchable(list(scenarios)):
+        # several classes (e.g. variants of the ego's braking limit): each class shares batches on its own
+        classes = batch_classes(list(scenarios))
+        if len(classes) == len(scenarios):
+            return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
+        out: list[list[dict]] = [[] for _ in scenarios]
+        for members in classes:
+            rows_c = evaluate_variants([scenarios[g] for g in members], [seeds[g] for g in members], planner_name,
+                                       **kw)
+            for g, r in zip(members, rows_c, strict=True):
+                out[g] = r
+        return out
     all_params = [SimParams.from_scenario(scn) for scn in scenarios]
     planner = build_planner(planner_name, all_params[0], model_dir=model_dir, deterministic_dir=deterministic_dir,
                             cfg=planner_cfg)

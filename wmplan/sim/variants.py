@@ -18,7 +18,8 @@ event rates) and the ego's start position and speed.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Sequence
+import json
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -53,6 +54,17 @@ def batchable(scenarios: Sequence[Scenario]) -> bool:
         return False
     first = _fixed_part(scenarios[0])
     return all(_fixed_part(s) == first for s in scenarios[1:])
+
+
+def batch_classes(scenarios: Sequence[Scenario], also: Callable[[Scenario], object] | None = None) -> list[list[int]]:
+    """Indices of the scenarios grouped into classes that can each share one batch, classes in order of their
+    first member, members in order. ``also(scenario)``: a further value the members of a class must share (e.g.
+    what a policy reads from the free sections)."""
+    classes: dict[str, list[int]] = {}
+    for i, scn in enumerate(scenarios):
+        key = json.dumps([_fixed_part(scn), None if also is None else also(scn)], sort_keys=True)
+        classes.setdefault(key, []).append(i)
+    return list(classes.values())
 
 
 @dataclass(frozen=True)

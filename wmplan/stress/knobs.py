@@ -13,11 +13,16 @@ hard_brake_rate   drivers.hard_brake_rate_per_min      scale   0.80   rate x exp
                                                                       sigma (a scenario with rate 0 stays at 0)
 desired_speed     drivers.desired_speed_mps.mean       shift   1.50   mean desired speed + 1.5 z m/s
 ego_speed         ego.speed_mps                        shift   2.00   ego start speed + 2.0 z m/s
+ego_brake         limits.max_brake_mps2                scale   0.50   the ego's strongest braking x exp(0.5 z):
+                                                                      8 m/s^2 (dry road) is 4.9 at -1 sigma (wet),
+                                                                      3.0 at -2 (snow), 1.8 at -3 (ice)
 ================  ===================================  ======  =====  ===============================================
 
-Values are clipped to the schema's range (density [0, 150] veh/km, rates [0, 60] /min, speeds [0, 60] m/s) and a
-distribution's mean to its own [low, high]. The spreads are this sandbox's choice of "plausible variation around
-the scenario", not measurements of real traffic; change them with your own :class:`Knob` list.
+Values are clipped to the schema's range (density [0, 150] veh/km, rates [0, 60] /min, speeds [0, 60] m/s, the
+ego's braking [0.5, 12] m/s^2) and a distribution's mean to its own [low, high]. The spreads are this sandbox's
+choice of "plausible variation around the scenario", not measurements of real traffic; change them with your own
+:class:`Knob` list. The braking spread follows tyre-road friction of roughly 0.8 dry, 0.5 wet, 0.3 on packed snow
+and 0.1-0.2 on ice (from memory; common practice, no source); the other drivers' braking is not changed with it.
 
 Resolution: z is rounded to multiples of ``z_step`` (0.25 by default) before it is turned into values, so nearby
 samples make the *same* scenario variant and run in one simulator batch. The failure probability under the nominal
@@ -68,8 +73,24 @@ DEFAULT_KNOBS: tuple[Knob, ...] = (
     Knob("hard_brake_rate", "drivers.hard_brake_rate_per_min", "scale", 0.80, 0.0, 60.0),
     Knob("desired_speed", "drivers.desired_speed_mps.mean", "shift", 1.50, 0.5, 60.0),
     Knob("ego_speed", "ego.speed_mps", "shift", 2.00, 0.0, 60.0),
+    Knob("ego_brake", "limits.max_brake_mps2", "scale", 0.50, 0.5, 12.0),
 )
 DEFAULT_Z_STEP = 0.25
+
+
+def select_knobs(names: str | Sequence[str]) -> tuple[Knob, ...]:
+    """The default knobs named (a comma-separated string or a list), in the order given."""
+    wanted = [n.strip() for n in names.split(",")] if isinstance(names, str) else [str(n) for n in names]
+    by_name = {k.name: k for k in DEFAULT_KNOBS}
+    allowed = ", ".join(by_name)
+    if not wanted or any(not n for n in wanted):
+        raise ConfigError(f"knobs: give one or more of {allowed}, separated by commas")
+    for n in wanted:
+        if n not in by_name:
+            raise ConfigError(f"knobs: unknown knob {n!r}; allowed: {allowed}")
+    if len(set(wanted)) != len(wanted):
+        raise ConfigError(f"knobs: each knob at most once, got {','.join(wanted)}")
+    return tuple(by_name[n] for n in wanted)
 
 
 def check_knobs(base: Scenario, knobs: Sequence[Knob]) -> None:

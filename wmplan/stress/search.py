@@ -8,12 +8,17 @@ time as one. A **failure** is a collision or leaving the road before the episode
 Score of a sample (larger is closer to failure; a failure exactly when the score is >= 0)::
 
     score = k / m                                   if k of its m episodes failed (k >= 1)
-          = -min_j clip(min_ttc_s_j, 0, 30)         otherwise: the closest call, as the smallest time-to-collision
-                                                    to a vehicle in the ego's path (seconds)
+          = max_j min(max_brake_threat_j, 1) - 1    otherwise: the closest call, as the largest share of the
+                                                    ego's braking it would have needed to avoid what was ahead
+                                                    (``wmplan.sim.threat``; in [-1, 0])
+          = -min_j clip(min_ttc_s_j, 0, 30)         for runners whose rows lack ``max_brake_threat``: the smallest
+                                                    time-to-collision to a vehicle in the ego's path (seconds)
 
 and its *value* for the estimate is k / m (the conditional failure rate given z, estimated from m seeds). The
 multilevel cross-entropy method (:mod:`wmplan.stress.rare_event`) raises the level of this score step by step:
-first variants where the ego closes in on others fast, then ones where it hits them. That is the CEM search for
+first variants where the ego needs a larger share of its brakes, then ones where it hits something. (The
+brake threat knows the ego's braking limit, which the time-to-collision does not: with the TTC as score, the levels
+of a search over the ego's braking drifted toward strong brakes, away from the failures.) That is the CEM search for
 failures; its last proposal also serves importance sampling. (The smallest footprint clearance is not used: when
 the ego drives beside traffic in the next lane it sits at about 1.5 m whatever the danger, so it carries little
 signal.)
@@ -70,7 +75,11 @@ def is_failure(row: dict) -> bool:
 
 
 def closeness_s(row: dict) -> float:
-    """Minus the episode's smallest time-to-collision, clipped to [0, 30] s (larger: closer to a collision)."""
+    """How close an episode came to failing (larger: closer; at most 0): its largest brake threat, capped at 1,
+    minus 1; or, for rows without one, minus the smallest time-to-collision clipped to [0, 30] s."""
+    threat = row.get("max_brake_threat")
+    if threat is not None and not math.isnan(float(threat)):
+        return min(max(float(threat), 0.0), 1.0) - 1.0
     ttc = float(row.get("min_ttc_s", TTC_CAP_S))
     return -min(max(ttc, 0.0), TTC_CAP_S) if not math.isnan(ttc) else -TTC_CAP_S
 

@@ -26,6 +26,8 @@ min_clearance_m    smallest distance between the ego's and another vehicle's foo
                    (negative: overlap depth); ``inf`` if no other vehicle was present
 min_ttc_s          smallest time-to-collision to the vehicle ahead in the ego's path (gap over closing speed,
                    constant speeds; Hayward 1972); ``inf`` if the ego never closed in on anyone
+max_brake_threat   largest deceleration the ego needed to avoid the vehicle or lane end ahead, over its braking
+                   limit (``wmplan.sim.threat``; >= 1: its brakes alone could not), capped at 10
 time_s             simulated time until the episode ended
 =================  =========================================================================================
 
@@ -51,6 +53,8 @@ from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
+from wmplan.sim.threat import brake_threat
+from wmplan.sim.variants import VariantBatch, batch_classes
 
 PlannerFn = Callable[..., list[dict]]
 """``fn(scenario: Scenario, seeds: np.ndarray (S,) int64, **options) -> list[dict]`` (one row per seed)."""
@@ -126,8 +130,9 @@ def _clearance_and_ttc(state: TrafficState) -> tuple[np.ndarray, np.ndarray]:
     return clearance, ttc.min(axis=1)
 
 
-def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy) -> dict[str, np.ndarray]:
-    state = initial_state(params, seeds)
+def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy,
+                       variants: VariantBatch | None = None) -> dict[str, np.ndarray]:
+    state = initial_state(params, seeds) if variants is None else variants.initial_state(seeds)
     s_n = state.num_scenes
     x0 = state.x_m[:, EGO].copy()
     x_end = x0.copy()
@@ -135,15 +140,17 @@ def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy) -> 
     speed_sum = np.zeros(s_n)
     steps = np.zeros(s_n, dtype=np.int64)
     clearance, ttc = _clearance_and_ttc(state)
+    threat = brake_threat(state, params)
     running = np.ones(s_n, dtype=bool)
     for _ in range(params.num_steps):
         actions = np.asarray(policy(state), dtype=np.float64)
-        state, _info = step(state, actions, params)
+        state, _info = step(state, actions, params) if variants is None else variants.step(state, actions)
         speed_sum += np.where(running, state.ego_speed_mps, 0.0)
         steps += running
         c_now, t_now = _clearance_and_ttc(state)
         clearance = np.where(running, np.minimum(clearance, c_now), clearance)
         ttc = np.where(running, np.minimum(ttc, t_now), ttc)
+        threat = np.where(running, np.maximum(threat, brake_threat(state, params)), threat)
         x_end = np.where(running, state.x_m[:, EGO], x_end)
         for key in flags:
             flags[key] = np.where(running, getattr(state, key), flags[key])
@@ -159,6 +166,7 @@ def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy) -> 
         "mean_speed_mps": speed_sum / np.maximum(steps, 1),
         "min_clearance_m": clearance,
         "min_ttc_s": ttc,
+        "max_brake_threat": threat,
         "time_s": steps * params.dt_s,
     }
 
@@ -187,6 +195,32 @@ def closed_loop(scenario: Scenario, seeds: Sequence[int] | np.ndarray,
     return rows
 
 
+def closed_loop_variants(scenarios: Sequence[Scenario], seeds: Sequence[Sequence[int] | np.ndarray],
+                         make_policy: Callable[[SimParams], Policy]) -> list[list[dict]]:
+    """:func:`closed_loop` for several scenario variants, ``seeds[g]`` in ``scenarios[g]``; rows per variant.
+
+    Variants that may share a batch (``wmplan.sim.variants.batch_classes``: they differ only in traffic, drivers
+    and the ego's start) run together, up to ``MAX_BATCH`` scenes at a time, each scene with its own variant's
+    numbers; the rows are those :func:`closed_loop` gives variant by variant (a policy that reads ``params`` sees
+    the first variant's road and limits, which the class shares, and its merge zone, which ``also`` makes the class
+    share: the rule-based ego reads it)."""
+    seeds = [np.asarray(s, dtype=np.int64).reshape(-1) for s in seeds]
+    out: list[list[dict]] = [[] for _ in scenarios]
+    for members in batch_classes(list(scenarios), also=lambda scn: scn.drivers.merge_zone_m):
+        all_params = [SimParams.from_scenario(scenarios[g]) for g in members]
+        owner = np.concatenate([np.full(len(seeds[g]), k, dtype=np.int64) for k, g in enumerate(members)])
+        flat = np.concatenate([seeds[g] for g in members])
+        for start in range(0, len(flat), MAX_BATCH):
+            part = slice(start, start + MAX_BATCH)
+            used, counts = np.unique(owner[part], return_counts=True)  # owners are sorted: contiguous groups
+            batch = VariantBatch(tuple(all_params[k] for k in used), tuple(int(c) for c in counts))
+            first = all_params[int(used[0])]
+            cols = _closed_loop_batch(first, flat[part], make_policy(first), variants=batch)
+            for i, k in enumerate(owner[part]):
+                out[members[int(k)]].append({key: v[i].item() for key, v in cols.items()})
+    return out
+
+
 def _rules_policy(params: SimParams) -> Policy:
     # decides every 0.2 s and holds the action, like the "rules" row of ``wmplan evaluate``
     return held_rule_policy(params)
@@ -202,6 +236,14 @@ def rules_episodes(scenario: Scenario, seeds: Sequence[int] | np.ndarray, **opti
     return closed_loop(scenario, seeds, _rules_policy)
 
 
+def _rules_variants(scenarios: list[Scenario], seeds: list, **options: Any) -> list[list[dict]]:
+    """The ``"rules"`` planner in several variants at once (``call_planner_variants``; stress tests)."""
+    if options:
+        raise ConfigError(f"planner 'rules' takes no options, got {sorted(options)}")
+    return closed_loop_variants(scenarios, seeds, _rules_policy)
+
+
+rules_episodes.run_variants = _rules_variants  # type: ignore[attr-defined]
 register_planner("rules", rules_episodes)
 
 
