@@ -667,7 +667,8 @@ NB04 = [
     EPISODES_PER_CELL = 4 if QUICK else 32
     STRESS_PLANNER = "rules"  # any registered planner; the sampling ones cost far more episodes per second
     STRESS_DENSITY = [4.0, 50.0, 36.0]  # the stressed variant: dense traffic ...
-    STRESS_HARD_BRAKES_PER_MIN = 6.0  # ... whose drivers brake hard often
+    STRESS_HARD_BRAKES_PER_MIN = 6.0  # ... whose drivers brake hard often ...
+    STRESS_EGO_BRAKE = 3.0  # ... on a snowy road: the ego brakes at 3 m/s^2 at most (8 on a dry road)
     STRESS_BUDGET = 120 if QUICK else 1000  # episodes per estimator (importance sampling; plain Monte Carlo)
     OUT = Path("runs/notebooks/04_sweeps_and_stress")
     """),
@@ -745,9 +746,10 @@ NB04 = [
     md("""
     ## A stress test
 
-    We stress a harder variant of the scenario (denser traffic, frequent hard braking), built in code. The stress
-    test turns five scenario *knobs* (density, yield probability, hard-braking rate, desired speed, the ego's start
-    speed) into standard-normal coordinates and
+    We stress a harder variant of the scenario (denser traffic, frequent hard braking, a snowy road on which the ego
+    brakes at 3 m/s^2 at most), built in code. The stress test turns six scenario *knobs* (density, yield
+    probability, hard-braking rate, desired speed, the ego's start speed and its braking limit) into standard-normal
+    coordinates and
 
     1. searches them, together with the traffic's random events, for failures (collision or leaving the road) with
        the multilevel cross-entropy method, which moves the sampling distribution toward the failures step by step;
@@ -760,6 +762,7 @@ NB04 = [
     data["name"] = f"{SCENARIO}-stressed"
     data["traffic"]["density_veh_per_km"] = STRESS_DENSITY
     data["drivers"]["hard_brake_rate_per_min"] = STRESS_HARD_BRAKES_PER_MIN
+    data["limits"]["max_brake_mps2"] = STRESS_EGO_BRAKE
     stressed = parse_scenario(data, source="notebook 04: stressed variant")
 
     t0 = time.perf_counter()

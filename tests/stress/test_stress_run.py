@@ -213,3 +213,28 @@ def test_recorded_episode_is_the_episode_stress_runs_saw() -> None:
     for key in ("collision", "offroad", "success", "decisions", "progress_m", "mean_speed_mps"):
         assert row[key] == ref[key], key
     assert frames.shape[0] == row["decisions"] * 2 + 1
+
+
+def test_stress_is_gain_benchmark_reference_is_an_exact_stratification() -> None:
+    """``benchmarks/stress_is_gain.py``'s true value (smoke test, small): the strata of the rounded ego_brake knob
+    carry the normal probabilities of their z cells (``scipy.stats.norm.cdf``, reference library) and together all
+    but the omitted tail; the estimate is sum P_k h_k. The >= 10x claim is measured by running the benchmark."""
+    import importlib.util
+
+    import scipy.stats
+
+    path = Path(__file__).resolve().parents[2] / "benchmarks" / "stress_is_gain.py"
+    spec = importlib.util.spec_from_file_location("wmplan_bench_stress_is_gain_test", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    ref = module.reference(reference_episodes=200, min_per_stratum=4)
+    strata = ref["strata"]
+    total = sum(s["prob"] for s in strata)
+    assert total + ref["omitted_tail_prob"] == pytest.approx(1.0, abs=1e-12)
+    for s in strata:
+        lo, hi = s["z"]
+        assert s["prob"] == pytest.approx(scipy.stats.norm.cdf(hi + 0.125) - scipy.stats.norm.cdf(lo - 0.125), rel=1e-9)
+    assert [s["brake_mps2"] for s in strata] == sorted({s["brake_mps2"] for s in strata})
+    assert strata[0]["brake_mps2"] == 0.5 and strata[-1]["brake_mps2"] == 12.0
+    assert ref["estimate"] == pytest.approx(sum(s["prob"] * s["failures"] / s["episodes"] for s in strata))
+    assert ref["ci95"][0] <= ref["estimate"] <= ref["ci95"][1]
