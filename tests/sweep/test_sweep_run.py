@@ -149,8 +149,10 @@ def test_interrupted_run_resumes_to_the_uninterrupted_rows(tmp_path: Path, broke
     with pytest.raises(SweepError) as info:
         run_sweep(path, out, workers=workers, progress=False)
     msg = str(info.value)
-    assert "\n" not in msg and re.search(r"cells did not finish; first: cell [0-9a-f]{16} \(planner flaky, "
-                                         r"traffic\.density_veh_per_km\[1\]=36\.0", msg)
+    # (a worker that dies takes the cells in flight on the other worker with it: the first unfinished cell, in
+    # cell-id order, may then be a rules cell)
+    assert "\n" not in msg and re.search(r"cells did not finish; first: cell [0-9a-f]{16} \(planner (flaky|rules), "
+                                         r"traffic\.density_veh_per_km\[1\]=", msg)
     assert msg.endswith(f"are saved in {out / 'cells'}; rerun the same command to run the rest")
     summary = json.loads((out / "summary.json").read_text())
     assert not summary["complete"] and summary["missing_cells"]

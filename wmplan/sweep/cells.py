@@ -26,8 +26,9 @@ from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_ha
 from wmplan.sweep.paths import PathError, close_matches, get_path, set_path
 from wmplan.sweep.spec import Sweep, SweepError, canonical_json, content_hash
 
-ROWS_VERSION = 1
-"""Version of the episode-row format; part of every cell id, so a format change never reuses old cell files."""
+ROWS_VERSION = 2
+"""Version of the episode rows; part of every cell id, so a change never reuses old cell files. 2: rows carry
+``max_brake_threat``, and the rule-based ego merges only where its own braking stays within b_safe."""
 ID_LENGTH = 16
 
 
