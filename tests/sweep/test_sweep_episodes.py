@@ -205,8 +205,8 @@ def test_variants_in_shared_batches_match_one_variant_at_a_time() -> None:
 def test_rules_variants_of_other_limits_or_merge_zone_run_in_their_own_batches() -> None:
     """The rule-based ego reads the ego's limits and the merge zone from the parameters: variants that differ in
     them fall into their own batch classes, and every variant still gives the rows it gives alone."""
-    from wmplan.sweep.episodes import closed_loop_variants, rules_episodes
     from wmplan.sim.variants import batch_classes
+    from wmplan.sweep.episodes import closed_loop_variants, rules_episodes
 
     scenarios = list(_onramp_variants())
     d = copy.deepcopy(scenario_to_dict(scenarios[0]))

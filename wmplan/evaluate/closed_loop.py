@@ -39,8 +39,8 @@ from wmplan.sim.engine import contact_sides, step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
-from wmplan.sim.tilt import EventTilt
 from wmplan.sim.threat import brake_threat
+from wmplan.sim.tilt import EventTilt
 from wmplan.sim.variants import VariantBatch, batch_classes, batchable
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")

@@ -52,6 +52,20 @@ def _leaders_followers(state: TrafficState, params: SimParams):
     return ahead.min(axis=1), ahead.argmin(axis=1), behind.min(axis=1), behind.argmin(axis=1)
 
 
+def ego_lane_end_gap(state: TrafficState, params: SimParams) -> np.ndarray:
+    """(S,) metres from the ego's front to the nearest end of a lane its body reaches into (inf if none ends).
+
+    Every lane the body still touches counts, not only the lane of its centre: half-way through a merge the rear
+    corner may still be over the ending lane."""
+    s_n = state.num_scenes
+    body = lane_occupancy(params, state.y_m[:, :1], state.width_m[:, :1], np.ones((s_n, 1), dtype=bool), None,
+                          state.heading_rad[:, :1], state.length_m[:, :1])[:, 0]  # (S, L)
+    body[np.arange(s_n), params.lane_of(state.y_m[:, EGO])] = True
+    lanes = np.broadcast_to(np.arange(params.num_lanes), body.shape)
+    d_lanes = params.distance_to_lane_end(lanes, state.x_m[:, :1])  # (S, L)
+    return np.where(body, d_lanes, np.inf).min(axis=1) - 0.5 * state.length_m[:, EGO]
+
+
 def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
     """Actions (S, 2) of the rule-based ego for every scene: (accel_mps2, steer_rad), within the limits."""
     s_n = state.num_scenes
@@ -81,14 +95,7 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         after = idm_accel(vf, tr[:, T_V0], g, vf - v, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B])
         return np.where(has, now, 0.0), np.where(has, after, 0.0), has, g
 
-    # The end of every lane the ego's body still reaches into counts, not only the lane of its centre: half-way
-    # through a merge its rear corner may still be in the ending lane.
-    body = lane_occupancy(params, y[:, None], state.width_m[:, :1], np.ones((s_n, 1), dtype=bool), None,
-                          state.heading_rad[:, :1], state.length_m[:, :1])[:, 0]  # (S, L)
-    body[rows, lane] = True
-    lanes = np.arange(params.num_lanes)
-    d_lanes = params.distance_to_lane_end(np.broadcast_to(lanes, body.shape), x[:, None])  # (S, L)
-    d_end = np.where(body, d_lanes, np.inf).min(axis=1) - 0.5 * state.length_m[:, EGO]
+    d_end = ego_lane_end_gap(state, params)
     g_own, v_own = lead(lane)
     a_now = np.minimum(_ego_idm(params, v, g_own, v_own), _ego_idm(params, v, d_end, 0.0))
 

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from wmplan.sim.engine import lane_occupancy
+from wmplan.sim.ego_rules import ego_lane_end_gap
 from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
 
@@ -26,7 +26,6 @@ THREAT_CAP = 10.0
 
 def brake_threat(state: TrafficState, params: SimParams) -> np.ndarray:
     """(S,) deceleration needed to avoid the obstacle ahead over the ego's braking limit (module docstring)."""
-    s_n = state.num_scenes
     x, y = state.x_m, state.y_m
     heading = state.heading_rad[:, EGO]
     v_ego = state.ego_speed_mps * np.cos(heading)
@@ -39,12 +38,7 @@ def brake_threat(state: TrafficState, params: SimParams) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         need = np.where(gap > 0, closing**2 / (2.0 * gap), np.inf)
     a_leader = np.where(in_path & (closing > 0), need, 0.0).max(axis=1)
-    # ends of the lanes the ego's body reaches into
-    body = lane_occupancy(params, y[:, :1], state.width_m[:, :1], np.ones((s_n, 1), dtype=bool), None,
-                          state.heading_rad[:, :1], state.length_m[:, :1])[:, 0]  # (S, L)
-    lanes = np.broadcast_to(np.arange(params.num_lanes), body.shape)
-    d_end = np.where(body, params.distance_to_lane_end(lanes, x[:, :1]), np.inf).min(axis=1)
-    d_end = d_end - 0.5 * state.length_m[:, EGO]
+    d_end = ego_lane_end_gap(state, params)  # ends of the lanes the ego's body reaches into
     with np.errstate(divide="ignore", invalid="ignore"):
         a_end = np.where(np.isfinite(d_end), np.where(d_end > 0, v_ego**2 / (2.0 * d_end), np.inf), 0.0)
     threat = np.maximum(a_leader, a_end) / params.max_brake_mps2
