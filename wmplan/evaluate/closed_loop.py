@@ -41,7 +41,7 @@ from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
 from wmplan.sim.threat import brake_threat
 from wmplan.sim.tilt import EventTilt
-from wmplan.sim.variants import VariantBatch, batch_classes, batchable
+from wmplan.sim.variants import VariantBatch, batch_classes, variant_chunks
 
 PLANNER_NAMES = ("rules", "mpc+latent", "mpc+deterministic", "mpc+constant-velocity", "mpc+oracle")
 OUTCOMES = ("goal", "collision", "offroad", "timeout")
@@ -292,11 +292,10 @@ def evaluate_variants(scenarios: Sequence[Scenario], seeds: Sequence[np.ndarray]
               batch_size=batch_size, progress=progress)
     if planner_name == "mpc+oracle":
         return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
-    if not batchable(list(scenarios)):
-        # several classes (e.g. variants of the ego's braking limit): each class shares batches on its own
-        classes = batch_classes(list(scenarios))
-        if len(classes) == len(scenarios):
-            return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    classes = batch_classes(list(scenarios))
+    if len(classes) > 1 and len(classes) == len(scenarios):  # no two variants can share a batch
+        return [evaluate_seeds(scn, planner_name, s, **kw).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    if len(classes) > 1:  # e.g. variants of the ego's braking limit: each class shares batches on its own
         out: list[list[dict]] = [[] for _ in scenarios]
         for members in classes:
             rows_c = evaluate_variants([scenarios[g] for g in members], [seeds[g] for g in members], planner_name,
@@ -308,17 +307,11 @@ def evaluate_variants(scenarios: Sequence[Scenario], seeds: Sequence[np.ndarray]
     planner = build_planner(planner_name, all_params[0], model_dir=model_dir, deterministic_dir=deterministic_dir,
                             cfg=planner_cfg)
     plan_dt = planner.cfg.plan_dt_s if planner is not None else PlannerConfig().plan_dt_s
-    owner = np.concatenate([np.full(len(s), g, dtype=np.int64) for g, s in enumerate(seeds)])
-    flat = np.concatenate(seeds) if seeds else np.zeros(0, dtype=np.int64)
-    index = np.concatenate([np.arange(len(s)) for s in seeds]) if seeds else np.zeros(0, dtype=np.int64)
     rows: list[list[dict | None]] = [[None] * len(s) for s in seeds]
-    for start in range(0, len(flat), batch_size):
-        part = slice(start, start + batch_size)
-        used, counts = np.unique(owner[part], return_counts=True)  # owners are sorted: contiguous groups
-        batch = VariantBatch(tuple(all_params[g] for g in used), tuple(int(c) for c in counts))
-        out = run_batch(all_params[int(used[0])], planner_name, planner, flat[part], seed=seed, progress=progress,
+    for batch, part_seeds, owner, index in variant_chunks(all_params, seeds, batch_size):
+        out = run_batch(batch.params[0], planner_name, planner, part_seeds, seed=seed, progress=progress,
                         variants=batch)
-        for r, g, e in zip(out.rows, owner[part], index[part], strict=True):
+        for r, g, e in zip(out.rows, owner, index, strict=True):
             r["episode"] = int(e)
             r["time_s"] = r["decisions"] * plan_dt
             rows[int(g)][int(e)] = r

@@ -67,6 +67,22 @@ def batch_classes(scenarios: Sequence[Scenario], also: Callable[[Scenario], obje
     return list(classes.values())
 
 
+def variant_chunks(all_params: Sequence[SimParams], seeds: Sequence[np.ndarray], batch_size: int):
+    """The scenes of several variants (``seeds[g]`` with ``all_params[g]``, in variant order) in batches of at most
+    ``batch_size``: yields ``(batch, seeds (n,), owner (n,), index (n,))``, owner the variant of each scene and
+    index its position among that variant's seeds."""
+    if not seeds:
+        return
+    owner = np.concatenate([np.full(len(s), g, dtype=np.int64) for g, s in enumerate(seeds)])
+    flat = np.concatenate([np.asarray(s, dtype=np.int64) for s in seeds])
+    index = np.concatenate([np.arange(len(s)) for s in seeds])
+    for start in range(0, len(flat), batch_size):
+        part = slice(start, start + batch_size)
+        used, counts = np.unique(owner[part], return_counts=True)  # owners are sorted: contiguous groups
+        batch = VariantBatch(tuple(all_params[g] for g in used), tuple(int(c) for c in counts))
+        yield batch, flat[part], owner[part], index[part]
+
+
 @dataclass(frozen=True)
 class VariantBatch:
     """Contiguous groups of scenes: scenes ``[bounds[g][0], bounds[g][1])`` run with ``params[g]``."""

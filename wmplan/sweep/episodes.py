@@ -49,12 +49,10 @@ import numpy as np
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, load_scenario
 from wmplan.sim.ego_rules import held_rule_policy
-from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
-from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
 from wmplan.sim.threat import brake_threat
-from wmplan.sim.variants import VariantBatch, batch_classes
+from wmplan.sim.variants import VariantBatch, batch_classes, variant_chunks
 
 PlannerFn = Callable[..., list[dict]]
 """``fn(scenario: Scenario, seeds: np.ndarray (S,) int64, **options) -> list[dict]`` (one row per seed)."""
@@ -131,8 +129,9 @@ def _clearance_and_ttc(state: TrafficState) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy,
-                       variants: VariantBatch | None = None) -> dict[str, np.ndarray]:
-    state = initial_state(params, seeds) if variants is None else variants.initial_state(seeds)
+                       variants: VariantBatch) -> dict[str, np.ndarray]:
+    """Columns of one batch of episodes; ``params`` is the first variant's (the road and limits all share)."""
+    state = variants.initial_state(seeds)
     s_n = state.num_scenes
     x0 = state.x_m[:, EGO].copy()
     x_end = x0.copy()
@@ -144,7 +143,7 @@ def _closed_loop_batch(params: SimParams, seeds: np.ndarray, policy: Policy,
     running = np.ones(s_n, dtype=bool)
     for _ in range(params.num_steps):
         actions = np.asarray(policy(state), dtype=np.float64)
-        state, _info = step(state, actions, params) if variants is None else variants.step(state, actions)
+        state, _info = variants.step(state, actions)
         speed_sum += np.where(running, state.ego_speed_mps, 0.0)
         steps += running
         c_now, t_now = _clearance_and_ttc(state)
@@ -184,15 +183,7 @@ def closed_loop(scenario: Scenario, seeds: Sequence[int] | np.ndarray,
     Returns:
         Rows with the keys of the module table except ``planner``, in the order of ``seeds``.
     """
-    params = SimParams.from_scenario(scenario)
-    seeds = np.asarray(seeds, dtype=np.int64).reshape(-1)
-    rows: list[dict] = []
-    for start in range(0, len(seeds), MAX_BATCH):
-        part = seeds[start:start + MAX_BATCH]
-        cols = _closed_loop_batch(params, part, make_policy(params))
-        for i in range(len(part)):
-            rows.append({k: v[i].item() for k, v in cols.items()})
-    return rows
+    return closed_loop_variants([scenario], [seeds], make_policy)[0]
 
 
 def closed_loop_variants(scenarios: Sequence[Scenario], seeds: Sequence[Sequence[int] | np.ndarray],
@@ -208,15 +199,10 @@ def closed_loop_variants(scenarios: Sequence[Scenario], seeds: Sequence[Sequence
     out: list[list[dict]] = [[] for _ in scenarios]
     for members in batch_classes(list(scenarios), also=lambda scn: scn.drivers.merge_zone_m):
         all_params = [SimParams.from_scenario(scenarios[g]) for g in members]
-        owner = np.concatenate([np.full(len(seeds[g]), k, dtype=np.int64) for k, g in enumerate(members)])
-        flat = np.concatenate([seeds[g] for g in members])
-        for start in range(0, len(flat), MAX_BATCH):
-            part = slice(start, start + MAX_BATCH)
-            used, counts = np.unique(owner[part], return_counts=True)  # owners are sorted: contiguous groups
-            batch = VariantBatch(tuple(all_params[k] for k in used), tuple(int(c) for c in counts))
-            first = all_params[int(used[0])]
-            cols = _closed_loop_batch(first, flat[part], make_policy(first), variants=batch)
-            for i, k in enumerate(owner[part]):
+        for batch, part, owner, _index in variant_chunks(all_params, [seeds[g] for g in members], MAX_BATCH):
+            first = batch.params[0]
+            cols = _closed_loop_batch(first, part, make_policy(first), batch)
+            for i, k in enumerate(owner):
                 out[members[int(k)]].append({key: v[i].item() for key, v in cols.items()})
     return out
 
