@@ -10,8 +10,10 @@ speed does not depend on training):
   stored episodes (what ``train`` does every step); ``samples_per_s_model_only`` times the same steps on batches
   built beforehand. Several steps after a warm-up; the median step time.
 * ``rollout``: ``WorldModel.sample`` at planner shapes, one scene (B = 1, a window of the dataset), C = 64 plans of
-  H = 15 steps, K = 8 samples, N = 9 objects, in inference mode: vehicle-steps = C x K x H x N per call; the median
-  over repeats. ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided
+  H = 15 steps, K = 8 samples, N = 9 objects, in inference mode, called as the planner calls it (the rows alone,
+  ``moments=False``: the decoder's last layer computes the means, not the variances the planner does not use):
+  vehicle-steps = C x K x H x N per call; the median over repeats. ``s_per_call_median_with_moments`` times the
+  call that also returns the residuals' means and log-variances (what the assessment uses). ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided
   by the rollout's time.
 * ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
   matrices with the shapes of every matrix multiply the rollout does (recorded from every linear map it applies,
@@ -22,9 +24,11 @@ speed does not depend on training):
   latent part on B x C x K x N rows; the rest of the prior on B x C x N rows, the rest of the decoder on
   B x C x K x N rows), hence the same FLOPs, timed in the same process on the same threads. The FLOPs are counted
   twice: 2 x in x out x rows summed over those layers, and ``torch.utils.flop_counter.FlopCounterMode`` (its
-  mm/addmm/bmm counts); both are reported and agree. The attention's own products (queries times keys, weights
-  times values, on B x heads x N x N) are in neither; at N = 9 objects they are 0.02 % of the FLOPs.
-  Target: >= 0.5.
+  mm/addmm counts); both are reported and agree. The attention's own products (queries times keys, weights
+  times values, batched products on B x heads x N x N) are in neither; at N = 9 objects they are 0.02 % of the
+  FLOPs. Target: >= 0.5.
+* ``rollout_closed_loop_batch``: the same measurement with 50 scenes in one call, the batch the closed-loop
+  evaluation, sweeps and stress tests plan for at once (``rollout_efficiency_closed_loop_batch``).
 * ``breakdown_s``: the rollout replayed piece by piece with the model's own modules (median seconds per piece),
   to show where the time goes; ``breakdown_matches_sample`` says whether the replay reproduced ``sample``'s
   output exactly (if ``sample`` changes, the replay may no longer describe it).
@@ -55,6 +59,7 @@ import numpy as np
 
 SCENARIO = "onramp-merge"
 PLANNER_SHAPE = dict(scenes=1, candidates=64, samples=8)
+CLOSED_LOOP_SCENES = 50  # wmplan.evaluate.closed_loop's default batch of episodes
 TRAIN_BATCH = 256
 FULL = dict(episodes=32, train_warmup=3, train_steps=20, rollout_warmup=5, rollout_repeats=31, matmul_repeats=31,
             breakdown_repeats=21)
@@ -104,7 +109,8 @@ def linear_shapes(model, fn) -> list[tuple[int, int, int]]:
 
 
 def flop_counter_mm_flops(fn) -> int | None:
-    """FLOPs of mm / addmm / bmm / baddbmm counted by ``FlopCounterMode`` while ``fn()`` runs (None if unavailable)."""
+    """FLOPs of mm / addmm counted by ``FlopCounterMode`` while ``fn()`` runs (None if unavailable); the batched
+    products (bmm) are the attention's queries times keys and weights times values, in neither count."""
     try:
         import torch
         from torch.utils.flop_counter import FlopCounterMode
@@ -112,7 +118,7 @@ def flop_counter_mm_flops(fn) -> int | None:
         return None
     with FlopCounterMode(display=False) as counter:
         fn()
-    wanted = {torch.ops.aten.mm, torch.ops.aten.addmm, torch.ops.aten.bmm, torch.ops.aten.baddbmm}
+    wanted = {torch.ops.aten.mm, torch.ops.aten.addmm}  # the attention's batched products (bmm) left out, as above
     return int(sum(v for k, v in counter.get_flop_counts().get("Global", {}).items() if k in wanted))
 
 
@@ -171,18 +177,18 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
             for i in range(1, last):
                 x = run_layers(model.decoder[i:i + 1], x)
                 t = tick(f"decoder_{i}_{type(model.decoder[i]).__name__.lower()}", t)
-            mean, _ = model.decoder_output(x)
-            t = tick(f"decoder_{last}_linear_and_output_scales", t)
-            xy = model.cv_positions(hist)[:, None, None] + mean
-            t = tick("constant_velocity_add", t)
-            rows = model.assemble_rows(hist, xy, ego_f)
+            mean, _ = model.decoder_output(x, logvar=False)
+            t = tick(f"decoder_{last}_linear_means", t)
+            cv = model.cv_positions(hist)[:, None, None]
+            t = tick("constant_velocity", t)
+            rows = model.assemble_rows(hist, (cv, mean), ego_f)
             t = tick("assemble_rows", t)
             # the headings of every predicted row (part of assemble_rows), timed alone on same-size planes
-            vx, vy = xy.movedim(-1, 0).contiguous()
+            vx, vy = (cv + mean).movedim(-1, 0).contiguous()
             t = now()
             torch.atan2(vy, vx.clamp_min(0.1))
             tick("assemble_rows.atan2_part", t)
-    ref = model.sample(batch, actions, k, generator=torch.Generator().manual_seed(seed))["rows"]
+    ref = model.sample(batch, actions, k, generator=torch.Generator().manual_seed(seed), moments=False)["rows"]
     med = lambda d: {name: statistics.median(v) for name, v in d.items()}  # noqa: E731
     return med(times), med(cpu_times), bool(torch.equal(ref, rows))
 
@@ -198,7 +204,7 @@ def _training(model_cfg, windows, index, cfg: dict) -> dict:
     tc = TrainConfig()
     model = WorldModel(model_cfg, windows_ego(windows), generator=torch.Generator().manual_seed(SEED))
     model.train()
-    opt = torch.optim.Adam(model.parameters(), lr=tc.lr)
+    opt = torch.optim.Adam(model.parameters(), lr=tc.peak_lr(model_cfg.deterministic))
     rng = np.random.default_rng(SEED)
     gen = torch.Generator().manual_seed(SEED + 1)
 
@@ -228,6 +234,40 @@ def _training(model_cfg, windows, index, cfg: dict) -> dict:
         "s_per_step": statistics.median(wall),
         "loss_weights": {"kl_weight": 1.0, "free_bits": tc.free_bits, "prior_weight": tc.prior_weight},
     }
+
+
+def batched_rollout(model, windows, index, scenes: int, cfg: dict) -> dict:
+    """Rollout and matmul-loop times at the planner's shape for ``scenes`` scenes in one call (what the closed-loop
+    evaluation, sweeps and stress tests do: ``wmplan.evaluate.closed_loop`` plans for up to 50 episodes at once),
+    measured as for one scene: the rows alone, the same FLOPs in a plain ``torch.mm`` loop, medians over repeats."""
+    import torch
+
+    from wmplan.model.train import to_torch
+
+    c, k = PLANNER_SHAPE["candidates"], PLANNER_SHAPE["samples"]
+    pick = index[:: max(1, len(index) // scenes)][:scenes]
+    batch = to_torch(windows.batch(pick))
+    g = torch.Generator().manual_seed(SEED + 5)
+    actions = (batch["actions"][:, None] + torch.randn(len(pick), c, model.cfg.horizon, 2, generator=g)
+               * torch.tensor([1.0, 0.05])).contiguous()
+
+    def rollout() -> None:
+        model.sample(batch, actions, k, generator=torch.Generator().manual_seed(SEED + 6), moments=False)
+
+    reps = max(3, cfg["rollout_repeats"] // 3)
+    _timed(rollout, 2)
+    r_wall, _ = _timed(rollout, reps)
+    with torch.inference_mode():
+        shapes = linear_shapes(model, rollout)
+    mm = matmul_loop(shapes, torch.Generator().manual_seed(SEED + 7))
+    _timed(mm, 2)
+    m_wall, _ = _timed(mm, reps)
+    r2_wall, _ = _timed(rollout, reps)
+    t_roll, t_mm = statistics.median(r_wall + r2_wall), statistics.median(m_wall)
+    steps = len(pick) * c * k * model.cfg.horizon * model.cfg.num_rows
+    return {"scenes": len(pick), "candidates": c, "samples": k, "s_per_call_median": t_roll, "s_loop_median": t_mm,
+            "rollout_efficiency": t_mm / t_roll, "vehicle_steps_per_s": steps / t_roll,
+            "flops_per_rollout": int(sum(2 * r * i * o for r, i, o in shapes)), "repeats": 2 * reps}
 
 
 def windows_ego(windows):
@@ -274,7 +314,10 @@ def run(quick: bool = False, threads: int = 1) -> dict:
         n = model_cfg.num_rows
         vehicle_steps = c * k * model_cfg.horizon * n * b
 
-        def rollout() -> None:
+        def rollout() -> None:  # as the planner calls it (wmplan.plan.predictors): the rows alone
+            model.sample(batch, actions, k, generator=torch.Generator().manual_seed(SEED + 3), moments=False)
+
+        def rollout_with_moments() -> None:  # as the assessment calls it: also the residuals' means and variances
             model.sample(batch, actions, k, generator=torch.Generator().manual_seed(SEED + 3))
 
         def ego_only() -> None:
@@ -297,8 +340,11 @@ def run(quick: bool = False, threads: int = 1) -> dict:
         m_wall, m_cpu = _timed(mm, cfg["matmul_repeats"])
         # a second rollout timing after the matmul loop, so that a change in machine load between the two shows
         r2_wall, r2_cpu = _timed(rollout, cfg["rollout_repeats"])
+        _timed(rollout_with_moments, cfg["rollout_warmup"])
+        rm_wall, _ = _timed(rollout_with_moments, cfg["rollout_repeats"])
 
         parts, parts_cpu, matches = breakdown(model, batch, actions, k, cfg["breakdown_repeats"], SEED + 3)
+        batched = batched_rollout(model, windows, index, CLOSED_LOOP_SCENES, cfg)
 
         t_roll, t_roll_cpu = statistics.median(r_wall + r2_wall), statistics.median(r_cpu + r2_cpu)
         t_mm, t_mm_cpu = statistics.median(m_wall), statistics.median(m_cpu)
@@ -315,6 +361,8 @@ def run(quick: bool = False, threads: int = 1) -> dict:
             "rollout_efficiency_cpu_time": t_mm_cpu / t_roll_cpu,
             "rollout_efficiency_fastest_runs": min(m_wall) / min(r_wall + r2_wall),
             "rollout_vehicle_steps_per_s": vehicle_steps / t_roll,
+            "rollout_efficiency_closed_loop_batch": batched["rollout_efficiency"],
+            "rollout_closed_loop_batch": batched,
             "training_samples_per_s": training["samples_per_s"],
             "training": training,
             "rollout": {
@@ -324,6 +372,7 @@ def run(quick: bool = False, threads: int = 1) -> dict:
                 "s_per_call_min": min(r_wall + r2_wall),
                 "s_per_call_median_before_matmul_loop": statistics.median(r_wall),
                 "s_per_call_median_after_matmul_loop": statistics.median(r2_wall),
+                "s_per_call_median_with_moments": statistics.median(rm_wall),
                 "cpu_s_per_call_median": t_roll_cpu,
                 "vehicle_steps_per_cpu_s": vehicle_steps / t_roll_cpu,
                 "ego_kinematics_s": t_ego,

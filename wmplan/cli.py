@@ -207,7 +207,8 @@ def cmd_train(args: argparse.Namespace) -> int:
     from wmplan.model.train import train
 
     mcfg = ModelConfig(deterministic=args.deterministic)
-    tcfg = TrainConfig(minutes=args.minutes, seed=args.seed, **({"max_epochs": args.epochs} if args.epochs else {}))
+    tcfg = TrainConfig(seed=args.seed, **({"minutes": args.minutes} if args.minutes is not None else {}),
+                       **({"max_epochs": args.epochs} if args.epochs else {}))
     total = tcfg.max_epochs * tcfg.steps_per_epoch
     from tqdm.auto import tqdm
 
@@ -241,6 +242,10 @@ def cmd_train(args: argparse.Namespace) -> int:
     shown = ", ".join(f"{k} {last[k]:.3f}" for k in keys)
     print(f"trained {'deterministic' if args.deterministic else 'latent'} model ({res.model.num_parameters()} "
           f"parameters) for {len(res.history)} epochs in {summary['seconds']} s -> {res.out_dir}; {shown}")
+    if res.stopped_early:
+        print(f"wmplan: stopped by the {tcfg.minutes:g}-minute cap after {len(res.history)} of {tcfg.max_epochs} "
+              f"epochs, before the learning rate finished its decay (a larger --minutes or fewer --epochs lets it finish)",
+              file=sys.stderr)
     return 0
 
 
@@ -469,8 +474,10 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("train", help="train the forward model (or its deterministic baseline) on a dataset")
     sp.add_argument("data_dir", help="dataset folder written by `wmplan simulate`")
     sp.add_argument("--out", required=True, metavar="MODEL_DIR")
-    sp.add_argument("--minutes", type=float, default=4.0, help="wall-clock budget (default 4)")
-    sp.add_argument("--epochs", type=_positive_int, default=None, help="number of epochs (default 25)")
+    sp.add_argument("--minutes", type=float, default=None,
+                    help="wall-clock cap: training stops after the epoch that crosses it (default 4.5)")
+    sp.add_argument("--epochs", type=_positive_int, default=None,
+                    help="epochs of 200 steps; the learning rate decays over them (default 16)")
     sp.add_argument("--seed", type=_nonneg_int, default=0)
     sp.add_argument("--deterministic", action="store_true", help="train the least-squares baseline without latent")
     sp.add_argument("--resume", action="store_true", help="continue from the newest checkpoint in --out")

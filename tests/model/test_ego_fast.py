@@ -142,3 +142,23 @@ def test_stop_and_restart_worked_example(ego):
     torch.testing.assert_close(out[:, 0], torch.tensor([0.0625, 0.1225], dtype=torch.float64), rtol=0, atol=1e-12)
     torch.testing.assert_close(out[:, 2], torch.tensor([0.0, 0.6], dtype=torch.float64), rtol=0, atol=1e-12)
     assert (out[:, [1, 3, 4]] == 0).all()
+
+
+@pytest.mark.parametrize("binds", [False, True])
+def test_applied_steer_with_commands_within_reach(ego, binds):
+    """Smooth commands, each within one plan step's reach of the one before it (the planner's usual plans): the
+    commands shifted by one are the angles each begins at (the shortcut of ``applied_steer``), equal to the
+    step-by-step limiter to 1e-12 rad. With one plan's first command out of reach (``binds``) the loop runs for the
+    whole batch and agrees as well."""
+    reach = ego.max_steer_rate_radps * PLAN_DT_S
+    g = torch.Generator().manual_seed(5)
+    steer0 = (torch.rand(32, 3, generator=g, dtype=torch.float64) - 0.5) * 0.2
+    steps = (torch.rand(32, 3, HORIZON, generator=g, dtype=torch.float64) - 0.5) * 1.6 * reach  # within +-0.8 reach
+    want = (steer0[..., None] + steps.cumsum(-1)).clamp(-ego.max_steer_rad, ego.max_steer_rad)
+    if binds:
+        want[7, 1] += 3.0 * reach
+        want = want.clamp(-ego.max_steer_rad, ego.max_steer_rad)
+    got = ego.applied_steer(want, steer0)
+    ref = stepwise_applied_steer(ego, want, steer0)
+    torch.testing.assert_close(got, ref, rtol=0, atol=1e-12)
+    assert ((ref[..., -1] - want).abs() > 1e-9).any() == binds  # the limit binds only where it was made to

@@ -120,6 +120,34 @@ def test_world_model_loss_nll_on_reference_example(prior_weight):
         assert "loss/nll_prior" not in metrics
 
 
+def test_beta_nll_weights_each_term_by_its_variance_without_differentiating_it():
+    """beta-NLL (Seitzer et al., ICLR 2022, eq. 5: each term times stop-gradient(sigma^(2 beta))) on the 10.3 example
+    set-up above: variance 4 m^2 and a 1 m residual everywhere, beta = 0.5, so every term is weighted by 2 and the
+    fitted likelihood is 2 x 2 H x 1.7370857 (REFERENCES.md 10.3 [D]); the logged NLL stays the plain one. The
+    gradient on each raw log-variance output is the weight times d NLL / d log var = 2 x 1/2 (1 - 1/4) = 0.75
+    (derived); differentiating the weight too would add beta x 2 x 1.737 to it."""
+    from wmplan.model.config import ModelConfig
+    from wmplan.model.nets import RESIDUAL_SCALE_M
+
+    hz = 3
+    cfg = ModelConfig(history=2, horizon=hz, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1,
+                      latent_dim=2)
+    model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(5))
+    last = model.decoder[-1]
+    with torch.no_grad():
+        last.weight.zero_()
+        last.bias[: 2 * hz] = 0.0
+        last.bias[2 * hz:] = math.log(4.0 / RESIDUAL_SCALE_M**2)
+    batch = straight_batch(4, 2, hz, future_dx_m=0.0, future_dy_m=0.0)
+    batch["future"][..., 1, 0] += 1.0
+    batch["future"][..., 1, 1] += 1.0
+    loss, metrics = model.loss(batch, kl_weight=0.0, nll_beta=0.5, generator=torch.Generator().manual_seed(6))
+    assert metrics["loss/nll"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
+    assert float(loss.detach()) == pytest.approx(2.0 * 2 * hz * NLL_EXAMPLE, rel=1e-6)
+    grad = torch.autograd.grad(loss, last.bias)[0]
+    torch.testing.assert_close(grad[2 * hz:], torch.full((2 * hz,), 0.75), rtol=1e-5, atol=0.0)
+
+
 def test_mixture_nll_with_one_component_is_the_gaussian_nll():
     """``assess.mixture_nll`` with K = 1 equals ``GaussianNLLLoss(full=True, reduction='none')`` summed over the
     two coordinates, on random means, log-variances and targets (seeded; reference library); and on the 10.3

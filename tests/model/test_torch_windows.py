@@ -59,3 +59,19 @@ def test_works_with_dataloader(dataset):
                                          generator=torch.Generator().manual_seed(3))
     speeds = torch.cat([b["ego_speed_mps"] for b in loader]).numpy()
     np.testing.assert_array_equal(np.sort(speeds), np.sort(windows.batch(index).ego_speed_mps))
+
+
+def test_window_cache_gathers_what_the_builder_builds(dataset):
+    """Training keeps its windows in a ``WindowCache`` built in chunks; a batch gathered from it at any positions
+    (repeats included) holds the same values as building those windows directly, and the memory estimate that
+    decides whether to cache equals what the cache holds."""
+    from wmplan.model.train import WindowCache
+
+    spec = WindowSpec(5, 15, 8)
+    index = anchor_index(dataset, spec)
+    windows = Windows(dataset, spec)
+    cache = WindowCache(windows, index, chunk=97)  # chunks that do not divide the index
+    pos = np.random.default_rng(3).integers(0, len(index), 300)
+    _assert_batch_equal(cache.batch(pos), to_torch(windows.batch(index[pos])))
+    held = sum(v.numel() * v.element_size() for v in cache.tensors.values())
+    assert WindowCache.nbytes(spec, len(index)) == held

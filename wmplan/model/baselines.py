@@ -38,7 +38,7 @@ class ConstantVelocity:
 
     @torch.inference_mode()
     def sample(self, batch: dict, actions: torch.Tensor, num_samples: int, *, generator: torch.Generator,
-               noise: bool = False) -> dict:
+               noise: bool = False, moments: bool = True) -> dict:
         hist = batch["history"]
         b, c = actions.shape[:2]
         n = hist.shape[2]
@@ -50,4 +50,5 @@ class ConstantVelocity:
         xy = self._helper.cv_positions(hist)[:, None, None].expand(b, c, k, n, hz, 2)
         if noise:
             xy = xy + (0.5 * logvar).exp() * randn_rows(tuple(xy.shape), generator)
-        return {"rows": self._helper.assemble_rows(hist, xy, ego_f), "mean": mean, "logvar": logvar}
+        rows = self._helper.assemble_rows(hist, xy, ego_f)
+        return {"rows": rows, "mean": mean, "logvar": logvar} if moments else {"rows": rows}

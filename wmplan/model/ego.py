@@ -56,11 +56,19 @@ class EgoKinematics:
         reach = torch.arange(1, self.substeps + 1, dtype=want_rad.dtype) * d  # (substeps,)
         full = reach[-1]  # the most a plan step can move
         s = steer0_rad.to(want_rad.dtype).expand(want_rad.shape[:-1])
-        start = [s]  # the angle when each command begins
-        for want in want_rad.unbind(-1)[:-1]:
-            s = torch.clamp(want, s - full, s + full)
-            start.append(s)
-        s = torch.stack(start, dim=-1)[..., None]  # (..., H, 1)
+        # The angle when each command begins. When every command lies within one plan step's reach of the one
+        # before it (the first of the current angle), each command is reached within its step, so each begins
+        # where the one before it was reached: the commands shifted by one. Checked with the very comparisons the
+        # clamp makes, so the shortcut gives the loop's numbers exactly; otherwise the loop over the plan steps.
+        start = torch.cat([s[..., None], want_rad[..., :-1]], dim=-1)  # (..., H)
+        early, prev = want_rad[..., :-1], start[..., :-1]
+        if not bool(((early >= prev - full) & (early <= prev + full)).all()):
+            angles = [s]
+            for want in want_rad.unbind(-1)[:-1]:
+                s = torch.clamp(want, s - full, s + full)
+                angles.append(s)
+            start = torch.stack(angles, dim=-1)
+        s = start[..., None]  # (..., H, 1)
         return torch.clamp(want_rad[..., None], s - reach, s + reach)
 
     def substep(self, x, y, psi, v, steer, accel, steer_cmd):

@@ -55,20 +55,6 @@ LOG_2PI = math.log(2.0 * math.pi)
 assert (F_Y, F_VY) == (F_X + 1, F_VX + 1), "positions and velocities are read as adjacent column pairs"
 
 
-def _put_pairs(rows: torch.Tensor, col: int, src: torch.Tensor, *, transpose: bool = True) -> None:
-    """``rows[..., col:col + 2] = src`` for rows (..., H, N, F) and src (..., N, H, 2) (``transpose``) or
-    (..., H, N, 2) broadcastable; with float32 and an even column each pair is moved as one 64-bit word (a bit copy:
-    the values are unchanged, and torch's strided copy moves half as many elements)."""
-    if transpose:
-        src = src.transpose(-2, -3)
-    if rows.dtype == src.dtype == torch.float32 and col % 2 == 0 and rows.shape[-1] % 2 == 0 \
-            and rows.is_contiguous() and src.stride(-1) == 1 and all(st % 2 == 0 for st in src.stride()[:-1]) \
-            and src.storage_offset() % 2 == 0:
-        rows.view(torch.int64)[..., col // 2] = src.view(torch.int64)[..., 0]
-    else:
-        rows[..., col:col + 2] = src
-
-
 def gaussian_kl(mu_q, logvar_q, mu_p, logvar_p):
     """KL(N(mu_q, var_q) || N(mu_p, var_p)) per dimension (closed form for diagonal Gaussians)."""
     return 0.5 * (logvar_p - logvar_q + (logvar_q.exp() + (mu_q - mu_p) ** 2) / logvar_p.exp() - 1.0)
@@ -136,7 +122,7 @@ class WorldModel(nn.Module):
     # --- training ---------------------------------------------------------------------------------------------
 
     def loss(self, batch: dict, *, kl_weight: float = 1.0, free_bits: float = 0.0, prior_weight: float = 0.0,
-             generator: torch.Generator | None = None) -> tuple[torch.Tensor, dict]:
+             nll_beta: float = 0.0, generator: torch.Generator | None = None) -> tuple[torch.Tensor, dict]:
         """Training loss of one batch of windows and its parts.
 
         The latent model's loss is the negative conditional ELBO (free bits on the KL) plus ``prior_weight`` times
@@ -168,14 +154,15 @@ class WorldModel(nn.Module):
         eps = torch.randn(q_mu.shape, generator=generator)
         z = q_mu + (0.5 * q_lv).exp() * eps
         mean, logvar = self._decode(h, p, z)
-        nll = 0.5 * (LOG_2PI + logvar + (target - mean) ** 2 / logvar.exp())
-        nll = (nll * m).sum() / n_obj
+        nll_each = 0.5 * (LOG_2PI + logvar + (target - mean) ** 2 / logvar.exp())
+        nll = (nll_each * m).sum() / n_obj
+        fit = nll if nll_beta == 0.0 else (nll_each * (nll_beta * logvar.detach()).exp() * m).sum() / n_obj
         obj_mask = mask.any(-1).float()[..., None]  # (B, N, 1)
         kl_dim = gaussian_kl(q_mu, q_lv, p_mu, p_lv) * obj_mask  # (B, N, Z)
         kl_per_dim = kl_dim.sum((0, 1)) / n_obj  # (Z,)
         kl = kl_per_dim.sum()
         kl_fb = torch.clamp(kl_per_dim, min=free_bits).sum()
-        loss = nll + kl_weight * kl_fb
+        loss = fit + kl_weight * kl_fb
         if prior_weight > 0.0:
             z_p = p_mu + (0.5 * p_lv).exp() * torch.randn(p_mu.shape, generator=generator)
             mean_p, logvar_p = self._decode(h, p, z_p)
@@ -190,7 +177,7 @@ class WorldModel(nn.Module):
 
     @torch.inference_mode()
     def sample(self, batch: dict, actions: torch.Tensor, num_samples: int, *, generator: torch.Generator,
-               noise: bool = False) -> dict:
+               noise: bool = False, moments: bool = True) -> dict:
         """Sample futures of every object under C plans.
 
         Args:
@@ -201,11 +188,14 @@ class WorldModel(nn.Module):
                 own generator (results then do not depend on the batch).
             noise: also add the decoder's per-step Gaussian noise (for predictive intervals); without it a future
                 is the decoder mean for its draw of z.
+            moments: also return the residuals' means and log-variances. The planner needs only the rows: without
+                moments (and without noise) the decoder's last layer computes the means alone.
 
         Returns:
             dict with ``rows`` (B, C, K, H, N, F) predicted object rows in the anchor frame (the ego's from the
-            kinematic model), and ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals (``mean`` and
-            ``logvar`` may be views: broadcast, or the two halves of one tensor).
+            kinematic model; a view of feature planes, see :meth:`assemble_rows`), and with ``moments``
+            ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals (``mean`` and ``logvar`` may be views:
+            broadcast, or the two halves of one tensor).
 
         Every piece runs at its own broadcast shape: the scene once per object, the plan and the prior once per
         object and plan, only the decoder from its first layer's latent part on once per sample
@@ -219,19 +209,24 @@ class WorldModel(nn.Module):
         h = self.encoder(hist, batch["road"])  # (B, N, D)
         ego_f = self.ego_future(batch, actions)  # (B, C, H, 5)
         p = self.plan(hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
+        spread = moments or noise
         if self.zdim:
             p_mu, p_lv = self.prior_params(h, p)  # (B, C, N, Z)
             z = self.draw_latent(p_mu, p_lv, k, generator)  # (B, C, K, N, Z)
-            mean, logvar = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, z)))
+            mean, logvar = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, z)),
+                                               logvar=spread)
         else:
-            mean, _ = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, None)))
+            mean, _ = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, None)),
+                                          logvar=False)
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
-        xy = self.cv_positions(hist)[:, None, None] + mean  # (B, C, K, N, H, 2)
+        cv = self.cv_positions(hist)[:, None, None]  # (B, 1, 1, N, H, 2)
         if noise:
-            xy = xy + (0.5 * logvar).exp() * randn_rows(tuple(xy.shape), generator)
+            xy = cv + mean + (0.5 * logvar).exp() * randn_rows((b, c, k, n, cfg.horizon, 2), generator)
+        else:
+            xy = (cv, mean)  # summed by assemble_rows
         rows = self.assemble_rows(hist, xy, ego_f)
-        return {"rows": rows, "mean": mean, "logvar": logvar}
+        return {"rows": rows, "mean": mean, "logvar": logvar} if moments else {"rows": rows}
 
     def prior_params(self, h: torch.Tensor, p: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Prior mean and log-variance (B, C, N, Z) from h (B, N, D) and p (B, C, N, D); the first layer is split
@@ -262,58 +257,68 @@ class WorldModel(nn.Module):
         x += hp[:, :, None]
         return x
 
-    def decoder_output(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    def decoder_output(self, x: torch.Tensor, *, logvar: bool = True) -> tuple[torch.Tensor, torch.Tensor | None]:
         """The decoder's last layer on its hidden activations x (..., hidden), returned as the residual mean and
         log-variance (..., H, 2) in metres, the log-variance with the calibrated noise scale (what
         :func:`gaussian_params` and the scales of :meth:`_decode` give). The residual scale is folded into the
         layer's mean rows, so the output takes two passes (clamp and offset of the log-variance) instead of four;
-        mean and log-variance are views of one tensor."""
+        mean and log-variance are views of one tensor. Without ``logvar`` only the mean rows of the layer are
+        computed and the log-variance returned is None."""
         last = self.decoder[-1]
         hz = self.cfg.horizon
+        if not logvar:
+            out = F.linear(x, last.weight[: 2 * hz] * RESIDUAL_SCALE_M, last.bias[: 2 * hz] * RESIDUAL_SCALE_M)
+            return out.unflatten(-1, (hz, 2)), None
         scale = torch.ones(4 * hz, dtype=last.weight.dtype)
         scale[: 2 * hz] = RESIDUAL_SCALE_M
         out = F.linear(x, last.weight * scale[:, None], last.bias * scale)
-        mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
-        logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
-        return mean, logvar
+        mean, lv = out.unflatten(-1, (2, hz, 2)).unbind(-3)
+        lv.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
+        return mean, lv
 
-    def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
+    def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor | tuple[torch.Tensor, torch.Tensor],
+                      ego_f: torch.Tensor) -> torch.Tensor:
         """Object rows (B, C, K, H, N, F) from predicted positions (B, C, K, N, H, 2) and the ego path (B, C, H, 5).
+
+        ``xy`` is the positions, or a pair (base, residual) of tensors that broadcast to them and are summed here
+        (constant-velocity positions and the decoder's residuals: one pass instead of two).
 
         Velocities are the finite differences of the positions (from the last history row on), headings
         atan2(vy, max(vx, 0.1)), sizes and validity from the last history row; the ego's row is its own path, the
         same in every future; rows of empty slots are zero.
 
-        Written column by column into one preallocated tensor: positions masked and differenced in their own
-        (object-major) order, headings computed on contiguous planes (torch's vectorised atan2), and float32 pairs
-        such as (x, y) moved as one 64-bit word (a bit copy, see :func:`_put_pairs`).
+        The rows are returned as a view of feature planes: storage (F, N, B, C, K, H), one contiguous block per
+        feature and vehicle, permuted to the (B, C, K, H, N, F) shape. Every feature is computed in place on its
+        own plane (no strided row writes), and the risk computations, which want exactly these planes
+        (:mod:`wmplan.plan.risk`), read them without a copy. ``rows.contiguous()`` gives the row-major layout.
         """
         dt = self.cfg.plan_dt_s
-        b, c, k, n, hz, _ = xy.shape
+        base, resid = xy if isinstance(xy, tuple) else (xy, None)
+        shape = torch.broadcast_shapes(base.shape, resid.shape) if resid is not None else base.shape
+        b, c, k, n, hz, _ = shape
+        dtype = base.dtype
         last = hist[:, -1]  # (B, N, F)
-        valid = (last[..., F_VALID] > 0.5).to(xy.dtype)  # (B, N)
-        rows = torch.empty(b, c, k, hz, n, NUM_VEHICLE_FEATURES, dtype=xy.dtype)
-        pos = xy * valid.view(b, 1, 1, n, 1, 1)  # empty slots zeroed (their velocities and headings follow)
-        vel = torch.empty_like(pos)
-        torch.sub(pos.narrow(-2, 1, hz - 1), pos.narrow(-2, 0, hz - 1), out=vel.narrow(-2, 1, hz - 1))
-        prev = last[..., F_X:F_Y + 1] * valid[..., None]  # (B, N, 2) positions at the anchor
-        torch.sub(pos.select(-2, 0), prev.view(b, 1, 1, n, 2), out=vel.select(-2, 0))
+        valid = (last[..., F_VALID] > 0.5).to(dtype)  # (B, N)
+        planes = torch.empty(NUM_VEHICLE_FEATURES, n, b, c, k, hz, dtype=dtype)
+        order = (5, 3, 0, 1, 2, 4)  # (B, C, K, N, H, 2) -> (2, N, B, C, K, H)
+        pos = planes[F_X:F_Y + 1]
+        if resid is None:
+            pos.copy_(base.expand(shape).permute(order))
+        else:
+            torch.add(base.expand(shape).permute(order), resid.expand(shape).permute(order), out=pos)
+        pos *= valid.t().reshape(1, n, b, 1, 1, 1)  # empty slots zeroed (their velocities and headings follow)
+        vel = planes[F_VX:F_VY + 1]
+        torch.sub(pos[..., 1:], pos[..., :-1], out=vel[..., 1:])
+        prev = (last[..., F_X:F_Y + 1] * valid[..., None]).permute(2, 1, 0).reshape(2, n, b, 1, 1)
+        torch.sub(pos[..., 0], prev, out=vel[..., 0])
         vel /= dt
-        _put_pairs(rows, F_X, pos)
-        del pos
-        _put_pairs(rows, F_VX, vel)
-        planes = vel.movedim(-1, 0).contiguous()  # (2, B, C, K, N, H)
-        del vel
-        vx, vy = planes
-        heading = vy.atan2_(vx.clamp_min_(0.1))
-        rows[..., F_HEADING] = heading.transpose(-1, -2)
-        del planes, vx, vy, heading
-        static = (last[..., F_LENGTH:] * valid[..., None]).view(b, 1, 1, 1, n, NUM_VEHICLE_FEATURES - F_LENGTH)
-        rows[..., F_LENGTH] = static[..., 0]
-        _put_pairs(rows, F_WIDTH, static[..., 1:].contiguous(), transpose=False)
+        torch.atan2(vel[1], vel[0].clamp_min(0.1), out=planes[F_HEADING])
+        static = (last[..., F_LENGTH:] * valid[..., None]).permute(2, 1, 0)  # (3, N, B)
+        planes[F_LENGTH:].copy_(static.reshape(NUM_VEHICLE_FEATURES - F_LENGTH, n, b, 1, 1, 1).expand(-1, -1, -1, c, k, hz))
         # the ego's own path, the same in every future
-        rows[..., 0, :F_LENGTH] = (ego_f * valid[:, :1].view(b, 1, 1, 1)).view(b, c, 1, hz, F_LENGTH)
-        return rows
+        ego = (ego_f * valid[:, :1].view(b, 1, 1, 1)).permute(3, 0, 1, 2)  # (5, B, C, H)
+        planes[:F_LENGTH, 0].copy_(ego[:, :, :, None].expand(-1, -1, -1, k, -1))
+        return planes.permute(2, 3, 4, 5, 1, 0)
 
     @torch.no_grad()
     def residuals(self, batch: dict) -> tuple[torch.Tensor, torch.Tensor]:

@@ -102,8 +102,7 @@ class ModelPredictor(Predictor):
         return self.model.ego
 
     def predict(self, ctx, actions, num_futures, *, generator):
-        out = self.model.sample(ctx.model_batch(), actions, num_futures, generator=generator)
-        return out["rows"]
+        return self.model.sample(ctx.model_batch(), actions, num_futures, generator=generator, moments=False)["rows"]
 
 
 class OraclePredictor(Predictor):
