@@ -45,7 +45,6 @@ from wmplan.sim.features import (
     F_VALID,
     F_VX,
     F_VY,
-    F_WIDTH,
     F_X,
     F_Y,
     NUM_VEHICLE_FEATURES,
