@@ -177,9 +177,9 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
             for i in range(1, last):
                 x = run_layers(model.decoder[i:i + 1], x)
                 t = tick(f"decoder_{i}_{type(model.decoder[i]).__name__.lower()}", t)
-            mean, _ = model.decoder_output(x, logvar=False)
+            mean, bias = model.decoder_means(x)
             t = tick(f"decoder_{last}_linear_means", t)
-            cv = model.cv_positions(hist)[:, None, None]
+            cv = model.cv_positions(hist)[:, None, None] + bias
             t = tick("constant_velocity", t)
             rows = model.assemble_rows(hist, (cv, mean), ego_f)
             t = tick("assemble_rows", t)

@@ -208,18 +208,23 @@ class WorldModel(nn.Module):
         h = self.encoder(hist, batch["road"])  # (B, N, D)
         ego_f = self.ego_future(batch, actions)  # (B, C, H, 5)
         p = self.plan(hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
-        spread = moments or noise
+        z = None
         if self.zdim:
             p_mu, p_lv = self.prior_params(h, p)  # (B, C, N, Z)
             z = self.draw_latent(p_mu, p_lv, k, generator)  # (B, C, K, N, Z)
-            mean, logvar = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, z)),
-                                               logvar=spread)
+        hidden = run_layers(self.decoder[1:-1], self.decoder_input(h, p, z))
+        cv = self.cv_positions(hist)[:, None, None]  # (B, 1, 1, N, H, 2)
+        if not (moments or noise):  # the rows alone: the means without the last layer's bias, which joins cv
+            resid, bias = self.decoder_means(hidden)
+            if z is None:
+                resid = resid[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+            return {"rows": self.assemble_rows(hist, (cv + bias, resid), ego_f)}
+        if self.zdim:
+            mean, logvar = self.decoder_output(hidden)
         else:
-            mean, _ = self.decoder_output(run_layers(self.decoder[1:-1], self.decoder_input(h, p, None)),
-                                          logvar=False)
+            mean, _ = self.decoder_output(hidden, logvar=False)
             mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
-        cv = self.cv_positions(hist)[:, None, None]  # (B, 1, 1, N, H, 2)
         if noise:
             xy = cv + mean + (0.5 * logvar).exp() * randn_rows((b, c, k, n, cfg.horizon, 2), generator)
         else:
@@ -274,6 +279,18 @@ class WorldModel(nn.Module):
         mean, lv = out.unflatten(-1, (2, hz, 2)).unbind(-3)
         lv.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
         return mean, lv
+
+    def decoder_means(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """The residual means of the decoder's last layer without its bias, and the bias: (..., H, 2) and (H, 2) in
+        metres; their sum is the mean of :meth:`decoder_output`. The layer's mean rows are taken coordinate by
+        coordinate, so the means come back as a view with each coordinate's H steps contiguous (what
+        :meth:`assemble_rows` reads), and the bias is left to be added to the small constant-velocity positions
+        instead of to every sample (a pass over the largest output saved)."""
+        last = self.decoder[-1]
+        hz = self.cfg.horizon
+        w = last.weight[: 2 * hz].unflatten(0, (hz, 2)).transpose(0, 1).reshape(2 * hz, -1) * RESIDUAL_SCALE_M
+        out = F.linear(x, w)  # (..., 2 H): x steps, then y steps
+        return out.unflatten(-1, (2, hz)).transpose(-1, -2), last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M
 
     def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor | tuple[torch.Tensor, torch.Tensor],
                       ego_f: torch.Tensor) -> torch.Tensor:
