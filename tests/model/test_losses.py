@@ -85,18 +85,13 @@ def test_reference_nll_example_in_torch():
     assert float(torch.nn.GaussianNLLLoss()(mu, y, var)) == pytest.approx(0.8181472, abs=5e-7)
 
 
-@pytest.mark.parametrize("prior_weight", [0.0, 0.5])
-def test_world_model_loss_nll_on_reference_example(prior_weight):
-    """The likelihood term of ``WorldModel.loss`` on the 10.3 example: the decoder's last layer is set to output a
-    zero residual mean and a variance of 4 m^2 for every step and coordinate, whatever z; the one other vehicle's
-    true future is 1 m ahead of and 1 m to the left of its constant-velocity path at each of H steps. Then the
-    loss's per-object NLL must be 2 H x 1.7370857 (REFERENCES.md 10.3 [D]) and equal
-    ``GaussianNLLLoss(full=True, reduction='sum')`` (reference library) on the decoder's outputs. With the hybrid
-    prior term the prior-draw NLL is the same number (the decoder ignores z here)."""
+def _fixed_variance_example(hz: int) -> tuple[WorldModel, dict]:
+    """A tiny latent model whose decoder outputs a zero residual mean and a variance of 4 m^2 for every step and
+    coordinate, whatever z, and a batch of 4 scenes whose one other vehicle ends up 1 m ahead of and 1 m to the left
+    of its constant-velocity path at each of ``hz`` steps: the 10.3 example at every term."""
     from wmplan.model.config import ModelConfig
     from wmplan.model.nets import RESIDUAL_SCALE_M
 
-    hz = 3
     cfg = ModelConfig(history=2, horizon=hz, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1,
                       latent_dim=2)
     model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(5))
@@ -109,6 +104,19 @@ def test_world_model_loss_nll_on_reference_example(prior_weight):
     batch = straight_batch(4, 2, hz, future_dx_m=0.0, future_dy_m=0.0)
     batch["future"][..., 1, 0] += 1.0
     batch["future"][..., 1, 1] += 1.0
+    return model, batch
+
+
+@pytest.mark.parametrize("prior_weight", [0.0, 0.5])
+def test_world_model_loss_nll_on_reference_example(prior_weight):
+    """The likelihood term of ``WorldModel.loss`` on the 10.3 example: the decoder's last layer is set to output a
+    zero residual mean and a variance of 4 m^2 for every step and coordinate, whatever z; the one other vehicle's
+    true future is 1 m ahead of and 1 m to the left of its constant-velocity path at each of H steps. Then the
+    loss's per-object NLL must be 2 H x 1.7370857 (REFERENCES.md 10.3 [D]) and equal
+    ``GaussianNLLLoss(full=True, reduction='sum')`` (reference library) on the decoder's outputs. With the hybrid
+    prior term the prior-draw NLL is the same number (the decoder ignores z here)."""
+    hz = 3
+    model, batch = _fixed_variance_example(hz)
     _, metrics = model.loss(batch, prior_weight=prior_weight, generator=torch.Generator().manual_seed(6))
     assert metrics["loss/nll"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
     ref = torch.nn.GaussianNLLLoss(full=True, reduction="sum")(
@@ -126,21 +134,9 @@ def test_beta_nll_weights_each_term_by_its_variance_without_differentiating_it()
     fitted likelihood is 2 x 2 H x 1.7370857 (REFERENCES.md 10.3 [D]); the logged NLL stays the plain one. The
     gradient on each raw log-variance output is the weight times d NLL / d log var = 2 x 1/2 (1 - 1/4) = 0.75
     (derived); differentiating the weight too would add beta x 2 x 1.737 to it."""
-    from wmplan.model.config import ModelConfig
-    from wmplan.model.nets import RESIDUAL_SCALE_M
-
     hz = 3
-    cfg = ModelConfig(history=2, horizon=hz, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1,
-                      latent_dim=2)
-    model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(5))
+    model, batch = _fixed_variance_example(hz)
     last = model.decoder[-1]
-    with torch.no_grad():
-        last.weight.zero_()
-        last.bias[: 2 * hz] = 0.0
-        last.bias[2 * hz:] = math.log(4.0 / RESIDUAL_SCALE_M**2)
-    batch = straight_batch(4, 2, hz, future_dx_m=0.0, future_dy_m=0.0)
-    batch["future"][..., 1, 0] += 1.0
-    batch["future"][..., 1, 1] += 1.0
     loss, metrics = model.loss(batch, kl_weight=0.0, nll_beta=0.5, generator=torch.Generator().manual_seed(6))
     assert metrics["loss/nll"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
     assert float(loss.detach()) == pytest.approx(2.0 * 2 * hz * NLL_EXAMPLE, rel=1e-6)
