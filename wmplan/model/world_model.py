@@ -222,8 +222,8 @@ class WorldModel(nn.Module):
         if self.zdim:
             mean, logvar = self.decoder_output(hidden)
         else:
-            mean, _ = self.decoder_output(hidden, logvar=False)
-            mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+            resid, bias = self.decoder_means(hidden)
+            mean = (resid + bias)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
         if noise:
             xy = cv + mean + (0.5 * logvar).exp() * randn_rows((b, c, k, n, cfg.horizon, 2), generator)
@@ -261,24 +261,20 @@ class WorldModel(nn.Module):
         x += hp[:, :, None]
         return x
 
-    def decoder_output(self, x: torch.Tensor, *, logvar: bool = True) -> tuple[torch.Tensor, torch.Tensor | None]:
+    def decoder_output(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """The decoder's last layer on its hidden activations x (..., hidden), returned as the residual mean and
         log-variance (..., H, 2) in metres, the log-variance with the calibrated noise scale (what
         :func:`gaussian_params` and the scales of :meth:`_decode` give). The residual scale is folded into the
         layer's mean rows, so the output takes two passes (clamp and offset of the log-variance) instead of four;
-        mean and log-variance are views of one tensor. Without ``logvar`` only the mean rows of the layer are
-        computed and the log-variance returned is None."""
+        mean and log-variance are views of one tensor."""
         last = self.decoder[-1]
         hz = self.cfg.horizon
-        if not logvar:
-            out = F.linear(x, last.weight[: 2 * hz] * RESIDUAL_SCALE_M, last.bias[: 2 * hz] * RESIDUAL_SCALE_M)
-            return out.unflatten(-1, (hz, 2)), None
         scale = torch.ones(4 * hz, dtype=last.weight.dtype)
         scale[: 2 * hz] = RESIDUAL_SCALE_M
         out = F.linear(x, last.weight * scale[:, None], last.bias * scale)
-        mean, lv = out.unflatten(-1, (2, hz, 2)).unbind(-3)
-        lv.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
-        return mean, lv
+        mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
+        logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
+        return mean, logvar
 
     def decoder_means(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """The residual means of the decoder's last layer without its bias, and the bias: (..., H, 2) and (H, 2) in
