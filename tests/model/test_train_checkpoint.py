@@ -10,6 +10,7 @@ steps of 64 windows) check the machinery, not prediction quality.
 from __future__ import annotations
 
 import csv
+import math
 import json
 import pathlib
 import pickle
@@ -271,3 +272,28 @@ def test_pickle_in_place_of_weights_is_never_unpickled(model_copy, tmp_path):
     cfg_path.write_text(json.dumps(cfg))
     assert load_error(model_copy).startswith(f"{path}: not a readable safetensors file (")
     assert not marker.exists()
+
+
+def test_the_minutes_cap_stops_after_the_epoch_that_crosses_it(dataset_dir, tmp_path):
+    """A cap far below one epoch's time: training finishes that first epoch (its checkpoint and metrics written),
+    stops before the other two and says it was stopped early; the learning rate logged is the schedule's value
+    after one third of its epochs (cosine from the peak to 10% of it over all of them), not its end."""
+    cfg = tiny_train_config(max_epochs=3, minutes=1e-4)
+    run = train(dataset_dir, tmp_path / "capped", model_cfg=tiny_model_config(), train_cfg=cfg)
+    assert run.stopped_early and len(run.history) == 1
+    assert (tmp_path / "capped" / "latest").exists()
+    peak = cfg.peak_lr(False)
+    last_step = cfg.steps_per_epoch - 1  # the rate of the epoch's last step
+    expected = peak * (0.1 + 0.9 * 0.5 * (1 + math.cos(math.pi * last_step / (3 * cfg.steps_per_epoch))))
+    assert run.history[0]["sched/lr"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_peak_learning_rate_by_model_kind():
+    """Without an explicit rate the latent model starts at 4e-3 and the least-squares one at 2e-3 (the settings
+    measured best for each, see TrainConfig.lr); a given rate is used for both; a rate of 0 is refused."""
+    from wmplan.model.config import TrainConfig
+
+    assert TrainConfig().peak_lr(False) == 4e-3 and TrainConfig().peak_lr(True) == 2e-3
+    assert TrainConfig(lr=1e-3).peak_lr(False) == TrainConfig(lr=1e-3).peak_lr(True) == 1e-3
+    with pytest.raises(ConfigError, match="lr must be > 0"):
+        TrainConfig(lr=0.0)
