@@ -10,8 +10,8 @@ steps of 64 windows) check the machinery, not prediction quality.
 from __future__ import annotations
 
 import csv
-import math
 import json
+import math
 import pathlib
 import pickle
 import re
