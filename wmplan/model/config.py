@@ -67,7 +67,7 @@ class TrainConfig:
     decay: the run is reported as stopped early)."""
     max_epochs: int = 16
     """Epochs of ``steps_per_epoch`` steps; the learning-rate schedule runs over all of them, so the result depends
-    on the seed and this number, not on the machine's speed. 16 take about 3.5 minutes on two idle cores (measured
+    on the seed and this number, not on the machine's speed. 16 take about 4 minutes on two idle cores (measured
     on onramp-merge)."""
     batch_size: int = 256
     lr: float | None = None
