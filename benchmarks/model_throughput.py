@@ -13,8 +13,9 @@ speed does not depend on training):
   H = 15 steps, K = 8 samples, N = 9 objects, in inference mode, called as the planner calls it (the rows alone,
   ``moments=False``: the decoder's last layer computes the means, not the variances the planner does not use):
   vehicle-steps = C x K x H x N per call; the median over repeats. ``s_per_call_median_with_moments`` times the
-  call that also returns the residuals' means and log-variances (what the assessment uses). ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided
-  by the rollout's time.
+  call that also returns the residuals' means and log-variances (what the assessment uses).
+  ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided by the
+  rollout's time.
 * ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
   matrices with the shapes of every matrix multiply the rollout does (recorded from every linear map it applies,
   ``nn.Linear`` layers and direct ``torch.nn.functional.linear`` calls: the scene encoder's MLPs, attention
@@ -236,6 +237,15 @@ def _training(model_cfg, windows, index, cfg: dict) -> dict:
     }
 
 
+def candidate_plans(batch: dict, candidates: int, seed: int):
+    """(B, C, H, 2) plans: each window's recorded plan perturbed per candidate (1 m/s^2, 0.05 rad)."""
+    import torch
+
+    b, h = batch["actions"].shape[:2]
+    noise = torch.randn(b, candidates, h, 2, generator=torch.Generator().manual_seed(seed))
+    return (batch["actions"][:, None] + noise * torch.tensor([1.0, 0.05])).contiguous()
+
+
 def batched_rollout(model, windows, index, scenes: int, cfg: dict) -> dict:
     """Rollout and matmul-loop times at the planner's shape for ``scenes`` scenes in one call (what the closed-loop
     evaluation, sweeps and stress tests do: ``wmplan.evaluate.closed_loop`` plans for up to 50 episodes at once),
@@ -247,9 +257,7 @@ def batched_rollout(model, windows, index, scenes: int, cfg: dict) -> dict:
     c, k = PLANNER_SHAPE["candidates"], PLANNER_SHAPE["samples"]
     pick = index[:: max(1, len(index) // scenes)][:scenes]
     batch = to_torch(windows.batch(pick))
-    g = torch.Generator().manual_seed(SEED + 5)
-    actions = (batch["actions"][:, None] + torch.randn(len(pick), c, model.cfg.horizon, 2, generator=g)
-               * torch.tensor([1.0, 0.05])).contiguous()
+    actions = candidate_plans(batch, c, SEED + 5)
 
     def rollout() -> None:
         model.sample(batch, actions, k, generator=torch.Generator().manual_seed(SEED + 6), moments=False)
@@ -308,9 +316,7 @@ def run(quick: bool = False, threads: int = 1) -> dict:
         b, c, k = PLANNER_SHAPE["scenes"], PLANNER_SHAPE["candidates"], PLANNER_SHAPE["samples"]
         pick = index[len(index) // 2: len(index) // 2 + b]
         batch = to_torch(windows.batch(pick))
-        g = torch.Generator().manual_seed(SEED + 2)
-        base = batch["actions"][:, None]  # the recorded plan, perturbed per candidate
-        actions = (base + torch.randn(b, c, model_cfg.horizon, 2, generator=g) * torch.tensor([1.0, 0.05])).contiguous()
+        actions = candidate_plans(batch, c, SEED + 2)
         n = model_cfg.num_rows
         vehicle_steps = c * k * model_cfg.horizon * n * b
 
