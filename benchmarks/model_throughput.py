@@ -17,8 +17,8 @@ speed does not depend on training):
   ``ego_kinematics_share`` is the time of ``model.ego.rollout`` over the same plans alone, divided by the
   rollout's time.
 * ``rollout_efficiency`` = t_matmul / t_rollout: t_matmul is the time of a plain loop of ``torch.mm`` on random
-  matrices with the shapes of every matrix multiply the rollout does (recorded from every linear map it applies,
-  ``nn.Linear`` layers and direct ``torch.nn.functional.linear`` calls: the scene encoder's MLPs, attention
+  matrices with the shapes of every matrix multiply the rollout does (recorded at torch's dispatcher, every
+  ``mm`` and ``addmm``, which is how each of its linear maps runs: the scene encoder's MLPs, attention
   projections and feed-forward layers on B x N rows; the plan encoder's first layer by parts, the plan's part on
   B x C rows and the objects' part on B x N rows, its second layer on B x C x N rows; the first layers of the prior
   and the decoder by parts, their history part on B x N rows, their plan part on B x C x N rows, the decoder's
@@ -30,7 +30,7 @@ speed does not depend on training):
   FLOPs. Target: >= 0.5.
 * ``rollout_closed_loop_batch``: the same measurement with 50 scenes in one call, the batch the closed-loop
   evaluation, sweeps and stress tests plan for at once (``rollout_efficiency_closed_loop_batch``).
-* ``breakdown_s``: the rollout replayed piece by piece with the model's own modules (median seconds per piece),
+* ``breakdown_s``: the rollout replayed piece by piece with the functions ``sample`` calls (median seconds per piece),
   to show where the time goes; ``breakdown_matches_sample`` says whether the replay reproduced ``sample``'s
   output exactly (if ``sample`` changes, the replay may no longer describe it).
 
@@ -85,27 +85,31 @@ def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
     return wall, cpu
 
 
-def linear_shapes(model, fn) -> list[tuple[int, int, int]]:
-    """(rows, in, out) of every linear map applied while ``fn()`` runs: ``nn.Linear`` modules and direct
-    ``torch.nn.functional.linear`` calls alike (the model computes several first layers by parts with functional
-    calls, and its scene encoder's attention projections too). A linear map computed inside a fused torch kernel
-    would not be seen; the rollout uses none."""
+def linear_shapes(fn) -> list[tuple[int, int, int]]:
+    """(rows, in, out) of every matrix multiply of two matrices (``aten.mm``, ``aten.addmm``, and ``aten.linear``,
+    as every linear map of the model reaches torch's dispatcher: ``nn.Linear``, ``F.linear`` and the inference
+    path's ``torch.addmm`` / ``torch.mm`` alike) while ``fn()`` runs, recorded by a dispatch mode. Batched products (``aten.bmm``, the
+    attention's queries times keys and weights times values) are left out."""
     import torch
+    from torch.utils._python_dispatch import TorchDispatchMode
 
+    aten = torch.ops.aten
     shapes: list[tuple[int, int, int]] = []
-    original = torch.nn.functional.linear
+    two = {aten.mm.default, aten.mm.out}
+    three = {aten.addmm.default, aten.addmm.out}
 
-    def recording(x, weight, bias=None):
-        out_f, in_f = weight.shape
-        shapes.append((int(x.numel() // in_f), int(in_f), int(out_f)))
-        return original(x, weight, bias)
+    class Recorder(TorchDispatchMode):
+        def __torch_dispatch__(self, func, types, args=(), kwargs=None):
+            if func in two or func in three:
+                a, b = args[0:2] if func in two else args[1:3]
+                shapes.append((int(a.shape[0]), int(a.shape[1]), int(b.shape[1])))
+            elif func is aten.linear.default:  # F.linear on more than two dimensions arrives whole
+                x, weight = args[0:2]
+                shapes.append((int(x.numel() // weight.shape[1]), int(weight.shape[1]), int(weight.shape[0])))
+            return func(*args, **(kwargs or {}))
 
-    torch.nn.functional.linear = recording
-    try:
+    with Recorder():
         fn()
-    finally:
-        torch.nn.functional.linear = original
-    del model
     return shapes
 
 
@@ -137,14 +141,21 @@ def matmul_loop(shapes: list[tuple[int, int, int]], generator) -> Callable[[], N
 
 
 def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> tuple[dict, dict, bool]:
-    """Median wall-clock and process-CPU seconds of each piece of ``WorldModel.sample`` replayed step by step with
-    the model's own methods (the same calls, in the same order, as ``sample`` makes for a latent model without
-    noise); and whether the replay's rows equal ``sample``'s for the same generator seed."""
+    """Median wall-clock and process-CPU seconds of each piece of ``WorldModel.sample`` (rows alone, a latent
+    model) replayed step by step with the functions it calls (:mod:`wmplan.model.inference`), in the same order;
+    and whether the replay's rows equal ``sample``'s for the same generator seed. The decoder's pieces are
+    replayed on the whole batch, as ``sample`` runs them when the batch is one group of plans (true at one scene,
+    checked)."""
     import torch
 
-    from wmplan.model.nets import run_layers
+    from wmplan.model import inference as inf
+    from wmplan.model.nets import randn_rows
 
     hist = batch["history"]
+    b, c = actions.shape[:2]
+    n = hist.shape[2]
+    if b * c * k * n > inf.CHUNK_ROWS:
+        raise ValueError(f"the replay times one group of plans: at most {inf.CHUNK_ROWS} decoder rows")
     times: dict[str, list[float]] = {}
     cpu_times: dict[str, list[float]] = {}
     rows = None
@@ -162,30 +173,38 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
         for _ in range(repeats):
             g = torch.Generator().manual_seed(seed)
             t = now()
-            h = model.encoder(hist, batch["road"])
+            pw = inf.prepared(model)
+            t = tick("prepared_weights_lookup", t)
+            h = inf.encode_scene(pw, hist, batch["road"])
             t = tick("scene_encoder", t)
             ego_f = model.ego_future(batch, actions)
             t = tick("ego_kinematics", t)
-            p = model.plan(hist[:, -1, :, :2], ego_f, actions)
+            p = inf.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)
             t = tick("plan_encoder", t)
-            p_mu, p_lv = model.prior_params(h, p)
-            t = tick("prior", t)
-            z = model.draw_latent(p_mu, p_lv, k, g)
-            t = tick("latent_draw", t)
-            x = model.decoder_input(h, p, z)
-            t = tick("decoder_0_linear_by_parts", t)
-            last = len(model.decoder) - 1
-            for i in range(1, last):
-                x = run_layers(model.decoder[i:i + 1], x)
-                t = tick(f"decoder_{i}_{type(model.decoder[i]).__name__.lower()}", t)
-            mean, bias = model.decoder_means(x)
-            t = tick(f"decoder_{last}_linear_means", t)
-            cv = model.cv_positions(hist)[:, None, None] + bias
+            eps = randn_rows((b, 1, k, n, model.zdim), g)
+            t = tick("latent_normals", t)
+            z = inf.draw_latent(pw, h, p, eps)
+            t = tick("prior_and_latent_draw", t)
+            hp = inf.decoder_first(pw, h, p)
+            t = tick("decoder_first_layer_history_and_plan_parts", t)
+            x = inf._linear(z, pw.dec_z_w)
+            x += hp[:, :, None]
+            t = tick("decoder_first_layer_latent_part", t)
+            x = inf._gelu_(x)
+            t = tick("decoder_gelu_1", t)
+            for i, (w, bias) in enumerate(pw.dec_hidden, start=2):
+                x = inf._linear(x, w, bias)
+                t = tick(f"decoder_linear_{i}", t)
+                x = inf._gelu_(x)
+                t = tick(f"decoder_gelu_{i}", t)
+            resid = inf.residual_means(pw, x)
+            t = tick("decoder_last_layer_means", t)
+            cv = model.cv_positions(hist)[:, None, None] + pw.mean_b
             t = tick("constant_velocity", t)
-            rows = model.assemble_rows(hist, (cv, mean), ego_f)
+            rows = model.assemble_rows(hist, (cv, resid), ego_f)
             t = tick("assemble_rows", t)
             # the headings of every predicted row (part of assemble_rows), timed alone on same-size planes
-            vx, vy = (cv + mean).movedim(-1, 0).contiguous()
+            vx, vy = (cv + resid).movedim(-1, 0).contiguous()
             t = now()
             torch.atan2(vy, vx.clamp_min(0.1))
             tick("assemble_rows.atan2_part", t)
@@ -266,7 +285,7 @@ def batched_rollout(model, windows, index, scenes: int, cfg: dict) -> dict:
     _timed(rollout, 2)
     r_wall, _ = _timed(rollout, reps)
     with torch.inference_mode():
-        shapes = linear_shapes(model, rollout)
+        shapes = linear_shapes(rollout)
     mm = matmul_loop(shapes, torch.Generator().manual_seed(SEED + 7))
     _timed(mm, 2)
     m_wall, _ = _timed(mm, reps)
@@ -337,7 +356,7 @@ def run(quick: bool = False, threads: int = 1) -> dict:
 
         # --- (c) the same matrix multiplies alone ---
         with torch.inference_mode():
-            shapes = linear_shapes(model, rollout)
+            shapes = linear_shapes(rollout)
         flops = int(sum(2 * r * i * o for r, i, o in shapes))
         with torch.inference_mode():
             fc_flops = flop_counter_mm_flops(rollout)

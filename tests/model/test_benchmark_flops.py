@@ -45,10 +45,12 @@ def test_flop_count_of_a_rollout(bench):
         model.sample(batch, actions, 4, generator=torch.Generator().manual_seed(1))
 
     with torch.inference_mode():
-        shapes = bench.linear_shapes(model, rollout)
+        shapes = bench.linear_shapes(rollout)
         counted = bench.flop_counter_mm_flops(rollout)
     by_hand = {
-        "object mlp": 4 * ((5 * w + 3) * d + d * d),
+        # the object MLP's first layer takes an object's W history rows of F = 8 features whole (zero weights on the
+        # features it does not use; the is-ego input added to row 0 apart), see wmplan.model.inference
+        "object mlp": 4 * (w * 8 * d + d * d),
         "road mlp": 2 * 6 * d,
         "encoder attention projections": 4 * (d * 3 * d + d * d),
         "encoder feed-forward": 4 * (d * 2 * d + 2 * d * d),

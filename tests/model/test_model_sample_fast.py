@@ -160,8 +160,8 @@ def test_the_benchmark_replay_reproduces_sample(windows, ego):
     wall, cpu, matches = bench.breakdown(model, batch, plans(batch, 16, 8), 4, 2, 9)
     assert matches
     assert set(wall) == set(cpu)
-    assert {"scene_encoder", "ego_kinematics", "plan_encoder", "prior", "latent_draw", "decoder_0_linear_by_parts",
-            "decoder_4_linear_means", "assemble_rows"} <= set(wall)
+    assert {"scene_encoder", "ego_kinematics", "plan_encoder", "prior_and_latent_draw",
+            "decoder_first_layer_latent_part", "decoder_linear_2", "decoder_last_layer_means", "assemble_rows"} <= set(wall)
 
 
 def test_float64_copy_is_the_model(windows, ego):

@@ -25,6 +25,7 @@ import torch
 from torch import nn
 from torch.nn import functional as F
 
+from wmplan.model import inference
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.nets import (
@@ -37,7 +38,6 @@ from wmplan.model.nets import (
     mlp,
     randn_rows,
     reset_parameters,
-    run_layers,
 )
 from wmplan.sim.features import (
     F_HEADING,
@@ -196,8 +196,9 @@ class WorldModel(nn.Module):
             ``mean`` / ``logvar`` (B, C, K, N, H, 2) of the residuals (``mean`` and ``logvar`` may be views:
             broadcast, or the two halves of one tensor).
 
-        Every piece runs at its own broadcast shape: the scene once per object, the plan and the prior once per
-        object and plan, only the decoder from its first layer's latent part on once per sample
+        The layers run on weights laid out for inference (:mod:`wmplan.model.inference`), every piece at its own
+        broadcast shape: the scene once per object, the plan and the prior once per object and plan, only the
+        decoder from its first layer's latent part on once per sample, in groups of plans
         (``benchmarks/model_throughput.py`` replays these steps one by one).
         """
         cfg = self.cfg
@@ -205,25 +206,26 @@ class WorldModel(nn.Module):
         b, c = actions.shape[:2]
         n = hist.shape[2]
         k = int(num_samples)
-        h = self.encoder(hist, batch["road"])  # (B, N, D)
+        pw = inference.prepared(self)
+        h = inference.encode_scene(pw, hist, batch["road"])  # (B, N, D)
         ego_f = self.ego_future(batch, actions)  # (B, C, H, 5)
-        p = self.plan(hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
+        p = inference.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
         z = None
-        if self.zdim:
-            p_mu, p_lv = self.prior_params(h, p)  # (B, C, N, Z)
-            z = self.draw_latent(p_mu, p_lv, k, generator)  # (B, C, K, N, Z)
-        hidden = run_layers(self.decoder[1:-1], self.decoder_input(h, p, z))
+        if self.zdim:  # the same standard normals for every plan (common random numbers)
+            z = inference.draw_latent(pw, h, p, randn_rows((b, 1, k, n, self.zdim), generator))  # (B, C, K, N, Z)
         cv = self.cv_positions(hist)[:, None, None]  # (B, 1, 1, N, H, 2)
         if not (moments or noise):  # the rows alone: the means without the last layer's bias, which joins cv
-            resid, bias = self.decoder_means(hidden)
             if z is None:
-                resid = resid[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
-            return {"rows": self.assemble_rows(hist, (cv + bias, resid), ego_f)}
+                hidden = inference.decoder_hidden(pw, inference.decoder_first(pw, h, p), None)
+                resid = inference.residual_means(pw, hidden)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+            else:
+                resid = inference.sampled_means(pw, h, p, z)
+            return {"rows": self.assemble_rows(hist, (cv + pw.mean_b, resid), ego_f)}
+        hidden = inference.decoder_hidden(pw, inference.decoder_first(pw, h, p), z)
         if self.zdim:
             mean, logvar = self.decoder_output(hidden)
         else:
-            resid, bias = self.decoder_means(hidden)
-            mean = (resid + bias)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+            mean = (inference.residual_means(pw, hidden) + pw.mean_b)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
         if noise:
             xy = cv + mean + (0.5 * logvar).exp() * randn_rows((b, c, k, n, cfg.horizon, 2), generator)
@@ -231,35 +233,6 @@ class WorldModel(nn.Module):
             xy = (cv, mean)  # summed by assemble_rows
         rows = self.assemble_rows(hist, xy, ego_f)
         return {"rows": rows, "mean": mean, "logvar": logvar} if moments else {"rows": rows}
-
-    def prior_params(self, h: torch.Tensor, p: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Prior mean and log-variance (B, C, N, Z) from h (B, N, D) and p (B, C, N, D); the first layer is split
-        so that its history part runs once per object (the same as the prior on ``cat([h, p])``)."""
-        first = self.prior[0]
-        d = h.shape[-1]
-        x = F.linear(p, first.weight[:, d:])
-        x += F.linear(h, first.weight[:, :d], first.bias)[:, None]
-        return gaussian_params(run_layers(self.prior[1:], x))
-
-    def draw_latent(self, p_mu: torch.Tensor, p_lv: torch.Tensor, k: int, generator) -> torch.Tensor:
-        """K draws of z (B, C, K, N, Z) from the prior (B, C, N, Z); the same standard normals for every plan."""
-        b, _, n, zdim = p_mu.shape
-        eps = randn_rows((b, 1, k, n, zdim), generator)
-        return p_mu[:, :, None] + (0.5 * p_lv[:, :, None]).exp() * eps
-
-    def decoder_input(self, h: torch.Tensor, p: torch.Tensor, z: torch.Tensor | None) -> torch.Tensor:
-        """The decoder's first linear layer on ``cat([h, p, z])`` computed by parts: the history part once per object
-        (h (B, N, D)), the plan part once per object and plan (p (B, C, N, D)), the latent part once per sample
-        (z (B, C, K, N, Z)), summed by broadcasting. Returns (B, C, K, N, hidden), or (B, C, N, hidden) without z."""
-        w = self.decoder[0].weight
-        d = h.shape[-1]
-        hp = F.linear(p, w[:, d:2 * d])
-        hp += F.linear(h, w[:, :d], self.decoder[0].bias)[:, None]
-        if z is None:
-            return hp
-        x = F.linear(z, w[:, 2 * d:])
-        x += hp[:, :, None]
-        return x
 
     def decoder_output(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """The decoder's last layer on its hidden activations x (..., hidden), returned as the residual mean and
@@ -275,18 +248,6 @@ class WorldModel(nn.Module):
         mean, logvar = out.unflatten(-1, (2, hz, 2)).unbind(-3)
         logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
         return mean, logvar
-
-    def decoder_means(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """The residual means of the decoder's last layer without its bias, and the bias: (..., H, 2) and (H, 2) in
-        metres; their sum is the mean of :meth:`decoder_output`. The layer's mean rows are taken coordinate by
-        coordinate, so the means come back as a view with each coordinate's H steps contiguous (what
-        :meth:`assemble_rows` reads), and the bias is left to be added to the small constant-velocity positions
-        instead of to every sample (a pass over the largest output saved)."""
-        last = self.decoder[-1]
-        hz = self.cfg.horizon
-        w = last.weight[: 2 * hz].unflatten(0, (hz, 2)).transpose(0, 1).reshape(2 * hz, -1) * RESIDUAL_SCALE_M
-        out = F.linear(x, w)  # (..., 2 H): x steps, then y steps
-        return out.unflatten(-1, (2, hz)).transpose(-1, -2), last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M
 
     def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor | tuple[torch.Tensor, torch.Tensor],
                       ego_f: torch.Tensor) -> torch.Tensor:
