@@ -175,20 +175,25 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
             t = now()
             pw = inf.prepared(model)
             t = tick("prepared_weights_lookup", t)
-            h = inf.encode_scene(pw, hist, batch["road"])
+            h = inf.by_object(inf.encode_scene(pw, hist, batch["road"]))
             t = tick("scene_encoder", t)
             ego_f = model.ego_future(batch, actions)
             t = tick("ego_kinematics", t)
             p = inf.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)
             t = tick("plan_encoder", t)
-            eps = randn_rows((b, 1, k, n, model.zdim), g)
+            eps = randn_rows((b, 1, k, n, model.zdim), g).permute(3, 0, 1, 2, 4)
             t = tick("latent_normals", t)
             z = inf.draw_latent(pw, h, p, eps)
             t = tick("prior_and_latent_draw", t)
             hp = inf.decoder_first(pw, h, p)
             t = tick("decoder_first_layer_history_and_plan_parts", t)
+            cv = model.cv_positions(hist)
+            t = tick("constant_velocity", t)
+            planes = model.empty_planes(b, c, k, n, dtype=hist.dtype)
+            pos = planes[:2]
+            t = tick("empty_planes", t)
             x = inf._linear(z, pw.dec_z_w)
-            x += hp[:, :, None]
+            x += hp[..., None, :]
             t = tick("decoder_first_layer_latent_part", t)
             x = inf._gelu_(x)
             t = tick("decoder_gelu_1", t)
@@ -197,17 +202,19 @@ def breakdown(model, batch: dict, actions, k: int, repeats: int, seed: int) -> t
                 t = tick(f"decoder_linear_{i}", t)
                 x = inf._gelu_(x)
                 t = tick(f"decoder_gelu_{i}", t)
-            resid = inf.residual_means(pw, x)
-            t = tick("decoder_last_layer_means", t)
-            cv = model.cv_positions(hist)[:, None, None] + pw.mean_b
-            t = tick("constant_velocity", t)
-            rows = model.assemble_rows(hist, (cv, resid), ego_f)
-            t = tick("assemble_rows", t)
-            # the headings of every predicted row (part of assemble_rows), timed alone on same-size planes
-            vx, vy = (cv + resid).movedim(-1, 0).contiguous()
+            x = x.view(-1, x.shape[-1])
+            for j in range(2):
+                torch.mm(x, pw.mean_wxy[j], out=pos[j].view(-1, pos.shape[-1]))
+            t = tick("decoder_last_layer_means_into_planes", t)
+            pos += (cv + pw.mean_b).permute(3, 1, 0, 2)[:, :, :, None, None]
+            t = tick("positions_plus_constant_velocity", t)
+            rows = model.finish_rows(hist, planes, ego_f)
+            t = tick("finish_rows", t)
+            # the headings of every predicted row (part of finish_rows), timed alone on same-size planes
+            vx, vy = planes[2].clone(), planes[3].clone()
             t = now()
             torch.atan2(vy, vx.clamp_min(0.1))
-            tick("assemble_rows.atan2_part", t)
+            tick("finish_rows.atan2_part", t)
     ref = model.sample(batch, actions, k, generator=torch.Generator().manual_seed(seed), moments=False)["rows"]
     med = lambda d: {name: statistics.median(v) for name, v in d.items()}  # noqa: E731
     return med(times), med(cpu_times), bool(torch.equal(ref, rows))

@@ -56,45 +56,55 @@ def test_scene_encoder(model, batch):
 
 def test_plan_encoder_prior_and_decoder(model, batch):
     """The plan encoder, the prior's draw of z and the decoder's hidden layers and means, each on the module's
-    own input, equal the modules on the concatenated inputs (the training path) to 1e-9."""
+    own input, equal the modules on the concatenated inputs (the training path) to 1e-9; the inference pieces
+    work objects first, (N, B, C, ...), the modules scenes first, (B, C, N, ...)."""
     actions = plans(batch, 4, 1)
     hist = batch["history"]
     pw = inf.prepared(model)
     with torch.inference_mode():
         ego_f = model.ego_future(batch, actions)
         h = model.encoder(hist, batch["road"])
-        p = model.plan(hist[:, -1, :, :2], ego_f, actions)
-        torch.testing.assert_close(inf.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions), p, rtol=0, atol=1e-9)
+        p = model.plan(hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
+        p_obj = inf.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)  # (N, B, C, D)
+        torch.testing.assert_close(p_obj, p.permute(2, 0, 1, 3), rtol=0, atol=1e-9)
         b, c, n = p.shape[:3]
         hb = h[:, None].expand(b, c, n, -1)
-        mu, lv = gaussian_params(model.prior(torch.cat([hb, p], -1)))
+        mu, lv = gaussian_params(model.prior(torch.cat([hb, p], -1)))  # (B, C, N, Z)
         eps = torch.randn(b, 1, 5, n, model.zdim, generator=torch.Generator().manual_seed(2), dtype=torch.float64)
-        z = inf.draw_latent(pw, h, p, eps)
-        torch.testing.assert_close(z, mu[:, :, None] + (0.5 * lv[:, :, None]).exp() * eps, rtol=0, atol=1e-9)
-        full = torch.cat([hb[:, :, None].expand(b, c, 5, n, -1), p[:, :, None].expand(b, c, 5, n, -1), z], -1)
-        hidden = run_layers(model.decoder[:-1], full)
-        torch.testing.assert_close(inf.decoder_hidden(pw, inf.decoder_first(pw, h, p), z), hidden, rtol=0, atol=1e-9)
+        z = inf.draw_latent(pw, inf.by_object(h), p_obj, eps.permute(3, 0, 1, 2, 4))  # (N, B, C, K, Z)
+        want_z = mu[:, :, None] + (0.5 * lv[:, :, None]).exp() * eps  # (B, C, K, N, Z)
+        torch.testing.assert_close(z, want_z.permute(3, 0, 1, 2, 4), rtol=0, atol=1e-9)
+        full = torch.cat([hb[:, :, None].expand(b, c, 5, n, -1), p[:, :, None].expand(b, c, 5, n, -1), want_z], -1)
+        hidden = run_layers(model.decoder[:-1], full)  # (B, C, K, N, hidden)
+        hp = inf.decoder_first(pw, inf.by_object(h), p_obj)
+        torch.testing.assert_close(inf.decoder_hidden(pw, hp, z), hidden.permute(3, 0, 1, 2, 4), rtol=0, atol=1e-9)
         hz = model.cfg.horizon
         means = model.decoder[-1](hidden)[..., : 2 * hz].unflatten(-1, (hz, 2)) * 5.0  # RESIDUAL_SCALE_M
-        got = inf.sampled_means(pw, h, p, z) + pw.mean_b
+        pos = torch.empty(2, n, b, c, 5, hz, dtype=torch.float64)
+        inf.write_positions(pw, hp, z, pos)
+        got = pos.permute(2, 3, 4, 1, 5, 0) + pw.mean_b  # (B, C, K, N, H, 2)
         torch.testing.assert_close(got, means, rtol=0, atol=1e-9)
 
 
-@pytest.mark.parametrize("chunk_rows", [1, 9 * 5, 9 * 5 * 3 + 7, 10**6])
+@pytest.mark.parametrize("chunk_rows", [1, 5, 5 * 3 + 2, 10**6])
 def test_decoder_groups_of_plans_equal_one_pass(model, batch, chunk_rows):
-    """The decoder run in groups of plans (one plan per group, one, three and all plans per group; a group size
-    that is not a whole number of plans rounds down) gives the numbers of one pass, to 1e-12 in float64."""
+    """The decoder run in groups of plans (one plan of one object per group, one, three and all per group; a
+    group size that is not a whole number of plans rounds down) writes the numbers of one pass, to 1e-12 in
+    float64."""
     actions = plans(batch, 4, 5)
     hist = batch["history"]
     pw = inf.prepared(model)
     with torch.inference_mode():
         ego_f = model.ego_future(batch, actions)
-        h = inf.encode_scene(pw, hist, batch["road"])
+        h = inf.by_object(inf.encode_scene(pw, hist, batch["road"]))
         p = inf.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)
-        eps = torch.randn(3, 1, 5, 9, model.zdim, generator=torch.Generator().manual_seed(4), dtype=torch.float64)
+        eps = torch.randn(9, 3, 1, 5, model.zdim, generator=torch.Generator().manual_seed(4), dtype=torch.float64)
         z = inf.draw_latent(pw, h, p, eps)
-        one = inf.residual_means(pw, inf.decoder_hidden(pw, inf.decoder_first(pw, h, p), z))
-        torch.testing.assert_close(inf.sampled_means(pw, h, p, z, chunk_rows=chunk_rows), one, rtol=0, atol=1e-12)
+        hp = inf.decoder_first(pw, h, p)
+        one = inf.residual_means(pw, inf.decoder_hidden(pw, hp, z))  # (N, B, C, K, H, 2)
+        pos = torch.full((2, 9, 3, 4, 5, 15), float("nan"), dtype=torch.float64)
+        inf.write_positions(pw, hp, z, pos, chunk_rows=chunk_rows)
+        torch.testing.assert_close(pos, one.permute(5, 0, 1, 2, 3, 4), rtol=0, atol=1e-12)
 
 
 def test_prepared_weights_follow_every_change_of_the_model(batch):

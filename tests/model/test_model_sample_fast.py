@@ -161,7 +161,8 @@ def test_the_benchmark_replay_reproduces_sample(windows, ego):
     assert matches
     assert set(wall) == set(cpu)
     assert {"scene_encoder", "ego_kinematics", "plan_encoder", "prior_and_latent_draw",
-            "decoder_first_layer_latent_part", "decoder_linear_2", "decoder_last_layer_means", "assemble_rows"} <= set(wall)
+            "decoder_first_layer_latent_part", "decoder_linear_2", "decoder_last_layer_means_into_planes",
+            "finish_rows"} <= set(wall)
 
 
 def test_float64_copy_is_the_model(windows, ego):

@@ -46,7 +46,7 @@ STEP_FEATURES = ((F_X, POS_SCALE_X_M), (F_Y, POS_SCALE_Y_M), (F_VX, VEL_SCALE_X_
                  (F_VALID, 1.0))
 STATIC_FEATURES = ((F_LENGTH, SIZE_SCALE_M), (F_WIDTH, 2.0))
 CHUNK_ROWS = 8192
-"""Rows of the decoder's hidden activations computed at once by :func:`sampled_means` (4 MB at 128 wide)."""
+"""Rows of the decoder's hidden activations computed at once by :func:`write_positions` (4 MB at 128 wide)."""
 
 
 @dataclass(frozen=True)
@@ -95,6 +95,7 @@ class Prepared:
     dec1_b: torch.Tensor
     dec_hidden: tuple[tuple[torch.Tensor, torch.Tensor], ...]  # the decoder's middle layers
     mean_w: torch.Tensor  # (hidden, 2 H): x steps then y steps, in metres
+    mean_wxy: tuple[torch.Tensor, torch.Tensor]  # (hidden, H) each: the x and the y steps alone, contiguous
     mean_b: torch.Tensor  # (H, 2) in metres
 
 
@@ -163,7 +164,7 @@ def prepare(model) -> Prepared:
             prior_h_w=prior[0], prior_p_w=prior[1], prior1_b=prior[2], prior2_w=prior[3], prior2_b=prior[4],
             dec_h_w=_t(d0[:, :d]), dec_p_w=_t(d0[:, d:2 * d]), dec_z_w=_t(d0[:, 2 * d:]) if zdim else None,
             dec1_b=dec[0].bias.detach(), dec_hidden=middle,
-            mean_w=_t(mean_w), mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
+            mean_w=_t(mean_w), mean_wxy=(_t(mean_w[:hz]), _t(mean_w[hz:])), mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
 
 
 _REGISTRATIONS = [0]
@@ -240,41 +241,46 @@ def encode_scene(pw: Prepared, history: torch.Tensor, road: torch.Tensor) -> tor
 
 def encode_plan(pw: Prepared, obj_xy: torch.Tensor, ego_future: torch.Tensor, actions: torch.Tensor) -> torch.Tensor:
     """The plan encoder (:class:`wmplan.model.nets.PlanEncoder`): obj_xy (B, N, 2), ego_future (B, C, H, >=4),
-    actions (B, C, H, 2) -> (B, C, N, D); the first layer by parts, the plan's once per plan, the object's once
-    per object."""
+    actions (B, C, H, 2) -> (N, B, C, D), objects first (see :func:`write_positions`); the first layer by parts,
+    the plan's once per plan, the object's once per object."""
     per_plan = torch.cat([ego_future[..., :4], actions], dim=-1).flatten(-2)  # (B, C, 6 H)
-    x = _linear(per_plan, pw.plan1_w, pw.plan1_b)[:, :, None] - _linear(obj_xy, pw.plan_obj_w)[:, None]
+    x = _linear(per_plan, pw.plan1_w, pw.plan1_b)[None] - _linear(obj_xy, pw.plan_obj_w).transpose(0, 1)[:, :, None]
     return _linear(_gelu_(x), pw.plan2_w, pw.plan2_b)
 
 
+def by_object(h: torch.Tensor) -> torch.Tensor:
+    """Scene embeddings (B, N, D) in the objects-first order of the other pieces, (N, B, D)."""
+    return h.transpose(0, 1)
+
+
 def draw_latent(pw: Prepared, h: torch.Tensor, p: torch.Tensor, eps: torch.Tensor) -> torch.Tensor:
-    """z (B, C, K, N, Z) = mu + exp(logvar / 2) eps from the prior on h (B, N, D) and p (B, C, N, D); eps
-    (B, 1, K, N, Z) standard normals shared by every plan."""
+    """z (N, B, C, K, Z) = mu + exp(logvar / 2) eps from the prior on h (N, B, D) and p (N, B, C, D); eps
+    (N, B, 1, K, Z) standard normals shared by every plan."""
     x = _linear(p, pw.prior_p_w)
-    x += _linear(h, pw.prior_h_w, pw.prior1_b)[:, None]
-    out = _linear(_gelu_(x), pw.prior2_w, pw.prior2_b)  # (B, C, N, 2 Z), the second half logvar / 2
+    x += _linear(h, pw.prior_h_w, pw.prior1_b)[:, :, None]
+    out = _linear(_gelu_(x), pw.prior2_w, pw.prior2_b)  # (N, B, C, 2 Z), the second half logvar / 2
     zdim = out.shape[-1] // 2
-    mu, half_lv = out[..., :zdim], out[..., zdim:]
-    scale = half_lv.clamp_(0.5 * LOGVAR_MIN, 0.5 * LOGVAR_MAX).exp_()
-    return torch.addcmul(mu[:, :, None], scale[:, :, None], eps)
+    mu, half_lv = out[..., None, :zdim], out[..., None, zdim:]
+    scale = half_lv.clamp(0.5 * LOGVAR_MIN, 0.5 * LOGVAR_MAX).exp_()
+    return torch.addcmul(mu, scale, eps)
 
 
 def decoder_first(pw: Prepared, h: torch.Tensor, p: torch.Tensor) -> torch.Tensor:
-    """The history and plan part of the decoder's first layer, with its bias: (B, C, N, hidden) from h (B, N, D)
-    and p (B, C, N, D); the history's part once per object."""
+    """The history and plan part of the decoder's first layer, with its bias: (N, B, C, hidden) from h (N, B, D)
+    and p (N, B, C, D); the history's part once per object."""
     hp = _linear(p, pw.dec_p_w)
-    hp += _linear(h, pw.dec_h_w, pw.dec1_b)[:, None]
+    hp += _linear(h, pw.dec_h_w, pw.dec1_b)[:, :, None]
     return hp
 
 
 def decoder_hidden(pw: Prepared, hp: torch.Tensor, z: torch.Tensor | None) -> torch.Tensor:
-    """The decoder up to its last layer, from :func:`decoder_first`'s hp (B, C, N, hidden): (B, C, K, N, hidden)
-    with z (B, C, K, N, Z), the latent part added per sample; (B, C, N, hidden) without."""
+    """The decoder up to its last layer, from :func:`decoder_first`'s hp (..., hidden): (..., K, hidden) with z
+    (..., K, Z), the latent part added per sample; (..., hidden) without."""
     if z is None:
         x = hp.clone()
     else:
         x = _linear(z, pw.dec_z_w)
-        x += hp[:, :, None]
+        x += hp[..., None, :]
     x = _gelu_(x)
     for w, b in pw.dec_hidden:
         x = _gelu_(_linear(x, w, b))
@@ -288,24 +294,29 @@ def residual_means(pw: Prepared, x: torch.Tensor) -> torch.Tensor:
     return _linear(x, pw.mean_w).unflatten(-1, (2, hz)).transpose(-1, -2)
 
 
-def sampled_means(pw: Prepared, h: torch.Tensor, p: torch.Tensor, z: torch.Tensor, *,
-                  chunk_rows: int = CHUNK_ROWS) -> torch.Tensor:
-    """:func:`residual_means` of :func:`decoder_hidden` for z (B, C, K, N, Z): (B, C, K, N, H, 2), a view as there.
+def write_positions(pw: Prepared, hp: torch.Tensor, z: torch.Tensor, pos: torch.Tensor, *,
+                    chunk_rows: int = CHUNK_ROWS) -> None:
+    """The decoder's residual means (without the last layer's bias) for hp (N, B, C, hidden) and z
+    (N, B, C, K, Z), written into pos (2, N, B, C, K, H): the position planes of the rows (see
+    ``WorldModel.assemble_rows``), each contiguous.
 
-    The decoder runs on groups of whole plans of about ``chunk_rows`` rows (K x N rows per plan), one group after
-    the other, each written into its part of the output. Its hidden activations, the largest arrays of a rollout
-    (hidden x 4 bytes per row: 118 MB at the closed-loop batch of 50 scenes x 64 plans x 8 samples x 9 objects),
-    then stay in the processor's caches between layers, and above all never exceed the size that the memory
-    allocator serves from fresh pages (see :mod:`wmplan._alloc`); at the planner's one scene (4608 rows) the
-    whole batch is one group. Each row's arithmetic is that of one pass (up to the rounding of matrix products of
-    other sizes)."""
-    b, c, k, n, zdim = z.shape
-    hz = pw.mean_b.shape[0]
-    hp = decoder_first(pw, h, p).view(b * c, 1, n, -1)
-    zs = z.view(b * c, 1, k, n, zdim)
-    out = torch.empty(b * c, k * n, 2 * hz, dtype=z.dtype)
-    step = max(1, chunk_rows // (k * n))
-    for s in range(0, b * c, step):
-        x = decoder_hidden(pw, hp[s:s + step], zs[s:s + step])
-        torch.mm(x.view(-1, x.shape[-1]), pw.mean_w, out=out[s:s + step].view(-1, 2 * hz))
-    return out.view(b, c, k, n, 2, hz).transpose(-1, -2)
+    The rows of the decoder are ordered objects first, then scenes, plans and samples, the order of the planes,
+    so the last layer's x and y columns are each one matrix multiply writing straight into its plane (no
+    transposing copy of the largest output). The decoder runs on groups of whole plans of about ``chunk_rows``
+    rows, one group after the other: its hidden activations, the largest arrays of a rollout (hidden x 4 bytes
+    per row: 118 MB at the closed-loop batch of 50 scenes x 64 plans x 8 samples x 9 objects), then stay in the
+    processor's caches between layers, and above all never exceed the size that the memory allocator serves from
+    fresh pages (see :mod:`wmplan._alloc`). At the planner's one scene (4608 rows) the whole batch is one group.
+    Each row's arithmetic is that of one pass (up to the rounding of matrix products of other sizes)."""
+    n, b, c, k, zdim = z.shape
+    hz = pos.shape[-1]
+    rows = n * b * c
+    hp_rows = hp.reshape(rows, hp.shape[-1])
+    z_rows = z.reshape(rows, k, zdim)
+    planes = [pos[j].view(rows, k * hz) for j in range(2)]
+    step = max(1, chunk_rows // k)
+    for s in range(0, rows, step):
+        x = decoder_hidden(pw, hp_rows[s:s + step], z_rows[s:s + step])
+        x = x.view(-1, x.shape[-1])
+        for j in range(2):
+            torch.mm(x, pw.mean_wxy[j], out=planes[j][s:s + step].view(-1, hz))

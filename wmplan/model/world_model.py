@@ -207,26 +207,33 @@ class WorldModel(nn.Module):
         n = hist.shape[2]
         k = int(num_samples)
         pw = inference.prepared(self)
-        h = inference.encode_scene(pw, hist, batch["road"])  # (B, N, D)
+        h = inference.by_object(inference.encode_scene(pw, hist, batch["road"]))  # (N, B, D)
         ego_f = self.ego_future(batch, actions)  # (B, C, H, 5)
-        p = inference.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)  # (B, C, N, D)
+        p = inference.encode_plan(pw, hist[:, -1, :, :2], ego_f, actions)  # (N, B, C, D)
         z = None
         if self.zdim:  # the same standard normals for every plan (common random numbers)
-            z = inference.draw_latent(pw, h, p, randn_rows((b, 1, k, n, self.zdim), generator))  # (B, C, K, N, Z)
-        cv = self.cv_positions(hist)[:, None, None]  # (B, 1, 1, N, H, 2)
-        if not (moments or noise):  # the rows alone: the means without the last layer's bias, which joins cv
+            eps = randn_rows((b, 1, k, n, self.zdim), generator).permute(3, 0, 1, 2, 4)  # (N, B, 1, K, Z)
+            z = inference.draw_latent(pw, h, p, eps)  # (N, B, C, K, Z)
+        hp = inference.decoder_first(pw, h, p)  # (N, B, C, hidden)
+        cv = self.cv_positions(hist)  # (B, N, H, 2)
+        if not (moments or noise):  # the rows alone: the decoder writes the residual means into the planes
+            planes = self.empty_planes(b, c, k, n, dtype=hist.dtype)
+            pos = planes[F_X:F_Y + 1]  # (2, N, B, C, K, H)
             if z is None:
-                hidden = inference.decoder_hidden(pw, inference.decoder_first(pw, h, p), None)
-                resid = inference.residual_means(pw, hidden)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+                resid = inference.residual_means(pw, inference.decoder_hidden(pw, hp, None))  # (N, B, C, H, 2)
+                pos.copy_(resid.permute(4, 0, 1, 2, 3)[..., None, :].expand_as(pos))
             else:
-                resid = inference.sampled_means(pw, h, p, z)
-            return {"rows": self.assemble_rows(hist, (cv + pw.mean_b, resid), ego_f)}
-        hidden = inference.decoder_hidden(pw, inference.decoder_first(pw, h, p), z)
+                inference.write_positions(pw, hp, z, pos)
+            pos += (cv + pw.mean_b).permute(3, 1, 0, 2)[:, :, :, None, None]  # the last layer's bias joins cv
+            return {"rows": self.finish_rows(hist, planes, ego_f)}
+        hidden = inference.decoder_hidden(pw, hp, z)
         if self.zdim:
-            mean, logvar = self.decoder_output(hidden)
+            mean, logvar = (t.permute(1, 2, 3, 0, 4, 5) for t in self.decoder_output(hidden))
         else:
-            mean = (inference.residual_means(pw, hidden) + pw.mean_b)[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
+            mean = (inference.residual_means(pw, hidden) + pw.mean_b).permute(1, 2, 0, 3, 4)
+            mean = mean[:, :, None].expand(b, c, k, n, cfg.horizon, 2)
             logvar = (self.fitted_logvar + 2.0 * torch.log(self.noise_scale)).expand(b, c, k, n, cfg.horizon, 2)
+        cv = cv[:, None, None]  # (B, 1, 1, N, H, 2)
         if noise:
             xy = cv + mean + (0.5 * logvar).exp() * randn_rows((b, c, k, n, cfg.horizon, 2), generator)
         else:
@@ -265,20 +272,31 @@ class WorldModel(nn.Module):
         own plane (no strided row writes), and the risk computations, which want exactly these planes
         (:mod:`wmplan.plan.risk`), read them without a copy. ``rows.contiguous()`` gives the row-major layout.
         """
-        dt = self.cfg.plan_dt_s
         base, resid = xy if isinstance(xy, tuple) else (xy, None)
         shape = torch.broadcast_shapes(base.shape, resid.shape) if resid is not None else base.shape
         b, c, k, n, hz, _ = shape
-        dtype = base.dtype
-        last = hist[:, -1]  # (B, N, F)
-        valid = (last[..., F_VALID] > 0.5).to(dtype)  # (B, N)
-        planes = torch.empty(NUM_VEHICLE_FEATURES, n, b, c, k, hz, dtype=dtype)
+        planes = self.empty_planes(b, c, k, n, dtype=base.dtype)
         order = (5, 3, 0, 1, 2, 4)  # (B, C, K, N, H, 2) -> (2, N, B, C, K, H)
         pos = planes[F_X:F_Y + 1]
         if resid is None:
             pos.copy_(base.expand(shape).permute(order))
         else:
             torch.add(base.expand(shape).permute(order), resid.expand(shape).permute(order), out=pos)
+        return self.finish_rows(hist, planes, ego_f)
+
+    def empty_planes(self, b: int, c: int, k: int, n: int, *, dtype: torch.dtype) -> torch.Tensor:
+        """Uninitialised feature planes (F, N, B, C, K, H) for :meth:`finish_rows`."""
+        return torch.empty(NUM_VEHICLE_FEATURES, n, b, c, k, self.cfg.horizon, dtype=dtype)
+
+    def finish_rows(self, hist: torch.Tensor, planes: torch.Tensor, ego_f: torch.Tensor) -> torch.Tensor:
+        """The rows (B, C, K, H, N, F), a view of ``planes`` (F, N, B, C, K, H) whose position planes hold the
+        predicted positions: the other features written in place on their planes (see :meth:`assemble_rows`)."""
+        dt = self.cfg.plan_dt_s
+        _, n, b, c, k, hz = planes.shape
+        dtype = planes.dtype
+        last = hist[:, -1]  # (B, N, F)
+        valid = (last[..., F_VALID] > 0.5).to(dtype)  # (B, N)
+        pos = planes[F_X:F_Y + 1]
         pos *= valid.t().reshape(1, n, b, 1, 1, 1)  # empty slots zeroed (their velocities and headings follow)
         vel = planes[F_VX:F_VY + 1]
         torch.sub(pos[..., 1:], pos[..., :-1], out=vel[..., 1:])
