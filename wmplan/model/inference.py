@@ -31,20 +31,17 @@ from wmplan.model.nets import (
     ACTION_SCALE,
     LOGVAR_MAX,
     LOGVAR_MIN,
+    OBJECT_STATIC_FEATURES,
+    OBJECT_STEP_FEATURES,
     POS_SCALE_X_M,
     POS_SCALE_Y_M,
     RESIDUAL_SCALE_M,
     ROAD_SCALE,
-    SIZE_SCALE_M,
     VEL_SCALE_X_MPS,
     VEL_SCALE_Y_MPS,
 )
-from wmplan.sim.features import F_LENGTH, F_VALID, F_VX, F_VY, F_WIDTH, F_X, F_Y, NUM_VEHICLE_FEATURES
+from wmplan.sim.features import F_VALID, NUM_VEHICLE_FEATURES
 
-# object_features(): per history step (x, y, vx, vy, valid) over their scales, then length / 5, width / 2, is-ego
-STEP_FEATURES = ((F_X, POS_SCALE_X_M), (F_Y, POS_SCALE_Y_M), (F_VX, VEL_SCALE_X_MPS), (F_VY, VEL_SCALE_Y_MPS),
-                 (F_VALID, 1.0))
-STATIC_FEATURES = ((F_LENGTH, SIZE_SCALE_M), (F_WIDTH, 2.0))
 CHUNK_ROWS = 8192
 """Rows of the decoder's hidden activations computed at once by :func:`write_positions` (4 MB at 128 wide)."""
 
@@ -68,7 +65,7 @@ class Block:
 
 @dataclass(frozen=True)
 class Prepared:
-    """Every weight :func:`sample_rows` uses, laid out for inference."""
+    """Every weight ``WorldModel.sample`` uses, laid out for inference."""
 
     obj1_w: torch.Tensor  # (W x F, D): the flattened history rows of an object, scales folded in
     obj1_b: torch.Tensor
@@ -108,20 +105,21 @@ def _ln(m) -> tuple[torch.Tensor, torch.Tensor, float]:
 
 
 def prepare(model) -> Prepared:
-    """Weights of ``model`` (a :class:`~wmplan.model.world_model.WorldModel`) laid out for :func:`sample_rows`."""
+    """Weights of ``model`` (a :class:`~wmplan.model.world_model.WorldModel`) laid out for inference."""
     cfg = model.cfg
     w_hist, d = cfg.history, cfg.d_model
     nf = NUM_VEHICLE_FEATURES
     with torch.no_grad():
         enc = model.encoder
         first = enc.obj[0]
-        w1 = first.weight  # (D, 5 W + 3)
+        w1 = first.weight  # (D, 5 W + 3): the inputs of nets.object_features
+        per_step = len(OBJECT_STEP_FEATURES)
         full = torch.zeros(d, w_hist * nf, dtype=w1.dtype)
         for step in range(w_hist):
-            for j, (col, scale) in enumerate(STEP_FEATURES):
-                full[:, step * nf + col] = w1[:, 5 * step + j] / scale
-        for j, (col, scale) in enumerate(STATIC_FEATURES):  # the last step's size
-            full[:, (w_hist - 1) * nf + col] = w1[:, 5 * w_hist + j] / scale
+            for j, (col, scale) in enumerate(OBJECT_STEP_FEATURES):
+                full[:, step * nf + col] = w1[:, per_step * step + j] / scale
+        for j, (col, scale) in enumerate(OBJECT_STATIC_FEATURES):  # the last step's size
+            full[:, (w_hist - 1) * nf + col] = w1[:, per_step * w_hist + j] / scale
         blocks = []
         for layer in enc.blocks.layers:
             attn = layer.self_attn
@@ -155,7 +153,7 @@ def prepare(model) -> Prepared:
         mean_w = last.weight[: 2 * hz].unflatten(0, (hz, 2)).transpose(0, 1).reshape(2 * hz, -1) * RESIDUAL_SCALE_M
         middle = tuple((_t(m.weight), m.bias.detach()) for m in list(dec)[2:-1] if isinstance(m, torch.nn.Linear))
         return Prepared(
-            obj1_w=full.t().contiguous(), obj1_b=first.bias.detach().clone(), ego_w=w1[:, 5 * w_hist + 2].clone(),
+            obj1_w=full.t().contiguous(), obj1_b=first.bias.detach().clone(), ego_w=w1[:, -1].clone(),
             obj2_w=_t(enc.obj[2].weight), obj2_b=enc.obj[2].bias.detach(),
             road_w=_t(road.weight / torch.tensor(ROAD_SCALE, dtype=w1.dtype)), road_b=road.bias.detach(),
             blocks=tuple(blocks), norm=_ln(enc.norm),

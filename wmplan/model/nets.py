@@ -49,22 +49,23 @@ def mlp(sizes: list[int], *, final_act: bool = False) -> nn.Sequential:
     return nn.Sequential(*layers)
 
 
+OBJECT_STEP_FEATURES = ((F_X, POS_SCALE_X_M), (F_Y, POS_SCALE_Y_M), (F_VX, VEL_SCALE_X_MPS), (F_VY, VEL_SCALE_Y_MPS),
+                        (F_VALID, 1.0))
+"""The object encoder's inputs per history step: (feature column, scale it is divided by)."""
+OBJECT_STATIC_FEATURES = ((F_LENGTH, SIZE_SCALE_M), (F_WIDTH, 2.0))
+"""Then the last step's size, (feature column, scale), and an is-ego flag."""
+
+
 def object_features(history: torch.Tensor) -> torch.Tensor:
     """Per-object input vector (B, N, 5 W + 3) from history rows (B, W, N, F)."""
     b, w, n, _ = history.shape
-    steps = torch.stack([
-        history[..., F_X] / POS_SCALE_X_M,
-        history[..., F_Y] / POS_SCALE_Y_M,
-        history[..., F_VX] / VEL_SCALE_X_MPS,
-        history[..., F_VY] / VEL_SCALE_Y_MPS,
-        history[..., F_VALID],
-    ], dim=-1)  # (B, W, N, 5)
-    steps = steps.permute(0, 2, 1, 3).reshape(b, n, w * 5)
+    steps = torch.stack([history[..., col] / scale for col, scale in OBJECT_STEP_FEATURES], dim=-1)  # (B, W, N, 5)
+    steps = steps.permute(0, 2, 1, 3).reshape(b, n, w * len(OBJECT_STEP_FEATURES))
     last = history[:, -1]
     is_ego = torch.zeros(b, n, 1, dtype=history.dtype)
     is_ego[:, 0] = 1.0
-    static = torch.cat([last[..., F_LENGTH:F_LENGTH + 1] / SIZE_SCALE_M, last[..., F_WIDTH:F_WIDTH + 1] / 2.0, is_ego], -1)
-    return torch.cat([steps, static], dim=-1)
+    static = [last[..., col:col + 1] / scale for col, scale in OBJECT_STATIC_FEATURES]
+    return torch.cat([steps, *static, is_ego], dim=-1)
 
 
 class SceneEncoder(nn.Module):
