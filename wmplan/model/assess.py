@@ -120,8 +120,7 @@ def heldout_metrics(pred, batch: dict, true: torch.Tensor, valid: torch.Tensor, 
         nll = mixture_nll(xy_mean, sd["logvar"][:, 0], t.permute(0, 2, 1, 3))  # (B, N, H)
         sc = pred.sample(sub, acts, K_COVERAGE, generator=gens[2], noise=True)
         xs = sc["rows"][:, 0, ..., :2]  # (B, K, H, N, 2)
-        lo = torch.quantile(xs, 0.05, dim=1)
-        hi = torch.quantile(xs, 0.95, dim=1)
+        lo, hi = torch.quantile(xs, torch.tensor([0.05, 0.95], dtype=xs.dtype), dim=1)  # one sort for both ends
         inside = ((t >= lo) & (t <= hi)).float()  # (B, H, N, 2)
         for key, val in (("ade", ade[full]), ("fde", fde[full]), ("full", full), ("nll", nll[v.permute(0, 2, 1)]),
                          ("inside", inside[v])):
