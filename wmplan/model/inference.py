@@ -162,7 +162,8 @@ def prepare(model) -> Prepared:
             prior_h_w=prior[0], prior_p_w=prior[1], prior1_b=prior[2], prior2_w=prior[3], prior2_b=prior[4],
             dec_h_w=_t(d0[:, :d]), dec_p_w=_t(d0[:, d:2 * d]), dec_z_w=_t(d0[:, 2 * d:]) if zdim else None,
             dec1_b=dec[0].bias.detach(), dec_hidden=middle,
-            mean_w=_t(mean_w), mean_wxy=(_t(mean_w[:hz]), _t(mean_w[hz:])), mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
+            mean_w=_t(mean_w), mean_wxy=(_t(mean_w[:hz]), _t(mean_w[hz:])),
+            mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
 
 
 _REGISTRATIONS = [0]

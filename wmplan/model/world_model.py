@@ -274,7 +274,7 @@ class WorldModel(nn.Module):
         """
         base, resid = xy if isinstance(xy, tuple) else (xy, None)
         shape = torch.broadcast_shapes(base.shape, resid.shape) if resid is not None else base.shape
-        b, c, k, n, hz, _ = shape
+        b, c, k, n = shape[:4]
         planes = self.empty_planes(b, c, k, n, dtype=base.dtype)
         order = (5, 3, 0, 1, 2, 4)  # (B, C, K, N, H, 2) -> (2, N, B, C, K, H)
         pos = planes[F_X:F_Y + 1]
