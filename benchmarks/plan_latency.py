@@ -84,13 +84,13 @@ def _predictors(params, cfg, model_dir: str | None) -> tuple[dict, str]:
     """Predictors to measure, by name, and the name of the headline one."""
     import torch
 
-    from wmplan.evaluate.closed_loop import HISTORY, NUM_OBJECTS, build_planner
+    from wmplan.evaluate.planners import HISTORY, NUM_OBJECTS, make_planner
     from wmplan.model.config import ModelConfig
     from wmplan.model.ego import EgoKinematics
     from wmplan.model.world_model import WorldModel
     from wmplan.plan.predictors import ModelPredictor
 
-    out = {"constant-velocity": build_planner("mpc+constant-velocity", params, cfg=cfg).predictor}
+    out = {"constant-velocity": make_planner("mpc+constant-velocity", params, {"config": cfg}).predictor}
     if model_dir:
         from wmplan.model.checkpoint import load_model
 
@@ -130,19 +130,20 @@ def _latency(params, cfg, predictor, num_episodes: int) -> tuple[dict, list]:
     """Per-decision time of ``plan`` with B = 1 over closed-loop episodes; also the contexts met."""
     import torch
 
-    from wmplan.evaluate.closed_loop import HISTORY, NUM_OBJECTS, _initial_history, run_batch
+    from wmplan.evaluate.closed_loop import initial_history, run_batch
+    from wmplan.evaluate.planners import HISTORY, NUM_OBJECTS
     from wmplan.plan.predictors import make_context
     from wmplan.sim.spawn import initial_state
 
     planner = _planner(params, cfg, predictor)
     state = initial_state(params, [1000])
-    hist, ids = _initial_history(state, HISTORY, cfg.plan_dt_s)
+    hist, ids = initial_history(state, HISTORY, cfg.plan_dt_s)
     planner.plan(make_context(params, state, hist, ids, NUM_OBJECTS), generator=torch.Generator().manual_seed(0))
     wall, cpu, contexts = [], [], []
     _timed_plan(planner, wall, cpu, contexts)
     outcomes = []
     for e in range(num_episodes):
-        out = run_batch(params, predictor.name, planner, np.array([e]), seed=e)
+        out = run_batch(params, planner, np.array([e]), seed=e, name=predictor.name)
         outcomes.append({k: out.rows[0][k] for k in ("collision", "success", "decisions")})
     result = {
         "decision_ms_median": statistics.median(wall),
@@ -175,7 +176,7 @@ def _breakdown(params, cfg, predictor, contexts: list, num_contexts: int) -> dic
     from wmplan.plan.risk import leader_gap_and_closing, summarise_risk
 
     planner = _planner(params, cfg, predictor)
-    planner.reset(1)
+    planner.reset_state(1)
     gen = torch.Generator().manual_seed(1)
     pick = np.linspace(0, len(contexts) - 1, min(num_contexts, len(contexts))).round().astype(int)
     parts: dict[str, list[float]] = {k: [] for k in ("plan", "candidates", "track_lane", "predictor", "costs",
@@ -219,7 +220,7 @@ def _throughput(params, cfg, predictor, num_episodes: int) -> dict:
     planner = _planner(params, cfg, predictor)
     seeds = episode_seeds(0, num_episodes)
     t0, c0 = time.perf_counter(), time.process_time()
-    out = run_batch(params, predictor.name, planner, seeds, seed=0)
+    out = run_batch(params, planner, seeds, seed=0, name=predictor.name)
     wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     return {"episodes_per_minute": num_episodes / wall * 60.0, "episodes": num_episodes, "batch_size": num_episodes,
             "seconds": wall, "cpu_seconds": cpu, "episodes_per_cpu_minute": num_episodes / cpu * 60.0,

@@ -57,10 +57,10 @@ def reference(reference_episodes: int, min_per_stratum: int, seed_offset: int = 
     """The stratified true value of the failure probability (module docstring, point 1)."""
     import numpy as np
 
+    from wmplan.evaluate.closed_loop import evaluate_seeds
     from wmplan.scenario import load_scenario
     from wmplan.stress.knobs import DEFAULT_Z_STEP, knob_values, select_knobs, variant
     from wmplan.stress.search import is_failure
-    from wmplan.sweep.episodes import run_episodes
 
     base = load_scenario(SCENARIO)
     knobs = select_knobs(KNOB)
@@ -84,7 +84,7 @@ def reference(reference_episodes: int, min_per_stratum: int, seed_offset: int = 
         s = strata[value]
         n = max(min_per_stratum, int(round(reference_episodes * s["prob"] / total_prob)))
         scn = variant(base, knobs, np.array([s["z"][0]]))
-        rows = run_episodes(scn, PLANNER, np.arange(next_seed, next_seed + n))
+        rows = evaluate_seeds(scn, PLANNER, np.arange(next_seed, next_seed + n)).rows
         next_seed += n
         k_fail = sum(is_failure(r) for r in rows)
         h = k_fail / n

@@ -492,8 +492,10 @@ NB03 = [
     import torch
 
     from wmplan.data import simulate_dataset
-    from wmplan.evaluate.closed_loop import build_planner, evaluate_planner
-    from wmplan.evaluate.report import CAUTION, calibration, format_table, summarise_planner
+    from wmplan.caution import CAUTION
+    from wmplan.evaluate.closed_loop import evaluate_planner
+    from wmplan.evaluate.planners import make_planner
+    from wmplan.evaluate.tables import calibration, format_table, summarise_planner
     from wmplan.model.checkpoint import load_model
     from wmplan.model.config import TrainConfig
     from wmplan.model.train import train
@@ -536,12 +538,14 @@ NB03 = [
     md("""
     ## The planners
 
-    `build_planner` makes a sampling planner (CEM over the candidates by default) around a predictor; `"rules"` is
-    the rule-based ego, which predicts nothing. All sampling planners share one configuration.
+    `make_planner` builds a planner from its name (the same names the command line takes, or an import path of
+    your own); the sampling planners run CEM over the candidates by default around a predictor; `"rules"` is the
+    rule-based ego, which predicts nothing. All sampling planners share one configuration.
     """),
     code("""
     cfg = PlannerConfig(num_candidates=NUM_CANDIDATES, num_futures=NUM_FUTURES)
-    planners = {name: build_planner(name, params, model_dir=MODEL_DIR, cfg=cfg) for name in PLANNERS if name != "rules"}
+    options = {"model": MODEL_DIR, "config": cfg}
+    planners = {name: make_planner(name, params, options) for name in PLANNERS if name != "rules"}
     print(f"{cfg.sampler.upper()}, {cfg.num_candidates} candidates x {cfg.num_futures} futures x {cfg.horizon} steps of "
           f"{cfg.plan_dt_s} s, risk as a {cfg.risk_mode} (weight {cfg.weights.collision} per unit of P(collision))")
     """),
@@ -568,7 +572,7 @@ NB03 = [
 
     decisions = {}
     for name, planner in planners.items():
-        planner.reset(1)
+        planner.reset_state(1)
         t0 = time.perf_counter()
         decisions[name] = res = planner.plan(ctx, generator=torch.Generator().manual_seed(SEED), keep=True)
         lo, hi = res.p_collision_ci[0]
@@ -608,7 +612,7 @@ NB03 = [
     summaries, calib = {}, {}
     for name in PLANNERS:
         t0 = time.perf_counter()
-        out = evaluate_planner(scn, name, episodes=EPISODES, seed=SEED, model_dir=MODEL_DIR, planner_cfg=cfg,
+        out = evaluate_planner(scn, name, episodes=EPISODES, seed=SEED, options={} if name == "rules" else options,
                                batch_size=EPISODES)
         summaries[name] = summarise_planner(out.rows)
         if name != "rules":

@@ -8,7 +8,7 @@ import json
 
 from wmplan.demo import run_demo
 from wmplan.evaluate.closed_loop import PLANNER_NAMES
-from wmplan.evaluate.report import CAUTION
+from wmplan.evaluate.tables import CAUTION
 
 
 def test_quick_demo_writes_the_whole_report(tmp_path):

@@ -15,7 +15,7 @@ starts with ``python`` by ``sys.executable`` (seen in ``jupyter_client/manager.p
 
 from __future__ import annotations
 
-import importlib.util
+import importlib
 import os
 import sys
 import time
@@ -84,9 +84,7 @@ def test_notebooks_are_stored_without_outputs():
 
 def test_notebooks_match_their_build_script():
     """The notebooks are what notebooks/_build.py writes: edit the script, then rebuild (its --check mode)."""
-    spec = importlib.util.spec_from_file_location("notebooks_build", NOTEBOOK_DIR / "_build.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    module = importlib.import_module("notebooks._build")
     stale = [path.name for path, text in module.rendered().items() if path.read_text(encoding="utf-8") != text]
     assert stale == [], f"out of date (run python notebooks/_build.py): {stale}"
 

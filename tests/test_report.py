@@ -22,8 +22,8 @@ from PIL import Image
 
 from wmplan.data import simulate_dataset
 from wmplan.errors import ConfigError
-from wmplan.evaluate.report import calibration
 from wmplan.evaluate.stats import wilson_interval
+from wmplan.evaluate.tables import calibration
 from wmplan.model.train import write_metrics_csv
 from wmplan.report import ASSESS_METRICS, build_report, cli_report
 from wmplan.scenario import load_scenario, scenario_to_yaml
@@ -34,7 +34,7 @@ Y_93 = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
 
 
 def _planner(k: int, n: int) -> dict:
-    """A planner's summary as wmplan.evaluate.report.summarise_planner shapes it (collisions k of n episodes)."""
+    """A planner's summary as wmplan.evaluate.tables.summarise_planner shapes it (collisions k of n episodes)."""
     lo, hi = wilson_interval(k, n)
     return {"episodes": n, "collision_rate": k / n, "collision_ci95": [float(lo), float(hi)],
             "offroad_rate": 0.0, "offroad_ci95": [0.0, float(wilson_interval(0, n)[1])],

@@ -9,7 +9,8 @@ time; with the settings below, 0.23 million and 0.7 s, and 45 s of wall time (``
 
 ``mallopt`` (glibc, ``man 3 mallopt``): blocks up to 32 MB come from the heap (``M_MMAP_THRESHOLD``, its maximum on
 64-bit systems), and up to 512 MB of free heap is kept (``M_TRIM_THRESHOLD``). The price is a resident size that
-stays near its peak. Set the environment variable ``WMPLAN_MALLOC_TUNING=0`` before importing wmplan to leave the
+stays near its peak. The ``wmplan`` command calls :func:`tune_malloc` at its start (importing the package does not; a
+long Python session may call it itself). Set the environment variable ``WMPLAN_MALLOC_TUNING=0`` to leave the
 allocator alone; on systems without glibc nothing happens.
 """
 

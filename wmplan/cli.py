@@ -37,6 +37,10 @@ def _progress(total: int, desc: str) -> tuple[Callable[[int], None], Callable[[]
     return bar.update, bar.close
 
 
+def _progress_factory(label: str, total: int) -> tuple[Callable[[int], None], Callable[[], None]]:
+    return _progress(total, label)
+
+
 def _write_json(path: str | None, payload: dict) -> None:
     if path:
         from wmplan.io import atomic_write_json
@@ -250,6 +254,7 @@ def cmd_train(args: argparse.Namespace) -> int:
 
 
 def cmd_assess(args: argparse.Namespace) -> int:
+    from wmplan.caution import CAUTION
     from wmplan.model.assess import assess
     from wmplan.scenario import load_scenario
 
@@ -261,6 +266,7 @@ def cmd_assess(args: argparse.Namespace) -> int:
     print(f"{'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
     for name, row in result["predictors"].items():
         print(f"{name:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
+    print(CAUTION)
     return 0
 
 
@@ -268,51 +274,25 @@ def cmd_assess(args: argparse.Namespace) -> int:
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
-    from wmplan.evaluate.closed_loop import PLANNER_NAMES, evaluate_planner
-    from wmplan.evaluate.report import CAUTION, calibration, format_table, summarise_planner, write_outputs
-    from wmplan.plan.mpc import PlannerConfig
-    from wmplan.scenario import load_scenario, scenario_hash
+    from wmplan.caution import CAUTION
+    from wmplan.evaluate.compare import compare_planners
+    from wmplan.evaluate.tables import format_table
+    from wmplan.scenario import load_scenario
 
     scn = load_scenario(args.scenario)
     names = [n.strip() for n in args.planners.split(",") if n.strip()]
-    unknown = [n for n in names if n not in PLANNER_NAMES]
-    if unknown:
-        raise ConfigError(f"--planners: unknown planner(s) {unknown}; choose from {', '.join(PLANNER_NAMES)}")
-    if any(n in ("mpc+latent",) for n in names) and not args.model:
-        raise ConfigError("--planners includes mpc+latent: pass --model MODEL_DIR")
-    if "mpc+deterministic" in names and not args.deterministic:
-        raise ConfigError("--planners includes mpc+deterministic: pass --deterministic DIR")
-    pcfg = PlannerConfig(sampler=args.sampler, risk_mode=args.risk, epsilon=args.epsilon)
-    import torch
-
-    torch.set_num_threads(args.threads)
-    results, calib, rows, calib_rows = {}, {}, [], []
-    n_dec = int(round(scn.duration_s / pcfg.plan_dt_s))
-    for name in names:
-        advance, close = _progress(n_dec * ((args.episodes + args.batch_size - 1) // args.batch_size), f"evaluate {name}")
-        t0 = time.perf_counter()
-        try:
-            out = evaluate_planner(scn, name, episodes=args.episodes, seed=args.seed, model_dir=args.model,
-                                   deterministic_dir=args.deterministic, planner_cfg=pcfg,
-                                   batch_size=args.batch_size, progress=advance)
-        finally:
-            close()
-        results[name] = summarise_planner(out.rows)
-        results[name]["seconds"] = round(time.perf_counter() - t0, 1)
-        rows += out.rows
-        if name != "rules":
-            calib[name] = calibration(out.predicted, out.happened)
-            calib_rows += [{"planner": name, "predicted": p, "happened": int(h)}
-                           for p, h in zip(out.predicted, out.happened, strict=True)]
-        print(f"[evaluate] {name}: {results[name]['seconds']} s", file=sys.stderr, flush=True)
-    summary = {"scenario": scn.name, "scenario_hash": scenario_hash(scn), "episodes": args.episodes,
-               "seed": args.seed, "model": args.model, "deterministic": args.deterministic,
-               "planner_config": pcfg.to_dict(), "results": results, "calibration": calib, "caution": CAUTION}
-    if args.out:
-        write_outputs(Path(args.out), summary, rows, calib_rows)
+    options = {"sampler": args.sampler, "risk": args.risk, "epsilon": args.epsilon, "threads": args.threads}
+    if args.model:
+        options["model"] = args.model
+    if args.deterministic:
+        options["deterministic"] = args.deterministic
+    summary, _rows = compare_planners(
+        scn, names, episodes=args.episodes, seed=args.seed, options=options, batch_size=args.batch_size,
+        out_dir=Path(args.out) if args.out else None, progress=_progress_factory,
+        log=lambda line: print(f"[evaluate] {line}", file=sys.stderr, flush=True))
     _write_json(args.json, summary)
-    print(format_table(results))
-    for name, c in calib.items():
+    print(format_table(summary["results"]))
+    for name, c in summary["calibration"].items():
         if c.get("decisions"):
             print(f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions")
     print(CAUTION)
@@ -323,48 +303,23 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
-    from wmplan.sweep.runner import run_sweep
+    from wmplan.caution import CAUTION
+    from wmplan.sweep.runner import format_summary, run_sweep
 
     summary = run_sweep(args.file, args.out, workers=args.workers, scheduler=args.scheduler, progress=True)
     _write_json(args.json, summary)
-    cells = summary.get("cells", [])
-    print(f"sweep {summary.get('sweep', args.file)}: {len(cells)} cells; results in {Path(args.out) / 'results.parquet'}")
-    for c in cells[:40]:
-        ci = c.get("collision_ci95", [float("nan")] * 2)
-        params = ", ".join(f"{k}={v}" for k, v in c.get("params", {}).items())
-        print(f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
-              f"[{ci[0]:.3f}, {ci[1]:.3f}] n={c.get('n', '')}")
+    print(format_summary(summary, Path(args.out)))
+    print(CAUTION)
     return 0
-
-
-def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path, *, options: dict | None = None) -> Path:
-    """Replay one saved failure with its planner and draw it as an animation (stress tests call this)."""
-    import numpy as np
-
-    from wmplan.evaluate.closed_loop import record_episode
-    from wmplan.scenario import load_scenario
-    from wmplan.sim.params import SimParams
-    from wmplan.viz.anim import save_episode_animation
-
-    options = options or {}
-    scn = load_scenario(scenario_file)
-    if planner not in ("rules",) and not planner.startswith("mpc+"):
-        raise ConfigError(f"cannot animate planner {planner!r}")
-    frames, row = record_episode(scn, planner, seed, model_dir=options.get("model"),
-                                 deterministic_dir=options.get("deterministic"))
-    params = SimParams.from_scenario(scn)
-    keep = np.unique(np.r_[np.arange(0, len(frames), 2), len(frames) - 1])  # every other step, and the last one
-    last = len(keep) - 1
-    return save_episode_animation(frames[keep], params, out_file, fps=5.0, frame_steps=keep,
-                                  collided_at=last if row["collision"] else None,
-                                  offroad_at=last if row["offroad"] else None, title=f"{planner}, seed {seed}")
 
 
 def cmd_stress(args: argparse.Namespace) -> int:
     import functools
 
+    from wmplan.caution import CAUTION
     from wmplan.stress.knobs import select_knobs
     from wmplan.stress.runner import run_stress
+    from wmplan.viz.anim import animate_failure
 
     knobs = select_knobs(args.knobs) if args.knobs is not None else None
     options = {}
@@ -391,11 +346,13 @@ def cmd_stress(args: argparse.Namespace) -> int:
     print(f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}")
     print(f"  failure probability (importance sampling): {interval(fp)}, ESS {num(fp.get('ess'))}")
     print(f"  plain Monte Carlo, same budget:            {interval(mc)}")
+    print(CAUTION)
     return 0
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
     from wmplan.stress.search import is_failure, replay_episode
+    from wmplan.viz.anim import animate_failure
 
     options = {k: v for k, v in (("model", args.model), ("deterministic", args.deterministic)) if v}
     info, row = replay_episode(args.failure, options)
@@ -426,10 +383,12 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from wmplan.caution import CAUTION
     from wmplan.demo import run_demo
 
     report = run_demo(Path(args.out), quick=args.quick, seed=args.seed)
     print(f"demo finished; see {report}")
+    print(CAUTION)
     return 0
 
 
@@ -437,10 +396,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from wmplan.caution import CAUTION
+
     p = _Parser(prog="wmplan", description=(
         "Learned stochastic world models of lane traffic, sampling MPC over their futures, and collision-risk "
-        "evaluation with confidence intervals. A research sandbox: results on this simplified traffic model "
-        "certify nothing about a real vehicle."))
+        "evaluation with confidence intervals. " + CAUTION))
     sub = p.add_subparsers(dest="verb", metavar="VERB", parser_class=_Parser)
     sub.required = True
 
@@ -496,7 +456,9 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("evaluate", help="closed-loop evaluation of planners in the true simulator")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
     sp.add_argument("--planners", default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
-                    help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle")
+                    help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle, "
+                         "a plug-in planner module:factory, or mpc+module:factory (the sampling planner over a "
+                         "plug-in predictor)")
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
     sp.add_argument("--episodes", type=_positive_int, default=200)
@@ -521,7 +483,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = sub.add_parser("stress", help="search for failures and estimate their probability by importance sampling")
     sp.add_argument("scenario")
-    sp.add_argument("--planner", default="rules")
+    sp.add_argument("--planner", default="rules", help="a planner name or plug-in import path, as for evaluate")
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
     sp.add_argument("--budget", type=_positive_int, default=2000, help="episodes per estimator (default 2000)")
@@ -561,6 +523,10 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    """The ``wmplan`` command: parse ``argv`` and run the verb; returns the exit status."""
+    from wmplan._alloc import tune_malloc
+
+    tune_malloc()  # fewer page faults from short-lived large arrays (wmplan/_alloc.py; WMPLAN_MALLOC_TUNING=0 opts out)
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

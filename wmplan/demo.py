@@ -36,8 +36,10 @@ def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> N
     """Save one decision's futures (model vs oracle vs least squares) and the planner's candidates for figures."""
     import torch
 
-    from wmplan.evaluate.closed_loop import HISTORY, NUM_OBJECTS, _initial_history, build_planner
+    from wmplan.evaluate.closed_loop import initial_history
+    from wmplan.evaluate.planners import NUM_OBJECTS, make_planner
     from wmplan.model.checkpoint import load_model
+    from wmplan.plan.base import HISTORY_STEPS
     from wmplan.plan.predictors import OraclePredictor, make_context
     from wmplan.sim.ego_rules import rule_actions
     from wmplan.sim.engine import step
@@ -47,7 +49,7 @@ def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> N
     scn = load_scenario(SCENARIO)
     params = SimParams.from_scenario(scn)
     state = initial_state(params, [seed + 17])
-    hist, ids = _initial_history(state, HISTORY, 0.2)
+    hist, ids = initial_history(state, HISTORY_STEPS, 0.2)
     for _ in range(12):  # drive 2.4 s with the rules to reach the interesting part
         a = rule_actions(state, params)
         for _ in range(2):
@@ -55,7 +57,7 @@ def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> N
         hist = np.concatenate([hist[:, 1:], state.vehicles()[:, None]], axis=1)
         ids = np.concatenate([ids[:, 1:], state.vehicle_id[:, None]], axis=1)
     ctx = make_context(params, state, hist, ids, NUM_OBJECTS)
-    planner = build_planner("mpc+latent", params, model_dir=model_dir)
+    planner = make_planner("mpc+latent", params, {"model": model_dir})
     gen = torch.Generator().manual_seed(seed)
     res = planner.plan(ctx, generator=gen, keep=True)
     chosen = int(res.chosen[0])
@@ -78,8 +80,9 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     import torch
 
     from wmplan.data import decisions_per_episode, simulate_dataset
-    from wmplan.evaluate.closed_loop import PLANNER_NAMES, evaluate_planner
-    from wmplan.evaluate.report import CAUTION, calibration, format_table, summarise_planner, write_outputs
+    from wmplan.evaluate.compare import compare_planners
+    from wmplan.evaluate.planners import BUILTIN_PLANNERS
+    from wmplan.evaluate.tables import format_table
     from wmplan.io import atomic_write_json, atomic_write_text
     from wmplan.model.assess import assess
     from wmplan.model.config import ModelConfig, TrainConfig
@@ -137,25 +140,19 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     # The oracle plans by running the true simulator for every candidate and sample (64 x 8 futures of 30 steps per
     # decision): about 20 s per episode on two cores, so the demo gives it fewer episodes (the table shows n).
     n_oracle = 4 if quick else 6
-    _say(f"6/7 closed-loop evaluation of {len(PLANNER_NAMES)} planners, {n_eval} episodes each "
+    _say(f"6/7 closed-loop evaluation of {len(BUILTIN_PLANNERS)} planners, {n_eval} episodes each "
          f"({n_oracle} for mpc+oracle)")
-    results, calib, rows, calib_rows = {}, {}, [], []
-    for name in PLANNER_NAMES:
-        n_name = n_oracle if name == "mpc+oracle" else n_eval
-        with _bar(int(round(scn.duration_s / 0.2)), f"evaluate {name}") as bar:
-            ev = evaluate_planner(scn, name, episodes=n_name, seed=seed, model_dir=out / "latent",
-                                  deterministic_dir=out / "deterministic", batch_size=n_name, progress=bar.update)
-        results[name] = summarise_planner(ev.rows)
-        lap(f"evaluate_{name}")
-        rows += ev.rows
-        if name != "rules":
-            calib[name] = calibration(ev.predicted, ev.happened)
-            calib_rows += [{"planner": name, "predicted": p, "happened": int(h)}
-                           for p, h in zip(ev.predicted, ev.happened, strict=True)]
-    summary = {"scenario": scn.name, "episodes": n_eval, "episodes_oracle": n_oracle, "seed": seed,
-               "results": results, "calibration": calib,
-               "caution": CAUTION}
-    write_outputs(out / "evaluate", summary, rows, calib_rows)
+
+    def bar_factory(label: str, total: int):
+        bar = _bar(total, label).__enter__()
+        return bar.update, bar.close
+
+    summary, _rows = compare_planners(scn, BUILTIN_PLANNERS, episodes=n_eval, seed=seed,
+                                      options={"model": out / "latent", "deterministic": out / "deterministic"},
+                                      episodes_by_planner={"mpc+oracle": n_oracle}, batch_size=n_eval,
+                                      out_dir=out / "evaluate", progress=bar_factory,
+                                      log=lambda line: lap(f"evaluate_{line.split(':')[0]}"))
+    results = summary["results"]
     print(format_table(results), file=sys.stderr)
     # --- report ---
     _say("7/7 writing the report")

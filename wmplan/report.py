@@ -34,18 +34,11 @@ from pathlib import Path
 
 import numpy as np
 
+from wmplan.caution import CAUTION, CAUTION_DETAIL
 from wmplan.errors import ConfigError, WmplanError
 from wmplan.io import atomic_write_bytes, atomic_write_text
 
-CAUTIONS = (
-    "wmplan is a research sandbox, not a safety case. Its traffic is a simplified model (straight roads, idealised "
-    "drivers following published car-following and lane-changing laws, no sensors, no weather, no pedestrians), and "
-    "its forward model learns only that simplified traffic.",
-    "Results on a simplified traffic model certify nothing about a real vehicle: none of the numbers in this report "
-    "(collision rates, intervals, calibration, failure probabilities) is evidence that a system is safe.",
-    "Real automated-driving programmes follow ISO 26262 (functional safety), ISO 21448 (safety of the intended "
-    "functionality), local regulation and licensed engineering practice; defer to them.",
-)
+CAUTIONS = (CAUTION_DETAIL, CAUTION)
 
 ASSESS_METRICS = (
     ("min_ade_k6_m", "minADE, K = 6 [m]", "best of 6 sampled futures per object: mean distance to the true track "
@@ -530,7 +523,7 @@ def _write(run_dir: Path | str) -> tuple[Path, Path, _Doc]:
         doc.add(_Heading(2, "Not in this run"), _List(doc.skipped, css="skipped"))
     title = f"wmplan run report: {run_dir.resolve().name}"
     meta = (f"Run folder {run_dir.resolve()}; written {datetime.now(timezone.utc).strftime('%Y-%m-%d %H:%M UTC')}. "
-            "A research sandbox: results on a simplified traffic model certify nothing about a real vehicle.")
+            + CAUTION)
     for b in doc.blocks:
         if isinstance(b, _Image) and not b.existing:
             atomic_write_bytes(run_dir / b.name, b.data)

@@ -30,13 +30,13 @@ import torch
 from wmplan.cli import main
 from wmplan.evaluate import stats
 from wmplan.evaluate.closed_loop import (
-    build_planner,
     evaluate_planner,
     evaluate_seeds,
     evaluate_variants,
     run_batch,
 )
-from wmplan.evaluate.report import calibration
+from wmplan.evaluate.planners import make_planner
+from wmplan.evaluate.tables import calibration
 from wmplan.plan.mpc import CostWeights, PlannerConfig
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict
 from wmplan.sim.features import F_HEADING, F_LENGTH, F_VALID, F_WIDTH, F_X, F_Y
@@ -74,6 +74,11 @@ def planner_cfg(name: str) -> PlannerConfig:
     return ORACLE_SMALL if name == "mpc+oracle" else SMALL
 
 
+def opts(name: str) -> dict:
+    """The planner options of these tests: small budgets for the sampling planners; none for the rules."""
+    return {} if name == "rules" else {"config": planner_cfg(name)}
+
+
 # --- 3. determinism -------------------------------------------------------------------------------------------
 
 
@@ -81,7 +86,7 @@ def planner_cfg(name: str) -> PlannerConfig:
 def test_same_seed_gives_the_same_episodes(name):
     """Two evaluations with the same seed give identical episode rows and calibration records (STYLE.md 9)."""
     scn = short_scenario("onramp-merge", 4.0)
-    runs = [evaluate_planner(scn, name, episodes=3, seed=3, planner_cfg=planner_cfg(name), batch_size=3)
+    runs = [evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3)
             for _ in range(2)]
     assert without_latency(runs[0].rows) == without_latency(runs[1].rows)
     assert runs[0].predicted == runs[1].predicted
@@ -94,13 +99,12 @@ def test_a_different_seed_gives_different_episodes(name):
     """A different evaluation seed gives different scenes; the same scenes with a different planner seed give
     different episodes too, so the planner's own random draws do reach the result (STYLE.md 9)."""
     scn = short_scenario("onramp-merge", 4.0)
-    cfg = planner_cfg(name)
-    base = evaluate_planner(scn, name, episodes=3, seed=3, planner_cfg=cfg, batch_size=3)
-    other = evaluate_planner(scn, name, episodes=3, seed=4, planner_cfg=cfg, batch_size=3)
+    base = evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3)
+    other = evaluate_planner(scn, name, episodes=3, seed=4, options=opts(name), batch_size=3)
     assert {r["seed"] for r in base.rows}.isdisjoint({r["seed"] for r in other.rows})
     assert [r["progress_m"] for r in base.rows] != [r["progress_m"] for r in other.rows]
     seeds = np.array([r["seed"] for r in base.rows])
-    replanned = evaluate_seeds(scn, name, seeds, seed=99, planner_cfg=cfg, batch_size=3)
+    replanned = evaluate_seeds(scn, name, seeds, seed=99, options=opts(name), batch_size=3)
     assert [r["seed"] for r in replanned.rows] == list(seeds)
     assert [r["progress_m"] for r in replanned.rows] != [r["progress_m"] for r in base.rows]
 
@@ -118,9 +122,8 @@ def test_rule_based_episodes_do_not_depend_on_the_batch_size():
 def test_planner_episodes_do_not_depend_on_the_batch_size(name):
     """Same seed, batch size 2 vs 4: identical per-episode rows except the latency (STYLE.md 9)."""
     scn = short_scenario("onramp-merge", 4.0)
-    cfg = planner_cfg(name)
-    big = evaluate_planner(scn, name, episodes=4, seed=5, planner_cfg=cfg, batch_size=4)
-    small = evaluate_planner(scn, name, episodes=4, seed=5, planner_cfg=cfg, batch_size=2)
+    big = evaluate_planner(scn, name, episodes=4, seed=5, options=opts(name), batch_size=4)
+    small = evaluate_planner(scn, name, episodes=4, seed=5, options=opts(name), batch_size=2)
     assert [r["seed"] for r in big.rows] == [r["seed"] for r in small.rows]
     assert without_latency(big.rows) == without_latency(small.rows)
 
@@ -145,9 +148,8 @@ def test_variants_sharing_batches_give_the_rows_of_separate_runs(name):
     exactly the rows each variant gives on its own (STYLE.md 9: results do not depend on the batching)."""
     scenarios = _variants(4.0)
     seeds = [np.array([11]), np.array([12, 13, 14]), np.array([15, 16]), np.array([17])]
-    cfg = planner_cfg(name)
-    shared = evaluate_variants(scenarios, seeds, name, seed=5, planner_cfg=cfg, batch_size=3)
-    alone = [evaluate_seeds(scn, name, s, seed=5, planner_cfg=cfg, batch_size=4).rows
+    shared = evaluate_variants(scenarios, seeds, name, seed=5, options=opts(name), batch_size=3)
+    alone = [evaluate_seeds(scn, name, s, seed=5, options=opts(name), batch_size=4).rows
              for scn, s in zip(scenarios, seeds, strict=True)]
     assert [len(g) for g in shared] == [1, 3, 2, 1]
     assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
@@ -178,9 +180,8 @@ def test_variants_of_two_braking_limits_share_batches_within_each_limit(name):
         scenarios.append(parse_scenario(d, source=f"brake-{k}"))
     assert batch_classes(scenarios) == [[0, 2], [1, 3]] and not batchable(scenarios)
     seeds = [np.array([21]), np.array([22, 23]), np.array([24]), np.array([25])]
-    cfg = planner_cfg(name)
-    shared = evaluate_variants(scenarios, seeds, name, seed=5, planner_cfg=cfg, batch_size=3)
-    alone = [evaluate_seeds(scn, name, s, seed=5, planner_cfg=cfg).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    shared = evaluate_variants(scenarios, seeds, name, seed=5, options=opts(name), batch_size=3)
+    alone = [evaluate_seeds(scn, name, s, seed=5, options=opts(name)).rows for scn, s in zip(scenarios, seeds, strict=True)]
     assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
 
 
@@ -227,10 +228,10 @@ def test_calibration_labels_mark_the_horizon_before_a_certain_collision():
     params = SimParams.from_scenario(stopped_vehicle_one_lane())
     cfg = PlannerConfig(num_candidates=16, num_futures=2,
                         weights=CostWeights(collision=0.0, cvar=0.0, ttc=0.0, headway=0.0))
-    planner = build_planner("mpc+constant-velocity", params, cfg=cfg)
+    planner = make_planner("mpc+constant-velocity", params, {"config": cfg})
     seeds = np.array([0, 1])
     frames = [initial_state(params, seeds).vehicles()]
-    out = run_batch(params, "mpc+constant-velocity", planner, seeds, seed=0, frames=frames)
+    out = run_batch(params, planner, seeds, seed=0, frames=frames, name="mpc+constant-velocity")
     frames = np.stack(frames)  # (T + 1, S, V, F)
     sub = round(cfg.plan_dt_s / params.dt_s)
     h = cfg.horizon

@@ -1,5 +1,5 @@
 """How closed-loop episodes end (``outcome``, ``final_lane``, ``in_goal_lane``) and the timeout figures of the
-evaluation summary and table (``wmplan.evaluate.closed_loop``, ``wmplan.evaluate.report``).
+evaluation summary and table (``wmplan.evaluate.closed_loop``, ``wmplan.evaluate.tables``).
 
 Sources:
 - The four ways an episode ends (goal, collision, off-road, time running out) and telling a stall before the merge
@@ -24,8 +24,9 @@ import scipy.stats
 import torch
 
 from wmplan.evaluate import stats
-from wmplan.evaluate.closed_loop import OUTCOMES, build_planner, run_batch
-from wmplan.evaluate.report import calibration, format_table, summarise_planner
+from wmplan.evaluate.closed_loop import OUTCOMES, run_batch
+from wmplan.evaluate.planners import make_planner
+from wmplan.evaluate.tables import calibration, format_table, summarise_planner
 from wmplan.plan.mpc import CostWeights, PlannerConfig
 from wmplan.scenario import load_scenario, parse_scenario, scenario_to_dict
 from wmplan.sim.features import F_Y
@@ -52,9 +53,9 @@ def scenario_with(name: str, **changes):
 
 def run_with_frames(scn, planner_name, seeds, cfg=None):
     params = SimParams.from_scenario(scn)
-    planner = build_planner(planner_name, params, cfg=cfg)
+    planner = make_planner(planner_name, params, {} if cfg is None else {"config": cfg})
     frames = [initial_state(params, seeds).vehicles()]
-    out = run_batch(params, planner_name, planner, seeds, seed=0, frames=frames)
+    out = run_batch(params, planner, seeds, seed=0, frames=frames, name=planner_name)
     return params, out, np.stack(frames)  # (T + 1, S, V, F)
 
 
@@ -109,7 +110,7 @@ def test_a_collision_is_the_outcome_when_the_ego_hits_a_stopped_vehicle():
 def _row(outcome: str, in_goal_lane: bool) -> dict:
     return {"collision": outcome == "collision", "offroad": outcome == "offroad", "success": outcome == "goal",
             "outcome": outcome, "in_goal_lane": in_goal_lane, "mean_speed_mps": 20.0, "progress_m": 250.0,
-            "rms_jerk_mps3": 1.0, "min_ttc_s": 3.0, "decision_ms": 10.0}
+            "rms_jerk_mps3": 1.0, "min_ttc_s": 3.0, "near_miss": False, "decision_ms": 10.0}
 
 
 def test_timeout_rate_has_a_wilson_interval():

@@ -6,18 +6,14 @@ optimiser steps): they exercise the training, checkpoint and assessment machiner
 
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 
 import pytest
 
-sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-from model_helpers import SCENARIO, tiny_model_config, tiny_train_config  # noqa: E402
-
-from wmplan.data import Dataset, load_dataset, simulate_dataset  # noqa: E402
-from wmplan.model.train import TrainResult, train  # noqa: E402
-from wmplan.scenario import load_scenario  # noqa: E402
+from tests.model.model_helpers import SCENARIO, tiny_model_config, tiny_train_config
+from wmplan.data import Dataset, load_dataset, simulate_dataset
+from wmplan.model.train import TrainResult, train
+from wmplan.scenario import load_scenario
 
 DATA_SEED = 11
 DATA_EPISODES = 16

@@ -9,24 +9,18 @@ against the layer sizes worked out by hand from the model's configuration (deriv
 from __future__ import annotations
 
 import importlib.util
-from pathlib import Path
 
 import pytest
 import torch
-from model_helpers import TOY_EGO, straight_batch
 
+from tests.model.model_helpers import TOY_EGO, straight_batch
 from wmplan.model.config import ModelConfig
 from wmplan.model.world_model import WorldModel
-
-BENCH = Path(__file__).resolve().parents[2] / "benchmarks" / "model_throughput.py"
 
 
 @pytest.fixture(scope="module")
 def bench():
-    spec = importlib.util.spec_from_file_location("wmplan_bench_model_throughput_test", BENCH)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
+    return importlib.import_module("benchmarks.model_throughput")
 
 
 def test_flop_count_of_a_rollout(bench):

@@ -16,8 +16,8 @@ from __future__ import annotations
 
 import pytest
 import torch
-from model_helpers import TOY_EGO, straight_batch
 
+from tests.model.model_helpers import TOY_EGO, straight_batch
 from wmplan.model.assess import ade_fde
 from wmplan.model.config import ModelConfig
 from wmplan.model.world_model import WorldModel

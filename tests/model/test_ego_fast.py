@@ -18,9 +18,9 @@ import math
 import numpy as np
 import pytest
 import torch
-from model_helpers import TOY_EGO
-from reference_paths import stepwise_rollout
 
+from tests.model.model_helpers import TOY_EGO
+from tests.model.reference_paths import stepwise_rollout
 from wmplan.model.ego import EgoKinematics
 from wmplan.scenario import load_scenario
 

@@ -14,8 +14,8 @@ import copy
 
 import pytest
 import torch
-from model_helpers import TOY_EGO
 
+from tests.model.model_helpers import TOY_EGO
 from wmplan.data.windows import Windows, WindowSpec, anchor_index
 from wmplan.model import inference as inf
 from wmplan.model.config import ModelConfig

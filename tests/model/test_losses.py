@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 import scipy.stats
 import torch
-from model_helpers import TOY_EGO, straight_batch
 from torch.distributions import Categorical, Independent, MixtureSameFamily, Normal, kl_divergence
 
+from tests.model.model_helpers import TOY_EGO, straight_batch
 from wmplan.model.assess import ade_fde, energy_distance, mixture_nll
 from wmplan.model.world_model import WorldModel, gaussian_kl
 

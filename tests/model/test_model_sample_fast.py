@@ -13,12 +13,11 @@ from __future__ import annotations
 
 import copy
 import importlib.util
-from pathlib import Path
 
 import pytest
 import torch
-from reference_paths import reference_rows, reference_sample
 
+from tests.model.reference_paths import reference_rows, reference_sample
 from wmplan.data.windows import Windows, WindowSpec, anchor_index
 from wmplan.model.baselines import ConstantVelocity
 from wmplan.model.config import ModelConfig
@@ -28,7 +27,6 @@ from wmplan.model.world_model import WorldModel
 from wmplan.scenario import load_scenario
 from wmplan.sim.features import F_VALID
 
-BENCH = Path(__file__).resolve().parents[2] / "benchmarks" / "model_throughput.py"
 NUM_PLANS = 6
 
 
@@ -152,9 +150,7 @@ def test_same_seed_same_futures_whatever_the_batch(windows, ego):
 def test_the_benchmark_replay_reproduces_sample(windows, ego):
     """``benchmarks/model_throughput.py`` times ``sample`` piece by piece by replaying it; the replay's rows equal
     ``sample``'s exactly (so its breakdown describes the real call), and it names every piece."""
-    spec = importlib.util.spec_from_file_location("wmplan_bench_model_throughput_replay", BENCH)
-    bench = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(bench)
+    bench = importlib.import_module("benchmarks.model_throughput")
     model = fresh(ModelConfig(), ego)
     batch = {k: v[:1] for k, v in windows.items()}
     wall, cpu, matches = bench.breakdown(model, batch, plans(batch, 16, 8), 4, 2, 9)

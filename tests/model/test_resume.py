@@ -11,6 +11,7 @@ configuration (the stored one is used on resume) on one thread, so their final w
 from __future__ import annotations
 
 import json
+import os
 import re
 import subprocess
 import sys
@@ -19,8 +20,8 @@ from pathlib import Path
 
 import pytest
 import torch
-from model_helpers import tiny_model_config, tiny_train_config
 
+from tests.model.model_helpers import tiny_model_config, tiny_train_config
 from wmplan.data import simulate_dataset
 from wmplan.errors import CheckpointError
 from wmplan.model.checkpoint import load_model
@@ -113,8 +114,7 @@ KILL_SCRIPT = textwrap.dedent(
     """
     import json, os, signal, sys
     from pathlib import Path
-    sys.path.insert(0, {helpers!r})
-    from model_helpers import tiny_model_config, tiny_train_config
+    from tests.model.model_helpers import tiny_model_config, tiny_train_config
     from wmplan.model.train import train
 
     target, count = {target!r}, {count!r}
@@ -149,9 +149,12 @@ def test_resume_after_sigkill_while_writing_a_checkpoint(straight, dataset_dir, 
     leaves the second one readable as ``latest``; resuming ends with the uninterrupted run's weights and
     history."""
     out = tmp_path / "killed"
-    script = KILL_SCRIPT.format(helpers=str(Path(__file__).resolve().parent), target=target, count=count,
-                                data=str(dataset_dir), out=str(out), spe=STEPS_PER_EPOCH)
-    proc = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=600)
+    script = KILL_SCRIPT.format(target=target, count=count, data=str(dataset_dir), out=str(out),
+                                spe=STEPS_PER_EPOCH)
+    repo = Path(__file__).resolve().parents[2]
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(repo), os.environ.get("PYTHONPATH", "")])}
+    proc = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=600, cwd=repo,
+                          env=env)
     assert proc.returncode == -9, proc.stderr[-2000:]
     assert (out / "latest").read_text().strip() == latest_after_kill
     model, cfg = load_model(out)  # the previous checkpoint is complete and verifies

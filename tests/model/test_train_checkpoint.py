@@ -19,8 +19,8 @@ import shutil
 
 import pytest
 import torch
-from model_helpers import tiny_model_config, tiny_train_config
 
+from tests.model.model_helpers import tiny_model_config, tiny_train_config
 from wmplan.data.windows import Windows, WindowSpec, anchor_index
 from wmplan.errors import CheckpointError, ConfigError
 from wmplan.model.checkpoint import FORMAT, SCHEMA_VERSION, load_model

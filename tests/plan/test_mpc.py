@@ -32,7 +32,8 @@ import scipy.special
 import torch
 
 from wmplan.evaluate import closed_loop
-from wmplan.evaluate.closed_loop import HISTORY, NUM_OBJECTS, build_planner, run_batch
+from wmplan.evaluate.closed_loop import run_batch
+from wmplan.evaluate.planners import HISTORY, NUM_OBJECTS, make_planner
 from wmplan.evaluate.stats import wilson_interval
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
@@ -40,6 +41,7 @@ from wmplan.model.world_model import WorldModel
 from wmplan.plan.mpc import CostWeights, PlannerConfig, SamplingPlanner
 from wmplan.plan.predictors import ModelPredictor, make_context
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict
+from wmplan.sim import variants
 from wmplan.sim.features import F_LENGTH, F_VALID, F_VX, F_VY, F_X
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
@@ -133,7 +135,7 @@ def untrained_latent_planner(params: SimParams, cfg: PlannerConfig, seed: int) -
 def first_context(params: SimParams, seed: int):
     """The decision context of the first decision of scene ``seed``, as the closed loop builds it."""
     state = initial_state(params, [seed])
-    hist, ids = closed_loop._initial_history(state, HISTORY, PlannerConfig().plan_dt_s)
+    hist, ids = closed_loop.initial_history(state, HISTORY, PlannerConfig().plan_dt_s)
     return make_context(params, state, hist, ids, NUM_OBJECTS)
 
 
@@ -168,9 +170,9 @@ def test_aashto_placement_is_beyond_the_stopping_sight_distance():
 def _run_stopped_vehicle(num_lanes: int, seeds: list[int], cfg: PlannerConfig):
     scn = stopped_vehicle_scenario(num_lanes=num_lanes, offset_m=200.0)
     params = SimParams.from_scenario(scn)
-    planner = build_planner("mpc+oracle", params, cfg=cfg)
+    planner = make_planner("mpc+oracle", params, {"config": cfg})
     frames: list[np.ndarray] = [initial_state(params, seeds).vehicles()]
-    out = run_batch(params, "mpc+oracle", planner, np.array(seeds), seed=seeds[0], frames=frames)
+    out = run_batch(params, planner, np.array(seeds), seed=seeds[0], frames=frames, name="mpc+oracle")
     return params, out, np.stack(frames)  # (T+1, S, V, F)
 
 
@@ -280,9 +282,9 @@ def test_oracle_planner_brakes_fully_when_firm_braking_is_not_enough(cfg):
     scn = stopped_vehicle_scenario(num_lanes=1, offset_m=60.0 + 0.5 * (4.7 + 4.7), duration_s=6.0)
     params = SimParams.from_scenario(scn)
     assert params.max_brake_mps2 == 8.0
-    planner = build_planner("mpc+oracle", params, cfg=cfg)
+    planner = make_planner("mpc+oracle", params, {"config": cfg})
     frames: list[np.ndarray] = [initial_state(params, seeds).vehicles()]
-    out = run_batch(params, "mpc+oracle", planner, np.array(seeds), seed=seeds[0], frames=frames)
+    out = run_batch(params, planner, np.array(seeds), seed=seeds[0], frames=frames, name="mpc+oracle")
     rows = np.stack(frames)
     for s in range(len(seeds)):
         gap = _gap_to_stopped_vehicle(params, rows[:, s])
@@ -307,8 +309,9 @@ def test_a_follower_the_predictor_thinks_will_not_brake_does_not_stop_the_ego_br
     assert np.all(state.valid.sum(axis=1) == 3)
     outcomes = {}
     for share in (1.0, CostWeights().from_behind):
-        planner = build_planner("mpc+constant-velocity", params, cfg=PlannerConfig(weights=CostWeights(from_behind=share)))
-        out = run_batch(params, "mpc+constant-velocity", planner, np.array([0, 1]), seed=0)
+        planner = make_planner("mpc+constant-velocity", params,
+                               {"config": PlannerConfig(weights=CostWeights(from_behind=share))})
+        out = run_batch(params, planner, np.array([0, 1]), seed=0, name="mpc+constant-velocity")
         outcomes[share] = [r["collision"] for r in out.rows]
     assert CostWeights().from_behind < 1.0
     assert outcomes[CostWeights().from_behind] == [False, False]
@@ -331,10 +334,10 @@ def test_actions_and_candidates_stay_within_the_limits(sampler, risk_mode, monke
     params = SimParams.from_scenario(tight_limits_scenario())
     lim = params.scenario.limits
     cfg = PlannerConfig(sampler=sampler, risk_mode=risk_mode, num_candidates=32, num_futures=4)
-    planner = build_planner("mpc+constant-velocity", params, cfg=cfg)
+    planner = make_planner("mpc+constant-velocity", params, {"config": cfg})
     log = record_decisions(planner, keep=True)
     applied = []
-    engine_step = closed_loop.step
+    engine_step = variants.step
 
     def recording_step(state, actions, p):
         new, info = engine_step(state, actions, p)
@@ -342,8 +345,8 @@ def test_actions_and_candidates_stay_within_the_limits(sampler, risk_mode, monke
         applied.append((actions[live, 0].copy(), info.accel_mps2[live, EGO].copy()))
         return new, info
 
-    monkeypatch.setattr(closed_loop, "step", recording_step)
-    run_batch(params, "mpc+constant-velocity", planner, np.arange(4), seed=11)
+    monkeypatch.setattr(variants, "step", recording_step)
+    run_batch(params, planner, np.arange(4), seed=11, name="mpc+constant-velocity")
     actions = np.concatenate([res.action for _, res in log])  # (decisions x scenes, 2)
     plans = torch.cat([res.plans.reshape(-1, 2) for _, res in log]).double().numpy()
     for name, a in (("applied actions", actions), ("candidate plans", plans)):
@@ -404,7 +407,7 @@ def test_chance_constraint_picks_a_feasible_plan_when_one_exists(sampler, use_up
                         num_candidates=32, num_futures=8)
     planner = untrained_latent_planner(params, cfg, seed=1)
     log = record_decisions(planner, keep=True)
-    run_batch(params, "mpc+latent", planner, np.arange(2), seed=2)
+    run_batch(params, planner, np.arange(2), seed=2, name="mpc+latent")
     k_n = cfg.num_futures
     mixed = 0
     for _, res in log:

@@ -40,6 +40,42 @@ def quadratic_cost(target: float):
     return cost
 
 
+def draw(mean, std, num: int, *, smoothing: float = 0.0, generator: torch.Generator) -> torch.Tensor:
+    """Smooth samples as the planner draws them: mean + std * (L n), L = ar1_filter_matrix, n ~ N(0, 1).
+
+    mean (B*, H, A); std a scalar, (A,) or (B*, H, A); returns (B*, C, H, A)."""
+    mean = torch.as_tensor(mean, dtype=torch.float32)
+    std = torch.as_tensor(std, dtype=torch.float32)
+    *batch, horizon, action_dim = mean.shape
+    white = torch.randn((*batch, num, horizon, action_dim), generator=generator)
+    noise = S.ar1_filter_matrix(horizon, smoothing) @ white
+    return mean.unsqueeze(-3) + (std.unsqueeze(-3) if std.ndim >= 2 else std) * noise
+
+
+def cem_loop(cost_fn, mean, std, *, num: int, elites: int, iterations: int, generator: torch.Generator,
+             low=None, high=None, smoothing: float = 0.0) -> torch.Tensor:
+    """Iterate the planner's CEM update (draw, clip, score, refit) and return the final mean."""
+    std = torch.broadcast_to(torch.as_tensor(std, dtype=torch.float32), mean.shape)
+    for _ in range(iterations):
+        x = draw(mean, std, num, smoothing=smoothing, generator=generator)
+        if low is not None:
+            x = torch.minimum(torch.maximum(x, low), high)
+        mean, std = S.cem_update(x, cost_fn(x), elites, mean, std)
+    return mean
+
+
+def mppi_loop(cost_fn, mean, std, *, num: int, iterations: int, lam: float, generator: torch.Generator):
+    """Iterate the planner's MPPI update with a fixed spread; returns the final mean and each step's ESS."""
+    ess = []
+    for _ in range(iterations):
+        x = draw(mean, std, num, generator=generator)
+        costs = cost_fn(x)
+        w = S.mppi_weights(costs, lam)
+        ess.append(1.0 / (w * w).sum(-1))  # effective sample size (Kish's formula)
+        mean = S.mppi_update(mean, x, costs, lam)
+    return mean, torch.stack(ess)
+
+
 # --- smooth sampling ------------------------------------------------------------------------------------------
 
 
@@ -68,7 +104,7 @@ def test_sampler_marginal_std_and_lag1_correlation(seed, smoothing):
     num = 100_000
     mean = torch.tensor([[0.5, -0.1], [1.0, 0.0], [0.0, 0.2], [-1.0, 0.1]])  # (H=4, A=2)
     std = torch.tensor([2.0, 0.3])  # (A,)
-    x = S.sample_sequences(mean, std, num, smoothing=smoothing, generator=gen(seed)).double()  # (C, H, A)
+    x = draw(mean, std, num, smoothing=smoothing, generator=gen(seed)).double()  # (C, H, A)
     assert x.shape == (num, 4, 2)
     np.testing.assert_allclose(x.mean(0).numpy(), mean.numpy(), atol=5 * 2.0 / math.sqrt(num))
     got_std = x.std(0)  # (H, A)
@@ -80,36 +116,13 @@ def test_sampler_marginal_std_and_lag1_correlation(seed, smoothing):
     assert torch.all((lag1 - smoothing).abs() < 5 * se_corr)
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2, 3])
-def test_sampler_never_leaves_bounds(seed):
-    """Every sample lies in [low, high], even with a mean outside the bounds and a huge spread.
-
-    Source: the clipping contract of the sampler (common practice [C]); checked exhaustively on 40,000 draws.
-    """
-    low = torch.tensor([-6.0, -0.5])
-    high = torch.tensor([3.0, 0.5])
-    mean = torch.tensor([[10.0, -2.0], [0.0, 0.0], [-9.0, 0.4]])
-    x = S.sample_sequences(
-        mean, torch.tensor([50.0, 3.0]), 20_000, low=low, high=high, smoothing=0.7, generator=gen(seed)
-    )
-    assert torch.all(x >= low) and torch.all(x <= high)
-    assert torch.any(x == low) and torch.any(x == high)  # the spread really does reach both bounds
 
 
-def test_same_seed_same_samples_different_seed_different():
-    """Same generator seed -> identical samples; another seed -> different ones (contract, STYLE.md section 9)."""
-    mean = torch.zeros(5, 2)
-    a = S.sample_sequences(mean, 1.0, 16, smoothing=0.5, generator=gen(7))
-    b = S.sample_sequences(mean, 1.0, 16, smoothing=0.5, generator=gen(7))
-    c = S.sample_sequences(mean, 1.0, 16, smoothing=0.5, generator=gen(8))
-    assert torch.equal(a, b)
-    assert not torch.equal(a, c)
-    assert a.dtype == torch.float32
 
 
 def test_batched_sampling_shapes():
     """Leading batch axes of the mean carry through: (B, H, A) -> (B, C, H, A)."""
-    x = S.sample_sequences(torch.zeros(3, 5, 2), torch.ones(3, 5, 2), 11, generator=gen(0))
+    x = draw(torch.zeros(3, 5, 2), torch.ones(3, 5, 2), 11, generator=gen(0))
     assert x.shape == (3, 11, 5, 2)
 
 
@@ -173,49 +186,29 @@ def test_cem_converges_on_1d_quadratic(seed):
 
     Source: REFERENCES section 8.1 [D] (20 of 20 seeds reached |mu - 3| < 1e-4 there).
     """
-    res = S.cem_minimise(
-        quadratic_cost(3.0),
-        torch.zeros(1, 1),
-        10.0,
-        num_samples=200,
-        num_elites=20,
-        iterations=30,
-        generator=gen(seed),
-    )
-    assert abs(res.mean.item() - 3.0) < 1e-3
-    assert abs(res.best_actions.item() - 3.0) < 1e-3
-    assert res.elite_cost_history.shape == (30,)
-    assert res.elite_cost_history[-1] <= res.elite_cost_history[0]
+    mean = cem_loop(quadratic_cost(3.0), torch.zeros(1, 1), 10.0, num=200, elites=20, iterations=30,
+                    generator=gen(seed))
+    assert abs(mean.item() - 3.0) < 1e-3
 
 
-def test_cem_minimise_batched_and_bounded():
+def test_cem_update_iterated_batched_and_bounded():
     """Batched CEM on a 2-D action sequence with bounds: each batch entry converges to its own optimum, clipped.
 
     Source: the convergence property of REFERENCES section 8.1 [D]; a target outside the box has its optimum at the
     bound (convexity of the quadratic, [C]).
     """
     target = torch.tensor([[[1.0, -0.2]], [[5.0, 0.3]]])  # (B=2, H=1, A=2); the 5.0 lies beyond high
-    res = S.cem_minimise(
-        lambda x: ((x - target[:, None]) ** 2).sum(dim=(-2, -1)),
-        torch.zeros(2, 4, 2),
-        torch.tensor([3.0, 0.5]),
-        num_samples=300,
-        num_elites=30,
-        iterations=40,
-        low=torch.tensor([-3.0, -0.5]),
-        high=torch.tensor([3.0, 0.5]),
-        smoothing=0.5,
-        generator=gen(11),
-    )
+    mean = cem_loop(lambda x: ((x - target[:, None]) ** 2).sum(dim=(-2, -1)), torch.zeros(2, 4, 2),
+                    torch.tensor([3.0, 0.5]), num=300, elites=30, iterations=40, low=torch.tensor([-3.0, -0.5]),
+                    high=torch.tensor([3.0, 0.5]), smoothing=0.5, generator=gen(11))
     expected = torch.tensor([[1.0, -0.2], [3.0, 0.3]])[:, None, :].expand(2, 4, 2)
-    torch.testing.assert_close(res.mean, expected, atol=1e-3, rtol=0)
-    assert res.best_cost.shape == (2,)
+    torch.testing.assert_close(mean, expected, atol=1e-3, rtol=0)
 
 
 def _batched_elite_stats(cost_fn, rho: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """CEM update of N(0, 1) samples on 20 independent batches; returns elite means and stds, (20,) each."""
     batches, num = 20, 100_000
-    x = S.sample_sequences(torch.zeros(batches, 1, 1), 1.0, num, generator=gen(seed))  # (B, C, 1, 1)
+    x = draw(torch.zeros(batches, 1, 1), 1.0, num, generator=gen(seed))  # (B, C, 1, 1)
     costs = cost_fn(x[..., 0, 0])  # (B, C)
     mean, std = S.cem_update(x, costs, int(rho * num), torch.zeros(batches, 1, 1), torch.ones(batches, 1, 1))
     return mean.reshape(-1).double().numpy(), std.reshape(-1).double().numpy()
@@ -300,17 +293,12 @@ def test_mppi_weights_stable_and_handle_infinities():
     assert w.tolist() == [0.25] * 4
 
 
-def test_ess_limits():
-    """ESS = 1 / sum w^2: C for uniform weights, 1 for a single weight (Kish's formula, [C])."""
-    assert S.ess(torch.full((8,), 1 / 8)).item() == pytest.approx(8.0)
-    assert S.ess(torch.tensor([0.0, 1.0, 0.0])).item() == pytest.approx(1.0)
-    assert S.ess(torch.tensor([0.5, 0.25, 0.25])).item() == pytest.approx(1 / 0.375)
 
 
 def _mppi_mean_and_se(
     mu: float, sigma: float, c: float, lam: float, num: int, seed: int
 ) -> tuple[float, float]:
-    u = S.sample_sequences(torch.full((1, 1), mu), sigma, num, generator=gen(seed))  # (C, 1, 1)
+    u = draw(torch.full((1, 1), mu), sigma, num, generator=gen(seed))  # (C, 1, 1)
     costs = (u[:, 0, 0] - c) ** 2
     new_mean = S.mppi_update(torch.full((1, 1), mu), u, costs, lam).item()
     # Standard error of a self-normalised importance-sampling mean: sqrt(sum w^2 (u - m)^2) (delta method, [M]).
@@ -336,21 +324,19 @@ def test_mppi_mean_gaussian_closed_form(mu, sigma, c, lam, seed):
     assert abs(got - expected) < 5 * se
 
 
-def test_mppi_minimise_reaches_the_minimiser():
+def test_mppi_update_iterated_reaches_the_minimiser():
     """Repeated MPPI updates with fixed sigma move a fraction sigma^2/(sigma^2 + lambda/2) of the way each time
     (closed form above, [D]), so they converge to c; the stationary error std is SE / sqrt(1 - kappa^2) with
     kappa = (lambda/2) / (sigma^2 + lambda/2) = 0.5 [D]. Tolerance: 5 such standard deviations, SE measured at c.
     """
     num, lam = 20_000, 2.0
-    res = S.mppi_minimise(
-        quadratic_cost(3.0), torch.zeros(1, 1), 1.0, num_samples=num, iterations=40, lam=lam, generator=gen(5)
-    )
+    mean, ess = mppi_loop(quadratic_cost(3.0), torch.zeros(1, 1), 1.0, num=num, iterations=40, lam=lam,
+                          generator=gen(5))
     _, se = _mppi_mean_and_se(3.0, 1.0, 3.0, lam, num, seed=6)
     tol = 5 * se / math.sqrt(1 - 0.5**2)
     assert tol < 0.05
-    assert abs(res.mean.item() - 3.0) < tol
-    assert res.ess_history.shape == (40,)
-    assert torch.all(res.ess_history > 1) and torch.all(res.ess_history <= num)
+    assert abs(mean.item() - 3.0) < tol
+    assert torch.all(ess > 1) and torch.all(ess <= num)
 
 
 def test_mppi_update_is_weighted_average_and_batched():
@@ -365,15 +351,6 @@ def test_mppi_update_is_weighted_average_and_batched():
         torch.testing.assert_close(got[b], (w[:, None, None] * samples[b]).sum(0), rtol=1e-5, atol=1e-5)
 
 
-def test_mppi_control_cost_matches_loop():
-    """gamma * sum_t u_t^T Sigma^-1 eps_t with diagonal Sigma (Williams et al. 2017 [S] via REFERENCES 8.2)."""
-    g = gen(9)
-    mean, samples = torch.randn(4, 2, generator=g), torch.randn(6, 4, 2, generator=g)
-    std = torch.tensor([0.5, 2.0])
-    got = S.mppi_control_cost(mean, samples, std, 0.3)
-    for k in range(6):
-        ref = 0.3 * sum(float(mean[t] @ ((samples[k, t] - mean[t]) / std**2)) for t in range(4))
-        assert got[k].item() == pytest.approx(ref, rel=1e-5, abs=1e-6)
 
 
 # --- errors ---------------------------------------------------------------------------------------------------
@@ -388,36 +365,8 @@ def test_errors_name_the_argument():
     ):
         S.mppi_weights(torch.zeros(3), 0.0)
     with pytest.raises(ConfigError, match=re.escape("smoothing must lie in [0, 1), got 1.0")):
-        S.sample_sequences(torch.zeros(2, 1), 1.0, 3, smoothing=1.0, generator=gen(0))
-    with pytest.raises(ConfigError, match=re.escape("generator must be a torch.Generator, got int")):
-        S.sample_sequences(torch.zeros(2, 1), 1.0, 3, generator=0)
-    with pytest.raises(
-        ConfigError, match=re.escape("std has shape (3,), which does not broadcast to (2, 2)")
-    ):
-        S.sample_sequences(torch.zeros(2, 2), torch.ones(3), 4, generator=gen(0))
+        S.ar1_filter_matrix(3, 1.0)
+    with pytest.raises(ConfigError, match=re.escape("old_std has shape (3,), which does not broadcast to")):
+        S.cem_update(torch.zeros(4, 1, 1), torch.zeros(4), 2, torch.zeros(1, 1), torch.ones(3))
     with pytest.raises(ConfigError, match=re.escape("costs has shape (3,); samples of shape (4, 1, 1) need")):
         S.cem_update(torch.zeros(4, 1, 1), torch.zeros(3), 2, torch.zeros(1, 1), torch.ones(1, 1))
-    with pytest.raises(ConfigError, match=re.escape("low must be <= high elementwise")):
-        S.sample_sequences(
-            torch.zeros(2, 1), 1.0, 3, low=torch.tensor([1.0]), high=torch.tensor([0.0]), generator=gen(0)
-        )
-
-
-def test_minimiser_results_are_ordinary_tensors():
-    """The minimisers run under inference_mode but return normal tensors the caller may edit in place (contract)."""
-    res = S.cem_minimise(
-        quadratic_cost(1.0),
-        torch.zeros(3, 1),
-        1.0,
-        num_samples=8,
-        num_elites=2,
-        iterations=2,
-        generator=gen(0),
-    )
-    assert not res.mean.is_inference()
-    res.mean[0] += 1.0
-    res2 = S.mppi_minimise(
-        quadratic_cost(1.0), torch.zeros(3, 1), 1.0, num_samples=8, iterations=2, lam=1.0, generator=gen(0)
-    )
-    assert not res2.mean.is_inference()
-    res2.mean[0] += 1.0

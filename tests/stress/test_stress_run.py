@@ -19,6 +19,7 @@ import numpy as np
 import pytest
 import yaml
 
+from wmplan.caution import CAUTION
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_to_dict, scenario_to_yaml
 from wmplan.stress import DEFAULT_KNOBS, nominal_reference, replay, run_stress, search_failures
@@ -58,7 +59,7 @@ def test_report_has_the_promised_keys_and_is_written(stress_run: tuple[dict, Pat
     assert 0.0 <= mc["ci95"][0] <= mc["estimate"] <= mc["ci95"][1] <= 1.0
     assert report["failures_found"] >= 1
     assert json.loads((out / "stress.json").read_text()) == json.loads(json.dumps(report))
-    assert report["caution"].startswith("Results come from a simplified traffic model")
+    assert report["caution"] == CAUTION
 
 
 def test_saved_failures_replay(stress_run: tuple[dict, Path]) -> None:
@@ -170,7 +171,7 @@ def test_bad_arguments_are_one_line(harsh: Scenario, tmp_path: Path) -> None:
         run_stress(harsh, "rules", 50, tmp_path, 0)
     with pytest.raises(ConfigError, match=re.escape("seed must be an integer >= 0, got -1")):
         run_stress(harsh, "rules", 200, tmp_path, -1)
-    with pytest.raises(ConfigError, match=re.escape("unknown planner 'no-such-planner'; known planners:")):
+    with pytest.raises(ConfigError, match=re.escape("unknown planner 'no-such-planner'; known:")):
         run_stress(harsh, "no-such-planner", 200, tmp_path, 0)
     from wmplan.stress import Knob
 
@@ -201,15 +202,14 @@ def test_replay_verb_reruns_a_saved_failure(stress_run: tuple[dict, Path], tmp_p
 
 def test_recorded_episode_is_the_episode_stress_runs_saw() -> None:
     """The animation of a saved failure replays it with ``record_episode``; that must be the same episode the
-    stress run simulated through ``run_episodes`` (same scene seed, same seeding of the planner's sampling), not a
+    stress run simulated through the closed loop (same scene seed, same seeding of the planner's sampling), not a
     look-alike. Checked on a sampling planner, whose episodes depend on that seeding (common practice, no source)."""
-    from wmplan.evaluate.closed_loop import record_episode
-    from wmplan.sweep.episodes import run_episodes
+    from wmplan.evaluate.closed_loop import evaluate_seeds, record_episode
 
     scn = load_scenario("cut-in")
     seed = 12345
     frames, row = record_episode(scn, "mpc+constant-velocity", seed)
-    (ref,) = run_episodes(scn, "mpc+constant-velocity", [seed])
+    (ref,) = evaluate_seeds(scn, "mpc+constant-velocity", [seed]).rows
     for key in ("collision", "offroad", "success", "decisions", "progress_m", "mean_speed_mps"):
         assert row[key] == ref[key], key
     assert frames.shape[0] == row["decisions"] * 2 + 1
@@ -219,14 +219,11 @@ def test_stress_is_gain_benchmark_reference_is_an_exact_stratification() -> None
     """``benchmarks/stress_is_gain.py``'s true value (smoke test, small): the strata of the rounded ego_brake knob
     carry the normal probabilities of their z cells (``scipy.stats.norm.cdf``, reference library) and together all
     but the omitted tail; the estimate is sum P_k h_k. The >= 10x claim is measured by running the benchmark."""
-    import importlib.util
+    import importlib
 
     import scipy.stats
 
-    path = Path(__file__).resolve().parents[2] / "benchmarks" / "stress_is_gain.py"
-    spec = importlib.util.spec_from_file_location("wmplan_bench_stress_is_gain_test", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    module = importlib.import_module("benchmarks.stress_is_gain")
     ref = module.reference(reference_episodes=200, min_per_stratum=4)
     strata = ref["strata"]
     total = sum(s["prob"] for s in strata)

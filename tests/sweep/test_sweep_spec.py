@@ -13,8 +13,9 @@ import numpy as np
 import pytest
 
 from wmplan.errors import ScenarioError
+from wmplan.evaluate.planners import planner_names
 from wmplan.scenario import load_scenario, parse_scenario, scenario_hash, scenario_to_dict
-from wmplan.sweep import SweepError, expand_cells, load_sweep, parse_sweep, planner_names
+from wmplan.sweep import SweepError, expand_cells, load_sweep, parse_sweep
 from wmplan.sweep.cells import episode_seeds
 from wmplan.sweep.paths import close_matches, get_path, parse_path, set_path
 from wmplan.sweep.runner import _resolve_planners
@@ -86,7 +87,8 @@ def test_unknown_planner_lists_the_registered_ones(tmp_path: Path) -> None:
     path = _write(tmp_path, HEAD + "planners: [rules, no-such-planner]\nseed: 1\nepisodes_per_cell: 2\n")
     known = ", ".join(planner_names())
     with pytest.raises(SweepError, match="^" + re.escape(
-            f"{path}: planners[1]: unknown planner 'no-such-planner'; known planners: {known}") + "$"):
+            f"{path}: planners[1]: unknown planner 'no-such-planner'; known: {known}, or an import path "
+                "module:factory (a plug-in)") + "$"):
         _errors(path)
 
 

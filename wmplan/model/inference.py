@@ -25,7 +25,6 @@ from dataclasses import dataclass
 
 import torch
 from torch.nn import functional as F
-from torch.nn.modules import module as nn_module
 
 from wmplan.model.nets import (
     ACTION_SCALE,
@@ -166,36 +165,24 @@ def prepare(model) -> Prepared:
             mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
 
 
-_REGISTRATIONS = [0]
-"""Parameters, buffers and submodules registered on any module so far (torch's registration hooks count them):
-while this is unchanged, a model's list of tensors is too, and need not be walked again."""
-
-
-def _count_registration(*_args) -> None:
-    _REGISTRATIONS[0] += 1
-
-
-for _register in (nn_module.register_module_parameter_registration_hook,
-                  nn_module.register_module_buffer_registration_hook,
-                  nn_module.register_module_module_registration_hook):
-    _register(_count_registration)
-
-
 def prepared(model) -> Prepared:
     """``prepare(model)``, cached on the model until any of its parameters or buffers changes: in place (an
     optimizer step, ``load_state_dict``; every tensor's version counter), by new storage (``.double()``) or by a new
-    tensor registered. Tensors made in inference mode keep no version counter: with such a model nothing is
-    cached."""
+    tensor registered (the tensors' identities are part of the key). Tensors made in inference mode keep no version
+    counter: with such a model nothing is cached. :func:`forget_prepared` drops the cache explicitly."""
+    tensors = (*model.parameters(), *model.buffers())
+    key = None if any(t.is_inference() for t in tensors) else tuple((id(t), t.data_ptr(), t._version)
+                                                                     for t in tensors)
     cache = model.__dict__.get("_prepared")
-    if cache is not None and cache[0] == _REGISTRATIONS[0]:
-        tensors = cache[1]
-    else:
-        tensors = (*model.parameters(), *model.buffers())
-    key = None if any(t.is_inference() for t in tensors) else tuple((t.data_ptr(), t._version) for t in tensors)
-    if key is None or cache is None or cache[1] is not tensors or cache[2] != key:
-        cache = (_REGISTRATIONS[0], tensors, key, prepare(model))
+    if key is None or cache is None or cache[0] != key:
+        cache = (key, tensors, prepare(model))  # holding the tensors keeps their ids from being reused
         model.__dict__["_prepared"] = cache
-    return cache[3]
+    return cache[2]
+
+
+def forget_prepared(model) -> None:
+    """Drop the inference layout cached on ``model`` (the next ``sample`` prepares it again)."""
+    model.__dict__.pop("_prepared", None)
 
 
 def _linear(x: torch.Tensor, w: torch.Tensor, b: torch.Tensor | None = None) -> torch.Tensor:

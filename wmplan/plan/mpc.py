@@ -14,7 +14,10 @@ At every decision (0.2 s) and for a batch of B scenes at once:
    (:func:`wmplan.plan.risk.summarise_risk`): collision probability, CVaR of the clearance shortfall, minimum
    time to collision. Risk enters as a weighted penalty or as a chance constraint P(collision) <= epsilon.
 4. **Act.** Apply the first action of the chosen plan (CEM: the lowest-cost candidate; MPPI: the candidate of
-   highest weight, while the weighted mean warm-starts the next decision) and update the sampler.
+   highest weight, while the weighted mean warm-starts the next decision) and update the sampler with the updates
+   of :mod:`wmplan.plan.samplers` (CEM: :func:`~wmplan.plan.samplers.cem_update`, elites refit by maximum
+   likelihood and smoothed by ``cem_alpha``; MPPI: :func:`~wmplan.plan.samplers.mppi_update`). The lane
+   probabilities move halfway toward the elites' (CEM) or the weights' (MPPI) lane shares.
 """
 
 from __future__ import annotations
@@ -28,9 +31,17 @@ import torch
 from wmplan.errors import ConfigError
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.nets import randn_rows
-from wmplan.plan.predictors import DecisionContext, Predictor
+from wmplan.plan.base import HISTORY_STEPS, Decision, Observation
+from wmplan.plan.predictors import NUM_OBJECTS, DecisionContext, Predictor, make_context
 from wmplan.plan.risk import summarise_risk
-from wmplan.plan.samplers import ar1_filter_matrix
+from wmplan.plan.samplers import (
+    ar1_filter_matrix,
+    cem_update,
+    mppi_update,
+    mppi_weights,
+    select_elites,
+    shift_warm_start,
+)
 from wmplan.sim.params import SimParams
 
 LANE_CHOICES = (-1, 0, 1)
@@ -154,7 +165,15 @@ class PlanResult:
 
 
 class SamplingPlanner:
-    """CEM or MPPI over candidate plans for B scenes at once, with a predictor for the other vehicles."""
+    """CEM or MPPI over candidate plans for B scenes at once, with a predictor for the other vehicles.
+
+    It is a :class:`wmplan.plan.base.Planner`: ``reset(episode_keys)`` then ``decide(obs)`` in the closed loop;
+    ``plan(ctx, generator=...)`` is the same decision on a ready-made :class:`DecisionContext`.
+    """
+
+    history_steps = HISTORY_STEPS
+    num_objects = NUM_OBJECTS
+    """Other vehicles in the object list the predictor sees (the nearest ones)."""
 
     def __init__(self, cfg: PlannerConfig, params: SimParams, predictor: Predictor, ego: EgoKinematics):
         self.cfg = cfg
@@ -167,11 +186,36 @@ class SamplingPlanner:
         self.std = None
         self.lane_p = None
         self.prev_lane = None
+        self._generators: list[torch.Generator] = []
+
+    @property
+    def decision_dt_s(self) -> float:
+        """Seconds between decisions (the plan's step)."""
+        return self.cfg.plan_dt_s
+
+    @property
+    def horizon_decisions(self) -> int:
+        """Decisions covered by the predicted P(collision) of a plan."""
+        return self.cfg.horizon
+
+    # --- the closed loop's protocol ---------------------------------------------------------------------------
+
+    def reset(self, episode_keys: np.ndarray) -> None:
+        """Forget the warm starts and seed one torch generator per episode from its key."""
+        keys = np.asarray(episode_keys, dtype=np.int64).reshape(-1)
+        self.reset_state(len(keys))
+        self._generators = [torch.Generator().manual_seed(int(k)) for k in keys]
+
+    def decide(self, obs: Observation) -> Decision:
+        """Plan for the episodes of ``obs`` from their history of world rows; the chosen plans' P(collision)."""
+        ctx = make_context(obs.params, obs.state, obs.history, obs.history_ids, self.num_objects)
+        res = self.plan(ctx, generator=[self._generators[i] for i in obs.rows], rows=obs.rows)
+        return Decision(actions=res.action, p_collision=res.p_collision)
 
     # --- sampler state ----------------------------------------------------------------------------------------
 
-    def reset(self, num_scenes: int) -> None:
-        """Forget the warm starts; keep state for ``num_scenes`` scenes."""
+    def reset_state(self, num_scenes: int) -> None:
+        """Forget the warm starts; keep sampler state for ``num_scenes`` scenes."""
         h = self.cfg.horizon
         self.mean = torch.zeros(num_scenes, h)
         self.std = torch.full((num_scenes, h), self.cfg.accel_std_mps2)
@@ -358,7 +402,7 @@ class SamplingPlanner:
         b = ctx.history.shape[0]
         if rows is None:
             if self.mean is None or self.mean.shape[0] != b:
-                self.reset(b)
+                self.reset_state(b)
             rows = np.arange(b)
         ridx = torch.from_numpy(np.asarray(rows, dtype=np.int64))
         lane_now = torch.from_numpy(self.params.lane_of(ctx.ego_pose[:, 1]))
@@ -369,29 +413,26 @@ class SamplingPlanner:
         parts = self.costs(ctx, plans, choice, futures)
         total = parts["total"].float()  # (B, C)
         bi = torch.arange(b)
+        accel = plans[..., :1]  # (B, C, H, 1): the sampler's variable (the steering follows the target lane)
+        lanes = torch.nn.functional.one_hot(choice, 3).float()[:, :, None, :]  # (B, C, 1, 3)
         if cfg.sampler == "cem":
-            order = total.argsort(dim=1)
-            elite = order[:, : cfg.num_elites]
-            e_acc = torch.gather(plans[..., 0], 1, elite[..., None].expand(-1, -1, cfg.horizon))
-            a = cfg.cem_alpha
-            mean = a * e_acc.mean(1) + (1 - a) * mean
-            std = a * e_acc.std(1) + (1 - a) * std
-            onehot = torch.nn.functional.one_hot(torch.gather(choice, 1, elite), 3).float().mean(1)
-            best = order[:, 0]
-            action = plans[bi, best, 0]
+            mean, std = cem_update(accel, total, cfg.num_elites, mean[..., None], std[..., None], alpha=cfg.cem_alpha)
+            mean, std = mean[..., 0], std[..., 0]
+            onehot = select_elites(lanes, total, cfg.num_elites).mean(dim=-3)[:, 0]  # (B, 3) elite lane shares
+            best = total.argmin(dim=1)
         else:
-            z = total - total.min(dim=1, keepdim=True).values
-            wts = torch.softmax(-z / cfg.mppi_lambda, dim=1)  # (B, C) = softmax(-cost / lambda)
-            mean = (wts[..., None] * plans[..., 0]).sum(1).clamp(-self.params.max_brake_mps2, self.params.max_accel_mps2)
-            onehot = (wts[..., None] * torch.nn.functional.one_hot(choice, 3).float()).sum(1)
+            wts = mppi_weights(total, cfg.mppi_lambda)  # (B, C)
+            mean = mppi_update(mean[..., None], accel, total, cfg.mppi_lambda)[..., 0]
+            mean = mean.clamp(-self.params.max_brake_mps2, self.params.max_accel_mps2)
+            onehot = (wts[..., None] * lanes[:, :, 0]).sum(1)
             # The weighted mean warm-starts the next decision; the action applied now is the first step of the
             # highest-weight candidate, so that the plan executed is one whose futures and risk were scored.
             best = wts.argmax(dim=1)
-            action = plans[bi, best, 0]
+        action = plans[bi, best, 0]
         lane_p = (0.5 * lane_p + 0.5 * onehot).clamp_min(cfg.lane_prob_floor)
         # --- write the sampler state back, shifted one step for the next decision (warm start) ---
-        self.mean[ridx] = torch.cat([mean[:, 1:], mean[:, -1:]], dim=1)
-        self.std[ridx] = torch.cat([std[:, 1:], std[:, -1:]], dim=1).clamp_min(cfg.min_std_mps2)
+        self.mean[ridx] = shift_warm_start(mean[..., None])[..., 0]
+        self.std[ridx] = shift_warm_start(std[..., None])[..., 0].clamp_min(cfg.min_std_mps2)
         self.lane_p[ridx] = lane_p / lane_p.sum(-1, keepdim=True)
         self.prev_lane[ridx] = lane_now
         risk = parts["risk"]

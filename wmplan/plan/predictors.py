@@ -23,6 +23,7 @@ from wmplan.data.windows import frame_window
 from wmplan.model.baselines import ConstantVelocity
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.world_model import WorldModel
+from wmplan.plan.base import HISTORY_STEPS as HISTORY
 from wmplan.sim.features import F_HEADING, F_VALID, F_X, F_Y
 from wmplan.sim.observe import gather_slots, road_features, to_frame
 from wmplan.sim.oracle import oracle_futures_batch
@@ -30,6 +31,8 @@ from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
 
 PREDICTOR_NAMES = ("latent", "deterministic", "constant-velocity", "oracle")
+NUM_OBJECTS = 8
+"""Other vehicles in the object list the built-in predictors see (the nearest ones)."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -133,3 +136,36 @@ class OraclePredictor(Predictor):
         heading = np.broadcast_to(pose[:, None, None, None, 2], (b, c, k, h))
         framed = to_frame(picked, origin, heading)
         return torch.from_numpy(framed.astype(np.float32))
+
+
+def builtin_predictor(kind: str, params: SimParams, *, horizon: int, plan_dt_s: float, model_dir=None,
+                      deterministic_dir=None) -> Predictor:
+    """A built-in predictor by name (one of PREDICTOR_NAMES) for a scenario.
+
+    ``model_dir`` is required for 'latent' (and sets the constant-velocity predictor's layout when given);
+    ``deterministic_dir`` for 'deterministic'.
+
+    Raises:
+        ConfigError: an unknown name or a missing model folder.
+    """
+    from wmplan.errors import ConfigError
+    from wmplan.model.checkpoint import load_model
+    from wmplan.model.config import ModelConfig
+
+    ego = EgoKinematics.from_scenario(params.scenario, plan_dt_s)
+    if kind == "oracle":
+        return OraclePredictor(params, ego, plan_dt_s)
+    if kind == "latent":
+        if not model_dir:
+            raise ConfigError("planner mpc+latent needs --model MODEL_DIR (a latent model from `wmplan train`)")
+        return ModelPredictor(load_model(model_dir)[0], "latent")
+    if kind == "deterministic":
+        if not deterministic_dir:
+            raise ConfigError("planner mpc+deterministic needs --deterministic DIR (from `wmplan train --deterministic`)")
+        return ModelPredictor(load_model(deterministic_dir)[0], "deterministic")
+    if kind != "constant-velocity":
+        raise ConfigError(f"unknown predictor {kind!r}; choose from {', '.join(PREDICTOR_NAMES)}")
+    mcfg = ModelConfig(history=HISTORY, horizon=horizon, num_objects=NUM_OBJECTS, plan_dt_s=plan_dt_s)
+    if model_dir:
+        mcfg = load_model(model_dir)[0].cfg
+    return ModelPredictor(ConstantVelocity(mcfg, ego), "constant-velocity")

@@ -1,4 +1,8 @@
-"""Sampling optimisers over action sequences: smooth Gaussian sampling, CEM and MPPI (torch, CPU, float32).
+"""The sampler updates of the planner: smooth Gaussian noise, the CEM and MPPI updates (torch, CPU, float32).
+
+:class:`wmplan.plan.mpc.SamplingPlanner` draws its candidates with :func:`ar1_filter_matrix` and updates its
+sampling distribution with :func:`cem_update` or :func:`mppi_update` once per decision (receding horizon, warm
+started by :func:`shift_warm_start`); this module holds the one definition of each update.
 
 Letters used in shapes: ``B*`` any number of leading batch axes (for example many episodes planned in one
 call; absent in the simplest use), ``C`` candidate sequences, ``H`` horizon steps, ``A`` action dimensions
@@ -16,17 +20,13 @@ Methods:
   ``theta <- alpha theta_new + (1 - alpha) theta_old`` and floor the standard deviation.
 - Model predictive path integral control (Williams et al., "Information theoretic MPC for model-based
   reinforcement learning", ICRA 2017): ``w_k = exp(-(S_k - min S) / lambda) / sum_j exp(-(S_j - min S) / lambda)``
-  (= ``softmax(-S / lambda)``), ``U <- U + sum_k w_k eps_k``; effective sample size ``1 / sum_k w_k^2``.
+  (= ``softmax(-S / lambda)``), ``U <- U + sum_k w_k eps_k``.
 
-Every random draw comes from the ``torch.Generator`` passed as ``generator=``; nothing here seeds globally.
-The generic minimisers ``cem_minimise`` and ``mppi_minimise`` run under ``torch.inference_mode()`` and hand back
-ordinary tensors (clones), so callers may modify them in place.
+Nothing here draws random numbers or seeds anything: the planner draws the noise from its own generators.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Literal
 
 import torch
@@ -36,9 +36,6 @@ from wmplan.errors import ConfigError
 
 DTYPE = torch.float32
 """The dtype of every tensor this module returns."""
-
-CostFn = Callable[[Tensor], Tensor]
-"""Maps candidate sequences (B*, C, H, A) to costs (B*, C); lower is better."""
 
 
 # --- input checks ---------------------------------------------------------------------------------------------
@@ -71,21 +68,6 @@ def _broadcast(name: str, value: Tensor, shape: torch.Size, expected: str) -> Te
         ) from None
 
 
-def _bounds(low: object | None, high: object | None, shape: torch.Size) -> tuple[Tensor, Tensor]:
-    """Lower and upper action bounds broadcast to ``shape``; ``None`` means unbounded."""
-    lo = torch.tensor(-torch.inf, dtype=DTYPE) if low is None else _tensor("low", low)
-    hi = torch.tensor(torch.inf, dtype=DTYPE) if high is None else _tensor("high", high)
-    lo = _broadcast("low", lo, shape, "(A,) action lower bounds")
-    hi = _broadcast("high", hi, shape, "(A,) action upper bounds")
-    bad = (lo > hi).reshape(-1)
-    if bool(bad.any()):
-        i = int(torch.nonzero(bad)[0])
-        raise ConfigError(
-            f"low must be <= high elementwise, got low={lo.reshape(-1)[i]:g} > high={hi.reshape(-1)[i]:g}"
-        )
-    return lo, hi
-
-
 def _check_count(name: str, value: int, minimum: int, maximum: int | None = None) -> None:
     if isinstance(value, bool) or not isinstance(value, int) or value < minimum:
         raise ConfigError(f"{name} must be an integer >= {minimum}, got {value!r}")
@@ -98,14 +80,6 @@ def _check_unit_interval(name: str, value: float, *, closed_right: bool) -> None
     if not ok:
         rule = "[0, 1]" if closed_right else "[0, 1)"
         raise ConfigError(f"{name} must lie in {rule}, got {value!r}")
-
-
-def _check_generator(generator: object) -> None:
-    if not isinstance(generator, torch.Generator):
-        raise ConfigError(
-            f"generator must be a torch.Generator, got {type(generator).__name__}; "
-            "pass generator=torch.Generator().manual_seed(seed)"
-        )
 
 
 # --- smooth sampling ------------------------------------------------------------------------------------------
@@ -134,50 +108,6 @@ def ar1_filter_matrix(horizon: int, smoothing: float) -> Tensor:
     scale = torch.full((horizon,), (1.0 - float(smoothing) ** 2) ** 0.5, dtype=torch.float64)
     scale[0] = 1.0  # the first step starts from the stationary distribution
     return (power * scale[None, :]).to(DTYPE)
-
-
-def sample_sequences(
-    mean: Tensor,
-    std: Tensor | float,
-    num: int,
-    *,
-    low: Tensor | None = None,
-    high: Tensor | None = None,
-    smoothing: float = 0.0,
-    generator: torch.Generator,
-) -> Tensor:
-    """Draw smooth action sequences around a mean, clipped to the action bounds.
-
-    ``samples = clip(mean + std * e, low, high)`` where ``e`` is unit-variance AR(1) noise along the horizon
-    (see :func:`ar1_filter_matrix`), independent across candidates and action dimensions.
-
-    Args:
-        mean: (B*, H, A) mean sequence.
-        std: (B*, H, A), (H, A), (A,) or a scalar, >= 0: marginal standard deviation of each entry before
-            clipping.
-        num: C, number of candidate sequences per batch entry.
-        low: (A,) (or anything broadcasting to (B*, C, H, A)) lower action bounds; None for unbounded.
-        high: same for the upper bounds.
-        smoothing: AR(1) coefficient s in [0, 1).
-        generator: the only source of randomness.
-
-    Returns:
-        Samples of shape (B*, C, H, A), float32, every entry within [low, high].
-    """
-    _check_generator(generator)
-    _check_count("num", num, 1)
-    mean = _sequence_tensor("mean", mean)
-    std = _broadcast("std", _tensor("std", std), mean.shape, "(B*, H, A), (H, A), (A,) or a scalar")
-    if bool((std < 0).any()) or not bool(torch.isfinite(std).all()):
-        raise ConfigError(f"std must be finite and >= 0, got min {std.min().item()!r}")
-    *batch, horizon, action_dim = mean.shape
-    out_shape = torch.Size((*batch, num, horizon, action_dim))
-    lo, hi = _bounds(low, high, out_shape)
-    filt = ar1_filter_matrix(horizon, smoothing)  # (H, H)
-    white = torch.randn(out_shape, generator=generator, dtype=DTYPE)  # (B*, C, H, A)
-    noise = filt @ white  # (B*, C, H, A), AR(1) along H
-    samples = mean.unsqueeze(-3) + std.unsqueeze(-3) * noise
-    return torch.minimum(torch.maximum(samples, lo), hi)
 
 
 def shift_warm_start(mean: Tensor, fill: Literal["last", "zero"] = "last") -> Tensor:
@@ -280,106 +210,6 @@ def cem_update(
     return mean, std
 
 
-@dataclass(frozen=True)
-class CemResult:
-    """Outcome of :func:`cem_minimise`.
-
-    Attributes:
-        mean: (B*, H, A) final sampling mean, the usual plan to execute.
-        std: (B*, H, A) final sampling standard deviation.
-        best_actions: (B*, H, A) lowest-cost sample seen in any iteration.
-        best_cost: (B*,) its cost.
-        elite_cost_history: (iterations, B*) mean cost of the elites at each iteration.
-    """
-
-    mean: Tensor
-    std: Tensor
-    best_actions: Tensor
-    best_cost: Tensor
-    elite_cost_history: Tensor
-
-
-def _track_best(best_x: Tensor, best_c: Tensor, samples: Tensor, costs: Tensor) -> tuple[Tensor, Tensor]:
-    """Keep the lowest-cost sequence seen so far. best_x (B*, H, A), best_c (B*,), samples (B*, C, H, A)."""
-    c_min, idx = costs.min(dim=-1)  # (B*,)
-    idx = idx[..., None, None, None].expand(*idx.shape, 1, *samples.shape[-2:])
-    x_min = torch.gather(samples, -3, idx).squeeze(-3)  # (B*, H, A)
-    better = c_min < best_c
-    return torch.where(better[..., None, None], x_min, best_x), torch.where(better, c_min, best_c)
-
-
-def _call_cost(cost_fn: CostFn, samples: Tensor) -> Tensor:
-    costs = cost_fn(samples)
-    if not isinstance(costs, Tensor):
-        costs = torch.as_tensor(costs)
-    return _costs("cost_fn(samples)", costs.to(DTYPE), samples)
-
-
-def cem_minimise(
-    cost_fn: CostFn,
-    mean0: Tensor,
-    std0: Tensor | float,
-    *,
-    num_samples: int,
-    num_elites: int,
-    iterations: int,
-    alpha: float = 1.0,
-    min_std: Tensor | float = 0.0,
-    low: Tensor | None = None,
-    high: Tensor | None = None,
-    smoothing: float = 0.0,
-    generator: torch.Generator,
-) -> CemResult:
-    """Minimise ``cost_fn`` over action sequences with the cross-entropy method.
-
-    Each iteration draws ``num_samples`` sequences with :func:`sample_sequences` and refits the Gaussian with
-    :func:`cem_update`.
-
-    Args:
-        cost_fn: maps samples (B*, C, H, A) to costs (B*, C).
-        mean0: (B*, H, A) initial mean (e.g. :func:`shift_warm_start` of the previous plan).
-        std0: initial standard deviation, broadcastable to (B*, H, A).
-        num_samples: C per iteration.
-        num_elites: E, 1 <= E <= C.
-        iterations: number of sample-and-refit rounds (>= 1).
-        alpha: smoothing weight of the new estimate, see :func:`cem_update`.
-        min_std: standard-deviation floor.
-        low: (A,) lower action bounds or None.
-        high: (A,) upper action bounds or None.
-        smoothing: AR(1) coefficient of the sampling noise along the horizon.
-        generator: the only source of randomness.
-
-    Returns:
-        A :class:`CemResult`.
-    """
-    _check_count("iterations", iterations, 1)
-    _check_count("num_samples", num_samples, 1)
-    _check_count("num_elites", num_elites, 1, num_samples)
-    mean = _sequence_tensor("mean0", mean0)
-    std = _broadcast("std0", _tensor("std0", std0), mean.shape, "(B*, H, A), (A,) or a scalar")
-    with torch.inference_mode():
-        best_x = mean.clone()
-        best_c = torch.full(mean.shape[:-2], torch.inf, dtype=DTYPE)
-        history = []
-        for _ in range(iterations):
-            samples = sample_sequences(
-                mean, std, num_samples, low=low, high=high, smoothing=smoothing, generator=generator
-            )
-            costs = _call_cost(cost_fn, samples)
-            best_x, best_c = _track_best(best_x, best_c, samples, costs)
-            elite_costs = torch.topk(costs, num_elites, dim=-1, largest=False).values
-            history.append(elite_costs.mean(dim=-1))
-            mean, std = cem_update(samples, costs, num_elites, mean, std, alpha=alpha, min_std=min_std)
-        hist = torch.stack(history)
-    return CemResult(
-        mean=mean.clone(),
-        std=std.clone(),
-        best_actions=best_x.clone(),
-        best_cost=best_c.clone(),
-        elite_cost_history=hist.clone(),
-    )
-
-
 # --- MPPI -----------------------------------------------------------------------------------------------------
 
 
@@ -419,19 +249,6 @@ def mppi_weights(costs: Tensor, lam: float) -> Tensor:
     return torch.softmax(-shifted / lam, dim=-1)
 
 
-def ess(weights: Tensor) -> Tensor:
-    """Effective sample size ``1 / sum_k w_k^2`` of normalised weights (Kish's formula).
-
-    Args:
-        weights: (B*, C), each row summing to 1.
-
-    Returns:
-        (B*,) float32, between 1 (one sample carries all weight) and C (uniform weights).
-    """
-    weights = _tensor("weights", weights)
-    return 1.0 / (weights * weights).sum(dim=-1)
-
-
 def mppi_update(mean: Tensor, samples: Tensor, costs: Tensor, lam: float) -> Tensor:
     """One MPPI update ``U <- U + sum_k w_k eps_k`` with ``eps_k = samples_k - U``.
 
@@ -457,106 +274,3 @@ def mppi_update(mean: Tensor, samples: Tensor, costs: Tensor, lam: float) -> Ten
     return mean + torch.einsum("...c,...cha->...ha", weights, eps)
 
 
-def mppi_control_cost(mean: Tensor, samples: Tensor, std: Tensor | float, gamma: float) -> Tensor:
-    """Optional MPPI control-cost term ``gamma * sum_t u_t^T Sigma^{-1} eps_t`` (diagonal Sigma = std^2).
-
-    Add it to the trajectory costs before :func:`mppi_weights` when the information-theoretic form is wanted
-    (Williams et al. 2017).
-
-    Args:
-        mean: (B*, H, A) nominal sequence U.
-        samples: (B*, C, H, A) candidates; ``eps = samples - U``.
-        std: > 0, broadcastable to (B*, H, A).
-        gamma: scale of the term.
-
-    Returns:
-        (B*, C) float32.
-    """
-    samples = _tensor("samples", samples)
-    shape = samples.shape[:-3] + samples.shape[-2:]
-    mean = _broadcast("mean", _tensor("mean", mean), shape, "(B*, H, A)")
-    std = _broadcast("std", _tensor("std", std), shape, "(B*, H, A), (A,) or a scalar")
-    if bool((std <= 0).any()):
-        raise ConfigError(f"std must be > 0 for the MPPI control cost, got min {std.min().item()!r}")
-    eps = samples - mean.unsqueeze(-3)  # (B*, C, H, A)
-    return gamma * (mean.unsqueeze(-3) * eps / (std * std).unsqueeze(-3)).sum(dim=(-2, -1))
-
-
-@dataclass(frozen=True)
-class MppiResult:
-    """Outcome of :func:`mppi_minimise`.
-
-    Attributes:
-        mean: (B*, H, A) final nominal sequence, the usual plan to execute.
-        best_actions: (B*, H, A) lowest-cost sample seen in any iteration.
-        best_cost: (B*,) its cost.
-        ess_history: (iterations, B*) effective sample size of the weights at each iteration.
-        cost_history: (iterations, B*) weighted mean cost sum_k w_k S_k at each iteration.
-    """
-
-    mean: Tensor
-    best_actions: Tensor
-    best_cost: Tensor
-    ess_history: Tensor
-    cost_history: Tensor
-
-
-def mppi_minimise(
-    cost_fn: CostFn,
-    mean0: Tensor,
-    std: Tensor | float,
-    *,
-    num_samples: int,
-    iterations: int,
-    lam: float,
-    low: Tensor | None = None,
-    high: Tensor | None = None,
-    smoothing: float = 0.0,
-    generator: torch.Generator,
-) -> MppiResult:
-    """Minimise ``cost_fn`` over action sequences by repeated MPPI updates with a fixed sampling spread.
-
-    Args:
-        cost_fn: maps samples (B*, C, H, A) to costs (B*, C).
-        mean0: (B*, H, A) initial nominal sequence.
-        std: sampling standard deviation, broadcastable to (B*, H, A); MPPI keeps it fixed.
-        num_samples: C per iteration.
-        iterations: number of sample-and-update rounds (>= 1).
-        lam: temperature lambda > 0.
-        low: (A,) lower action bounds or None.
-        high: (A,) upper action bounds or None.
-        smoothing: AR(1) coefficient of the sampling noise along the horizon.
-        generator: the only source of randomness.
-
-    Returns:
-        An :class:`MppiResult`.
-    """
-    _check_count("iterations", iterations, 1)
-    _check_count("num_samples", num_samples, 1)
-    lam = _check_lambda(lam)
-    mean = _sequence_tensor("mean0", mean0)
-    with torch.inference_mode():
-        best_x = mean.clone()
-        best_c = torch.full(mean.shape[:-2], torch.inf, dtype=DTYPE)
-        ess_hist, cost_hist = [], []
-        for _ in range(iterations):
-            samples = sample_sequences(
-                mean, std, num_samples, low=low, high=high, smoothing=smoothing, generator=generator
-            )
-            costs = _call_cost(cost_fn, samples)
-            best_x, best_c = _track_best(best_x, best_c, samples, costs)
-            weights = mppi_weights(costs, lam)
-            ess_hist.append(ess(weights))
-            cost_hist.append(torch.where(weights > 0, weights * costs, 0.0).sum(dim=-1))
-            mean = mean + torch.einsum("...c,...cha->...ha", weights, samples - mean.unsqueeze(-3))
-            if low is not None or high is not None:
-                lo, hi = _bounds(low, high, mean.shape)
-                mean = torch.minimum(torch.maximum(mean, lo), hi)  # guard against rounding past a bound
-        ess_h, cost_h = torch.stack(ess_hist), torch.stack(cost_hist)
-    return MppiResult(
-        mean=mean.clone(),
-        best_actions=best_x.clone(),
-        best_cost=best_c.clone(),
-        ess_history=ess_h.clone(),
-        cost_history=cost_h.clone(),
-    )

@@ -30,7 +30,9 @@ from typing import Any
 
 import numpy as np
 
+from wmplan.caution import CAUTION
 from wmplan.errors import ConfigError
+from wmplan.evaluate.planners import resolve_planner
 from wmplan.io import atomic_write_json
 from wmplan.scenario import Scenario, load_scenario
 from wmplan.stress.knobs import DEFAULT_KNOBS, DEFAULT_Z_STEP, Knob, check_knobs, describe_knobs
@@ -43,8 +45,7 @@ from wmplan.stress.rare_event import (
     plain_monte_carlo,
 )
 from wmplan.stress.search import FAILURE_DEFINITION, Animate, StressEvaluator, save_failures
-from wmplan.sweep.episodes import get_planner
-from wmplan.sweep.runner import CAUTION, check_picklable_by_reference, make_executor
+from wmplan.sweep.runner import check_workers_can_resolve, make_executor
 
 MIN_KNOB_SAMPLES = 30
 
@@ -112,9 +113,9 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
     if not 0.0 < ce_fraction < 1.0:
         raise ConfigError(f"ce_fraction must lie in (0, 1), got {ce_fraction!r}")
     base = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
-    fn = get_planner(planner)
-    if workers != 1 and not scheduler:
-        check_picklable_by_reference(planner, fn)
+    resolve_planner(planner)
+    if workers != 1 or scheduler:
+        check_workers_can_resolve(planner)
     knobs = tuple(DEFAULT_KNOBS if knobs is None else knobs)
     check_knobs(base, knobs)
     budget = int(budget)
@@ -199,9 +200,9 @@ def nominal_reference(scenario: Scenario | str | Path, planner: str, num_knob_sa
     mostly on the knobs, so it is a slow, assumption-light yardstick, not a competitor.
     """
     base = scenario if isinstance(scenario, Scenario) else load_scenario(scenario)
-    fn = get_planner(planner)
-    if workers != 1 and not scheduler:
-        check_picklable_by_reference(planner, fn)
+    resolve_planner(planner)
+    if workers != 1 or scheduler:
+        check_workers_can_resolve(planner)
     knobs = tuple(DEFAULT_KNOBS if knobs is None else knobs)
     check_knobs(base, knobs)
     if num_knob_samples < 2 or seeds_per_sample < 1:

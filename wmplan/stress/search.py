@@ -41,7 +41,10 @@ from typing import Any
 
 import numpy as np
 
+from wmplan.caution import CAUTION
 from wmplan.errors import ConfigError
+from wmplan.evaluate.closed_loop import evaluate_seeds, run_episodes
+from wmplan.evaluate.planners import resolve_planner
 from wmplan.io import atomic_write_json, atomic_write_text
 from wmplan.scenario import (
     Scenario,
@@ -61,8 +64,7 @@ from wmplan.stress.knobs import (
     variant,
 )
 from wmplan.stress.rare_event import GaussianFamily, cross_entropy_levels
-from wmplan.sweep.episodes import call_planner_variants, get_planner, run_episodes
-from wmplan.sweep.runner import CAUTION, InlineExecutor
+from wmplan.sweep.runner import InlineExecutor
 
 FAILURE_DEFINITION = "collision or leaving the road before the episode ends"
 TTC_CAP_S = 30.0
@@ -96,10 +98,11 @@ EPISODES_PER_TASK = 64
 """Episodes handed to one worker task (several variants share it; the sampling planners batch them together)."""
 
 
-def _variant_rows(planner: str, fn: Callable, scenarios: list[dict], seeds: list[list[int]],
-                  options: dict) -> list[list[dict]]:
-    """Episodes of several variants, rows per variant (runs in a worker)."""
-    return call_planner_variants(planner, fn, [parse_scenario(d) for d in scenarios], seeds, options)
+def _variant_rows(planner: str, scenarios: list[dict], seeds: list[list[int]], options: dict) -> list[list[dict]]:
+    """Episodes of several variants through the one closed loop (run seed 0), rows per variant (runs in a
+    worker)."""
+    outs = run_episodes([parse_scenario(d) for d in scenarios], seeds, planner, options=options, seed=0)
+    return [o.rows for o in outs]
 
 
 @dataclass
@@ -142,7 +145,7 @@ class StressEvaluator:
     _variants: dict[tuple, tuple[str, dict]] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
-        self._fn = get_planner(self.planner)
+        resolve_planner(self.planner)
 
     def _variant(self, zq: np.ndarray) -> tuple[str, dict]:
         key = tuple(np.round(zq / self.z_step).astype(np.int64).tolist())
@@ -172,7 +175,7 @@ class StressEvaluator:
                 size = 0
             tasks[-1].append(vid)
             size += len(idx) * m
-        futures = [self.executor.submit(_variant_rows, self.planner, self._fn, [scenarios[v] for v in task],
+        futures = [self.executor.submit(_variant_rows, self.planner, [scenarios[v] for v in task],
                                         [[int(s) for i in groups[v] for s in seeds[i]] for v in task],
                                         self.planner_options)
                    for task in tasks]
@@ -239,7 +242,7 @@ def save_failures(evaluator: StressEvaluator, out_dir: Path, *, max_saved: int =
                       for kn, z, v in zip(evaluator.knobs, s.z, knob_values(evaluator.base, evaluator.knobs,
                                                                             s.z).values(), strict=True)},
             "nominal_log_density": float(GaussianFamily.standard(len(s.z)).log_pdf(s.z[None, :])[0]),
-            "outcome": _json_row(s.row), "animation": anim,
+            "outcome": _json_row(s.row), "animation": anim, "caution": CAUTION,
         }
         json_path = folder / f"{stem}.json"
         atomic_write_json(json_path, info)
@@ -271,7 +274,7 @@ def replay_episode(failure_file: str | Path, planner_options: dict[str, Any] | N
     except (OSError, ValueError, KeyError, TypeError) as err:
         raise ConfigError(f"{json_path}: not a failure record ({type(err).__name__}: {err})") from None
     options.update(planner_options or {})
-    row = run_episodes(load_scenario(scenario_file), planner, [seed], **options)[0]
+    row = evaluate_seeds(load_scenario(scenario_file), planner, [seed], options=options).rows[0]
     return info, row
 
 

@@ -22,13 +22,11 @@ from typing import Any
 import numpy as np
 
 from wmplan.errors import ScenarioError
+from wmplan.evaluate.rows import ROWS_VERSION  # part of every cell id: a change never reuses old cell files
 from wmplan.scenario import Scenario, load_scenario, parse_scenario, scenario_hash, scenario_to_dict
 from wmplan.sweep.paths import PathError, close_matches, get_path, set_path
 from wmplan.sweep.spec import Sweep, SweepError, canonical_json, content_hash
 
-ROWS_VERSION = 2
-"""Version of the episode rows; part of every cell id, so a change never reuses old cell files. 2: rows carry
-``max_brake_threat``, and the rule-based ego merges only where its own braking stays within b_safe."""
 ID_LENGTH = 16
 
 

@@ -24,6 +24,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.figure import Figure
 
+from wmplan.caution import caution_footer
 from wmplan.io import atomic_write_bytes
 from wmplan.sweep.stats import wilson_interval
 
@@ -67,6 +68,8 @@ def _pooled(cells: list[dict], keys: tuple[str, ...]) -> dict[tuple, tuple[int, 
 
 
 def _save(fig: Figure, path: Path) -> Path:
+    """Write a standalone sweep figure (with the caution as its footer) atomically."""
+    caution_footer(fig)
     FigureCanvasAgg(fig)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=110, bbox_inches="tight")

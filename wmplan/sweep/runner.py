@@ -37,25 +37,25 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from wmplan.caution import CAUTION
 from wmplan.errors import ConfigError
+from wmplan.evaluate.closed_loop import run_episodes
+from wmplan.evaluate.planners import BUILTIN_PLANNERS, planner_names, resolve_planner
+from wmplan.evaluate.rows import COLUMN_NAMES, ROWS_VERSION, rows_table
 from wmplan.io import atomic_write_bytes, atomic_write_json
 from wmplan.sweep.cells import (
-    ROWS_VERSION,
     Cell,
     expand_cells,
     param_column_kinds,
     param_column_value,
 )
-from wmplan.sweep.episodes import REQUIRED_KEYS, PlannerFn, call_planner, get_planner
 from wmplan.sweep.spec import Sweep, SweepError, load_sweep
 from wmplan.sweep.stats import wilson_interval
 
-CAUTION = ("Results come from a simplified traffic model; they certify nothing about a real vehicle. "
-           "Real programmes follow ISO 26262, ISO 21448, local regulation and licensed engineering practice.")
-FLOAT_KEYS = ("progress_m", "mean_speed_mps")
 SCHEDULER_TIMEOUT_S = 20.0
 """How long to try to reach a Dask scheduler before giving up."""
 Progress = bool | Callable[[int, int], None] | None
@@ -64,20 +64,17 @@ Progress = bool | Callable[[int, int], None] | None
 # --- one cell (runs in a worker) --------------------------------------------------------------------------------
 
 
-def _cell_rows(cell: Cell, fn: PlannerFn, kinds: dict[str, str]) -> list[dict]:
-    """The table rows of one cell: its episodes' rows with the cell's id and swept values in front."""
-    rows = call_planner(cell.planner, fn, cell.load_scenario(), cell.seeds, cell.planner_options)
+def _cell_rows(cell: Cell, kinds: dict[str, str]) -> list[dict]:
+    """The table rows of one cell: its episodes' rows (:mod:`wmplan.evaluate.rows`, run by the one closed loop
+    with the run seed 0) with the cell's id and swept values in front."""
+    rows = run_episodes([cell.load_scenario()], [np.asarray(cell.seeds)], cell.planner,
+                        options=cell.planner_options, seed=0)[0].rows
     out = []
-    for i, row in enumerate(rows):
-        r: dict[str, Any] = {"cell_id": cell.cell_id, "variant_id": cell.variant_id, "planner": row["planner"],
-                             "episode": i, "seed": row["seed"]}
+    for row in rows:
+        r: dict[str, Any] = {"cell_id": cell.cell_id, "variant_id": cell.variant_id}
         for path, value in cell.params:
             r[path] = param_column_value(kinds[path], value)
-        for key in REQUIRED_KEYS[2:]:
-            r[key] = float(row[key]) if key in FLOAT_KEYS else row[key]
-        for key, value in row.items():
-            if key not in r:
-                r[key] = value
+        r.update(row)
         out.append(r)
     return out
 
@@ -208,10 +205,10 @@ def cell_path(out_dir: Path, cell_id: str) -> Path:
 
 def write_cell(out_dir: Path, cell: Cell, rows: list[dict]) -> Path:
     """Write one finished cell's rows atomically."""
-    table = pa.Table.from_pylist(rows)
+    table = rows_table(rows)
     meta = {"cell_id": cell.cell_id, "rows_version": ROWS_VERSION, "planner": cell.planner,
             "params": [[p, v] for p, v in cell.params]}
-    table = table.replace_schema_metadata({"wmplan_cell": json.dumps(meta)})
+    table = table.replace_schema_metadata({**table.schema.metadata, b"wmplan_cell": json.dumps(meta).encode()})
     path = cell_path(out_dir, cell.cell_id)
     atomic_write_bytes(path, _table_bytes(table))
     return path
@@ -227,7 +224,7 @@ def read_cell(out_dir: Path, cell_id: str) -> pa.Table:
         raise SweepError(f"{path}: unreadable cell file ({type(err).__name__}); delete it and rerun") from None
     if meta.get("cell_id") != cell_id or meta.get("rows_version") != ROWS_VERSION:
         raise SweepError(f"{path}: the file belongs to cell {meta.get('cell_id')!r}, not {cell_id!r}; delete it and rerun")
-    return table.replace_schema_metadata(None)
+    return table
 
 
 def results_table(out_dir: Path, cells: list[Cell], kinds: dict[str, str]) -> pa.Table | None:
@@ -236,11 +233,11 @@ def results_table(out_dir: Path, cells: list[Cell], kinds: dict[str, str]) -> pa
               if cell_path(out_dir, c.cell_id).is_file()]
     if not tables:
         return None
-    table = pa.concat_tables(tables, promote_options="permissive")
+    table = pa.concat_tables([t.replace_schema_metadata(None) for t in tables], promote_options="permissive")
     table = table.sort_by([("cell_id", "ascending"), ("seed", "ascending")])
-    lead = ["cell_id", "variant_id", "planner", "episode", "seed", *kinds, *REQUIRED_KEYS[2:]]
+    lead = ["cell_id", "variant_id", *kinds, *(n for n in COLUMN_NAMES if n in table.column_names)]
     order = lead + [n for n in table.column_names if n not in lead]
-    return table.select(order)
+    return table.select(order).replace_schema_metadata(rows_table([]).schema.metadata)
 
 
 def _cell_summary(cell: Cell, table: pa.Table) -> dict:
@@ -254,6 +251,7 @@ def _cell_summary(cell: Cell, table: pa.Table) -> dict:
         "params": {p: v for p, v in cell.params}, "n": n,
         "collisions": k, "collision_rate": k / n, "collision_ci95": list(wilson_interval(k, n)),
         "offroad_rate": off / n,
+        "near_miss_rate": sum(bool(v) for v in cols["near_miss"]) / n,
         "success_rate": s / n, "success_ci95": list(wilson_interval(s, n)),
         "mean_speed_mps": sum(cols["mean_speed_mps"]) / n,
         "mean_progress_m": sum(cols["progress_m"]) / n,
@@ -298,25 +296,23 @@ def _as_sweep(sweep: Sweep | str | Path) -> Sweep:
     return sweep if isinstance(sweep, Sweep) else load_sweep(sweep)
 
 
-def _resolve_planners(sweep: Sweep) -> dict[str, PlannerFn]:
-    fns = {}
+def _resolve_planners(sweep: Sweep) -> None:
     for i, name in enumerate(sweep.spec.planners):
         try:
-            fns[name] = get_planner(name)
+            resolve_planner(name)
         except ConfigError as err:
             raise SweepError(f"{sweep.source}: planners[{i}]: {err}") from None
-    return fns
 
 
-def check_picklable_by_reference(name: str, fn: PlannerFn) -> None:
-    """Spawned pool workers import a planner's function by module and name; refuse one they cannot find."""
-    qual = getattr(fn, "__qualname__", "")
-    module = sys.modules.get(getattr(fn, "__module__", "") or "")
-    interactive = module is not None and module.__name__ == "__main__" and not hasattr(module, "__file__")
-    if "<lambda>" in qual or "<locals>" in qual or interactive:
-        raise ConfigError(f"planner {name!r} is a lambda, a nested function or defined interactively, so the "
-                          "worker processes cannot import it; define it at the top level of a module, or run with "
-                          "workers=1")
+def check_workers_can_resolve(name: str) -> None:
+    """Worker processes resolve a planner spec again by importing it: refuse a planner that only this process
+    knows (added with ``register_planner``, or an import path into ``__main__``)."""
+    if name in planner_names() and name not in BUILTIN_PLANNERS:
+        raise ConfigError(f"planner {name!r} was registered in this process only, so worker processes cannot find "
+                          "it; name it by import path (module:factory) or run with one worker")
+    if name.split("+", 1)[-1].startswith("__main__"):
+        raise ConfigError(f"planner {name!r} lives in __main__, which worker processes cannot import; move it to a "
+                          "module, or run with one worker")
 
 
 def _progress_bar(progress: Progress, total: int, initial: int):
@@ -349,10 +345,10 @@ def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 
     """
     sweep = _as_sweep(sweep)
     out_dir = Path(out_dir)
-    fns = _resolve_planners(sweep)
-    if workers != 1 and not scheduler:
-        for name, fn in fns.items():
-            check_picklable_by_reference(name, fn)
+    _resolve_planners(sweep)
+    if workers != 1 or scheduler:
+        for name in sweep.spec.planners:
+            check_workers_can_resolve(name)
     cells = expand_cells(sweep)
     kinds = param_column_kinds(sweep)
     atomic_write_json(out_dir / "sweep.json", {
@@ -377,8 +373,7 @@ def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 
     try:
         if todo:
             with make_executor(workers, scheduler) as (executor, window):
-                failures = execute_cells(todo, _cell_rows, lambda c: (c, fns[c.planner], kinds), executor, window,
-                                         on_done)
+                failures = execute_cells(todo, _cell_rows, lambda c: (c, kinds), executor, window, on_done)
     finally:
         if bar is not None:
             bar.close()
@@ -394,9 +389,19 @@ def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 
     return summary
 
 
-def cli_sweep(file: str | Path, out: str | Path, workers: int = 1, scheduler: str | None = None) -> dict:
-    """What ``wmplan sweep FILE --out DIR [--workers N] [--scheduler ADDRESS]`` calls; returns the summary."""
-    return run_sweep(file, out, workers=workers, scheduler=scheduler, progress=None)
+def format_summary(summary: dict, out_dir: Path, max_cells: int = 40) -> str:
+    """The terminal text of a sweep's summary: one line per cell (at most ``max_cells``), rates with intervals."""
+    cells = summary.get("cells", [])
+    lines = [f"sweep {summary.get('sweep', '')}: {len(cells)} cells; results in {Path(out_dir) / 'results.parquet'}"]
+    for c in cells[:max_cells]:
+        ci = c.get("collision_ci95", [float("nan")] * 2)
+        params = ", ".join(f"{k}={v}" for k, v in c.get("params", {}).items())
+        lines.append(f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
+                     f"[{ci[0]:.3f}, {ci[1]:.3f}] near miss {c.get('near_miss_rate', float('nan')):.3f} "
+                     f"n={c.get('n', '')}")
+    if len(cells) > max_cells:
+        lines.append(f"  ... {len(cells) - max_cells} more cells in summary.json")
+    return "\n".join(lines)
 
 
 def read_results(out_dir: str | Path) -> pa.Table:

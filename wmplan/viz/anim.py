@@ -248,3 +248,26 @@ def render_to_file(scenario_name_or_path: str | Path, out_path: str | Path, *, s
     fig.savefig(buf, format="png")
     atomic_write_bytes(out, buf.getvalue())
     return out
+
+
+def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path, *,
+                    options: dict | None = None) -> Path:
+    """Replay one episode (a saved failure) with its planner through the closed loop and draw it as an animation.
+
+    Args:
+        scenario_file: the scenario (variant) file the failure was found in.
+        seed: the scene seed.
+        planner: the planner spec.
+        out_file: FILE.gif (or FILE.mp4 where ffmpeg exists).
+        options: the planner's options (model folders, ...).
+    """
+    from wmplan.evaluate.closed_loop import record_episode
+
+    scn = load_scenario(scenario_file)
+    frames, row = record_episode(scn, planner, seed, options=options)
+    params = SimParams.from_scenario(scn)
+    keep = np.unique(np.r_[np.arange(0, len(frames), 2), len(frames) - 1])  # every other step, and the last one
+    last = len(keep) - 1
+    return save_episode_animation(frames[keep], params, out_file, fps=5.0, frame_steps=keep,
+                                  collided_at=last if row["collision"] else None,
+                                  offroad_at=last if row["offroad"] else None, title=f"{planner}, seed {seed}")

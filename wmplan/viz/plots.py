@@ -101,7 +101,7 @@ def reliability_figure(bins: object, *, title: str | None = None, brier: float |
         bins: one planner's bins, a list of dicts with ``low``, ``high``, ``count``, ``mean_pred`` and ``freq`` as
             :func:`wmplan.evaluate.stats.reliability_bins` returns (empty bins may hold NaN or None); or one
             planner's calibration dict with ``bins``, ``brier`` and ``ece`` (as
-            :func:`wmplan.evaluate.report.calibration` returns and ``summary.json`` stores); or a dict of several
+            :func:`wmplan.evaluate.tables.calibration` returns and ``summary.json`` stores); or a dict of several
             planners' lists or calibration dicts, drawn overlaid.
         title: text above the diagram; for one planner the Brier score and the ECE follow it when known.
         brier, ece: the scores of a single planner given as a plain list of bins.
@@ -294,7 +294,7 @@ def closed_loop_figure(results: Mapping, *, title: str | None = None, width_in: 
 
     Args:
         results: ``{planner: {collision_rate, collision_ci95, success_rate, success_ci95, episodes, ...}}`` as
-            :func:`wmplan.evaluate.report.summarise_planner` gives, or a whole ``summary.json`` dict holding it
+            :func:`wmplan.evaluate.tables.summarise_planner` gives, or a whole ``summary.json`` dict holding it
             under ``"results"``.
         title: text above the panels.
         width_in: figure width in inches.

@@ -1,5 +1,5 @@
-"""Closed-loop episode rows: the planner registry, the shared loop against a plain per-episode loop, and the
-outcome measures against hand-worked numbers.
+"""Closed-loop episode rows (``wmplan.evaluate.rows``, ``wmplan.evaluate.closed_loop``): the planner registry,
+the one loop against a plain per-episode loop, and the outcome measures against hand-worked numbers.
 
 References: time-to-collision at constant speeds TTC = gap / (v_f - v_l) (Hayward 1972; REFERENCES.md section 5.1
 check values, [D]); constant-acceleration kinematics x = v0 t + a t^2 / 2 (common practice, no source).
@@ -15,21 +15,22 @@ import numpy as np
 import pytest
 
 from wmplan.errors import ConfigError
+from wmplan.evaluate.closed_loop import evaluate_seeds, evaluate_variants
+from wmplan.evaluate.planners import PlannerEntry, planner_names, register_planner, unregister_planner
+from wmplan.evaluate.rows import COLUMN_NAMES, clearance_and_ttc
+from wmplan.plan.base import Decision, RulePlanner
 from wmplan.scenario import load_scenario, parse_scenario, scenario_to_dict
 from wmplan.sim.ego_rules import RULE_DECISION_PERIOD_S, rule_actions
 from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import empty_state, initial_state
 from wmplan.sim.state import EGO
-from wmplan.sweep import (
-    REQUIRED_KEYS,
-    closed_loop,
-    planner_names,
-    register_planner,
-    run_episodes,
-    unregister_planner,
-)
-from wmplan.sweep.episodes import _clearance_and_ttc
+
+
+def run_episodes(scenario, planner: str, seeds, **options) -> list[dict]:
+    """Rows of one planner's episodes in one scenario (a built-in name or a Scenario), run seed 0."""
+    scn = load_scenario(scenario) if isinstance(scenario, str) else scenario
+    return evaluate_seeds(scn, planner, np.asarray(seeds), options=options).rows
 
 
 def _reference_episode(params: SimParams, seed: int) -> dict:
@@ -65,7 +66,7 @@ def test_batched_rows_equal_one_episode_at_a_time(scenario: str) -> None:
         ref = _reference_episode(params, seed)
         for key, value in ref.items():
             assert row[key] == pytest.approx(value, rel=1e-12, abs=1e-12), (seed, key)
-        assert set(REQUIRED_KEYS) <= set(row)
+        assert set(row) == set(COLUMN_NAMES) - {"log_weight"}
 
 
 def test_ttc_and_clearance_match_hand_worked_values(scenario_variant_open) -> None:
@@ -89,7 +90,7 @@ def test_ttc_and_clearance_match_hand_worked_values(scenario_variant_open) -> No
     arr["vx_mps"][1, 1] = 20.0
     from wmplan.sim.state import TrafficState
 
-    clearance, ttc = _clearance_and_ttc(TrafficState.from_arrays(arr))
+    clearance, ttc = clearance_and_ttc(TrafficState.from_arrays(arr))
     assert ttc[0] == pytest.approx(3.0, rel=1e-12) and clearance[0] == pytest.approx(30.0, rel=1e-12)
     assert math.isinf(ttc[1]) and clearance[1] == pytest.approx(3.6 - 1.85, rel=1e-12)
 
@@ -104,10 +105,15 @@ def test_full_throttle_into_a_stopped_car_collides_when_kinematics_say(scenario_
                                "desired_speed_mps": 0.01, "length_m": 4.7}]
     scn = parse_scenario(d)
 
-    def throttle(params):
-        return lambda state: np.tile([params.max_accel_mps2, 0.0], (state.num_scenes, 1))
+    class Throttle(RulePlanner):
+        def decide(self, obs):
+            return Decision(actions=np.tile([self.params.max_accel_mps2, 0.0], (obs.state.num_scenes, 1)))
 
-    (row,) = closed_loop(scn, [5], throttle)
+    register_planner("full-throttle", PlannerEntry(lambda params: Throttle(params)), replace=True)
+    try:
+        (row,) = run_episodes(scn, "full-throttle", [5])
+    finally:
+        unregister_planner("full-throttle")
     t_hit = (-20.0 + math.sqrt(20.0**2 + 2 * 3.0 * 50.0)) / 3.0
     assert row["collision"] and not row["success"]
     assert t_hit - 1e-9 <= row["time_s"] <= t_hit + 0.1 + 1e-9
@@ -128,42 +134,40 @@ def scenario_variant_open():
 # --- registry -----------------------------------------------------------------------------------------------------
 
 
-def _bad_count(scenario, seeds, **options):
-    return [{"seed": int(seeds[0])}]
+class _WrongShape(RulePlanner):
+    def decide(self, obs):
+        return Decision(actions=np.zeros((obs.state.num_scenes, 3)))
 
 
-def _bad_order(scenario, seeds, **options):
-    rows = run_episodes(scenario, "rules", seeds)
-    return list(reversed(rows))
+class _NoDecide:
+    decision_dt_s = 0.2
+    horizon_decisions = 1
 
-
-def _missing_key(scenario, seeds, **options):
-    return [{k: v for k, v in r.items() if k != "success"} for r in run_episodes(scenario, "rules", seeds)]
+    def reset(self, episode_keys):
+        pass
 
 
 def test_registry_errors_are_one_line() -> None:
     """Unknown names list the known ones; a taken name needs replace=True; the rules planner takes no options;
-    a runner's rows are checked for count, order and required keys."""
+    a planner that breaks the protocol is named with what it lacks or returned wrong."""
     assert "rules" in planner_names()
-    with pytest.raises(ConfigError, match=re.escape(f"unknown planner 'no-such-planner'; known planners: "
+    with pytest.raises(ConfigError, match=re.escape("unknown planner 'no-such-planner'; known: "
                                                     f"{', '.join(planner_names())}")):
         run_episodes("open-road", "no-such-planner", [1])
     with pytest.raises(ConfigError, match=re.escape("planner 'rules' is already registered; pass replace=True to "
                                                     "replace it")):
-        register_planner("rules", _bad_count)
+        register_planner("rules", RulePlanner)
     with pytest.raises(ConfigError, match=re.escape("planner 'rules' takes no options, got ['horizon_s']")):
         run_episodes("open-road", "rules", [1], horizon_s=3.0)
     cases = {
-        "bad-count": (_bad_count, "planner 'bad-count' returned 1 rows for 2 seeds; return one per seed"),
-        "bad-order": (_bad_order, "planner 'bad-order': row 0 has seed 2 but seeds[0] is 1; return rows in the "
-                                  "order of the seeds"),
-        "no-success": (_missing_key, "planner 'no-success': row 0 lacks key(s) ['success']; every row needs "
-                                     f"{list(REQUIRED_KEYS)}"),
+        "wrong-shape": (_WrongShape, "planner 'wrong-shape': decide() returned actions of shape (2, 3)"),
+        "no-decide": (lambda params: _NoDecide(), "planner 'no-decide': the factory returned _NoDecide, which "
+                                                  "lacks decide"),
     }
     try:
         for name, (fn, msg) in cases.items():
             register_planner(name, fn)
-            with pytest.raises(ConfigError, match="^" + re.escape(msg) + "$"):
+            with pytest.raises(ConfigError, match="^" + re.escape(msg)):
                 run_episodes("open-road", name, [1, 2])
     finally:
         for name in cases:
@@ -182,21 +186,15 @@ def _onramp_variants() -> list:
 
 
 def test_variants_in_shared_batches_match_one_variant_at_a_time() -> None:
-    """``call_planner_variants``: the runners of a sampling planner and of the rule-based ego (which run the
-    variants in shared batches) give the checked rows of ``call_planner`` variant by variant."""
-    from wmplan.sweep.episodes import call_planner, call_planner_variants, get_planner
-    from wmplan.sweep.mpc_planners import register_mpc_planners
-
-    register_mpc_planners()
+    """``evaluate_variants``: a sampling planner and the rule-based ego, which run the variants in shared batches,
+    give the rows of one variant at a time."""
     scenarios = _onramp_variants()
     seeds = [[5, 6], [7], [8, 9]]
     options = {"num_candidates": 8, "num_futures": 2, "batch_size": 4}
     for name in ("mpc+constant-velocity", "rules"):
-        fn = get_planner(name)
-        assert getattr(fn, "run_variants", None) is not None
-        opts = options if name.startswith("mpc") else {}
-        together = call_planner_variants(name, fn, scenarios, seeds, opts)
-        alone = [call_planner(name, fn, scn, s, opts) for scn, s in zip(scenarios, seeds, strict=True)]
+        opts = options if name.startswith("mpc") else {"batch_size": 4}
+        together = evaluate_variants(scenarios, seeds, name, options=opts)
+        alone = [evaluate_seeds(scn, name, s, options=opts).rows for scn, s in zip(scenarios, seeds, strict=True)]
         strip = lambda groups: [[{k: v for k, v in r.items() if k != "decision_ms"} for r in g] for g in groups]  # noqa: E731
         assert strip(together) == strip(alone)
         assert [[r["seed"] for r in g] for g in together] == seeds
@@ -206,7 +204,6 @@ def test_rules_variants_of_other_limits_or_merge_zone_run_in_their_own_batches()
     """The rule-based ego reads the ego's limits and the merge zone from the parameters: variants that differ in
     them fall into their own batch classes, and every variant still gives the rows it gives alone."""
     from wmplan.sim.variants import batch_classes
-    from wmplan.sweep.episodes import closed_loop_variants, rules_episodes
 
     scenarios = list(_onramp_variants())
     d = copy.deepcopy(scenario_to_dict(scenarios[0]))
@@ -218,38 +215,23 @@ def test_rules_variants_of_other_limits_or_merge_zone_run_in_their_own_batches()
     classes = batch_classes(scenarios, also=lambda scn: scn.drivers.merge_zone_m)
     assert len(classes) == 3 and sorted(len(c) for c in classes) == [1, 1, 3]
     seeds = [[5, 6], [7], [8, 9], [10, 11], [12]]
-    together = rules_episodes.run_variants(scenarios, seeds)
-    alone = [rules_episodes(scn, s) for scn, s in zip(scenarios, seeds, strict=True)]
-    assert together == alone
+    strip = lambda groups: [[{k: v for k, v in r.items() if k != "decision_ms"} for r in g] for g in groups]  # noqa: E731
+    together = evaluate_variants(scenarios, seeds, "rules")
+    alone = [evaluate_seeds(scn, "rules", s).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    assert strip(together) == strip(alone)
     with pytest.raises(ConfigError, match="planner 'rules' takes no options"):
-        rules_episodes.run_variants(scenarios, seeds, horizon=3)
-    assert closed_loop_variants([], [], None) == []
-
-
-def test_a_runner_whose_variant_rows_do_not_fit_is_refused() -> None:
-    from wmplan.sweep.episodes import call_planner_variants
-
-    def runner(scenario, seeds, **options):
-        return [{"collision": False, "offroad": False, "success": True, "progress_m": 1.0, "mean_speed_mps": 1.0}
-                for _ in seeds]
-
-    runner.run_variants = lambda scenarios, seeds, **options: [[]]
-    with pytest.raises(ConfigError, match="run_variants returned list for 3 variants"):
-        call_planner_variants("odd", runner, _onramp_variants(), [[1], [2], [3]])
+        evaluate_variants(scenarios, seeds, "rules", options={"horizon": 3})
+    assert evaluate_variants([], [], "rules") == []
 
 
 def test_stress_batching_benchmark_smoke(tmp_path) -> None:
     """Smoke test of ``benchmarks/stress_batching.py --quick --json FILE`` (common practice, no source): the JSON
     has the documented keys, the shared batches give the rows of one batch per variant, and the timings are
     positive. The speed-up itself is measured by running the benchmark, not asserted here."""
-    import importlib.util
+    import importlib
     import json
-    from pathlib import Path
 
-    path = Path(__file__).resolve().parents[2] / "benchmarks" / "stress_batching.py"
-    spec = importlib.util.spec_from_file_location("wmplan_bench_stress_batching_test", path)
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+    module = importlib.import_module("benchmarks.stress_batching")
     out = tmp_path / "stress.json"
     assert module.main(["--quick", "--json", str(out)]) == 0
     result = json.loads(out.read_text())

@@ -1,6 +1,6 @@
 """Tables of closed-loop results with 95% intervals, calibration, and the files an evaluation leaves on disk.
 
-``OUT/episodes.parquet``: one row per episode and planner (see :mod:`wmplan.evaluate.closed_loop`).
+``OUT/episodes.parquet``: one row per episode and planner (columns: :mod:`wmplan.evaluate.rows`).
 ``OUT/calibration.parquet``: one row per decision of a risk-predicting planner (predicted, happened).
 ``OUT/summary.json``: ``{"results": {planner: {...}}, "calibration": {planner: {...}}, ...}``.
 All written atomically.
@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
+from wmplan.evaluate.rows import rows_table
 from wmplan.evaluate.stats import (
     brier_score,
     expected_calibration_error,
@@ -23,9 +24,6 @@ from wmplan.evaluate.stats import (
 )
 from wmplan.io import atomic_write_bytes, atomic_write_json
 from wmplan.sim.engine import CONTACT_SIDES
-
-CAUTION = ("Results on a simplified traffic model; they certify nothing about a real vehicle. Real programmes "
-           "follow ISO 26262, ISO 21448, local regulation and licensed engineering practice.")
 
 
 def _rate(flags: np.ndarray) -> tuple[float, list[float]]:
@@ -62,6 +60,7 @@ def summarise_planner(rows: list[dict]) -> dict:
     off_rate, off_ci = _rate(off)
     succ_rate, succ_ci = _rate(suc)
     timeout_rate, timeout_ci = _rate(timeout)
+    near_rate, near_ci = _rate(np.array([r["near_miss"] for r in rows], dtype=bool))
     speed, speed_ci = _mean(np.array([r["mean_speed_mps"] for r in rows]))
     prog, prog_ci = _mean(np.array([r["progress_m"] for r in rows]))
     jerk, jerk_ci = _mean(np.array([r["rms_jerk_mps3"] for r in rows]))
@@ -80,7 +79,7 @@ def summarise_planner(rows: list[dict]) -> dict:
         "progress_m": prog, "progress_ci95": prog_ci,
         "rms_jerk_mps3": jerk, "rms_jerk_ci95": jerk_ci,
         "min_ttc_s_median": float(np.median(ttc)),
-        "share_min_ttc_below_1_5s": float(np.mean(ttc < 1.5)),
+        "near_miss_rate": near_rate, "near_miss_ci95": near_ci,
         "decision_ms_median": float(np.median(dec)),
     }
 
@@ -101,11 +100,10 @@ def calibration(predicted: list[float], happened: list[int], num_bins: int = 10)
 
 
 def write_parquet(path: Path, rows: list[dict]) -> None:
-    """Rows as a Parquet table, atomically."""
-    import pyarrow as pa
+    """Rows as a Parquet table (the caution and row version in its metadata), atomically."""
     import pyarrow.parquet as pq
 
-    table = pa.Table.from_pylist(rows)
+    table = rows_table(rows)
     buf = io.BytesIO()
     pq.write_table(table, buf)
     atomic_write_bytes(Path(path), buf.getvalue())
