@@ -1,5 +1,6 @@
 """The allocator settings applied on import (``wmplan/_alloc.py``): on Linux with glibc they are taken, and the
-environment variable WMPLAN_MALLOC_TUNING=0 leaves the allocator alone (contract; ``man 3 mallopt``)."""
+environment variable WMPLAN_MALLOC_TUNING=0 leaves the allocator alone (contract; ``man 3 mallopt``,
+docs/references.md#lib-glibc-mallopt)."""
 
 from __future__ import annotations
 

@@ -1,5 +1,6 @@
-"""One "rules" driver wherever the name appears (contract, no external source): the sweep's built-in ``rules``
-planner and the ``rules`` row of the closed-loop evaluation drive the same episodes to the same outcomes."""
+"""One "rules" driver wherever the name appears (contract, no external source:
+docs/references.md#practice-determinism): the sweep's built-in ``rules`` planner and the ``rules`` row of the
+closed-loop evaluation drive the same episodes to the same outcomes."""
 
 from __future__ import annotations
 

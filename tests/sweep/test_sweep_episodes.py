@@ -1,8 +1,10 @@
 """Closed-loop episode rows: the planner registry, the shared loop against a plain per-episode loop, and the
 outcome measures against hand-worked numbers.
 
-References: time-to-collision at constant speeds TTC = gap / (v_f - v_l) (Hayward 1972; REFERENCES.md section 5.1
-check values, [D]); constant-acceleration kinematics x = v0 t + a t^2 / 2 (common practice, no source).
+References: time-to-collision at constant speeds TTC = gap / (v_f - v_l) (Hayward 1972; check values [D] of
+docs/references.md#hayward-1972-ttc); constant-acceleration kinematics x = v0 t + a t^2 / 2 (common practice, no
+source: docs/references.md#practice-kinematics); the shared loop against a plain loop
+(docs/references.md#practice-equivalence-test).
 """
 
 from __future__ import annotations
@@ -69,7 +71,8 @@ def test_batched_rows_equal_one_episode_at_a_time(scenario: str) -> None:
 
 
 def test_ttc_and_clearance_match_hand_worked_values(scenario_variant_open) -> None:
-    """Leader 30 m ahead bumper to bumper at 15 m/s, ego at 25 m/s: TTC 3.0 s, clearance 30 m (REFERENCES 5.1).
+    """Leader 30 m ahead bumper to bumper at 15 m/s, ego at 25 m/s: TTC 3.0 s, clearance 30 m
+    (docs/references.md#hayward-1972-ttc).
     A vehicle alongside in the next lane: clearance = lane width - half widths = 3.6 - 1.85 = 1.75 m, no TTC."""
     params = SimParams.from_scenario(scenario_variant_open)
     st = empty_state(params, np.array([1, 2], dtype=np.uint64))
