@@ -2,17 +2,17 @@
 
 What is checked, on every file git tracks (``git ls-files``):
 
-* no absolute path of a machine (a path under the root folders of home, work or temporary directories, or under
-  a drive letter) and no pointer to a document outside the repository (the shared sheets of the people who wrote
-  the code, or their folder beside the checkout);
+* no absolute path of a machine (a path under the root folders of home, work or temporary directories, or
+  under a drive letter) and no pointer to a document outside the repository (the shared sheets of the people
+  who wrote the code, or their folder beside the checkout);
 * every ``docs/references.md#<key>`` cited anywhere names an entry of ``docs/references.md`` (an entry is a
   ``###`` heading that is exactly its key), keys are unique, and every file path that an entry gives under
   "Used" or "Checked" exists;
 * every test module whose docstring names a source, a reference or a year cites at least one entry.
 
-Each rule is also run on made-up text that breaks it (the control cases below), so the checks are shown able to
-fail. This is a contract of the project (DEVELOPERS.md, "Tests and benchmarks"), not a reference test; it cites
-no entry itself and is the one test module exempt from the last rule.
+Each rule is also run on made-up text that breaks it (the control cases below), so the checks are shown able
+to fail. This is a contract of the project (DEVELOPERS.md, "Tests and benchmarks"), not a reference test; it
+cites no entry itself and is the one test module exempt from the last rule.
 """
 
 from __future__ import annotations
@@ -32,10 +32,8 @@ CITE = "docs/references.md" + "#"  # split so that the control cases below cite 
 # Built from pieces, so that this file does not match its own patterns.
 _SHEETS = "|".join(("REFER" + "ENCES", "ST" + "YLE", "DES" + "IGN"))
 OUTSIDE_DOCUMENT = re.compile(r"\b(?:" + _SHEETS + r")\b|\.\./" + "shared\\b")
-MACHINE_PATH = re.compile(
-    r"(?<![\w.~/$-])/(?:" + "|".join(("wo" + "rk", "ho" + "me", "ro" + "ot", "Us" + "ers", "t" + "mp")) + r")/[\w<{$.~-]"
-    r"|\b[A-Za-z]:\\{1,2}[\w.-]"
-)
+_ROOT_FOLDERS = "|".join(("wo" + "rk", "ho" + "me", "ro" + "ot", "Us" + "ers", "t" + "mp"))
+MACHINE_PATH = re.compile(r"(?<![\w.~/$-])/(?:" + _ROOT_FOLDERS + r")/[\w<{$.~-]|\b[A-Za-z]:\\{1,2}[\w.-]")
 CITATION = re.compile(r"docs/references\.md#([A-Za-z0-9_-]+)")
 ENTRY_HEADING = re.compile(r"^### +([^\s]+) *$", re.MULTILINE)
 NAMES_A_SOURCE = re.compile(r"\b[Ss]ources?\b|\b[Rr]eferences?\b|\b(?:19|20)\d\d\b")
@@ -58,7 +56,7 @@ def read_text(rel: str) -> str | None:
 
 
 def outside_pointers(text: str) -> list[tuple[int, str]]:
-    """(line number, line) of every line holding a machine path or a pointer to a document outside the tree."""
+    """(line number, line) of each line holding a machine path or a pointer to a document outside the tree."""
     return [
         (i, line.strip())
         for i, line in enumerate(text.splitlines(), start=1)
@@ -73,7 +71,9 @@ def entry_keys(doc: str) -> list[str]:
 
 def missing_keys(texts: dict[str, str], keys: set[str]) -> list[str]:
     """'file: key' for every citation of a key that is not an entry."""
-    return [f"{rel}: {key}" for rel, text in texts.items() for key in CITATION.findall(text) if key not in keys]
+    return [
+        f"{rel}: {key}" for rel, text in texts.items() for key in CITATION.findall(text) if key not in keys
+    ]
 
 
 def uncited_test_modules(texts: dict[str, str]) -> list[str]:
@@ -81,7 +81,8 @@ def uncited_test_modules(texts: dict[str, str]) -> list[str]:
     bad = []
     for rel, text in texts.items():
         name = rel.rsplit("/", 1)[-1]
-        if not (rel.startswith("tests/") and name.startswith("test_") and name.endswith(".py")) or rel == THIS_FILE:
+        is_test_module = rel.startswith("tests/") and name.startswith("test_") and name.endswith(".py")
+        if not is_test_module or rel == THIS_FILE:
             continue
         doc = NO_SOURCE.sub("", ast.get_docstring(ast.parse(text)) or "")
         if NAMES_A_SOURCE.search(doc) and not CITATION.search(text):
@@ -108,7 +109,8 @@ def keys(texts: dict[str, str]) -> list[str]:
 def test_no_machine_path_and_no_pointer_outside_the_repository(texts):
     """No tracked file names a path of a machine or a document outside the repository."""
     found = [f"{rel}:{n}: {line}" for rel, text in texts.items() for n, line in outside_pointers(text)]
-    assert not found, "paths or documents outside the repository (cite docs/references.md#<key>):\n" + "\n".join(found)
+    message = "paths or documents outside the repository (cite docs/references.md#<key>):\n"
+    assert not found, message + "\n".join(found)
 
 
 def test_every_cited_key_is_an_entry(texts, keys):
@@ -143,12 +145,14 @@ def test_every_scenario_file_cites_its_sources(texts):
     """Each scenario file's header comment cites at least one entry for its defaults."""
     scenario_files = [rel for rel in texts if rel.startswith("scenarios/") and rel.endswith(".yaml")]
     assert len(scenario_files) >= 5
-    header = {rel: "".join(ln for ln in texts[rel].splitlines(True) if ln.startswith("#")) for rel in scenario_files}
+    header = {
+        rel: "".join(ln for ln in texts[rel].splitlines(True) if ln.startswith("#")) for rel in scenario_files
+    }
     bad = [rel for rel, h in header.items() if "Sources" in h and not CITATION.search(h)]
     assert not bad, bad
 
 
-# --- control cases: each rule catches text that breaks it ----------------------------------------------------------
+# --- control cases: each rule catches text that breaks it ------------------------------------------------
 
 
 @pytest.mark.parametrize(
