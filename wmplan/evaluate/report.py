@@ -80,7 +80,7 @@ def summarise_planner(rows: list[dict]) -> dict:
         "progress_m": prog, "progress_ci95": prog_ci,
         "rms_jerk_mps3": jerk, "rms_jerk_ci95": jerk_ci,
         "min_ttc_s_median": float(np.median(ttc)),
-        # 1.5 s: a conflict threshold of traffic-conflict studies, docs/references.md#van-der-horst-1990-ttc-threshold
+        # 1.5 s: a traffic-conflict threshold, docs/references.md#van-der-horst-1990-ttc-threshold
         "share_min_ttc_below_1_5s": float(np.mean(ttc < 1.5)),
         "decision_ms_median": float(np.median(dec)),
     }
