@@ -1,6 +1,7 @@
 """The allocator settings (``wmplan/_alloc.py``): importing the package leaves the allocator alone; the
 ``wmplan`` command applies them at its start on Linux with glibc, and the environment variable
-WMPLAN_MALLOC_TUNING=0 leaves the allocator alone there too (contract; ``man 3 mallopt``)."""
+WMPLAN_MALLOC_TUNING=0 leaves the allocator alone there too (contract; ``man 3 mallopt``,
+docs/references.md#lib-glibc-mallopt)."""
 
 from __future__ import annotations
 

@@ -1,6 +1,7 @@
 """The end-to-end demo in its quick mode (``wmplan demo --quick``; ``make demo`` runs the full one): every stage
 runs on a fresh folder and leaves a self-contained report with the closed-loop table of all five planners, the
-embedded figures and the cautions (contract of the notebooks issue; no external source)."""
+embedded figures and the cautions (contract of the notebooks issue; a smoke test,
+docs/references.md#practice-smoke-test)."""
 
 from __future__ import annotations
 

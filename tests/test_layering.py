@@ -1,4 +1,5 @@
-"""Data flows one way (STYLE.md section 2): the simulator and the scenario layer never import torch.
+"""Data flows one way (DEVELOPERS.md, "Layout and data flow"): the simulator and the scenario layer never import
+torch.
 
 Each check runs in a fresh interpreter (a subprocess), because the test process itself may already hold torch.
 The control case imports torch on purpose and must be seen, so the check itself is shown able to fail.

@@ -1,10 +1,13 @@
 """Equivalence tests: the batched engine (``wmplan.sim.engine.step``) against a plain per-vehicle Python loop.
 
-Source of the check: an equivalence test of vectorised code against a slow, obviously correct loop (STYLE.md
-section 9.2; common practice, no source). The loop, ``benchmarks/loop_reference.py``, is written from the
-published laws (IDM: Treiber, Hennecke, Helbing 2000 with the book form of s* from Treiber & Kesting 2013; MOBIL:
-Kesting, Treiber, Helbing 2007; kinematic bicycle: Rajamani 2012, section 2.2; separating axes: Ericson 2005,
-ch. 4; splitmix64: Steele, Lea, Flood 2014) and the engine's documented rules, with Python floats and ``math``.
+Source of the check: an equivalence test of vectorised code against a slow, obviously correct loop (common
+practice, no source: docs/references.md#practice-equivalence-test). The loop, ``benchmarks/loop_reference.py``, is
+written from the published laws (IDM: Treiber, Hennecke, Helbing 2000, docs/references.md#treiber-2000-idm, with the
+book form of s* from Treiber & Kesting 2013, docs/references.md#treiber-kesting-2013-book; MOBIL: Kesting, Treiber,
+Helbing 2007, docs/references.md#kesting-2007-mobil; kinematic bicycle: Rajamani 2012, section 2.2,
+docs/references.md#rajamani-2012-vehicle-dynamics; separating axes: Ericson 2005, ch. 4,
+docs/references.md#ericson-2005-collision-detection; splitmix64: Steele, Lea, Flood 2014,
+docs/references.md#steele-2014-splitmix) and the engine's documented rules, with Python floats and ``math``.
 It is also the baseline of the speed-up figure of ``benchmarks/sim_throughput.py``, which these tests make honest.
 
 Both run the same trajectory independently (each from its own previous state; the ego's actions are computed

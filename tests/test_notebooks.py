@@ -3,7 +3,8 @@
 The execution tests (marker ``notebooks``) run every notebook headless through nbclient, the way CI does, with
 ``WMPLAN_QUICK=1`` in the environment (the kernel inherits it) and a fresh temporary folder as the kernel's working
 directory, so the notebooks' outputs (``runs/notebooks/...``) land there and no notebook sees another's files.
-Executing notebooks headless as a smoke test is common practice, no source. Each test checks that no cell raised,
+Executing notebooks headless as a smoke test is common practice, no source (docs/references.md#practice-smoke-test,
+docs/references.md#lib-jupyter). Each test checks that no cell raised,
 that the notebook showed its figures and left its files, and prints the wall time (the quick mode aims at well under
 three minutes on two idle cores; speed is measured, not asserted, per DEVELOPERS.md). The notebooks seed everything
 they draw (``SEED`` in each config cell).

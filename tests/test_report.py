@@ -1,8 +1,9 @@
 """Tests of the run report (wmplan.report): what a run left on disk in, report.html and report.md out.
 
-Sources: REFERENCES §9.1 for the Wilson 95% intervals shown in the closed-loop table (3/200 -> [0.005114,
-0.043166], 0/200 -> [0, 0.018845], 7/50 -> [0.069508, 0.261862]); REFERENCES §9.3 for the calibration example
-(Brier 0.165, ECE 0.03 with two bins); the README's cautions; Python's html.parser (standard library) for the
+Sources: docs/references.md#wilson-1927 for the Wilson 95% intervals shown in the closed-loop table (3/200 ->
+[0.005114, 0.043166], 0/200 -> [0, 0.018845], 7/50 -> [0.069508, 0.261862], [D]); docs/references.md#brier-1950 and
+docs/references.md#naeini-2015-ece for the calibration example (Brier 0.165, ECE 0.03 with two bins, [D]); the
+README's cautions; Python's html.parser (standard library) for the
 structure of the HTML page; PIL for the PNG files. The run folders are written here by hand in the shapes the
 training, assessment and evaluation code write, plus a tiny simulated dataset (wmplan.data.simulate_dataset).
 """
@@ -132,18 +133,20 @@ class _Structure(HTMLParser):
 
 
 def test_full_report_shows_tables_figures_and_cautions(tmp_path):
-    """Every section present; the closed-loop numbers with Wilson intervals of REFERENCES §9.1; the assessment
-    numbers; the §9.3 calibration scores; figures embedded as base64 PNG (and the GIF); the README's cautions."""
+    """Every section present; the closed-loop numbers with Wilson intervals ([D], docs/references.md#wilson-1927); the
+    assessment numbers; the calibration scores ([D], docs/references.md#brier-1950,
+    docs/references.md#naeini-2015-ece); figures embedded as base64 PNG (and the GIF); the README's
+    cautions."""
     run = tmp_path / "run"
     _write_run(run)
     html_path, md_path = build_report(run)
     assert html_path == run / "report.html" and md_path == run / "report.md"
     page = html_path.read_text(encoding="utf-8")
-    for text in ("0.015 [0.005, 0.043]", "0.000 [0.000, 0.019]", "0.140 [0.070, 0.262]",  # §9.1: 3/200, 0/200, 7/50
+    for text in ("0.015 [0.005, 0.043]", "0.000 [0.000, 0.019]", "0.140 [0.070, 0.262]",  # Wilson: 3/200 0/200 7/50
                  "0.985 [0.957, 0.995]",  # success 197/200 (Wilson, computed by wmplan.evaluate.stats)
                  "26.8 [26.5, 27.2]", "41.2", "3.75",
                  "0.432", "0.988", "1.234", "0.891", "0.314", "0.022", "1.111",  # assessment, 3 decimals
-                 "0.1650", "0.0300"):  # §9.3 Brier and ECE
+                 "0.1650", "0.0300"):  # Brier and ECE of the calibration example
         assert text in page, text
     for _key, label, explanation in ASSESS_METRICS[:6]:
         assert label.replace("&", "&amp;") in page and explanation.replace("'", "&#x27;") in page

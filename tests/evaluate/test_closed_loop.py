@@ -2,14 +2,15 @@
 
 Sources:
 - Determinism (same seed, same episode; a different seed, a different one) and independence of the batching:
-  the contract of STYLE.md section 9 (common practice, no source).
+  common practice, no source (docs/references.md#practice-determinism).
 - Calibration labels: "the predicted probability of a collision within the horizon, beside what then happened"
   (the planning issue); the collision time is recomputed here with shapely's polygon intersection, a
-  general-purpose reference library, from the vehicles' footprints.
+  general-purpose reference library, from the vehicles' footprints (docs/references.md#lib-shapely).
 - Brier (1950) score and expected calibration error (Naeini et al. 2015; Guo et al. 2017), check values [D] of
-  REFERENCES.md section 9.3; Wilson (1927) interval [S] (section 9.1).
-- The CLI contract (exit status 2, one line on stderr, no traceback): STYLE.md section 8 and the CLI module
-  docstring (common practice, no source).
+  docs/references.md#brier-1950 and docs/references.md#naeini-2015-ece; Wilson (1927) interval
+  (docs/references.md#wilson-1927).
+- The CLI contract (exit status 2, one line on stderr, no traceback): DEVELOPERS.md, "Errors and files", and the
+  CLI module docstring (a contract of this project, no source).
 
 Planners used: ``rules``, ``mpc+constant-velocity`` and ``mpc+oracle`` (no trained model needed), on shortened
 scenarios with small budgets. Results on a simplified traffic model certify nothing about a real vehicle.
@@ -84,7 +85,8 @@ def opts(name: str) -> dict:
 
 @pytest.mark.parametrize("name", ["mpc+constant-velocity", "mpc+oracle"])
 def test_same_seed_gives_the_same_episodes(name):
-    """Two evaluations with the same seed give identical episode rows and calibration records (STYLE.md 9)."""
+    """Two evaluations with the same seed give identical episode rows and calibration records
+    (docs/references.md#practice-determinism)."""
     scn = short_scenario("onramp-merge", 4.0)
     runs = [evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3)
             for _ in range(2)]
@@ -97,7 +99,8 @@ def test_same_seed_gives_the_same_episodes(name):
 @pytest.mark.parametrize("name", ["mpc+constant-velocity", "mpc+oracle"])
 def test_a_different_seed_gives_different_episodes(name):
     """A different evaluation seed gives different scenes; the same scenes with a different planner seed give
-    different episodes too, so the planner's own random draws do reach the result (STYLE.md 9)."""
+    different episodes too, so the planner's own random draws do reach the result
+    (docs/references.md#practice-determinism)."""
     scn = short_scenario("onramp-merge", 4.0)
     base = evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3)
     other = evaluate_planner(scn, name, episodes=3, seed=4, options=opts(name), batch_size=3)
@@ -120,7 +123,8 @@ def test_rule_based_episodes_do_not_depend_on_the_batch_size():
 
 @pytest.mark.parametrize("name", ["mpc+constant-velocity", "mpc+oracle"])
 def test_planner_episodes_do_not_depend_on_the_batch_size(name):
-    """Same seed, batch size 2 vs 4: identical per-episode rows except the latency (STYLE.md 9)."""
+    """Same seed, batch size 2 vs 4: identical per-episode rows except the latency
+    (docs/references.md#practice-determinism)."""
     scn = short_scenario("onramp-merge", 4.0)
     big = evaluate_planner(scn, name, episodes=4, seed=5, options=opts(name), batch_size=4)
     small = evaluate_planner(scn, name, episodes=4, seed=5, options=opts(name), batch_size=2)
@@ -145,7 +149,8 @@ def _variants(duration_s: float) -> list[Scenario]:
 @pytest.mark.parametrize("name", ["rules", "mpc+constant-velocity"])
 def test_variants_sharing_batches_give_the_rows_of_separate_runs(name):
     """Episodes of four scenario variants run in shared batches (batch size 3, so batches straddle variants) give
-    exactly the rows each variant gives on its own (STYLE.md 9: results do not depend on the batching)."""
+    exactly the rows each variant gives on its own (results do not depend on the batching:
+    docs/references.md#practice-determinism)."""
     scenarios = _variants(4.0)
     seeds = [np.array([11]), np.array([12, 13, 14]), np.array([15, 16]), np.array([17])]
     shared = evaluate_variants(scenarios, seeds, name, seed=5, options=opts(name), batch_size=3)
@@ -254,7 +259,8 @@ def test_calibration_labels_mark_the_horizon_before_a_certain_collision():
 
 def test_calibration_summary_matches_the_statistics_module():
     """``report.calibration`` gives the Brier score, ECE and reliability bins of ``wmplan.evaluate.stats`` (empty
-    bins as None for JSON), and the worked examples of REFERENCES section 9.3 [D]."""
+    bins as None for JSON), and the worked examples of docs/references.md#brier-1950 and
+    docs/references.md#naeini-2015-ece [D]."""
     p = [0.1, 0.2, 0.2, 0.3, 0.4, 0.6, 0.7, 0.8, 0.9, 0.9]
     y = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
     two = calibration(p, y, num_bins=2)

@@ -1,8 +1,10 @@
 """Closed-loop episode rows (``wmplan.evaluate.rows``, ``wmplan.evaluate.closed_loop``): the planner registry,
 the one loop against a plain per-episode loop, and the outcome measures against hand-worked numbers.
 
-References: time-to-collision at constant speeds TTC = gap / (v_f - v_l) (Hayward 1972; REFERENCES.md section 5.1
-check values, [D]); constant-acceleration kinematics x = v0 t + a t^2 / 2 (common practice, no source).
+References: time-to-collision at constant speeds TTC = gap / (v_f - v_l) (Hayward 1972; check values [D] of
+docs/references.md#hayward-1972-ttc); constant-acceleration kinematics x = v0 t + a t^2 / 2 (common practice, no
+source: docs/references.md#practice-kinematics); the shared loop against a plain loop
+(docs/references.md#practice-equivalence-test).
 """
 
 from __future__ import annotations
@@ -70,7 +72,8 @@ def test_batched_rows_equal_one_episode_at_a_time(scenario: str) -> None:
 
 
 def test_ttc_and_clearance_match_hand_worked_values(scenario_variant_open) -> None:
-    """Leader 30 m ahead bumper to bumper at 15 m/s, ego at 25 m/s: TTC 3.0 s, clearance 30 m (REFERENCES 5.1).
+    """Leader 30 m ahead bumper to bumper at 15 m/s, ego at 25 m/s: TTC 3.0 s, clearance 30 m
+    (docs/references.md#hayward-1972-ttc).
     A vehicle alongside in the next lane: clearance = lane width - half widths = 3.6 - 1.85 = 1.75 m, no TTC."""
     params = SimParams.from_scenario(scenario_variant_open)
     st = empty_state(params, np.array([1, 2], dtype=np.uint64))
@@ -239,3 +242,19 @@ def test_stress_batching_benchmark_smoke(tmp_path) -> None:
     assert result["seconds"]["per_variant"] > 0 and result["seconds"]["shared"] > 0
     assert result["speedup"] == pytest.approx(result["seconds"]["per_variant"] / result["seconds"]["shared"])
     assert result["variants"] == 6 and result["quick"] is True
+
+
+def test_near_miss_column_from_its_inputs() -> None:
+    """A near miss: smallest TTC under 1.5 s (docs/references.md#van-der-horst-1990-ttc-threshold) or a brake
+    threat above 1 (wmplan.sim.threat), in an episode without a collision; hand-made cases, then the rows of a
+    real run agree with the definition applied to their own columns."""
+    from wmplan.evaluate.rows import NEAR_MISS_TTC_S, is_near_miss
+
+    assert NEAR_MISS_TTC_S == 1.5
+    ttc = np.array([1.49, 1.5, 3.0, 3.0, 0.5])
+    threat = np.array([0.2, 0.2, 1.01, 1.0, 2.0])
+    hit = np.array([False, False, False, False, True])
+    assert is_near_miss(ttc, threat, hit).tolist() == [True, False, True, False, False]
+    rows = run_episodes("cut-in", "rules", np.arange(12))
+    for r in rows:
+        assert r["near_miss"] == bool(is_near_miss(r["min_ttc_s"], r["max_brake_threat"], r["collision"]))

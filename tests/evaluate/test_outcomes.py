@@ -5,9 +5,11 @@ Sources:
 - The four ways an episode ends (goal, collision, off-road, time running out) and telling a stall before the merge
   from slow progress after it by the lane the ego ends in: common practice, no source.
 - The lane that holds a lateral position: the scenario file's lane width (3.6 m for onramp-merge, AASHTO metric
-  editions, from memory, as that file says), recomputed here from the recorded frames, lanes counted from y = 0.
-- Wilson (1927) score interval: ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")``, a general-purpose
-  reference library.
+  editions, from memory, as that file says: docs/references.md#aashto-green-book), recomputed here from the
+  recorded frames, lanes counted from y = 0.
+- Wilson (1927) score interval (docs/references.md#wilson-1927):
+  ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")``, a general-purpose reference library
+  (docs/references.md#lib-scipy).
 - Expected calibration error: ``wmplan.evaluate.stats`` (checked there against worked examples).
 
 Results on a simplified traffic model; they certify nothing about a real vehicle.

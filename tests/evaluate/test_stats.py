@@ -1,13 +1,16 @@
 """Reference tests of ``wmplan.evaluate.stats``: binomial intervals, t intervals, Brier score, reliability bins, ECE.
 
-Sources (tags of /work/shared/REFERENCES.md):
-- Wilson (1927) and Clopper & Pearson (1934): REFERENCES section 9.1; reference library
-  scipy.stats.binomtest(k, n).proportion_ci(method='wilson' / 'exact') [S]; the scipy docs example 7/50 ->
-  (0.05819170033997342, 0.26739600249700846) [S]; table values [D]; zero-event closed form 1 - (alpha/2)^(1/n) [D].
+Sources (the tags [S], [M], [D], [C] are explained at the top of docs/references.md):
+- Wilson (1927) and Clopper & Pearson (1934): docs/references.md#wilson-1927 and
+  docs/references.md#clopper-pearson-1934; reference library
+  scipy.stats.binomtest(k, n).proportion_ci(method='wilson' / 'exact') [S] (docs/references.md#lib-scipy); table
+  values [D]; zero-event closed form 1 - (alpha/2)^(1/n) [D]. The example of scipy's documentation,
+  binomtest(k=7, n=50, p=0.1).proportion_ci() -> (0.05819170033997342, 0.26739600249700846) [S], uses the default
+  method 'exact': it is a Clopper-Pearson interval, not a Wilson one.
 - Student t interval: reference library scipy.stats.ttest_1samp(...).confidence_interval; textbook formula
-  mean +- t s / sqrt(n) (common practice [C]).
+  mean +- t s / sqrt(n) (common practice [C], docs/references.md#practice-monte-carlo-tolerance).
 - Brier (1950) score and expected calibration error (Naeini et al. 2015; Guo et al. 2017): the worked examples of
-  REFERENCES section 9.3 [D] (citations from memory [M]).
+  docs/references.md#brier-1950 and docs/references.md#naeini-2015-ece [D] (citations from memory [M]).
 """
 
 from __future__ import annotations
@@ -23,7 +26,7 @@ from wmplan.errors import ConfigError
 from wmplan.evaluate import stats
 
 TABLE_ROWS = [
-    # k, n, Clopper-Pearson, Wilson  (REFERENCES section 9.1 [D], 6 decimals)
+    # k, n, Clopper-Pearson, Wilson [D]: docs/references.md#clopper-pearson-1934, docs/references.md#wilson-1927
     (3, 200, (0.003104, 0.043208), (0.005114, 0.043166)),
     (0, 200, (0.0, 0.018275), (0.0, 0.018845)),
     (7, 50, (0.058192, 0.267396), (0.069508, 0.261862)),
@@ -52,7 +55,8 @@ def test_intervals_against_scipy_and_table(k, n, exact, wilson):
 
 
 def test_clopper_pearson_scipy_docs_example():
-    """binomtest(k=7, n=50, p=0.1).proportion_ci() = (0.05819170033997342, 0.26739600249700846): scipy docs [S]."""
+    """binomtest(k=7, n=50, p=0.1).proportion_ci() = (0.05819170033997342, 0.26739600249700846): the example of
+    scipy's documentation [S], default method 'exact' (docs/references.md#clopper-pearson-1934)."""
     low, high = stats.clopper_pearson_interval(7, 50)
     assert low == pytest.approx(0.05819170033997342, rel=1e-12)
     assert high == pytest.approx(0.26739600249700846, rel=1e-12)
@@ -85,7 +89,8 @@ def test_intervals_vectorised_and_other_levels():
 
 
 def test_brier_examples():
-    """p = [0.9, 0.2, 0.7, 0.1], y = [1, 0, 0, 0] -> 0.1375; the ECE example's Brier -> 0.165 (REFERENCES 9.3 [D])."""
+    """p = [0.9, 0.2, 0.7, 0.1], y = [1, 0, 0, 0] -> 0.1375; the ECE example's Brier -> 0.165 ([D],
+    docs/references.md#brier-1950)."""
     assert stats.brier_score([0.9, 0.2, 0.7, 0.1], [1, 0, 0, 0]) == pytest.approx(0.1375, rel=1e-12)
     p = [0.1, 0.2, 0.2, 0.3, 0.4, 0.6, 0.7, 0.8, 0.9, 0.9]
     y = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
@@ -93,7 +98,8 @@ def test_brier_examples():
 
 
 def test_ece_and_reliability_bins_example():
-    """Bins [0, 0.5) and [0.5, 1]: mean p 0.24 vs frequency 0.20 and 0.78 vs 0.80 -> ECE 0.03 (REFERENCES 9.3 [D])."""
+    """Bins [0, 0.5) and [0.5, 1]: mean p 0.24 vs frequency 0.20 and 0.78 vs 0.80 -> ECE 0.03 ([D],
+    docs/references.md#naeini-2015-ece)."""
     p = [0.1, 0.2, 0.2, 0.3, 0.4, 0.6, 0.7, 0.8, 0.9, 0.9]
     y = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
     assert stats.expected_calibration_error(p, y, num_bins=2) == pytest.approx(0.03, abs=1e-12)
@@ -160,7 +166,8 @@ def test_mean_ci_by_hand_and_edge_cases():
 
 
 def test_errors_name_the_value():
-    """Bad input raises a one-line ConfigError naming the function, the value and the rule (STYLE.md section 8)."""
+    """Bad input raises a one-line ConfigError naming the function, the value and the rule (DEVELOPERS.md,
+    "Errors and files")."""
     with pytest.raises(
         ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n with n > 0, got k=5 n=4")
     ):

@@ -1,10 +1,11 @@
 """The assessment's JSON contract on tiny trained models.
 
 Contract: issue "Latent-variable forward model", item 5 (the keys and the JSON shape). The metric definitions are
-checked one by one against references in ``test_losses.py``; here the whole pipeline (held-out episodes, oracle
-futures from the same states under the same plans) runs on a tiny latent model, the least-squares baseline and
-constant velocity with small settings, and every number must be finite and within its range. Quality targets are
-not checked: these models are trained for 20 steps.
+checked one by one against references in ``test_losses.py`` (docs/references.md#practice-best-of-k,
+docs/references.md#szekely-rizzo-2013-energy-distance, docs/references.md#practice-gaussian-kl-nll); here the
+whole pipeline (held-out episodes, oracle futures from the same states under the same plans) runs on a tiny
+latent model, the least-squares baseline and constant velocity with small settings, and every number must be
+finite and within its range. Quality targets are not checked: these models are trained for 20 steps.
 """
 
 from __future__ import annotations

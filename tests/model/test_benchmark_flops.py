@@ -2,8 +2,9 @@
 
 ``benchmarks/model_throughput.py`` derives ``rollout_efficiency`` from the FLOPs of the rollout's matrix
 multiplies. Its count (every linear map applied: 2 x in x out x rows) is checked here against
-``torch.utils.flop_counter.FlopCounterMode`` (reference library; a matmul of (m, k) by (k, n) counts 2 m k n) and
-against the layer sizes worked out by hand from the model's configuration (derived, no source needed).
+``torch.utils.flop_counter.FlopCounterMode`` (reference library, docs/references.md#lib-torch; a matmul of
+(m, k) by (k, n) counts 2 m k n) and against the layer sizes worked out by hand from the model's configuration
+(derived, no source needed).
 """
 
 from __future__ import annotations

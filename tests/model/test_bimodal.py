@@ -1,10 +1,10 @@
 """Least squares on a two-mode future predicts the mean; the latent model keeps both modes.
 
 Source: Bishop, *Pattern Recognition and Machine Learning*, 2006, section 1.5.5 (the minimiser of the expected
-squared error is the conditional mean; REFERENCES.md 10.5 [M], check values [D]): with a future lateral offset of
-+3.5 m or -3.5 m with probability 1/2 each, the least-squares prediction is 0 m (the lane line, where no driver
-goes) with expected squared error 12.25 m^2, while a latent-variable model can put its samples on both modes
-(minimum-over-samples error near 0).
+squared error is the conditional mean; docs/references.md#bishop-2006-prml [M], check values [D]): with a
+future lateral offset of +3.5 m or -3.5 m with probability 1/2 each, the least-squares prediction is 0 m (the
+lane line, where no driver goes) with expected squared error 12.25 m^2, while a latent-variable model can put
+its samples on both modes (minimum-over-samples error near 0).
 
 The toy data are hand-built windows (the ``WindowBatch`` dict format): the ego and one vehicle ahead drive
 straight at 20 m/s; the vehicle's gap varies at random; over the next 3 decision steps it drifts sideways to
@@ -38,8 +38,8 @@ def toy_batch(num: int, generator: torch.Generator) -> dict[str, torch.Tensor]:
 
 def fit(deterministic: bool, seed: int) -> WorldModel:
     """Train a tiny model on fresh toy batches. The latent model uses the conditional ELBO with KL annealing over
-    the first third of the steps and 0.5 nats of free bits per latent dimension (Kingma et al. 2016); no
-    hybrid prior term."""
+    the first third of the steps and 0.5 nats of free bits per latent dimension
+    (docs/references.md#kingma-2016-free-bits); no hybrid prior term."""
     torch.set_num_threads(1)
     cfg = ModelConfig(history=HISTORY, horizon=HORIZON, num_objects=1, d_model=16, num_heads=2, hidden=32,
                       num_layers=1, latent_dim=2, deterministic=deterministic)
@@ -69,7 +69,7 @@ def models() -> dict[str, WorldModel]:
 def test_least_squares_predicts_the_mean(models):
     """The deterministic model's prediction at the horizon is near the mean 0 m (|pred| < 0.5 m; the modes are at
     +-3.5 m), and its squared error on fresh windows is near the least-squares optimum 12.25 m^2 (within 1.5 m^2;
-    REFERENCES.md 10.5 [D]), far below the 24.5 m^2 of confidently predicting one mode."""
+    docs/references.md#bishop-2006-prml [D]), far below the 24.5 m^2 of confidently predicting one mode."""
     batch = toy_batch(512, torch.Generator().manual_seed(100))
     pred = final_lateral(models["deterministic"], batch, 1, seed=7)[:, 0]
     assert float(pred.abs().max()) < 0.5
@@ -90,10 +90,10 @@ def test_latent_samples_cover_both_modes(models):
 
 
 def test_best_of_k_error_separates_the_models(models):
-    """minFDE over K = 6 futures (REFERENCES.md 10.4 definition): the latent model reaches near 0 (< 1 m) on
-    most windows, the deterministic one cannot beat the 3.5 m distance from the mean to either mode
-    (REFERENCES.md 10.5: "a K = 2 mixture or latent-variable model reaches minADE = 0 on this data; the
-    deterministic regressor cannot")."""
+    """minFDE over K = 6 futures (definition: docs/references.md#practice-best-of-k): the latent model reaches near 0
+    (< 1 m) on most windows, the deterministic one cannot beat the 3.5 m distance from the mean to either mode
+    (a model that samples can put a future on each mode; one that predicts the mean cannot: [D] from the data's
+    two modes, docs/references.md#bishop-2006-prml)."""
     batch = toy_batch(256, torch.Generator().manual_seed(102))
     true = batch["future"][..., :2]  # (B, H, N, 2)
     valid = torch.ones(true.shape[:3], dtype=torch.bool)

@@ -1,11 +1,11 @@
 """The forward model's ego motion (torch) against the simulator's kinematic bicycle (numpy).
 
 Source of the model: Rajamani, *Vehicle Dynamics and Control*, 2nd ed., 2012, section 2.2 (kinematic bicycle,
-centre-of-gravity reference; REFERENCES.md section 3 [S], section number [M]). The reference here is the project's
-own numpy original ``wmplan.sim.bicycle.bicycle_step``, itself checked against the REFERENCES.md section 3 values in
-``tests/sim/test_bicycle.py``, and the simulator's engine, which clips the actions and rate-limits the steering
-(``wmplan.sim.engine.step``): ``EgoKinematics.rollout`` must reproduce both, since the planner trusts the ego path
-it predicts.
+centre-of-gravity reference; docs/references.md#rajamani-2012-vehicle-dynamics, section number [M]). The
+reference here is the project's own numpy original ``wmplan.sim.bicycle.bicycle_step``, itself checked against the
+derived values of that entry in ``tests/sim/test_bicycle.py``, and the simulator's engine, which clips the
+actions and rate-limits the steering (``wmplan.sim.engine.step``): ``EgoKinematics.rollout`` must reproduce
+both, since the planner trusts the ego path it predicts.
 """
 
 from __future__ import annotations

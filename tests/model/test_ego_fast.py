@@ -6,9 +6,9 @@ for speed, heading and position). The reference here is the step-by-step loop it
 ``reference_paths.stepwise_rollout``: ``EgoKinematics.substep`` once per simulator step, the simulator's own step
 (``tests/model/test_ego.py`` checks the rollout against ``wmplan.sim.bicycle.bicycle_step`` and the engine).
 
-External references: the steady-turn check values of REFERENCES.md section 3 (derived there from the equations of
-Rajamani, *Vehicle Dynamics and Control*, 2nd ed., 2012, section 2.2 [M]); a worked stop-and-restart example
-computed by hand below (derived, no source needed).
+External references: the steady-turn check values of docs/references.md#rajamani-2012-vehicle-dynamics (derived
+there from the equations of Rajamani, *Vehicle Dynamics and Control*, 2nd ed., 2012, section 2.2 [M]); a
+worked stop-and-restart example computed by hand below (derived, no source needed).
 """
 
 from __future__ import annotations
@@ -110,10 +110,11 @@ def test_applied_steer_equals_the_stepwise_rate_limit(ego):
 @pytest.mark.parametrize(("steer_deg", "r_cg_m", "yaw_rate_radps"), [(5.0, 30.8907, 0.32372), (10.0, 15.3719, 0.65054)])
 def test_steady_turn_matches_the_tabled_radius_and_yaw_rate(steer_deg, r_cg_m, yaw_rate_radps):
     """L = 2.7 m, l_r = 1.35 m, 10 m/s, a held steering angle already applied (no rate limit): the heading grows at
-    the tabled yaw rate and the speed stays 10 m/s. REFERENCES.md section 3 check values [D] from the equations of
-    Rajamani 2012 section 2.2 [M]; tolerance half a unit of the last tabled decimal. The positions are the vertices
-    of a regular polygon (one explicit step per 0.1 s) whose circumradius is R_cg times the chord factor
-    (theta / 2) / sin(theta / 2), theta the heading change per step (elementary geometry): within 3e-4 of R_cg."""
+    the tabled yaw rate and the speed stays 10 m/s. Check values [D] of
+    docs/references.md#rajamani-2012-vehicle-dynamics from the equations of Rajamani 2012 section 2.2 [M];
+    tolerance half a unit of the last tabled decimal. The positions are the vertices of a regular polygon (one
+    explicit step per 0.1 s) whose circumradius is R_cg times the chord factor (theta / 2) / sin(theta / 2),
+    theta the heading change per step (elementary geometry): within 3e-4 of R_cg."""
     ego = TOY_EGO
     assert (ego.wheelbase_m, ego.l_r_m, ego.sim_dt_s) == (2.7, 1.35, 0.1)
     delta, v = math.radians(steer_deg), 10.0

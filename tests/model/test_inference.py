@@ -2,10 +2,11 @@
 
 ``WorldModel.sample`` runs on weights transposed, with input scales folded in and first layers split by part;
 ``test_model_sample_fast.py`` checks whole samples against the plain reference path. Here each piece is checked
-against the module it replaces, in float64 to 1e-9 (folding a scale into a weight only changes the rounding; the
-reference for the attention layers is the project's own ``encoder_layer``, itself checked against torch's
-``nn.TransformerEncoderLayer`` in ``test_model_sample_fast.py``), the decoder's groups of plans against one pass,
-and the cache of prepared weights against every way the weights can change.
+against the module it replaces (docs/references.md#practice-equivalence-test), in float64 to 1e-9 (folding a
+scale into a weight only changes the rounding; the reference for the attention layers is the project's own
+``encoder_layer``, itself checked against torch's ``nn.TransformerEncoderLayer`` in
+``test_model_sample_fast.py``), the decoder's groups of plans against one pass, and the cache of prepared
+weights against every way the weights can change.
 """
 
 from __future__ import annotations

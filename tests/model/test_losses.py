@@ -2,9 +2,10 @@
 negative log-likelihood of the training loss and of the assessment, best-of-K displacement errors and the energy
 distance.
 
-Reference values: REFERENCES.md section 10 (10.2 KL, 10.3 NLL, 10.4 trajectory metrics), each derived [D] there
-and cross-checked against torch. Reference libraries: ``torch.distributions`` (Normal, Independent,
-MixtureSameFamily, kl_divergence), ``torch.nn.GaussianNLLLoss`` and ``scipy.stats.energy_distance``.
+Reference values: the KL and NLL examples of docs/references.md#practice-gaussian-kl-nll and the trajectory metrics of
+docs/references.md#practice-best-of-k, each derived [D] there and cross-checked against torch. Reference libraries:
+``torch.distributions`` (Normal, Independent, MixtureSameFamily, kl_divergence), ``torch.nn.GaussianNLLLoss``
+(docs/references.md#lib-torch) and ``scipy.stats.energy_distance`` (docs/references.md#lib-scipy).
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ from tests.model.model_helpers import TOY_EGO, straight_batch
 from wmplan.model.assess import ade_fde, energy_distance, mixture_nll
 from wmplan.model.world_model import WorldModel, gaussian_kl
 
-# --- KL between diagonal Gaussians (REFERENCES.md 10.2) -------------------------------------------------------------
+# --- KL between diagonal Gaussians (docs/references.md#practice-gaussian-kl-nll) --------------------------------
 
 
 def _kl(mu_q, sigma_q, mu_p, sigma_p) -> torch.Tensor:
@@ -39,8 +40,9 @@ def _kl(mu_q, sigma_q, mu_p, sigma_p) -> torch.Tensor:
     ],
 )
 def test_gaussian_kl_check_values(q, p, expected_sum):
-    """The three tabled KL values of REFERENCES.md 10.2 ([D], 7 decimals) and the same pairs through
-    ``torch.distributions.kl_divergence`` of ``Independent(Normal, 1)`` (the reference library)."""
+    """The three tabled KL values of docs/references.md#practice-gaussian-kl-nll ([D], 7 decimals) and the
+    same pairs through ``torch.distributions.kl_divergence`` of ``Independent(Normal, 1)`` (the reference
+    library)."""
     kl = _kl(*q, *p)
     assert float(kl.sum()) == pytest.approx(expected_sum, abs=5e-7)
     ref = kl_divergence(Independent(Normal(torch.tensor(q[0]), torch.tensor(q[1])), 1),
@@ -49,8 +51,9 @@ def test_gaussian_kl_check_values(q, p, expected_sum):
 
 
 def test_gaussian_kl_per_dimension_and_vae_closed_form():
-    """Per-dimension values [0.125, 0.8181472] against N(0, I) (REFERENCES.md 10.2 [D]) and the VAE closed form
-    -1/2 sum(1 + log s^2 - m^2 - s^2) (Kingma & Welling 2014, Appendix B; REFERENCES.md 10.1 [M])."""
+    """Per-dimension values [0.125, 0.8181472] against N(0, I) ([D],
+    docs/references.md#practice-gaussian-kl-nll) and the VAE closed form -1/2 sum(1 + log s^2 - m^2 - s^2)
+    (Kingma & Welling 2014, Appendix B; docs/references.md#kingma-welling-2014-vae)."""
     kl = _kl([0.5, -1.0], [1.0, 0.5], [0.0, 0.0], [1.0, 1.0])
     assert kl.tolist() == pytest.approx([0.125, 0.8181472], abs=5e-7)
     mu, var = torch.tensor([0.5, -1.0], dtype=torch.float64), torch.tensor([1.0, 0.25], dtype=torch.float64)
@@ -72,14 +75,15 @@ def test_gaussian_kl_matches_torch_distributions_on_random_pairs():
     assert float(same.abs().max()) < 1e-6  # KL of a distribution with itself is zero
 
 
-# --- Gaussian negative log-likelihood (REFERENCES.md 10.3) -----------------------------------------------------------
+# --- Gaussian negative log-likelihood (docs/references.md#practice-gaussian-kl-nll) -----------------------------
 
-NLL_EXAMPLE = 1.7370857  # y = 1, mu = 0, sigma^2 = 4, full NLL (REFERENCES.md 10.3 [D])
+NLL_EXAMPLE = 1.7370857  # y = 1, mu = 0, sigma^2 = 4, full NLL ([D], docs/references.md#practice-gaussian-kl-nll)
 
 
 def test_reference_nll_example_in_torch():
-    """The 10.3 example through ``torch.nn.GaussianNLLLoss``: 1.7370857 with full=True, 0.8181472 without the
-    1/2 log 2 pi constant (REFERENCES.md 10.3 [D]; the loss takes the variance [S])."""
+    """The NLL example through ``torch.nn.GaussianNLLLoss``: 1.7370857 with full=True, 0.8181472 without the
+    1/2 log 2 pi constant ([D], docs/references.md#practice-gaussian-kl-nll; the loss takes the variance [S],
+    docs/references.md#lib-torch)."""
     y, mu, var = torch.tensor([1.0]), torch.tensor([0.0]), torch.tensor([4.0])
     assert float(torch.nn.GaussianNLLLoss(full=True)(mu, y, var)) == pytest.approx(NLL_EXAMPLE, abs=5e-7)
     assert float(torch.nn.GaussianNLLLoss()(mu, y, var)) == pytest.approx(0.8181472, abs=5e-7)
@@ -109,10 +113,10 @@ def _fixed_variance_example(hz: int) -> tuple[WorldModel, dict]:
 
 @pytest.mark.parametrize("prior_weight", [0.0, 0.5])
 def test_world_model_loss_nll_on_reference_example(prior_weight):
-    """The likelihood term of ``WorldModel.loss`` on the 10.3 example: the decoder's last layer is set to output a
+    """The likelihood term of ``WorldModel.loss`` on the NLL example: the decoder's last layer is set to output a
     zero residual mean and a variance of 4 m^2 for every step and coordinate, whatever z; the one other vehicle's
     true future is 1 m ahead of and 1 m to the left of its constant-velocity path at each of H steps. Then the
-    loss's per-object NLL must be 2 H x 1.7370857 (REFERENCES.md 10.3 [D]) and equal
+    loss's per-object NLL must be 2 H x 1.7370857 ([D], docs/references.md#practice-gaussian-kl-nll) and equal
     ``GaussianNLLLoss(full=True, reduction='sum')`` (reference library) on the decoder's outputs. With the hybrid
     prior term the prior-draw NLL is the same number (the decoder ignores z here)."""
     hz = 3
@@ -129,10 +133,11 @@ def test_world_model_loss_nll_on_reference_example(prior_weight):
 
 
 def test_beta_nll_weights_each_term_by_its_variance_without_differentiating_it():
-    """beta-NLL (Seitzer et al., ICLR 2022, eq. 5: each term times stop-gradient(sigma^(2 beta))) on the 10.3 example
+    """beta-NLL (Seitzer et al., ICLR 2022, eq. 5: each term times stop-gradient(sigma^(2 beta))) on the NLL example
     set-up above: variance 4 m^2 and a 1 m residual everywhere, beta = 0.5, so every term is weighted by 2 and the
-    fitted likelihood is 2 x 2 H x 1.7370857 (REFERENCES.md 10.3 [D]); the logged NLL stays the plain one. The
-    gradient on each raw log-variance output is the weight times d NLL / d log var = 2 x 1/2 (1 - 1/4) = 0.75
+    fitted likelihood is 2 x 2 H x 1.7370857 ([D], docs/references.md#seitzer-2022-beta-nll); the logged NLL stays
+    the plain one. The gradient on each raw log-variance output is the weight times
+    d NLL / d log var = 2 x 1/2 (1 - 1/4) = 0.75
     (derived); differentiating the weight too would add beta x 2 x 1.737 to it."""
     hz = 3
     model, batch = _fixed_variance_example(hz)
@@ -146,9 +151,9 @@ def test_beta_nll_weights_each_term_by_its_variance_without_differentiating_it()
 
 def test_mixture_nll_with_one_component_is_the_gaussian_nll():
     """``assess.mixture_nll`` with K = 1 equals ``GaussianNLLLoss(full=True, reduction='none')`` summed over the
-    two coordinates, on random means, log-variances and targets (seeded; reference library); and on the 10.3
-    example it is 2 x 1.7370857 (REFERENCES.md 10.3 [D]). Duplicating the component (K = 2, equal weights) leaves
-    it unchanged."""
+    two coordinates, on random means, log-variances and targets (seeded; reference library); and on the NLL
+    example it is 2 x 1.7370857 ([D], docs/references.md#practice-gaussian-kl-nll). Duplicating the component
+    (K = 2, equal weights) leaves it unchanged."""
     g = torch.Generator().manual_seed(77)
     b, n, hz = 5, 3, 4
     mean = torch.randn(b, 1, n, hz, 2, generator=g, dtype=torch.float64)
@@ -175,13 +180,14 @@ def test_mixture_nll_against_torch_mixture_same_family():
     torch.testing.assert_close(mixture_nll(mean, logvar, true), -mix.log_prob(true))
 
 
-# --- best-of-K displacement errors (REFERENCES.md 10.4) --------------------------------------------------------------
+# --- best-of-K displacement errors (docs/references.md#practice-best-of-k) ---------------------------------------
 
 
 def test_ade_fde_lane_change_example():
-    """REFERENCES.md 10.4 [D]: truth a left lane change x = 0..10 m, y = 0..3.5 m over 6 points; modes keep lane,
-    the change at 90 % amplitude, and a right change: ADE = [1.75, 0.175, 3.5], FDE = [3.5, 0.35, 7.0], so
-    minADE = 0.175 m and minFDE = 0.35 m. Shapes as ``ade_fde`` takes them: pred (B, K, H, N, 2)."""
+    """[D], docs/references.md#practice-best-of-k: truth a left lane change x = 0..10 m, y = 0..3.5 m over 6
+    points; modes keep lane, the change at 90 % amplitude, and a right change: ADE = [1.75, 0.175, 3.5],
+    FDE = [3.5, 0.35, 7.0], so minADE = 0.175 m and minFDE = 0.35 m. Shapes as ``ade_fde`` takes them:
+    pred (B, K, H, N, 2)."""
     x = torch.linspace(0.0, 10.0, 6, dtype=torch.float64)
     y = torch.linspace(0.0, 3.5, 6, dtype=torch.float64)
     true = torch.stack([x, y], -1)  # (H, 2)
@@ -207,8 +213,8 @@ def test_ade_fde_lane_change_example():
 @pytest.mark.parametrize("seed", [3, 4])
 def test_energy_distance_against_scipy(seed):
     """On 1-D samples, ``assess.energy_distance`` equals the square of ``scipy.stats.energy_distance`` (scipy
-    returns sqrt(2E|X-Y| - E|X-X'| - E|Y-Y'|), Szekely & Rizzo 2013; reference library), for sets of different
-    sizes; it is 0 for identical sets and > 0 for shifted ones."""
+    returns sqrt(2E|X-Y| - E|X-X'| - E|Y-Y'|), docs/references.md#szekely-rizzo-2013-energy-distance; reference
+    library), for sets of different sizes; it is 0 for identical sets and > 0 for shifted ones."""
     rng = np.random.default_rng(seed)
     u = rng.normal(0.0, 1.0, 40)
     v = rng.normal(0.7, 1.5, 25)

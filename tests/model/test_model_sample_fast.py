@@ -1,5 +1,9 @@
 """``WorldModel.sample`` against the slow reference path it replaced, and the benchmark's replay of it.
 
+An equivalence test (docs/references.md#practice-equivalence-test); the attention layers are also compared with
+torch's ``nn.TransformerEncoderLayer`` (docs/references.md#vaswani-2017-attention and
+docs/references.md#lib-torch).
+
 ``sample`` runs every piece at its own broadcast shape (the first layers of the prior and the decoder by parts,
 the ego path vectorised over time, the rows written column by column). The reference,
 ``reference_paths.reference_sample``, is the plain version built from the same modules: the prior and decoder on

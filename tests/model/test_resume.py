@@ -1,11 +1,12 @@
 """Resuming an interrupted training run continues from the last checkpoint and ends where an uninterrupted run
 ends.
 
-Contract (issue "Latent-variable forward model", item 3; common practice, no source): checkpoints every epoch,
-written atomically; an interrupted run (Ctrl-C or kill) resumes with ``resume=True`` and loses at most one epoch;
-same seed, same result. Here an uninterrupted 3-epoch run is the reference; the interrupted runs use the same
-configuration (the stored one is used on resume) on one thread, so their final weights and per-epoch history
-(wall-clock entries aside) must be identical to it, not merely close.
+Contract (issue "Latent-variable forward model", item 3; common practice, no source:
+docs/references.md#practice-determinism): checkpoints every epoch, written atomically; an interrupted run
+(Ctrl-C or kill) resumes with ``resume=True`` and loses at most one epoch; same seed, same result. Here an
+uninterrupted 3-epoch run is the reference; the interrupted runs use the same configuration (the stored one is
+used on resume) on one thread, so their final weights and per-epoch history (wall-clock entries aside) must be
+identical to it, not merely close.
 """
 
 from __future__ import annotations

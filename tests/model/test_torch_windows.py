@@ -1,8 +1,9 @@
 """The torch Dataset over stored windows works with torch's own DataLoader and gives what ``Windows.batch`` gives.
 
-Reference library: ``torch.utils.data`` (Dataset, DataLoader; a dataset's ``__getitems__`` is called with a whole
-list of indices by the DataLoader's fetcher when present, documented in torch's source [S]). The reference for the
-content is the numpy window builder ``wmplan.data.windows.Windows.batch``.
+Reference library: ``torch.utils.data`` (docs/references.md#lib-torch; Dataset, DataLoader; a dataset's
+``__getitems__`` is called with a whole list of indices by the DataLoader's fetcher when present, documented
+in torch's source [S]). The reference for the content is the numpy window builder
+``wmplan.data.windows.Windows.batch``.
 """
 
 from __future__ import annotations

@@ -2,9 +2,10 @@
 
 Sources: the checkpoint layout and messages are this project's contract (``wmplan/model/checkpoint.py`` module
 docstring); "weights in safetensors, never pickle" is the safetensors format's stated purpose (a JSON header and
-raw buffers; its documentation [S]); one-line errors naming the file are project rules. Determinism under a seed
-and the sample shapes are the documented API of ``train`` and ``WorldModel.sample``. The tiny runs (2 epochs x 10
-steps of 64 windows) check the machinery, not prediction quality.
+raw buffers; its documentation [S], docs/references.md#lib-safetensors); one-line errors naming the file are
+project rules. Determinism under a seed (docs/references.md#practice-determinism) and the sample shapes are the
+documented API of ``train`` and ``WorldModel.sample``. The tiny runs (2 epochs x 10 steps of 64 windows) check the
+machinery, not prediction quality.
 """
 
 from __future__ import annotations

@@ -1,14 +1,16 @@
 """Behavioural tests of the sampling planner (``wmplan.plan.mpc``) driving the ego in closed loop.
 
-Sources (tags of /work/shared/REFERENCES.md):
+Sources (the tags [S], [M], [D], [C] are explained at the top of docs/references.md):
 - Stopping sight distance: AASHTO, *A Policy on Geometric Design of Highways and Streets*, section 3.2.2 [M for
   the section], brake-reaction time 2.5 s and deceleration 3.4 m/s^2 [S], SSD = 0.278 V t + 0.039 V^2 / a with the
-  100 km/h design value 185 m [M] and the calculated 184.21 m [D] (REFERENCES section 4).
-- Emergency-manoeuvre deceleration 5 m/s^2 of UN Regulation 157 (ALKS), as quoted by Westhofen et al. 2023 [S]
-  (REFERENCES section 5.3): a stop needing more than that is an emergency stop, not "braking in time".
+  100 km/h design value 185 m [M] and the calculated 184.21 m [D] (docs/references.md#aashto-green-book).
+- A deceleration of 5 m/s^2 as the line between braking in time and an emergency stop: listed for the emergency
+  manoeuvre of UN Regulation No. 157 (ALKS) by the review of Westhofen et al. 2023; the regulation's text was not
+  checked, so the value is from memory [M], a parameter of these tests (docs/references.md#unece-r157-alks).
 - MPPI weights ``softmax(-S / lambda)``: Williams et al., "Information theoretic MPC for model-based reinforcement
-  learning", ICRA 2017 [S] (REFERENCES section 8.2); ``scipy.special.softmax`` is the reference library.
-- Wilson (1927) score interval [S] (REFERENCES section 9.1), checked against ``wmplan.evaluate.stats``, whose own
+  learning", ICRA 2017 (docs/references.md#williams-2017-it-mpc); ``scipy.special.softmax`` is the reference library
+  (docs/references.md#lib-scipy).
+- Wilson (1927) score interval (docs/references.md#wilson-1927), checked against ``wmplan.evaluate.stats``, whose own
   tests compare it with ``scipy.stats.binomtest(...).proportion_ci``.
 - That actions stay within the actuator limits and that a chance-constrained planner picks a feasible plan when
   one exists: properties of the method as stated in the planning issue (common practice, no source).
@@ -52,7 +54,7 @@ SPEED_100_KMH_MPS = 100.0 * KMH  # 27.78 m/s
 AASHTO_REACTION_S = 2.5  # [S]
 AASHTO_DECEL_MPS2 = 3.4  # [S]
 AASHTO_SSD_100_DESIGN_M = 185.0  # [M] design column; the calculated value is 184.21 m [D]
-R157_EMERGENCY_DECEL_MPS2 = 5.0  # [S] via the review quoted in REFERENCES section 5.3
+R157_EMERGENCY_DECEL_MPS2 = 5.0  # [M], via a review; docs/references.md#unece-r157-alks
 
 
 # --- helpers --------------------------------------------------------------------------------------------------
@@ -146,7 +148,8 @@ def test_aashto_placement_is_beyond_the_stopping_sight_distance():
     """The stopped vehicle (bumper gap 195.3 m) sits beyond the SSD at 100 km/h and stays in the simulation.
 
     AASHTO metric SSD = 0.278 V t + 0.039 V^2 / a = 184.21 m at V = 100 km/h, t = 2.5 s, a = 3.4 m/s^2 [D]; the
-    design value is 185 m [M]; exact kinematics v t + v^2 / (2 a) = 182.92 m [D] (REFERENCES section 4).
+    design value is 185 m [M]; exact kinematics v t + v^2 / (2 a) = 182.92 m [D]
+    (docs/references.md#aashto-green-book).
     """
     v_kmh = 100.0
     ssd_m = 0.278 * v_kmh * AASHTO_REACTION_S + 0.039 * v_kmh**2 / AASHTO_DECEL_MPS2
@@ -186,7 +189,8 @@ def _gap_to_stopped_vehicle(params: SimParams, rows: np.ndarray) -> np.ndarray:
 
 @pytest.mark.parametrize("seeds", [[0, 1, 2]])
 def test_oracle_planner_stops_or_changes_lane_for_a_stopped_vehicle(seeds):
-    """Three lanes, a vehicle stopped in the ego's lane beyond the AASHTO SSD at 100 km/h (REFERENCES section 4).
+    """Three lanes, a vehicle stopped in the ego's lane beyond the AASHTO SSD at 100 km/h
+    (docs/references.md#aashto-green-book).
 
     With the oracle predictor the planner must get past it without a collision: either it stops behind it or it
     changes lane. Budget 32 candidates x 2 futures: with no random events in this scene the oracle's futures of
@@ -220,21 +224,21 @@ def _braking_onset(params: SimParams, frames: np.ndarray, s: int) -> tuple[int, 
 def test_oracle_planner_brakes_in_time_on_a_single_lane(seeds):
     """One lane (no way round): the ego stops behind a vehicle stopped beyond the AASHTO SSD with a positive gap.
 
-    Sources: placement beyond the 185 m design SSD at 100 km/h [M]/[D] (REFERENCES section 4). The planner looks
-    3 s ahead (15 steps x 0.2 s, about 85 m at 100 km/h) and penalises time headways below 1.2 s at every step
-    of that horizon (the headway term, Vogel 2003 [S]), so braking can start once the stopped vehicle is within
-    about v (3 s + 1.2 s) = 117 m; it is in the object list from the first decision (200 m away), because the
-    object list has no range limit. Measured with this budget (seeds 0-2) and at the default budget (seed 7):
-    braking starts at a bumper gap of 105-111 m at 28.0-28.8 m/s (the planner first speeds up a little, for
-    progress), the mean deceleration to the stop is 3.8-4.0 m/s^2 with peaks of 4.9-5.3 m/s^2, and the ego comes
-    to rest 2.1-2.3 m behind the vehicle. An AASHTO driver at 3.4 m/s^2 brakes over 113 m (after 2.5 s of
-    reaction): the planner brakes a little later and a little harder.
+    Sources: placement beyond the 185 m design SSD at 100 km/h [M]/[D] (docs/references.md#aashto-green-book).
+    The planner looks 3 s ahead (15 steps x 0.2 s, about 85 m at 100 km/h) and penalises time headways below
+    1.2 s at every step of that horizon (the headway term, docs/references.md#vogel-2003-headway), so braking can
+    start once the stopped vehicle is within about v (3 s + 1.2 s) = 117 m; it is in the object list from the
+    first decision (200 m away), because the object list has no range limit. Measured with this budget (seeds
+    0-2) and at the default budget (seed 7): braking starts at a bumper gap of 105-111 m at 28.0-28.8 m/s (the
+    planner first speeds up a little, for progress), the mean deceleration to the stop is 3.8-4.0 m/s^2 with
+    peaks of 4.9-5.3 m/s^2, and the ego comes to rest 2.1-2.3 m behind the vehicle. An AASHTO driver at
+    3.4 m/s^2 brakes over 113 m (after 2.5 s of reaction): the planner brakes a little later and a little harder.
 
     Asserted: no collision; the ego comes to rest with a positive gap; braking starts (a) early enough that the
     mean deceleration needed to stop, v^2 / (2 (gap at onset - final gap)), stays below the 5 m/s^2
-    emergency-manoeuvre value of UN R157 [S] and (b) not before the stopped vehicle is within the planner's
-    look-ahead plus one decision of travel (a check that the onset found here is the planner reacting to what its
-    horizon shows, not something else).
+    emergency-stop line attributed to UN R157 ([M], docs/references.md#unece-r157-alks) and (b) not before the
+    stopped vehicle is within the planner's look-ahead plus one decision of travel (a check that the onset
+    found here is the planner reacting to what its horizon shows, not something else).
     """
     cfg = PlannerConfig(num_candidates=32, num_futures=2)
     params, out, frames = _run_stopped_vehicle(1, seeds, cfg)
@@ -367,10 +371,10 @@ def test_actions_and_candidates_stay_within_the_limits(sampler, risk_mode, monke
 @pytest.mark.parametrize("mppi_lambda", [0.3, 1.0])
 def test_mppi_update_uses_softmax_of_minus_cost_over_lambda(mppi_lambda):
     """The MPPI planner's new mean acceleration is sum_k w_k u_k with w = softmax(-S / lambda) (Williams et al.
-    2017 [S], REFERENCES section 8.2), recomputed here in float64 with scipy.special.softmax from the candidates and
-    costs the planner returns; the mean, shifted by one step, is the warm start of the next decision, and the
-    action applied is the first step of the candidate of largest weight (= lowest cost), a plan whose risk was
-    scored."""
+    2017, docs/references.md#williams-2017-it-mpc), recomputed here in float64 with scipy.special.softmax from
+    the candidates and costs the planner returns; the mean, shifted by one step, is the warm start of the next
+    decision, and the action applied is the first step of the candidate of largest weight (= lowest cost), a
+    plan whose risk was scored."""
     params = SimParams.from_scenario(load_scenario("onramp-merge"))
     cfg = PlannerConfig(sampler="mppi", mppi_lambda=mppi_lambda)
     planner = untrained_latent_planner(params, cfg, seed=3)
@@ -396,7 +400,7 @@ def test_mppi_update_uses_softmax_of_minus_cost_over_lambda(mppi_lambda):
 def test_chance_constraint_picks_a_feasible_plan_when_one_exists(sampler, use_upper_bound, epsilon):
     """With ``risk_mode='chance'`` the chosen candidate satisfies P(collision) <= epsilon (or its Wilson upper
     bound does) whenever any candidate does, and otherwise has the smallest bound; the reported Wilson interval is
-    the one of ``wmplan.evaluate.stats.wilson_interval`` for k of K futures (Wilson 1927 [S]).
+    the one of ``wmplan.evaluate.stats.wilson_interval`` for k of K futures (docs/references.md#wilson-1927).
 
     The predictor is an untrained forward model (seeded random weights): its futures give collision
     probabilities spread over 0..1, so most decisions mix feasible and infeasible candidates. With K = 8 the

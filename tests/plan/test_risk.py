@@ -1,14 +1,17 @@
 """Reference tests of ``wmplan.plan.risk``: collision probability, Wilson interval, CVaR, TTC, DRAC, box clearance.
 
-Sources (tags of /work/shared/REFERENCES.md):
-- Wilson (1927) score interval: REFERENCES section 9.1; reference library scipy.stats.binomtest(...).proportion_ci
-  (method='wilson') [S]; table values [D].
-- CVaR: Rockafellar & Uryasev, J. Risk 2(3) (2000) 21-41, Theorem 1 [S]; worked example of REFERENCES section 9.2
-  [D]; the minimisation formula evaluated with scipy.optimize.minimize_scalar as the reference.
-- TTC: Hayward (1972) [S], checks of REFERENCES section 5.1 [D]; DRAC: REFERENCES section 5.3, form [S], checks [D].
-- Oriented boxes: REFERENCES section 11 table [D] and shapely (reference library) for distances and intersection;
-  penetration depth as the distance from the origin to the boundary of the Minkowski difference A - B (the
-  convex hull of all corner differences; standard computational geometry behind GJK/EPA, from memory [M]).
+Sources (the tags [S], [M], [D], [C] are explained at the top of docs/references.md):
+- Wilson (1927) score interval: docs/references.md#wilson-1927; reference library
+  scipy.stats.binomtest(...).proportion_ci(method='wilson') [S] (docs/references.md#lib-scipy); table values [D].
+- CVaR: Rockafellar & Uryasev, J. Risk 2(3) (2000) 21-41, Theorem 1 [S]; worked example [D] of
+  docs/references.md#rockafellar-uryasev-2000-cvar; the minimisation formula evaluated with
+  scipy.optimize.minimize_scalar as the reference.
+- TTC: Hayward (1972), checks [D] of docs/references.md#hayward-1972-ttc; DRAC: the constant-deceleration form
+  (docs/references.md#cooper-ferguson-1976-drac, docs/references.md#practice-kinematics), checks [D].
+- Oriented boxes: the table [D] of docs/references.md#gottschalk-1996-obbtree and shapely (reference library,
+  docs/references.md#lib-shapely) for distances and intersection; penetration depth as the distance from the origin to
+  the boundary of the Minkowski difference A - B (the convex hull of all corner differences; standard
+  computational geometry, from memory [M]: docs/references.md#ericson-2005-collision-detection).
 """
 
 from __future__ import annotations
@@ -109,7 +112,8 @@ def test_collision_probability_counts_futures():
     ],
 )
 def test_wilson_interval_against_scipy(k, n, table):
-    """Wilson interval = scipy binomtest(k, n).proportion_ci(method='wilson') [S] and the section 9.1 table [D]."""
+    """Wilson interval = scipy binomtest(k, n).proportion_ci(method='wilson') [S] and the table [D] of
+    docs/references.md#wilson-1927."""
     low, high = R.wilson_interval(torch.tensor(k), torch.tensor(n))
     ref = scipy.stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
     assert low.item() == pytest.approx(ref.low, rel=1e-6, abs=1e-9)
@@ -137,8 +141,9 @@ def test_wilson_interval_batched_and_one_sided():
     ("alpha", "expected", "var"), [(0.8, 7.5, 1.0), (0.85, 25 / 3, 5.0), (0.9, 10.0, 5.0), (0.95, 10.0, 10.0)]
 )
 def test_cvar_worked_example(alpha, expected, var):
-    """Ten equally likely losses [0,0,0,0,0,0,0,1,5,10]: REFERENCES section 9.2 table [D], with the split atom at
-    alpha = 0.85 (8.3333, not 7.5); VaR is the left end of the minimising interval."""
+    """Ten equally likely losses [0,0,0,0,0,0,0,1,5,10]: table [D] of
+    docs/references.md#rockafellar-uryasev-2000-cvar, with the split atom at alpha = 0.85 (8.3333, not 7.5);
+    VaR is the left end of the minimising interval."""
     losses = torch.tensor([0, 0, 0, 0, 0, 0, 0, 1, 5, 10.0])
     assert R.cvar(losses, alpha).item() == pytest.approx(expected, rel=1e-6)
     assert R.value_at_risk(losses, alpha).item() == var
@@ -188,7 +193,8 @@ def test_cvar_batched_limits_and_infinity():
 
 
 def test_time_to_collision_reference_checks():
-    """Gap 30 m, 25 vs 15 m/s -> 3.0 s; gap 20 m, 30 vs 20 m/s -> 2.0 s; not closing -> inf (REFERENCES 5.1 [D])."""
+    """Gap 30 m, 25 vs 15 m/s -> 3.0 s; gap 20 m, 30 vs 20 m/s -> 2.0 s; not closing -> inf ([D],
+    docs/references.md#hayward-1972-ttc)."""
     ttc = R.time_to_collision(
         torch.tensor([30.0, 20.0, 30.0, 30.0]), torch.tensor([25 - 15, 30 - 20, 0.0, -5.0])
     )
@@ -210,8 +216,9 @@ def one_step(rows: list[list[float]]) -> torch.Tensor:
 
 
 def test_ttc_to_leader_picks_the_in_path_leader():
-    """Ego 25 m/s, leader 30 m ahead (bumper to bumper) at 15 m/s -> 3.0 s (REFERENCES 5.1 [D]); a slower car in the
-    next lane (3.6 m over), a car behind and an invalid row are ignored; the nearer of two leaders counts."""
+    """Ego 25 m/s, leader 30 m ahead (bumper to bumper) at 15 m/s -> 3.0 s ([D],
+    docs/references.md#hayward-1972-ttc); a slower car in the next lane (3.6 m over), a car behind and an invalid
+    row are ignored; the nearer of two leaders counts."""
     ego = vehicle_row(0.0, 0.0, vx=25.0)
     leader = vehicle_row(30.0 + 4.5, 0.3, vx=15.0)  # centre gap = bumper gap + half lengths (4.5 / 2 * 2)
     far_leader = vehicle_row(60.0, 0.0, vx=0.0)
@@ -268,7 +275,8 @@ def slow_leader_ttc(scene: np.ndarray, margin: float) -> float:
 
 @pytest.mark.parametrize("seed", [0, 1])
 def test_ttc_matches_per_vehicle_loop(seed):
-    """Vectorised in-path leader TTC equals a plain loop over vehicles (equivalence test, STYLE.md 9.2)."""
+    """Vectorised in-path leader TTC equals a plain loop over vehicles
+    (docs/references.md#practice-equivalence-test)."""
     futures = random_futures(seed, (3, 4, 5), 6)  # (C, K, H, V, 8)
     got = R.ttc_to_leader_s(futures, lateral_margin_m=0.3).numpy()
     flat = futures.reshape(-1, 6, 8).numpy()
@@ -285,7 +293,8 @@ def test_ttc_matches_per_vehicle_loop(seed):
     [((5.0, 2.5, 30.0), 0.9316), ((0.0, 3.6, 0.0), 1.8), ((4.4, 0.0, 90.0), 1.25), ((4.5, 0.0, 0.0), 0.0)],
 )
 def test_box_distance_reference_table(b, distance):
-    """A = 4.5 x 1.8 m car at the origin: distances of REFERENCES section 11 [D] (shapely), touching -> 0."""
+    """A = 4.5 x 1.8 m car at the origin: distances [D] of docs/references.md#gottschalk-1996-obbtree (shapely),
+    touching -> 0."""
     box_b = torch.tensor([b[0], b[1], math.radians(b[2]), 4.5, 1.8], dtype=torch.float64)
     got = R.box_signed_distance_m(torch.tensor([0.0, 0.0, 0.0, 4.5, 1.8], dtype=torch.float64), box_b).item()
     assert got == pytest.approx(distance, abs=5e-5)
@@ -458,7 +467,8 @@ def test_near_contacts_from_behind_are_told_apart():
 
 
 def test_errors_name_the_argument():
-    """Bad input raises a one-line ConfigError naming the argument, the value and the rule (STYLE.md section 8)."""
+    """Bad input raises a one-line ConfigError naming the argument, the value and the rule (DEVELOPERS.md,
+    "Errors and files")."""
     with pytest.raises(ConfigError, match=re.escape("futures has shape (3, 2, 5); expected (B*, H, V, 8)")):
         R.clearance_m(torch.zeros(3, 2, 5))
     with pytest.raises(ConfigError, match=re.escape("alpha (CVaR/VaR level) must lie in [0, 1), got 1.0")):

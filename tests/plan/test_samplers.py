@@ -1,18 +1,18 @@
 """Reference tests of ``wmplan.plan.samplers``: smooth sampling, the cross-entropy method and MPPI.
 
-Sources (tags of /work/shared/REFERENCES.md):
-- CEM: Rubinstein 1999 [M]; De Boer, Kroese, Mannor, Rubinstein, "A tutorial on the cross-entropy method",
-  Ann. Oper. Res. 134 (2005) [S]; large-sample elite statistics and the (x - 3)^2 convergence setting are the
-  derived [D] values of REFERENCES section 8.1.
+Sources (the tags [S], [M], [D], [C] are explained at the top of docs/references.md):
+- CEM: Rubinstein 1999 [M] (docs/references.md#rubinstein-1999-cem); De Boer, Kroese, Mannor, Rubinstein, "A
+  tutorial on the cross-entropy method", Ann. Oper. Res. 134 (2005) [S]; large-sample elite statistics and the
+  (x - 3)^2 convergence setting are the derived [D] values of docs/references.md#de-boer-2005-cem-tutorial.
 - MPPI: Williams et al., "Information theoretic MPC for model-based reinforcement learning", ICRA 2017 [S]; the
-  weight check values and the Gaussian closed form are [D] values of REFERENCES section 8.2; torch.softmax is the
-  reference library for the weights.
+  weight check values and the Gaussian closed form are [D] values of docs/references.md#williams-2017-it-mpc;
+  torch.softmax is the reference library for the weights (docs/references.md#lib-torch).
 - AR(1) noise: stationary variance sigma_n^2 / (1 - s^2) and autocorrelation s^k (Box & Jenkins, *Time Series
-  Analysis*, from memory [M]; also derived here from the recursion [D]).
+  Analysis*, from memory [M]: docs/references.md#box-jenkins-time-series; also derived here from the recursion [D]).
 - Effective sample size 1 / sum w^2 (Kish's formula): common practice [C].
 
-Monte-Carlo checks use a tolerance of 5 standard errors computed from the samples (REFERENCES, "Suggested
-tolerances"), and each also asserts that the tolerance is small enough for the check to be able to fail.
+Monte-Carlo checks use a tolerance of 5 standard errors computed from the samples, and each also asserts that the
+tolerance is small enough for the check to be able to fail (docs/references.md#practice-monte-carlo-tolerance).
 """
 
 from __future__ import annotations
@@ -84,7 +84,7 @@ def test_ar1_filter_gives_ar1_correlation(smoothing):
     """L L^T equals the AR(1) correlation matrix s^|i-j| (unit variance at every step).
 
     Source: the AR(1) recursion e_t = s e_{t-1} + sqrt(1 - s^2) n_t with e_0 = n_0 [D], textbook stationary
-    variance and autocorrelation s^k (Box & Jenkins, from memory [M]).
+    variance and autocorrelation s^k (Box & Jenkins, from memory [M], docs/references.md#box-jenkins-time-series).
     """
     horizon = 7
     filt = S.ar1_filter_matrix(horizon, smoothing).double()
@@ -141,7 +141,8 @@ def test_shift_warm_start_by_hand():
 def test_cem_update_by_hand():
     """Elites = lowest costs; mean and MLE std of the elites; smoothing and the std floor (hand computation).
 
-    Source: De Boer et al. 2005 tutorial [S] (update and smoothing rule as in REFERENCES section 8.1).
+    Source: De Boer et al. 2005 tutorial [S] (update and smoothing rule:
+    docs/references.md#de-boer-2005-cem-tutorial).
     """
     samples = torch.tensor([[[0.0]], [[1.0]], [[2.0]], [[10.0]]])  # (C=4, H=1, A=1)
     costs = torch.tensor([3.0, 1.0, 0.5, 7.0])
@@ -165,7 +166,7 @@ def test_cem_update_nan_cost_is_never_an_elite():
 
 
 def test_cem_update_batched_equals_loop():
-    """The batched update equals a plain loop over the batch (equivalence test, STYLE.md section 9.2)."""
+    """The batched update equals a plain loop over the batch (docs/references.md#practice-equivalence-test)."""
     g = gen(3)
     samples = torch.randn(4, 30, 6, 2, generator=g)
     costs = torch.randn(4, 30, generator=g)
@@ -184,7 +185,7 @@ def test_cem_update_batched_equals_loop():
 def test_cem_converges_on_1d_quadratic(seed):
     """(x - 3)^2 from mu0 = 0, sigma0 = 10, N = 200, 20 elites, 30 iterations, no smoothing: |mu - 3| < 1e-3.
 
-    Source: REFERENCES section 8.1 [D] (20 of 20 seeds reached |mu - 3| < 1e-4 there).
+    Source: the convergence check [D] of docs/references.md#de-boer-2005-cem-tutorial.
     """
     mean = cem_loop(quadratic_cost(3.0), torch.zeros(1, 1), 10.0, num=200, elites=20, iterations=30,
                     generator=gen(seed))
@@ -194,8 +195,8 @@ def test_cem_converges_on_1d_quadratic(seed):
 def test_cem_update_iterated_batched_and_bounded():
     """Batched CEM on a 2-D action sequence with bounds: each batch entry converges to its own optimum, clipped.
 
-    Source: the convergence property of REFERENCES section 8.1 [D]; a target outside the box has its optimum at the
-    bound (convexity of the quadratic, [C]).
+    Source: the convergence check [D] of docs/references.md#de-boer-2005-cem-tutorial; a target outside the
+    box has its optimum at the bound (convexity of the quadratic, [C]).
     """
     target = torch.tensor([[[1.0, -0.2]], [[5.0, 0.3]]])  # (B=2, H=1, A=2); the 5.0 lies beyond high
     mean = cem_loop(lambda x: ((x - target[:, None]) ** 2).sum(dim=(-2, -1)), torch.zeros(2, 4, 2),
@@ -225,7 +226,8 @@ def _assert_mc_close(values: np.ndarray, expected: float, max_rel_tol: float) ->
 def test_cem_elite_std_ratio_at_bowl_minimiser(rho, table_value):
     """Sampling N(0, sigma^2) at the minimiser of x^2: elite std / sigma -> sqrt(1 - 2 z phi(z) / (2 Phi(z) - 1)).
 
-    z = Phi^-1(1/2 + rho/2); 0.07247 at rho = 0.1 and 0.14564 at rho = 0.2 (REFERENCES section 8.1 [D]).
+    z = Phi^-1(1/2 + rho/2); 0.07247 at rho = 0.1 and 0.14564 at rho = 0.2 ([D],
+    docs/references.md#de-boer-2005-cem-tutorial).
     20 independent batches of 100,000 samples in one batched call; tolerance 5 standard errors of the batch mean.
     """
     z = scipy.stats.norm.ppf(0.5 + rho / 2)
@@ -239,7 +241,8 @@ def test_cem_elite_shift_for_monotone_cost():
     """Cost monotone in x (optimum far away): elite mean shift sigma phi(z) / rho and elite std ratio
     sqrt(1 + z phi(z)/rho - (phi(z)/rho)^2), z = Phi^-1(1 - rho): 1.75498 and 0.41126 at rho = 0.1.
 
-    Source: REFERENCES section 8.1 [D] (moments of the truncated normal); 20 batches of 100,000, 5 SE.
+    Source: docs/references.md#de-boer-2005-cem-tutorial [D] (moments of the truncated normal); 20 batches of
+    100,000, 5 SE.
     """
     rho = 0.1
     z = scipy.stats.norm.ppf(1 - rho)
@@ -264,7 +267,8 @@ def test_cem_elite_shift_for_monotone_cost():
     ],
 )
 def test_mppi_weights_check_values(lam, expected):
-    """S = [1, 2, 3]: REFERENCES section 8.2 [D] values, and equality with torch.softmax(-S / lambda)."""
+    """S = [1, 2, 3]: [D] values of docs/references.md#williams-2017-it-mpc, and equality with
+    torch.softmax(-S / lambda)."""
     costs = torch.tensor([1.0, 2.0, 3.0])
     w = S.mppi_weights(costs, lam)
     np.testing.assert_allclose(w.numpy(), expected, rtol=1e-5)
@@ -314,7 +318,8 @@ def _mppi_mean_and_se(
 def test_mppi_mean_gaussian_closed_form(mu, sigma, c, lam, seed):
     """u ~ N(mu, sigma^2), S(u) = (u - c)^2: the MPPI mean -> (mu lambda/2 + c sigma^2) / (sigma^2 + lambda/2).
 
-    1.5 for mu = 0, sigma = 1, c = 3, lambda = 2 (REFERENCES section 8.2 [D]); 200,000 samples, 5 standard errors.
+    1.5 for mu = 0, sigma = 1, c = 3, lambda = 2 ([D], docs/references.md#williams-2017-it-mpc); 200,000 samples,
+    5 standard errors.
     """
     expected = (mu * lam / 2 + c * sigma**2) / (sigma**2 + lam / 2)
     if (mu, sigma, c, lam) == (0.0, 1.0, 3.0, 2.0):
@@ -357,7 +362,8 @@ def test_mppi_update_is_weighted_average_and_batched():
 
 
 def test_errors_name_the_argument():
-    """Bad input raises a one-line ConfigError naming the argument, the value and the rule (STYLE.md section 8)."""
+    """Bad input raises a one-line ConfigError naming the argument, the value and the rule (DEVELOPERS.md,
+    "Errors and files")."""
     with pytest.raises(ConfigError, match=re.escape("num_elites must be <= 4, got 5")):
         S.cem_update(torch.zeros(4, 1, 1), torch.zeros(4), 5, torch.zeros(1, 1), torch.ones(1, 1))
     with pytest.raises(

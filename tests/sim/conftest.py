@@ -35,8 +35,9 @@ from wmplan.sim.state import EGO, TrafficState
 @dataclass(frozen=True)
 class HighwaySet:
     """IDM highway set, Treiber & Kesting, *Traffic Flow Dynamics* (2013), Table 11.2: values from memory [M]
-    (REFERENCES.md section 1.2); MOBIL defaults p 0.2, threshold 0.2 m/s^2, b_safe 4 m/s^2 (Kesting, Treiber,
-    Helbing 2007 and the authors' notes, [S]/[C] in section 2)."""
+    (docs/references.md#treiber-kesting-2013-book); MOBIL defaults p 0.2 (within the paper's range), b_safe 4 m/s^2
+    (Kesting, Treiber, Helbing 2007) and threshold 0.2 m/s^2 (the authors' later material; the 2007 paper has
+    0.1 m/s^2, from memory): docs/references.md#kesting-2007-mobil."""
 
     desired_mps: float = 120.0 / 3.6
     t_s: float = 1.0

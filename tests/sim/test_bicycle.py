@@ -2,8 +2,9 @@
 
 Sources: Rajamani, *Vehicle Dynamics and Control*, 2nd ed., Springer 2012, section 2.2 (section number from
 memory [M]); Kong, Pfeiffer, Schildbach, Borrelli, IEEE Intelligent Vehicles Symposium 2015 (bibliographic details
-[M]). The equations are [S] (REFERENCES.md section 3); every check number below is derived [D] there for
-L = 2.7 m, l_f = l_r = 1.35 m, v = 10 m/s and tabled to the shown decimals.
+[M]). The equations are [S] (docs/references.md#rajamani-2012-vehicle-dynamics,
+docs/references.md#kong-2015-kinematic-models); every check number below is derived [D] there for L = 2.7 m,
+l_f = l_r = 1.35 m, v = 10 m/s and tabled to the shown decimals.
 """
 
 from __future__ import annotations
@@ -33,8 +34,8 @@ SPEED_MPS = 10.0
 def test_steady_state_turn(steer_deg, beta_deg, r_rear_m, r_cg_m, yaw_rate_radps, a_lat_mps2):
     """Slip angle, radii of the rear-axle and CG paths, yaw rate and lateral acceleration at constant steering.
 
-    Source: REFERENCES.md section 3 table, [D] from the [S] equations (Rajamani 2012 section 2.2 [M]).
-    Tolerance: half a unit of the last tabled decimal.
+    Source: the table of docs/references.md#rajamani-2012-vehicle-dynamics, [D] from the [S] equations
+    (section 2.2 [M]). Tolerance: half a unit of the last tabled decimal.
     """
     delta = math.radians(steer_deg)
     beta = slip_angle(delta, WHEELBASE_M, L_R_M)
@@ -49,7 +50,7 @@ def test_steady_state_turn(steer_deg, beta_deg, r_rear_m, r_cg_m, yaw_rate_radps
 
 
 def test_slip_angle_in_radians_at_5_degrees():
-    """beta(5 deg) = 0.0437165 rad (REFERENCES.md section 3, [D])."""
+    """beta(5 deg) = 0.0437165 rad ([D], docs/references.md#rajamani-2012-vehicle-dynamics)."""
     assert slip_angle(math.radians(5.0), WHEELBASE_M, L_R_M) == pytest.approx(0.0437165, abs=5e-8)
 
 
@@ -57,7 +58,7 @@ def test_one_euler_step_from_origin():
     """psi = 0, delta = 5 deg, v = 10, dt = 0.1, a = 0: x = 0.999045, y = 0.043703, psi = 0.032372
     (CG reference; the rear-axle variant would give psi = 0.032403).
 
-    Source: REFERENCES.md section 3, [D] explicit Euler on the [S] equations.
+    Source: docs/references.md#rajamani-2012-vehicle-dynamics, [D] explicit Euler on the [S] equations.
     """
     x, y, psi, v, vx, vy, beta = bicycle_step(0.0, 0.0, 0.0, SPEED_MPS, 0.0, math.radians(5.0),
                                               wheelbase_m=WHEELBASE_M, l_r_m=L_R_M, dt_s=0.1)
@@ -79,9 +80,10 @@ def _fit_circle(x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 def test_constant_steering_traces_a_circle_of_radius_r_cg():
     """Property: for any constant delta != 0 the CG path is a circle of radius R_cg = l_r / sin(beta).
 
-    Source: REFERENCES.md section 3, steady-state turning [D] from the [S] equations. 200 seeded random
-    (delta, v, L, l_r, start pose) sets; the step is chosen so that each step travels 1/500 of R_cg, which bounds
-    the discretisation error of the radius by (1/500)^2 / 24 ~ 2e-7 relative; the test allows 1e-5.
+    Source: docs/references.md#rajamani-2012-vehicle-dynamics, steady-state turning [D] from the [S]
+    equations. 200 seeded random (delta, v, L, l_r, start pose) sets; the step is chosen so that each step
+    travels 1/500 of R_cg, which bounds the discretisation error of the radius by (1/500)^2 / 24 ~ 2e-7
+    relative; the test allows 1e-5.
     """
     gen = np.random.default_rng(31)
     n, n_steps = 200, 1500  # 1500 steps of 1/500 rad: three radians of arc
@@ -141,7 +143,7 @@ def test_engine_clips_ego_actions(scenario_variant, place):
 
 def test_engine_moves_the_ego_by_the_bicycle_model(scenario_variant, place):
     """The engine's ego pose after one step equals ``bicycle_step`` with the applied (clipped) action and the
-    scenario's wheelbase and l_r (REFERENCES.md section 3 equations [S])."""
+    scenario's wheelbase and l_r (equations [S] of docs/references.md#rajamani-2012-vehicle-dynamics)."""
     scn = scenario_variant(num_lanes=3, **{"ego.wheelbase_m": 2.7, "ego.rear_axle_to_cg_m": 1.35})
     params = SimParams.from_scenario(scn)
     state = place(params, [], seeds=[0], ego_speed_mps=10.0, ego_steer_rad=0.05)

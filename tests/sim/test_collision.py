@@ -1,10 +1,11 @@
 """Reference tests of the oriented-rectangle overlap test (separating-axis theorem) and the ego collision check.
 
-Sources: Gottschalk, Lin, Manocha, "OBBTree", SIGGRAPH 1996; Ericson, *Real-Time Collision Detection*, 2005,
-ch. 4-5 (bibliographic details from memory [M]); the reference library is shapely 2 (``box``, ``rotate`` with
-``use_radians=True``, ``translate``, ``intersects``), whose semantics REFERENCES.md section 11 records as [S] for
-``rotate`` and [D] for the behaviour of ``intersects``/``touches`` on the check table. The check table and the
-corners of the 30-degree box are [D] values of that section.
+Sources: Gottschalk, Lin, Manocha, "OBBTree", SIGGRAPH 1996 (docs/references.md#gottschalk-1996-obbtree); Ericson,
+*Real-Time Collision Detection*, 2005, ch. 4-5 (docs/references.md#ericson-2005-collision-detection; bibliographic
+details from memory [M]); the reference library is shapely 2 (``box``, ``rotate`` with ``use_radians=True``,
+``translate``, ``intersects``; docs/references.md#lib-shapely: [S] for ``rotate``, [D] for the behaviour of
+``intersects``/``touches`` on the check table). The check table and the corners of the 30-degree box are [D]
+values of docs/references.md#gottschalk-1996-obbtree.
 """
 
 from __future__ import annotations
@@ -45,8 +46,8 @@ def _shapely_box(cx, cy, length, width, heading):
 def test_check_table(b, expected):
     """A = 4.5 x 1.8 m car at the origin, heading 0; B the same car at (cx, cy, heading in degrees).
 
-    Source: REFERENCES.md section 11 check table [D] (SAT column); also compared with shapely's ``intersects``
-    on the same pair (the sheet records identical answers).
+    Source: the check table [D] of docs/references.md#gottschalk-1996-obbtree; also compared with shapely's
+    ``intersects`` on the same pair (identical answers).
     """
     cx, cy, deg = b
     h = math.radians(deg)
@@ -57,8 +58,9 @@ def test_check_table(b, expected):
 
 
 def test_check_table_distances_from_shapely():
-    """The table's overlap areas and distances reproduce with shapely (REFERENCES.md section 11, [D]); this pins
-    the reference construction used by the random agreement test below."""
+    """The table's overlap areas and distances reproduce with shapely ([D],
+    docs/references.md#gottschalk-1996-obbtree); this pins the reference construction used by the random
+    agreement test below."""
     a = _shapely_box(0, 0, CAR_L_M, CAR_W_M, 0)
     b1 = _shapely_box(4.0, 1.5, CAR_L_M, CAR_W_M, math.radians(30))
     b2 = _shapely_box(5.0, 2.5, CAR_L_M, CAR_W_M, math.radians(30))
@@ -72,7 +74,7 @@ def test_corners_of_the_30_degree_box():
     """Corners of a 4.5 x 1.8 m box at the origin, heading 30 deg, counter-clockwise from front-left:
     (1.4986, 1.9044), (-2.3986, -0.3456), (-1.4986, -1.9044), (2.3986, 0.3456).
 
-    Source: REFERENCES.md section 11 [D] (corners = R(theta) {(+-L/2, +-W/2)} + centre).
+    Source: docs/references.md#gottschalk-1996-obbtree [D] (corners = R(theta) {(+-L/2, +-W/2)} + centre).
     """
     got = box_corners(np.array(0.0), np.array(0.0), CAR_L_M, CAR_W_M, np.array(math.radians(30.0)))
     want = [(1.4986, 1.9044), (-2.3986, -0.3456), (-1.4986, -1.9044), (2.3986, 0.3456)]
@@ -115,7 +117,8 @@ def test_agrees_with_shapely_on_random_pairs():
     exceeds 1e-6 m or the overlap area exceeds 1e-6 m^2 (a thin band around touching is excluded, and the test
     checks that the band holds almost none of the pairs).
 
-    Source: REFERENCES.md section 11 ([D]: 20,000 such pairs disagreed 0 times); reference library shapely 2.
+    Source: the separating-axis test (docs/references.md#gottschalk-1996-obbtree) against the reference
+    library shapely 2 (docs/references.md#lib-shapely).
     """
     rows = _random_pairs(np.random.default_rng(11), N_PAIRS)
     got = boxes_overlap(*rows.T)
@@ -144,7 +147,7 @@ def test_agrees_with_shapely_on_random_pairs():
 def test_axis_aligned_edge_cases_agree_exactly(a, b):
     """Axis-aligned boxes on a 0.25 m grid (every coordinate exact in binary floating point): touching edges and
     corners occur often, and SAT must say 'overlap' for them exactly as shapely's ``intersects`` does (touching
-    counts as intersecting; REFERENCES.md section 11, [D] table row 'bumpers touch')."""
+    counts as intersecting; docs/references.md#gottschalk-1996-obbtree, [D] table row 'bumpers touch')."""
     (ax, ay, al, aw), (bx, by, bl, bw) = ((q * 0.25 for q in t) for t in (a, b))
     got = boxes_overlap(ax, ay, al, aw, 0.0, bx, by, bl, bw, 0.0)
     want = _shapely_box(ax, ay, al, aw, 0.0).intersects(_shapely_box(bx, by, bl, bw, 0.0))
@@ -163,7 +166,8 @@ def test_axis_aligned_edge_cases_agree_exactly(a, b):
 def test_touching_and_nearly_touching_boxes(a, b_size, side, nudge, slide):
     """Box B put exactly against a side or corner of box A, then nudged by -0.25/0/+0.25 m: edge contact,
     corner contact, a quarter-metre overlap or a quarter-metre gap. All coordinates are on a 0.25 m grid, so the
-    answers are exact; SAT must match shapely's ``intersects`` (REFERENCES.md section 11, touching counts)."""
+    answers are exact; SAT must match shapely's ``intersects`` (docs/references.md#gottschalk-1996-obbtree,
+    touching counts)."""
     ax, ay, al, aw = (q * 0.25 for q in a)
     bl, bw = (q * 0.25 for q in b_size)
     sx, sy = side
@@ -215,7 +219,7 @@ def _all_pairs(arrays: dict) -> np.ndarray:
 def test_ego_collisions_matches_all_pairs(seed_):
     """``engine.ego_collisions`` (bounding-box pre-filters, then SAT) equals the plain all-pairs test on 2,000
     random scenes of 10 slots, with invalid slots placed on top of the ego that must be ignored (equivalence
-    test, STYLE.md section 9; no external source)."""
+    test, docs/references.md#practice-equivalence-test; no external source)."""
     gen = np.random.default_rng(seed_)
     s, v = 2000, 10
     ego_x = gen.uniform(0.0, 1000.0, (s, 1))

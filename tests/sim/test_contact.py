@@ -1,8 +1,9 @@
 """The side of the ego touched in a collision (``wmplan.sim.engine.contact_sides``).
 
 Naming a crash by the first point of contact on the vehicle (front, rear, left, right) is common practice, no
-source. Overlap itself is checked against shapely 2 (``box``, ``rotate`` with ``use_radians=True``,
-``translate``, ``intersects``), the reference library of tests/sim/test_collision.py. The cases are built by hand:
+source (docs/references.md#practice-contact-side). Overlap itself is checked against shapely 2 (``box``, ``rotate``
+with ``use_radians=True``, ``translate``, ``intersects``; docs/references.md#lib-shapely), the reference library of
+tests/sim/test_collision.py. The cases are built by hand:
 another car placed in the ego's own frame just inside one of its sides (a 0.2 m overlap), then the pair turned and
 moved as a whole, which must not change the answer.
 """

@@ -2,8 +2,9 @@
 
 A scene is a pure function of its seed: it must evolve bit for bit the same whether it runs alone or inside a
 batch of other scenes, and a snapshot taken with ``TrafficState.to_arrays`` must restore a state that continues
-exactly as the original. These are contract tests (STYLE.md section 9, kind 3; common practice, no source): the
-reference is the simulator itself run a second way, compared with ``np.array_equal`` on every state field.
+exactly as the original. These are contract tests (common practice, no source:
+docs/references.md#practice-determinism): the reference is the simulator itself run a second way, compared
+with ``np.array_equal`` on every state field.
 
 Every run uses the rule-based ego (``ego_rules.rule_actions``), so the ego's actions depend on the state and any
 divergence would feed back into the traffic.
@@ -159,7 +160,8 @@ def test_from_arrays_refuses_mismatched_shapes():
 
 
 def test_step_changes_nothing_in_place():
-    """``step`` returns a new state; the state passed in keeps every value (STYLE.md section 7)."""
+    """``step`` returns a new state; the state passed in keeps every value (a contract of this project: the
+    state is a frozen dataclass, DEVELOPERS.md, "Layout and data flow")."""
     params = _params("onramp-merge")
     st = initial_state(params, np.arange(32))
     for _ in range(20):

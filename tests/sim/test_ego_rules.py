@@ -4,7 +4,8 @@ Both were found in 100,000 nominal ``onramp-merge`` episodes (session notes, 91 
 ego's own making):
 
 * **merging into a short gap behind a slower car.** The forced merge checked MOBIL's safety criterion for the new
-  follower only (Kesting, Treiber, Helbing 2007: the follower need not brake harder than b_safe), not the ego's own
+  follower only (Kesting, Treiber, Helbing 2007, docs/references.md#kesting-2007-mobil: the follower need not brake
+  harder than b_safe), not the ego's own
   braking toward the new leader. A car 11 m ahead in the main lane at the ego's speed that then slowed was merged
   into and hit from behind. The rule now bounds the ego's own IDM deceleration toward the target lane's leader by
   the same b_safe (the criterion applied to the driver who changes lanes, common practice, no source).

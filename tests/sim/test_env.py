@@ -1,8 +1,10 @@
 """Contract, determinism and reference tests of the gymnasium layer (wmplan.sim.env).
 
-Sources: gymnasium's own ``gymnasium.utils.env_checker.check_env`` (a reference library); constant-speed and
-constant-acceleration kinematics ``x = x0 + v t + a t^2 / 2`` for the progress reward (REFERENCES.md section 1.1,
-the ballistic update); the rest are equivalence and determinism checks (STYLE.md section 9, kinds 2 and 3).
+Sources: gymnasium's own ``gymnasium.utils.env_checker.check_env`` (a reference library,
+docs/references.md#lib-gymnasium-env-checker); constant-speed and constant-acceleration kinematics
+``x = x0 + v t + a t^2 / 2`` for the progress reward (docs/references.md#practice-kinematics; the engine's update is
+the ballistic one of docs/references.md#treiber-kanagaraj-2015-ballistic); the rest are equivalence and determinism
+checks (docs/references.md#practice-equivalence-test, docs/references.md#practice-determinism).
 """
 
 from __future__ import annotations
@@ -144,8 +146,8 @@ def test_check_env_with_physical_actions_only_advises_a_normalised_box(eid, rend
 @pytest.mark.parametrize("seed", [0, 1, 7])
 @pytest.mark.parametrize("scenario", ["onramp-merge", "stop-and-go"])
 def test_same_seed_same_observations_different_seed_different(scenario, seed):
-    """Side-by-side rollouts (STYLE.md section 9.3): the same seed and actions give an identical observation
-    sequence; another seed gives a different one."""
+    """Side-by-side rollouts (docs/references.md#practice-determinism): the same seed and actions give an
+    identical observation sequence; another seed gives a different one."""
     actions = _gentle_actions(100 + seed, 40)
     env_a, env_b = LaneEnv(scenario), LaneEnv(scenario)
     seq_a, seq_b = _rollout(env_a, seed, actions), _rollout(env_b, seed, actions)
@@ -173,8 +175,9 @@ def test_reset_draws_the_scene_seed_from_np_random():
 
 @pytest.mark.parametrize("scenario", ["onramp-merge", "cut-in"])
 def test_vector_env_agrees_with_single_envs(scenario):
-    """Equivalence (STYLE.md section 9.2): N scenes in one LaneVectorEnv and N LaneEnvs given the same scene seeds
-    and actions produce the same observations, rewards and episode ends, step for step."""
+    """Equivalence (docs/references.md#practice-equivalence-test): N scenes in one LaneVectorEnv and N LaneEnvs
+    given the same scene seeds and actions produce the same observations, rewards and episode ends, step for
+    step."""
     num = 4
     venv = LaneVectorEnv(scenario, num)
     vobs, vinfo = venv.reset(seed=11)
@@ -285,7 +288,7 @@ def test_action_space_is_the_physical_box_from_the_scenario():
 
 def test_progress_reward_matches_constant_speed_and_constant_acceleration_kinematics():
     """On an empty road the ego (20 m/s, heading 0) advances v dt = 2.0 m in a 0.1 s step, or v dt + a dt^2/2 =
-    2.005 m at a = 1 m/s^2 (kinematics, REFERENCES.md 1.1). With v_lim = 33.3 m/s and duration D = 20 s the
+    2.005 m at a = 1 m/s^2 (docs/references.md#practice-kinematics). With v_lim = 33.3 m/s and duration D = 20 s the
     reward is dx / (v_lim D), minus 0.1 (a / 2)^2 dt / D for the acceleration (RewardConfig's formula)."""
     scn = _variant(**{"ego.speed_mps": 20.0})
     env = LaneEnv(scn)
@@ -365,7 +368,7 @@ def test_render_without_a_render_mode_returns_none():
 
 
 def test_bad_input_gives_one_line_errors():
-    """Each message names the argument, the value and the rule (STYLE.md section 8)."""
+    """Each message names the argument, the value and the rule (DEVELOPERS.md, "Errors and files")."""
     env = LaneEnv("open-road")
     with pytest.raises(ResetNeeded, match=re.escape("LaneEnv.step: call reset() before the first step")):
         env.step(np.zeros(2))

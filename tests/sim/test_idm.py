@@ -1,11 +1,12 @@
 """Reference tests of the Intelligent Driver Model (IDM) in ``wmplan.sim.behaviour`` and in the engine.
 
-Sources: Treiber, Hennecke, Helbing, Phys. Rev. E 62, 1805 (2000) for the law [S]; Treiber & Kesting, *Traffic
-Flow Dynamics*, Springer 2013, ch. 11 for the book form of s* with the ``max(0, .)`` guard [S] and the highway
-parameter set of Table 11.2 (v0 120 km/h, T 1 s, s0 2 m, a 1, b 1.5, delta 4; values from memory [M]). All check
-numbers are the derived [D] values of /work/shared/REFERENCES.md section 1.3, which the sheet computed from the
-published formula; the tabled ones are rounded to 4 decimals, so they are compared to 5e-5, and the same
-quantities are also compared at rtol 1e-9 with the formula written out here.
+Sources: Treiber, Hennecke, Helbing, Phys. Rev. E 62, 1805 (2000) for the law [S]
+(docs/references.md#treiber-2000-idm); Treiber & Kesting, *Traffic Flow Dynamics*, Springer 2013, ch. 11 for
+the book form of s* with the ``max(0, .)`` guard [S] and the highway parameter set of Table 11.2 (v0 120 km/h,
+T 1 s, s0 2 m, a 1, b 1.5, delta 4; values from memory [M]) (docs/references.md#treiber-kesting-2013-book).
+All check numbers are derived [D] from the published formula with that set (listed in the same entry); the
+tabled ones are rounded to 4 decimals, so they are compared to 5e-5, and the same quantities are also compared
+at rtol 1e-9 with the formula written out here.
 """
 
 from __future__ import annotations
@@ -30,7 +31,7 @@ def test_equilibrium_gap_highway_set(highway, speed_mps, expected_gap_m):
     """s_e(v) = (s0 + v T) / sqrt(1 - (v/v0)^4), highway set.
 
     Source: Treiber & Kesting 2013, ch. 11 (formula [S], Table 11.2 parameters [M]); check values [D],
-    REFERENCES.md section 1.3 (hand check at 20 m/s: 22 / sqrt(0.8704) = 23.581 m).
+    docs/references.md#treiber-kesting-2013-book (hand check at 20 m/s: 22 / sqrt(0.8704) = 23.581 m).
     """
     got = idm_equilibrium_gap(speed_mps, highway.desired_mps, highway.t_s, highway.s0_m)
     assert got == pytest.approx(expected_gap_m, abs=TABLE_TOL)
@@ -42,8 +43,9 @@ def test_equilibrium_gap_highway_set(highway, speed_mps, expected_gap_m):
 def test_zero_acceleration_at_equilibrium(highway, speed_mps):
     """At (v, s_e(v), dv = 0) the IDM acceleration is 0 to machine precision.
 
-    Source: definition of the equilibrium gap (Treiber & Kesting 2013, ch. 11, [S]); the sheet computed
-    -2.2e-16 at 20 m/s and 5.6e-17 at 30 m/s ([D], REFERENCES.md section 1.3).
+    Source: definition of the equilibrium gap (Treiber & Kesting 2013, ch. 11, [S],
+    docs/references.md#treiber-kesting-2013-book); in float64 the formula gives about -2.2e-16 at 20 m/s and
+    5.6e-17 at 30 m/s ([D]).
     """
     gap = idm_equilibrium_gap(speed_mps, highway.desired_mps, highway.t_s, highway.s0_m)
     acc = idm_accel(speed_mps, highway.desired_mps, gap, 0.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
@@ -54,7 +56,7 @@ def test_zero_acceleration_at_equilibrium(highway, speed_mps):
 def test_free_road_acceleration(highway, speed_mps, fraction):
     """On a free road (s = inf, dv = 0) the IDM gives a [1 - (v/v0)^4]: a at rest, 0.9375 a at v0/2.
 
-    Source: THH 2000 / Treiber & Kesting 2013 free-road term [S]; values [D], REFERENCES.md section 1.3.
+    Source: THH 2000 / Treiber & Kesting 2013 free-road term [S] (docs/references.md#treiber-2000-idm); values [D].
     """
     acc = idm_accel(speed_mps, highway.desired_mps, np.inf, 0.0, highway.t_s, highway.s0_m, highway.a_mps2,
                     highway.b_mps2)
@@ -64,8 +66,8 @@ def test_free_road_acceleration(highway, speed_mps, fraction):
 def test_approach_to_stopped_car(highway):
     """v = 20, dv = 20 (leader standing), s = 50: s* = 185.2993 m and dv/dt = -12.8639 m/s^2.
 
-    Source: Treiber & Kesting 2013 ch. 11 formula [S]; values [D], REFERENCES.md section 1.3 (the IDM itself
-    has no bound on deceleration).
+    Source: Treiber & Kesting 2013 ch. 11 formula [S]; values [D],
+    docs/references.md#treiber-kesting-2013-book (the IDM itself has no bound on deceleration).
     """
     s_star = idm_desired_gap(20.0, 20.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
     assert s_star == pytest.approx(185.2993, abs=TABLE_TOL)
@@ -78,8 +80,9 @@ def test_approach_to_stopped_car(highway):
 def test_leader_pulling_away_uses_book_form(highway):
     """v = 20, dv = -5: plain THH-2000 s* would be -18.8248 m; the book form (max(0, .) guard) gives s0 = 2.0 m.
 
-    Source: Treiber & Kesting 2013 ch. 11, book form seen in a README citing the book [S]; values [D],
-    REFERENCES.md section 1.3 (2 sqrt(ab) = 2.449490). This pins which variant the package implements.
+    Source: Treiber & Kesting 2013 ch. 11, the guarded form as read in a secondary text citing the book [S];
+    values [D], docs/references.md#treiber-kesting-2013-book (2 sqrt(ab) = 2.449490). This pins which variant
+    the package implements.
     """
     s_star = idm_desired_gap(20.0, -5.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
     assert s_star == 2.0
@@ -103,10 +106,10 @@ def test_engine_applies_the_same_law(scenario_variant, place, highway):
     """The engine's traffic acceleration equals ``idm_accel`` for the follower's traits (and its 9 m/s^2 limit).
 
     A leader and a follower in one lane, the ego parked in another lane far behind, no random traffic, no
-    braking events, a step on which no driver reconsiders its lane. Checks the highway set (REFERENCES.md
-    section 1.2, [M] values) on hand-picked situations and 64 seeded random ones with random traits. The engine
-    additionally caps deceleration at MAX_PHYSICAL_DECEL_MPS2 (about 9 m/s^2, Kesting et al. 2007 [S]); the
-    expectation applies that cap explicitly.
+    braking events, a step on which no driver reconsiders its lane. Checks the highway set
+    (docs/references.md#treiber-kesting-2013-book, [M] values) on hand-picked situations and 64 seeded random
+    ones with random traits. The engine additionally caps deceleration at MAX_PHYSICAL_DECEL_MPS2
+    (about 9 m/s^2, Kesting et al. 2007 [S]); the expectation applies that cap explicitly.
     """
     params = SimParams.from_scenario(scenario_variant(num_lanes=2))
     gen = np.random.default_rng(20240611)

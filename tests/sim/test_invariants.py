@@ -6,7 +6,7 @@ Checked at every step of every scene (common practice, no source, unless stated)
 * speeds are never negative (traffic ``vx_mps``, ``ego_speed_mps``): the motion law stops at zero and never
   reverses;
 * no traffic vehicle brakes harder than the physical limit of about 9 m/s^2 (Kesting, Treiber, Helbing 2007,
-  from memory [M]; the engine's ``MAX_PHYSICAL_DECEL_MPS2``);
+  from memory [M], docs/references.md#kesting-2007-mobil; the engine's ``MAX_PHYSICAL_DECEL_MPS2``);
 * every valid traffic vehicle lies across the carriageway, between y = 0 and the road width: its body band
   y +- width/2 (the band the engine's lane model uses) always, and its rotated rectangle (extent worked out here
   by hand from length, width and heading) too;

@@ -2,10 +2,12 @@
 
 Source: Kesting, Treiber, Helbing, "General lane-changing model MOBIL for car-following models", Transportation
 Research Record 1999 (2007): safety criterion a~_n >= -b_safe and the symmetric incentive criterion [S]
-(REFERENCES.md section 2); b_safe 4 m/s^2 [S], threshold 0.2 m/s^2 (authors' web notes) [S]. The two worked
-examples and every number in them are derived [D] in REFERENCES.md section 2 with the IDM highway set of
-Treiber & Kesting 2013, Table 11.2 (values from memory [M]), book s* form, vehicle length 5 m, target lane to
-the left. Tabled numbers are rounded to 4 decimals and compared to 5e-5.
+(docs/references.md#kesting-2007-mobil); b_safe 4 m/s^2 [S]. The threshold 0.2 m/s^2 is the value of the model
+authors' later explanatory material, not of the 2007 paper, whose table gives 0.1 m/s^2 (from memory [M]; both
+in the same entry). The two worked examples and every number in them are derived [D] with the IDM highway set
+of Treiber & Kesting 2013, Table 11.2 (values from memory [M], docs/references.md#treiber-kesting-2013-book),
+book s* form, vehicle length 5 m, target lane to the left. Tabled numbers are rounded to 4 decimals and
+compared to 5e-5.
 """
 
 from __future__ import annotations
@@ -47,7 +49,8 @@ def _accelerations(ex: dict, hw) -> tuple[float, ...]:
 def test_worked_example_accelerations_and_incentive(highway, example, expected):
     """IDM accelerations before/after and the MOBIL incentive for p in {0, 0.2, 0.5, 1}.
 
-    Source: Kesting, Treiber, Helbing 2007 (criteria [S]); worked examples A and B [D], REFERENCES.md section 2.
+    Source: Kesting, Treiber, Helbing 2007 (criteria [S]); worked examples A and B [D],
+    docs/references.md#kesting-2007-mobil.
     """
     accs = _accelerations(example, highway)
     np.testing.assert_allclose(accs, expected[0], rtol=0, atol=TABLE_TOL)
@@ -61,7 +64,8 @@ def test_example_a_refused_by_safety_whatever_p(highway):
     """Example A: the new follower would brake at 6.11 m/s^2 > b_safe = 4, so the change is unsafe, even where
     the incentive is large (6.76 m/s^2 at p = 0).
 
-    Source: Kesting et al. 2007 safety criterion [S], b_safe 4 m/s^2 [S]; numbers [D], REFERENCES.md section 2.
+    Source: Kesting et al. 2007 safety criterion [S], b_safe 4 m/s^2 [S]; numbers [D],
+    docs/references.md#kesting-2007-mobil.
     """
     a_n_after = _accelerations(EXAMPLE_A, highway)[5]
     assert not mobil_safe(a_n_after, 4.0)
@@ -71,8 +75,8 @@ def test_example_a_refused_by_safety_whatever_p(highway):
 def test_example_b_accepted_for_every_p(highway):
     """Example B: safe (a~_n = -0.86 >= -4) and the incentive beats the 0.2 m/s^2 threshold for p = 0 ... 1.
 
-    Source: Kesting et al. 2007 [S], threshold 0.2 m/s^2 from the authors' web notes [S]; numbers [D],
-    REFERENCES.md section 2.
+    Source: Kesting et al. 2007 [S], threshold 0.2 m/s^2 from the authors' later material (not the paper's
+    0.1 m/s^2); numbers [D], docs/references.md#kesting-2007-mobil.
     """
     a_c, a_c_after, a_o, a_o_after, a_n, a_n_after = _accelerations(EXAMPLE_B, highway)
     assert mobil_safe(a_n_after, 4.0)
@@ -120,7 +124,7 @@ def _run_example(example: dict, politeness: float, step: int, make_scenario, pla
 def test_engine_changes_lane_in_example_b(scenario_variant, place, highway, politeness):
     """Engine, Example B on a left-change decision step: the candidate moves to lane 1, for every p.
 
-    Source: Kesting et al. 2007 [S]; example [D], REFERENCES.md section 2.
+    Source: Kesting et al. 2007 [S]; example [D], docs/references.md#kesting-2007-mobil.
     """
     before, after = _run_example(EXAMPLE_B, politeness, LEFT_PHASE, scenario_variant, place, highway)
     assert (before, after) == (0, 1)
@@ -130,7 +134,7 @@ def test_engine_changes_lane_in_example_b(scenario_variant, place, highway, poli
 def test_engine_refuses_example_a(scenario_variant, place, highway, politeness):
     """Engine, Example A on a left-change decision step: refused by the safety criterion, for every p.
 
-    Source: Kesting et al. 2007 [S]; example [D], REFERENCES.md section 2.
+    Source: Kesting et al. 2007 [S]; example [D], docs/references.md#kesting-2007-mobil.
     """
     before, after = _run_example(EXAMPLE_A, politeness, LEFT_PHASE, scenario_variant, place, highway)
     assert (before, after) == (0, 0)
@@ -150,11 +154,11 @@ def test_engine_decisions_match_the_criteria_on_random_situations(scenario_varia
     exactly where the MOBIL criteria, evaluated here with ``idm_accel``, ``mobil_incentive`` and ``mobil_safe``
     from bumper-to-bumper gaps, say it should.
 
-    Source: Kesting et al. 2007 criteria [S] (REFERENCES.md section 2). Two extra conditions are the engine's
-    own, common practice, no source: the changer itself must not need to brake harder than b_safe behind its new
-    leader, and the changer's present acceleration a_c is the one it applies, capped at 9 m/s^2 (Kesting et al.
-    2007: physical limit about 9 m/s^2 [S]), while every other term is the plain IDM value. Situations within
-    1e-9 m/s^2 of a threshold are left out (float rounding may go either way there).
+    Source: Kesting et al. 2007 criteria [S] (docs/references.md#kesting-2007-mobil). Two extra conditions are
+    the engine's own, common practice, no source: the changer itself must not need to brake harder than b_safe
+    behind its new leader, and the changer's present acceleration a_c is the one it applies, capped at 9 m/s^2
+    (Kesting et al. 2007: physical limit about 9 m/s^2 [S]), while every other term is the plain IDM value.
+    Situations within 1e-9 m/s^2 of a threshold are left out (float rounding may go either way there).
     """
     n = 3000
     gen = np.random.default_rng(4242 + direction)

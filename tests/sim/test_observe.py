@@ -1,9 +1,10 @@
 """Ego-centred object lists and road features (``observe.object_list``, ``to_frame``, ``road_features``, ``observe``).
 
 References: the planar change of frame p_ego = R(-theta) (p_world - o), v_ego = R(-theta) v_world with
-R(a) = [[cos a, -sin a], [sin a, cos a]] (textbook rigid-body kinematics, common practice, no source), written out
-here as a hand-made matrix; nearest-first sorting against a plain Python loop kept in this file (STYLE.md section
-9, kind 2); road features worked out by hand from the numbers in ``scenarios/onramp-merge.yaml``.
+R(a) = [[cos a, -sin a], [sin a, cos a]] (textbook rigid-body kinematics, common practice, no source:
+docs/references.md#practice-rigid-frame), written out here as a hand-made matrix; nearest-first sorting
+against a plain Python loop kept in this file (docs/references.md#practice-equivalence-test); road features
+worked out by hand from the numbers in ``scenarios/onramp-merge.yaml``.
 """
 
 from __future__ import annotations

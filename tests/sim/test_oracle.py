@@ -2,18 +2,19 @@
 
 What is checked, and against what:
 
-* contracts (common practice, no source): output shapes (C, K, H, V, 8) and (C, K); the same seed gives the same
-  futures and another seed other futures; the K futures are shared by all C plans (common random numbers), so two
-  equal plans get bit-identical futures; bad arguments raise a one-line ``ValueError``;
+* contracts (common practice, no source: docs/references.md#practice-determinism): output shapes (C, K, H, V,
+  8) and (C, K); the same seed gives the same futures and another seed other futures; the K futures are shared
+  by all C plans (common random numbers), so two equal plans get bit-identical futures; bad arguments raise a
+  one-line ``ValueError``;
 * ``known`` mode with nothing random left gives K identical futures, equal bit for bit to the true continuation
   of the scene, stepped here by hand with each plan action held for the plan step;
 * ``resampled`` mode keeps what an observer sees and re-draws the hidden traits; the re-drawn desired speeds are
-  compared with ``scipy.stats.truncnorm`` (reference library) by ``scipy.stats.kstest``;
+  compared with ``scipy.stats.truncnorm`` (reference library, docs/references.md#lib-scipy) by ``scipy.stats.kstest``;
 * multimodality: the yield decision of a driver beside the merging ego is drawn per future; its frequency over
   K = 400 ``known`` futures is compared with the driver's ``yield_prob`` by ``scipy.stats.binomtest``, and the
   two groups of futures are told apart by ``scipy.stats.mannwhitneyu``;
 * collision flags against constant-speed and constant-deceleration kinematics worked out by hand
-  (x = v t; stopping distance v^2 / (2 b), REFERENCES.md section 3 [C]).
+  (x = v t; stopping distance v^2 / (2 b), [C]: docs/references.md#practice-kinematics).
 """
 
 from __future__ import annotations

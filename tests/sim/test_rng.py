@@ -1,10 +1,13 @@
 """The counter-based random numbers of ``wmplan.rng`` (uniforms, Box-Muller normals, scene keys).
 
 Statistical checks against reference libraries: ``scipy.stats.chisquare`` (Pearson's chi-square test of equal bin
-frequencies) for uniformity, ``scipy.stats.kstest`` against ``scipy.stats.norm`` for the normals. Independence of
-streams and counters: the sample correlation of two independent uniform sequences has standard deviation
-1 / sqrt(n), so |r| < 4 / sqrt(n) (common practice, no source). The generator is a deterministic hash of its
-counters, so each test is seeded by the counters it passes; every threshold leaves a fixed input a wide margin.
+frequencies) for uniformity, ``scipy.stats.kstest`` against ``scipy.stats.norm`` for the normals
+(docs/references.md#lib-scipy; the generator: docs/references.md#steele-2014-splitmix,
+docs/references.md#box-muller-1958). Independence of streams and counters: the sample correlation of two
+independent uniform sequences has standard deviation 1 / sqrt(n), so |r| < 4 / sqrt(n) (common practice, no
+source: docs/references.md#practice-monte-carlo-tolerance). The generator is a deterministic hash of its
+counters, so each test is seeded by the counters it passes; every threshold leaves a fixed input a wide
+margin.
 """
 
 from __future__ import annotations

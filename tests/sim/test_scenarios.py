@@ -1,7 +1,7 @@
 """Scenario files: the built-ins load, and bad files give the exact one-line error naming file, field, value, rule.
 
 The messages are the project's own contract (no external source); the rule is that an error caused by input is
-one line naming the file, the field, the value and the rule it breaks (helper rules / STYLE.md section 8).
+one line naming the file, the field, the value and the rule it breaks (DEVELOPERS.md, "Errors and files").
 """
 
 from __future__ import annotations

@@ -3,7 +3,7 @@
 Source: AASHTO, *A Policy on Geometric Design of Highways and Streets* (6th ed. 2011 / 7th ed. 2018), section
 3.2.2 and Table 3-1 (section/table numbers from memory [M]). Brake-reaction time 2.5 s and deceleration
 3.4 m/s^2 (11.2 ft/s^2) are [S]; the metric formula SSD = 0.278 V t + 0.039 V^2 / a and the exact-kinematics
-column are [D], the design column [M] (REFERENCES.md section 4).
+column are [D], the design column [M] (docs/references.md#aashto-green-book).
 
 The manoeuvre: the ego drives straight on an empty road at V, with zero acceleration for 2.5 s, then brakes at
 3.4 m/s^2 until it stands still. The engine integrates distance exactly for constant acceleration within a step
@@ -26,7 +26,7 @@ from wmplan.sim.state import EGO
 REACTION_S = 2.5
 DECEL_MPS2 = 3.4
 
-# V km/h -> (exact kinematics [D], 0.039 formula [D], design [M]), REFERENCES.md section 4 metric table.
+# V km/h -> (exact kinematics [D], 0.039 formula [D], design [M]): docs/references.md#aashto-green-book
 ROWS = {
     50.0: (63.09, 63.43, 65.0),
     80.0: (128.18, 129.01, 130.0),
@@ -63,10 +63,10 @@ def _drive_and_stop(scenario_variant, place, speed_kmh: float) -> tuple[float, n
 def test_stopping_distance(scenario_variant, place, speed_kmh):
     """Reaction 2.5 s then 3.4 m/s^2 from V: distance vs the exact kinematics (1e-6 m and the tabled value to its
     2 decimals), vs the 0.039 formula (within 2 m, the size of its rounding of 1/(2 * 3.6^2) = 0.03858) and vs
-    the design value (within 5 m, the sheet's suggested tolerance for the rounded design column).
+    the design value (within 5 m: the design column is the calculated value rounded up to the next 5 m).
 
     Source: AASHTO Green Book section 3.2.2 / Table 3-1 [M]; t = 2.5 s and a = 3.4 m/s^2 [S]; values [D]/[M],
-    REFERENCES.md section 4.
+    docs/references.md#aashto-green-book.
     """
     exact_tab, formula, design = ROWS[speed_kmh]
     dist, ys = _drive_and_stop(scenario_variant, place, speed_kmh)
@@ -79,6 +79,7 @@ def test_stopping_distance(scenario_variant, place, speed_kmh):
 
 
 def test_formula_column_reproduces():
-    """The 0.039 column itself: 0.278 V t + 0.039 V^2 / a (REFERENCES.md section 4, [D]); guards the table above."""
+    """The 0.039 column itself: 0.278 V t + 0.039 V^2 / a ([D], docs/references.md#aashto-green-book); guards
+    the table above."""
     for v_kmh, (_, formula, _) in ROWS.items():
         assert 0.278 * v_kmh * REACTION_S + 0.039 * v_kmh**2 / DECEL_MPS2 == pytest.approx(formula, abs=0.005)

@@ -1,9 +1,10 @@
 """The engine split over threads (``wmplan.sim.threads``): the same futures and states for any thread count.
 
-What is checked (contracts of this project, common practice, no source): scenes are independent and every random
-draw is keyed by the scene, so the oracle's futures and a stepped batch are bit-identical whether the scenes run on
-one thread or are split into chunks over several; chunks cover every scene once; an error in a chunk reaches the
-caller; a bad ``WMPLAN_SIM_THREADS`` is refused in one line naming the variable.
+What is checked (contracts of this project, common practice, no source:
+docs/references.md#practice-determinism): scenes are independent and every random draw is keyed by the scene,
+so the oracle's futures and a stepped batch are bit-identical whether the scenes run on one thread or are
+split into chunks over several; chunks cover every scene once; an error in a chunk reaches the caller; a bad
+``WMPLAN_SIM_THREADS`` is refused in one line naming the variable.
 """
 
 from __future__ import annotations

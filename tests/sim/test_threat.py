@@ -1,8 +1,9 @@
 """The brake threat (``wmplan.sim.threat``): the share of its braking the ego needs to avoid what is ahead.
 
-Checked against constant-deceleration kinematics (stopping distance v^2 / (2 a); common practice, no source), both
-as hand-worked numbers and on the engine itself: an ego that brakes at the required deceleration times 1.05 stops
-short of a stopped car, at 0.9 times it does not.
+Checked against constant-deceleration kinematics (stopping distance v^2 / (2 a); common practice, no source:
+docs/references.md#practice-kinematics; the same quantity as the DRAC of
+docs/references.md#cooper-ferguson-1976-drac), both as hand-worked numbers and on the engine itself: an ego
+that brakes at the required deceleration times 1.05 stops short of a stopped car, at 0.9 times it does not.
 """
 
 from __future__ import annotations

@@ -2,12 +2,15 @@
 
 What is checked, and against what:
 
-* the per-draw log-likelihood ratio against ``scipy.stats.bernoulli.logpmf`` (reference library);
+* the per-draw log-likelihood ratio against ``scipy.stats.bernoulli.logpmf`` (reference library,
+  docs/references.md#lib-scipy);
 * no tilt, or a tilt with factors 1, leaves the simulator bit for bit as it was, with zero log-weights (contract);
 * the defining identity of importance sampling, E_g[W] = 1 with W = f(X) / g(X) (Owen, *Monte Carlo theory,
-  methods and examples*, 2013, ch. 9): the mean episode weight of tilted runs is 1 within its standard error;
+  methods and examples*, 2013, ch. 9; docs/references.md#owen-2013-monte-carlo): the mean episode weight of
+  tilted runs is 1 within its standard error;
 * unbiasedness, E_g[H W] = E_f[H], for an event H set off by the tilted draws, against plain Monte Carlo of the
-  nominal simulator on other seeds (a two-sample z-test at 4 standard errors);
+  nominal simulator on other seeds (a two-sample z-test at 4 standard errors,
+  docs/references.md#practice-monte-carlo-tolerance);
 * the oracle ignores the tilt (it knows the nominal world);
 * bad tilt values are refused with a one-line message naming the field and the range.
 

@@ -1,8 +1,8 @@
 """Scenes of several scenario variants in one batch (``wmplan.sim.variants``).
 
-The contract (STYLE.md section 9, common practice, no source): a scene evolves bit for bit as it does in a batch
-of its own variant, whatever other variants share the batch; variants that would change the batch's shapes or
-clock are refused with a one-line error.
+The contract (common practice, no source: docs/references.md#practice-determinism): a scene evolves bit for
+bit as it does in a batch of its own variant, whatever other variants share the batch; variants that would
+change the batch's shapes or clock are refused with a one-line error.
 """
 
 from __future__ import annotations

@@ -1,15 +1,22 @@
 """Rare-event estimation against problems with known answers.
 
-* P(Z > 4), Z standard normal = scipy.stats.norm.sf(4) = 3.167124e-5 (REFERENCES.md section 9.4, [D]); the
-  cross-entropy-optimal mean of a unit-variance normal proposal is E[Z | Z > 4] = phi(4) / (1 - Phi(4)) = 4.225607
-  ([D]), computed here from scipy.stats.norm.
+The method under test is the multilevel cross-entropy method for rare events followed by importance sampling
+(Rubinstein 1997, docs/references.md#rubinstein-1997-rare-events; Rubinstein & Kroese 2004,
+docs/references.md#rubinstein-kroese-2004-cem; De Boer et al. 2005,
+docs/references.md#de-boer-2005-cem-tutorial). Known answers:
+
+* P(Z > 4), Z standard normal = scipy.stats.norm.sf(4) = 3.167124e-5 ([D],
+  docs/references.md#rubinstein-1997-rare-events); the cross-entropy-optimal mean of a unit-variance normal
+  proposal is E[Z | Z > 4] = phi(4) / (1 - Phi(4)) = 4.225607 ([D]), computed here from scipy.stats.norm.
 * P(X > 20), X ~ Exp(mean 1) = e^-20 = 2.061154e-9 ([D]); the cross-entropy-optimal exponential mean is
   E[X | X > 20] = 21 by memorylessness ([D]).
-* Defensive mixtures (Hesterberg 1995, from memory [M]): weights f / (alpha f + (1 - alpha) g) <= 1 / alpha
+* Defensive mixtures (Hesterberg 1995, from memory [M],
+  docs/references.md#hesterberg-1995-defensive-mixtures): weights f / (alpha f + (1 - alpha) g) <= 1 / alpha
   follows from the definition.
-* Plain Monte Carlo's variance at N samples is p (1 - p) / N (binomial variance, common practice, no source).
-* Wilson intervals: REFERENCES.md section 9.1 table ([D]) and scipy.stats.binomtest(...).proportion_ci(
-  method="wilson") ([S]).
+* Plain Monte Carlo's variance at N samples is p (1 - p) / N (binomial variance, common practice, no source:
+  docs/references.md#practice-monte-carlo-tolerance).
+* Wilson intervals: the table [D] of docs/references.md#wilson-1927 and
+  scipy.stats.binomtest(...).proportion_ci(method="wilson") ([S], docs/references.md#lib-scipy).
 
 Coverage over 20 seeds: a correct 95% interval covers the truth in at least 15 of 20 runs with probability
 1 - P(Binomial(20, 0.95) <= 14) = 0.9974 (scipy.stats.binom.cdf), so the bound is loose but can fail.
@@ -102,7 +109,7 @@ def test_plain_monte_carlo_counts_and_uses_wilson() -> None:
     (3, 200, 0.005114, 0.043166), (0, 200, 0.0, 0.018845), (7, 50, 0.069508, 0.261862), (1, 1000, 0.000177, 0.005643),
 ])
 def test_wilson_interval_matches_the_reference_table(k: int, n: int, lo: float, hi: float) -> None:
-    """REFERENCES.md section 9.1 Wilson column (6 decimals) and scipy's binomtest."""
+    """The Wilson values of docs/references.md#wilson-1927 (6 decimals) and scipy's binomtest."""
     got = wilson_interval(k, n)
     assert got == pytest.approx((lo, hi), abs=1e-6)
     ci = binomtest(k, n).proportion_ci(method="wilson")

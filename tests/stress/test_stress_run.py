@@ -5,7 +5,9 @@ The statistics of the estimators are tested on known answers in test_rare_event.
 harsh on purpose (dense traffic that never yields, frequent hard braking, an ego with 1.5 m/s^2 of braking: about
 one episode in eight fails) so that a
 small budget meets failures whatever the seed. That is a test set-up, not a claim about any planner. Knob values
-are checked against the formulas of wmplan.stress.knobs written out by hand (common practice, no source).
+are checked against the formulas of wmplan.stress.knobs written out by hand (common practice, no source). The
+harsh set-up is a sandbox choice (docs/references.md#sandbox-choices); the run end to end is a smoke test
+(docs/references.md#practice-smoke-test).
 """
 
 from __future__ import annotations

@@ -1,8 +1,9 @@
 """Running sweeps: identical rows on every executor and worker count, resuming after deleted cells, a raising
 planner and a killed worker, and the summary's Wilson intervals.
 
-Contract tests (STYLE section 9.3). The interval check compares with scipy.stats.binomtest(...).proportion_ci(
-method="wilson") (REFERENCES.md section 9.1, [S]).
+Contract tests (docs/references.md#practice-determinism). The interval check compares with
+scipy.stats.binomtest(...).proportion_ci(method="wilson") (docs/references.md#wilson-1927,
+docs/references.md#lib-scipy).
 """
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
 """Sweep files: one-line errors naming file, field, value and rule; dotted paths; cell expansion, ids and seeds.
 
-Error tests match the exact message (STYLE section 9.4). Paths and ids are checked against the scenario itself
-(``scenario_to_dict`` / ``parse_scenario``), not against copies of its numbers.
+Error tests match the exact message (DEVELOPERS.md, "Errors and files"). Paths and ids are checked against the
+scenario itself (``scenario_to_dict`` / ``parse_scenario``), not against copies of its numbers.
 """
 
 from __future__ import annotations

@@ -1,10 +1,11 @@
 """Tests of the figures of futures, plans and results (wmplan.viz.futures, wmplan.viz.plots).
 
-Sources: REFERENCES §9.3 (Brier 1950; Naeini et al. 2015) for the worked reliability example (bins [0, 0.5) and
-[0.5, 1]: mean p 0.24 vs frequency 0.20, mean p 0.78 vs 0.80, ECE 0.03, Brier 0.165); REFERENCES §9.1 for Wilson
-95% intervals (3/200 -> [0.005114, 0.043166], 7/50 -> [0.069508, 0.261862]); shapely (a reference library) for
-the overlap of vehicle footprints; road geometry of onramp-merge worked by hand (lane width 3.6 m, lane 0 on
-[0, 320] m); PIL for reading written PNG files back. Futures come from the true simulator
+Sources: the worked reliability example [D] of docs/references.md#naeini-2015-ece and docs/references.md#brier-1950
+(bins [0, 0.5) and [0.5, 1]: mean p 0.24 vs frequency 0.20, mean p 0.78 vs 0.80, ECE 0.03, Brier 0.165); the Wilson
+95% intervals [D] of docs/references.md#wilson-1927 (3/200 -> [0.005114, 0.043166], 7/50 -> [0.069508, 0.261862]);
+shapely (a reference library, docs/references.md#lib-shapely) for the overlap of vehicle footprints; the best-of-6
+labels of docs/references.md#practice-best-of-k; road geometry of onramp-merge worked by hand (lane width 3.6
+m, lane 0 on [0, 320] m); PIL for reading written PNG files back. Futures come from the true simulator
 (``wmplan.sim.oracle.oracle_futures``) on a seeded scene.
 """
 
@@ -47,7 +48,7 @@ from wmplan.viz.plots import (
     training_figure,
 )
 
-# p and y of REFERENCES §9.3, second check.
+# p and y of the calibration example, docs/references.md#naeini-2015-ece.
 P_93 = [0.1, 0.2, 0.2, 0.3, 0.4, 0.6, 0.7, 0.8, 0.9, 0.9]
 Y_93 = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
 
@@ -260,8 +261,9 @@ def test_candidate_arrays_pick_the_chosen_plan():
 
 
 def test_reliability_figure_on_the_worked_example(tmp_path):
-    """REFERENCES §9.3: two bins; points at (0.24, 0.20) and (0.78, 0.80); 5 decisions per bin; the title carries
-    Brier 0.1650 and ECE 0.0300 (computed by wmplan.evaluate.stats, matching the reference)."""
+    """docs/references.md#naeini-2015-ece [D]: two bins; points at (0.24, 0.20) and (0.78, 0.80); 5 decisions
+    per bin; the title carries Brier 0.1650 and ECE 0.0300 (computed by wmplan.evaluate.stats, matching the
+    reference)."""
     bins = reliability_bins(P_93, Y_93, 2)
     brier = brier_score(P_93, Y_93)
     ece = expected_calibration_error(P_93, Y_93, 2)
@@ -280,7 +282,7 @@ def test_reliability_figure_on_the_worked_example(tmp_path):
 
 def test_reliability_interval_bars_are_wilson():
     """A bin of 50 decisions with 7 collisions: the bar spans the Wilson 95% interval [0.069508, 0.261862]
-    (REFERENCES §9.1)."""
+    ([D], docs/references.md#wilson-1927)."""
     bins = [{"low": 0.1, "high": 0.2, "count": 50, "mean_pred": 0.15, "freq": 0.14}]
     fig = reliability_figure(bins)
     ax = fig.axes[0]
@@ -344,7 +346,7 @@ def test_training_figure_overlays_two_models(tmp_path):
 
 def test_closed_loop_figure_bars_and_wilson_intervals(tmp_path):
     """Bars at the rates and whiskers at the Wilson ends: 3/200 collisions -> [0.005114, 0.043166] and 7/50 ->
-    [0.069508, 0.261862] (REFERENCES §9.1), labelled on the bars."""
+    [0.069508, 0.261862] ([D], docs/references.md#wilson-1927), labelled on the bars."""
     results = {
         "rules": {"episodes": 200, "collision_rate": 0.015, "collision_ci95": [0.005114, 0.043166],
                   "success_rate": 0.9, "success_ci95": [0.85, 0.935]},

@@ -1,9 +1,9 @@
 """Tests of scene drawing, rendering and episode files (wmplan.viz.scene, wmplan.viz.anim).
 
 Sources: road geometry worked by hand from the built-in scenario files (onramp-merge: lane 0 on [0, 320] m,
-lanes 1-2 on [0, 1200] m, width 3.6 m; lane-drop: lane 2 ends at 400 m); shapely (a reference library) for the
-vehicle footprints; PIL for reading the written PNG and GIF files back; the palette of wmplan.viz.style for
-pixel colours.
+lanes 1-2 on [0, 1200] m, width 3.6 m; lane-drop: lane 2 ends at 400 m); shapely (a reference library,
+docs/references.md#lib-shapely) for the vehicle footprints; PIL for reading the written PNG and GIF files
+back; the palette of wmplan.viz.style for pixel colours.
 """
 
 from __future__ import annotations

@@ -18,7 +18,7 @@ ROWS_VERSION = 3
 """Bumped whenever a column is added, removed or redefined (sweep cells of another version are not reused)."""
 
 NEAR_MISS_TTC_S = 1.5
-"""Time-to-collision below which an episode counts as a near miss (docs/references.md#ttc-critical-threshold)."""
+"""Time-to-collision below which an episode counts as a near miss (docs/references.md#van-der-horst-1990-ttc-threshold)."""
 
 COLUMNS: tuple[tuple[str, str, str], ...] = (
     ("planner", "", "the planner spec that drove the ego (a name or an import path)"),

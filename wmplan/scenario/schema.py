@@ -7,6 +7,24 @@ types, NaN/inf and out-of-range values are refused with the field's dotted path.
 
 Lanes are numbered from the right (lane 0 is the rightmost, lowest y). Positions are metres along the road (x)
 and across it (y, lane 0's right edge at y = 0).
+
+Sources of the defaults (entries of docs/references.md; "common practice" means no source):
+
+- lane width 3.6 m: AASHTO metric editions, from memory (docs/references.md#aashto-green-book);
+- vehicles 4.7 m x 1.85 m (traffic spread over 3.8-5.5 m x 1.6-2.1 m) and the ego's 2.8 m wheelbase: common
+  practice (docs/references.md#practice-vehicle-size);
+- IDM traits (headway 1.2 s, minimum gap 2 m, acceleration 1.2 m/s^2, comfortable deceleration 1.8 m/s^2):
+  spread around the highway set of Treiber & Kesting 2013, values from memory
+  (docs/references.md#treiber-kesting-2013-book, docs/references.md#treiber-2000-idm);
+- MOBIL traits: politeness 0.2 and safe braking 4 m/s^2 from Kesting, Treiber, Helbing 2007; change threshold
+  0.2 m/s^2 from the model authors' later material, not the 2007 paper's 0.1 m/s^2 (from memory)
+  (docs/references.md#kesting-2007-mobil);
+- lane change across one lane in 3 s: common practice (docs/references.md#practice-lane-change-duration);
+- merge zone 250 m: common practice (docs/references.md#practice-road-layout);
+- the ego's limits, 3 m/s^2 of acceleration, 8 m/s^2 of braking, 0.5 rad of steering and 0.6 rad/s of steering
+  rate: common practice, the steering figures from memory (docs/references.md#practice-ego-limits);
+- yield probability 0.5, yield window 40 m, hard-braking events (5 m/s^2 for 1.5 s), the simulated stretch around
+  the ego, 0.1 s steps and 20 s episodes: chosen for this sandbox (docs/references.md#sandbox-choices).
 """
 
 from __future__ import annotations
@@ -164,8 +182,9 @@ class Drivers(_Strict):
     """Distributions of the hidden traits drawn for every traffic driver, and of their random events.
 
     IDM traits: desired speed v0, time headway T, minimum gap s0, maximum acceleration a, comfortable
-    deceleration b (Treiber, Hennecke, Helbing 2000). MOBIL traits: politeness p, change threshold, safe
-    braking b_safe (Kesting, Treiber, Helbing 2007). The decisive choices are random *events* drawn when an
+    deceleration b (Treiber, Hennecke, Helbing 2000; docs/references.md#treiber-2000-idm). MOBIL traits:
+    politeness p, change threshold, safe braking b_safe (Kesting, Treiber, Helbing 2007;
+    docs/references.md#kesting-2007-mobil). The decisive choices are random *events* drawn when an
     interaction begins: whether a driver yields to a vehicle merging in beside it, and when a driver brakes hard.
     """
 

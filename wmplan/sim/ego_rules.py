@@ -9,7 +9,8 @@ policies that generate datasets. Vectorised over scenes.
 * Lane choice: if the ego's lane ends within the merge zone, it moves to the merge lane as soon as the MOBIL
   safety criterion (Kesting et al. 2007) holds for the new follower; while waiting it also follows the vehicle
   ahead in the target lane, so it slots in behind it. Elsewhere it overtakes by the MOBIL incentive with
-  politeness 0.2 and threshold 0.2 m/s^2.
+  politeness 0.2 and threshold 0.2 m/s^2 (the threshold of the model authors' later material; the 2007 paper
+  gives 0.1 m/s^2, from memory: docs/references.md#kesting-2007-mobil).
 * Lateral: steer toward a heading that closes the lateral error to the target lane centre (a proportional law
   on lateral and heading error, common practice), through the kinematic bicycle's yaw-rate relation.
 """
