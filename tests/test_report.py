@@ -23,7 +23,7 @@ from PIL import Image
 from wmplan.data import simulate_dataset
 from wmplan.errors import ConfigError
 from wmplan.evaluate.report import calibration
-from wmplan.evaluate.stats import wilson_interval
+from wmplan.intervals import wilson_interval
 from wmplan.model.train import write_metrics_csv
 from wmplan.report import ASSESS_METRICS, build_report, cli_report
 from wmplan.scenario import load_scenario, scenario_to_yaml

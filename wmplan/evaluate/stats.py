@@ -2,7 +2,7 @@
 
 Formulas and sources:
 
-- Wilson (1927) score interval: ``(p + z^2/2n +- z sqrt(p(1-p)/n + z^2/4n^2)) / (1 + z^2/n)``.
+- Wilson (1927) score interval: defined once in :mod:`wmplan.intervals` (imported here).
 - Clopper & Pearson (1934) exact interval: lower ``BetaInv(a/2; k, n-k+1)`` (0 if k = 0), upper
   ``BetaInv(1-a/2; k+1, n-k)`` (1 if k = n).
 - Student t interval for a mean: ``mean +- t_{(1+level)/2, n-1} s / sqrt(n)``.
@@ -26,10 +26,7 @@ import numpy as np
 import scipy.stats
 
 from wmplan.errors import ConfigError
-
-Z_95 = 1.959963984540054
-"""Standard normal quantile Phi^-1(0.975): two-sided 95 % intervals."""
-
+from wmplan.intervals import Z_95, wilson_interval  # noqa: F401  (the one Wilson interval, for this module's users)
 
 # --- input checks ---------------------------------------------------------------------------------------------
 
@@ -84,29 +81,6 @@ def _check_bins(fn: str, num_bins: int) -> None:
 
 
 # --- binomial intervals ---------------------------------------------------------------------------------------
-
-
-def wilson_interval(k: object, n: object, z: float = Z_95) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson (1927) score interval for a binomial proportion.
-
-    Args:
-        k: (...) event counts, integers 0..n.
-        n: (...) trial counts > 0, broadcastable with k.
-        z: normal quantile (1.959964 for two-sided 95 %).
-
-    Returns:
-        ``(low, high)``, float64 of the broadcast shape; exactly 0 where k = 0 and 1 where k = n.
-    """
-    k_arr, n_arr = _counts("wilson_interval", k, n)
-    if not z > 0:
-        raise ConfigError(f"wilson_interval: z must be > 0, got {z!r}")
-    p = k_arr / n_arr
-    z2n = z * z / n_arr
-    centre = (p + z2n / 2) / (1 + z2n)
-    half = z * np.sqrt(p * (1 - p) / n_arr + z2n / (4 * n_arr)) / (1 + z2n)
-    low = np.where(k_arr == 0, 0.0, np.clip(centre - half, 0.0, 1.0))
-    high = np.where(k_arr == n_arr, 1.0, np.clip(centre + half, 0.0, 1.0))
-    return low[()], high[()]
 
 
 def clopper_pearson_interval(k: object, n: object, alpha: float = 0.05) -> tuple[np.ndarray, np.ndarray]:

@@ -4,6 +4,7 @@ See :mod:`wmplan.sweep.spec` for the file format, :mod:`wmplan.sweep.episodes` f
 :mod:`wmplan.sweep.runner` for executors and the output folder.
 """
 
+from wmplan.intervals import wilson_interval
 from wmplan.sweep.cells import Cell, expand_cells
 from wmplan.sweep.episodes import (
     REQUIRED_KEYS,
@@ -25,7 +26,6 @@ from wmplan.sweep.spec import (
     parse_sweep,
     sweep_from_yaml,
 )
-from wmplan.sweep.stats import wilson_interval
 
 register_mpc_planners()
 

@@ -41,6 +41,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from wmplan.errors import ConfigError
+from wmplan.intervals import wilson_interval
 from wmplan.io import atomic_write_bytes, atomic_write_json
 from wmplan.sweep.cells import (
     ROWS_VERSION,
@@ -51,7 +52,6 @@ from wmplan.sweep.cells import (
 )
 from wmplan.sweep.episodes import REQUIRED_KEYS, PlannerFn, call_planner, get_planner
 from wmplan.sweep.spec import Sweep, SweepError, load_sweep
-from wmplan.sweep.stats import wilson_interval
 
 CAUTION = ("Results come from a simplified traffic model; they certify nothing about a real vehicle. "
            "Real programmes follow ISO 26262, ISO 21448, local regulation and licensed engineering practice.")
