@@ -9,6 +9,10 @@ Formulas and sources:
 - Brier (1950) score ``mean((p - y)^2)``.
 - Expected calibration error (Naeini, Cooper, Hauskrecht, AAAI 2015; Guo et al., ICML 2017):
   ``sum_b (n_b / N) |freq_b - mean_pred_b|`` over the non-empty bins.
+- Near miss (:func:`is_near_miss`): an episode without a collision whose smallest time-to-collision fell below
+  1.5 s or whose brake threat (:mod:`wmplan.sim.threat`) exceeded 1. The 1.5 s threshold is one widely used to call
+  a traffic conflict serious (van der Horst 1990, TU Delft doctoral thesis; from memory:
+  docs/references.md#ttc-conflict-threshold). Its rate gets a Wilson interval.
 
 Bin convention (ECE depends on it): ``num_bins`` equal-width bins on [0, 1]; bin b is ``[b/B, (b+1)/B)``,
 right-open, except the last, which is closed ``[(B-1)/B, 1]``. A prediction p goes to bin
@@ -26,7 +30,7 @@ import numpy as np
 import scipy.stats
 
 from wmplan.errors import ConfigError
-from wmplan.intervals import Z_95, wilson_interval  # noqa: F401  (the one Wilson interval, for this module's users)
+from wmplan.intervals import Z_95, wilson_interval  # noqa: F401  (Z_95 for this module's users)
 
 # --- input checks ---------------------------------------------------------------------------------------------
 
@@ -218,3 +222,93 @@ def expected_calibration_error(p: object, y: object, num_bins: int = 10) -> floa
     sum_y = np.bincount(idx, weights=y_arr, minlength=num_bins)
     # n_b/N * |sum_y/n_b - sum_p/n_b| = |sum_y - sum_p| / N; empty bins contribute 0.
     return float(np.abs(sum_y - sum_p).sum() / p_arr.size)
+
+
+# --- near misses ----------------------------------------------------------------------------------------------
+
+NEAR_MISS_TTC_S = 1.5
+"""Time-to-collision below which a conflict counts as a near miss, s (1.5 s; source in the module docstring)."""
+
+NEAR_MISS_BRAKE_THREAT = 1.0
+"""Brake threat above which a conflict counts as a near miss: the ego's brakes alone could no longer avoid it."""
+
+
+def _row_value(row: dict, key: str, where: str) -> object:
+    try:
+        return row[key]
+    except (KeyError, TypeError):
+        raise ConfigError(
+            f"{where} has no '{key}' field; a near miss needs collision, min_ttc_s and max_brake_threat "
+            f"(or a precomputed near_miss)"
+        ) from None
+
+
+def is_near_miss(
+    row: dict,
+    ttc_threshold_s: float = NEAR_MISS_TTC_S,
+    brake_threat_threshold: float = NEAR_MISS_BRAKE_THREAT,
+    where: str = "episode row",
+) -> bool:
+    """Whether one episode came close to a collision without having one.
+
+    Definition: not ``collision``, and ``min_ttc_s < ttc_threshold_s`` or ``max_brake_threat >
+    brake_threat_threshold``. A collision is more severe than a near miss and is counted as a collision only, so
+    the two rates partition the episodes that went wrong. ``min_ttc_s`` is +inf in an episode without a closing
+    leader (never a near miss by time-to-collision); a NaN in either field never meets its criterion.
+
+    Args:
+        row: one episode row of :mod:`wmplan.evaluate.closed_loop` (a dict with ``collision``, ``min_ttc_s`` in s
+            and ``max_brake_threat``, dimensionless).
+        ttc_threshold_s: time-to-collision threshold, s, > 0.
+        brake_threat_threshold: brake-threat threshold, > 0.
+        where: how error messages name the row.
+
+    Raises:
+        ConfigError: a field is missing or a threshold is not > 0.
+    """
+    if not ttc_threshold_s > 0:
+        raise ConfigError(f"is_near_miss: ttc_threshold_s must be > 0, got {ttc_threshold_s!r}")
+    if not brake_threat_threshold > 0:
+        raise ConfigError(f"is_near_miss: brake_threat_threshold must be > 0, got {brake_threat_threshold!r}")
+    if bool(_row_value(row, "collision", where)):
+        return False
+    ttc = float(_row_value(row, "min_ttc_s", where))
+    threat = float(_row_value(row, "max_brake_threat", where))
+    return bool(ttc < ttc_threshold_s or threat > brake_threat_threshold)
+
+
+def near_miss_flags(rows: list[dict], name: str = "planner", **thresholds: float) -> np.ndarray:
+    """(N,) bool near-miss flag per episode row: the row's own ``near_miss`` when present, else :func:`is_near_miss`.
+
+    Args:
+        rows: episode rows.
+        name: the planner, for error messages.
+        **thresholds: ``ttc_threshold_s`` and/or ``brake_threat_threshold`` for :func:`is_near_miss`.
+    """
+    return np.array(
+        [
+            bool(r["near_miss"]) if isinstance(r, dict) and "near_miss" in r
+            else is_near_miss(r, where=f"row {i} of planner '{name}'", **thresholds)
+            for i, r in enumerate(rows)
+        ],
+        dtype=bool,
+    )
+
+
+def near_miss_rate(rows: list[dict], name: str = "planner", **thresholds: float) -> tuple[float, list[float]]:
+    """Near-miss rate of a planner's episodes with its Wilson (1927) 95 % interval.
+
+    Args:
+        rows: N >= 1 episode rows (see :func:`near_miss_flags`).
+        name: the planner, for error messages.
+        **thresholds: passed to :func:`is_near_miss`.
+
+    Returns:
+        ``(rate, [low, high])`` as floats.
+    """
+    if len(rows) == 0:
+        raise ConfigError(f"near_miss_rate: planner '{name}' has no episode rows")
+    flags = near_miss_flags(rows, name, **thresholds)
+    k, n = int(flags.sum()), int(flags.size)
+    low, high = wilson_interval(k, n)
+    return k / n, [float(low), float(high)]
