@@ -1,8 +1,8 @@
 """Reference tests of ``wmplan.intervals.wilson_interval``: one definition for numpy, Python numbers and torch.
 
 Sources:
-- Wilson (1927) score interval (docs/references.md#wilson-1927-score-interval); reference library
-  ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")``.
+- Wilson (1927) score interval (docs/references.md#wilson-1927); reference library
+  ``scipy.stats.binomtest(k, n).proportion_ci(method="wilson")`` (docs/references.md#lib-scipy).
 - Table values (6 decimals) computed from the formula with scipy, listed in the same entry: 3/200 -> [0.005114,
   0.043166], 0/200 -> [0, 0.018845], 7/50 -> [0.069508, 0.261862], 1/1000 -> [0.000177, 0.005643].
 """

@@ -1,6 +1,6 @@
 """The Wilson score interval of a binomial proportion, the one definition every stage uses.
 
-Wilson (1927), JASA 22, 209-212 (docs/references.md#wilson-1927-score-interval)::
+Wilson (1927), JASA 22, 209-212 (docs/references.md#wilson-1927)::
 
     centre = (p + z^2 / 2n) / (1 + z^2 / n)
     half   = z * sqrt(p (1 - p) / n + z^2 / 4n^2) / (1 + z^2 / n),    p = k / n

@@ -1,19 +1,22 @@
 """Reference tests of ``wmplan.evaluate.paired``: paired differences, McNemar, power, the no-power wording, tables.
 
-Sources (entries of docs/references.md) and the checks made against each:
-- Newcombe (1998) method 10 (#newcombe-1998-paired-difference): the worked example of Fagerland, Lydersen & Laake,
-  "Statistical Analysis of Contingency Tables" (2017), chapter 8, data of Cavo et al. (2012): table [[59, 6],
-  [16, 80]] -> difference -0.0621, 95 % interval -0.1186 to -0.0046 (4 decimals, as asserted by the test suite of
-  the book's companion R package, read but not run); and a seeded coverage simulation (about 95 %).
-- Exact McNemar test (#mcnemar-1947-test): statsmodels.stats.contingency_tables.mcnemar(table, exact=True), a
-  general-purpose reference library; hand check b = 9, c = 1 -> p = 2 (1 + 10) / 1024 = 0.021484375.
-- Connor (1987) pairs for 80 % power (#connor-1987-sample-size): p10 = 0.05, p01 = 0.45 -> 23 pairs and p10 = 0.15,
-  p01 = 0.30 -> 155 pairs (worked examples of the formula published with public sample-size calculators that cite
-  Connor 1987, p. 209; seen, the paper itself not); p10 = 0.05, p01 = 0.01 -> 291.96, 292 pairs (by hand from the
-  formula). A seeded Monte Carlo of McNemar tests at the computed n reaches about 80 %.
-- Paired t interval: scipy.stats.ttest_rel(x, y).confidence_interval(0.95), a general-purpose reference library.
+Sources and the checks made against each:
+- Newcombe (1998) method 10 (docs/references.md#newcombe-1998-paired-difference): the worked example of Fagerland,
+  Lydersen & Laake, "Statistical Analysis of Contingency Tables" (2017), chapter 8, data of Cavo et al. (2012)
+  (docs/references.md#fagerland-2017-contingency-tables): table [[59, 6], [16, 80]] -> difference -0.0621, 95 %
+  interval -0.1186 to -0.0046 (4 decimals, as asserted by the test suite of the book's companion R package, read
+  but not run); and a seeded coverage simulation (about 95 %).
+- Exact McNemar test (docs/references.md#mcnemar-1947): statsmodels.stats.contingency_tables.mcnemar(table,
+  exact=True), a general-purpose reference library (docs/references.md#lib-statsmodels); hand check b = 9, c = 1
+  -> p = 2 (1 + 10) / 1024 = 0.021484375.
+- Connor (1987) pairs for 80 % power (docs/references.md#connor-1987-sample-size): p10 = 0.05, p01 = 0.45 -> 23
+  pairs and p10 = 0.15, p01 = 0.30 -> 155 pairs (worked examples of the formula published with public sample-size
+  calculators that cite Connor 1987, p. 209; seen, the paper itself not); p10 = 0.05, p01 = 0.01 -> 291.96, 292
+  pairs (by hand from the formula). A seeded Monte Carlo of McNemar tests at the computed n reaches about 80 %.
+- Paired t interval: scipy.stats.ttest_rel(x, y).confidence_interval(0.95) (docs/references.md#lib-scipy).
 - Upper bounds without events: scipy.stats.binomtest(0, n, alternative="less").proportion_ci(0.95) (exact
-  Clopper-Pearson), and the rule of three 3/n (#hanley-1983-rule-of-three, from memory).
+  Clopper-Pearson, docs/references.md#clopper-pearson-1934), and the rule of three 3/n
+  (docs/references.md#hanley-1983-rule-of-three, from memory).
 """
 
 from __future__ import annotations

@@ -8,10 +8,10 @@ near miss) the n pairs form a 2x2 table::
 
 and the rate difference, planner minus reference, is ``(b - c) / n``: only the b + c discordant pairs carry it.
 
-Methods and sources (entries of docs/references.md):
+Methods and sources:
 
 - Interval for a difference of paired proportions: Newcombe (1998), Statistics in Medicine 17, 2635-2650, method 10
-  (#newcombe-1998-paired-difference). With Wilson intervals [l1, u1] of the planner's rate p1 = (a + b) / n and
+  (docs/references.md#newcombe-1998-paired-difference). With Wilson intervals [l1, u1] of the planner's rate p1 = (a + b) / n and
   [l2, u2] of the reference's p2 = (a + c) / n, theta = p1 - p2::
 
       L = theta - sqrt((p1 - l1)^2 - 2 phi (p1 - l1)(u2 - p2) + (u2 - p2)^2)
@@ -20,10 +20,10 @@ Methods and sources (entries of docs/references.md):
       A = ad - bc,  P = (a + b)(c + d)(a + c)(b + d)   (phi = 0 when any of those margins is 0)
 
   It stays inside [-1, 1] and keeps a width at zero counts, where the Wald interval collapses to a point.
-- Exact McNemar test (McNemar 1947, Psychometrika 12, 153-157; #mcnemar-1947-test): under no difference
+- Exact McNemar test (McNemar 1947, Psychometrika 12, 153-157; docs/references.md#mcnemar-1947): under no difference
   b ~ Binomial(b + c, 1/2); two-sided p = min(1, 2 P(X <= min(b, c))), and 1 without discordant pairs.
-- Pairs needed for 80 % power: Connor (1987), Biometrics 43, 207-211 (#connor-1987-sample-size), for discordant
-  probabilities p10 (planner only) and p01 (reference only), psi = p10 + p01, delta = p10 - p01::
+- Pairs needed for 80 % power: Connor (1987), Biometrics 43, 207-211
+  (docs/references.md#connor-1987-sample-size), for discordant probabilities p10 (planner only) and p01 (reference only), psi = p10 + p01, delta = p10 - p01::
 
       n = [z_{1-alpha/2} sqrt(psi) + z_{power} sqrt(psi - delta^2)]^2 / delta^2,   rounded up
 
@@ -33,8 +33,9 @@ Methods and sources (entries of docs/references.md):
 - Speed and progress: paired t interval on the per-pair differences (Student 1908; the textbook one-sample t
   interval of the differences, common practice).
 - No discordant pair: the comparison has no power. Each planner's event rate then gets its exact one-sided 95 %
-  upper bound 1 - 0.05^(1/n) (Clopper & Pearson 1934 with k = 0), about 3/n (the "rule of three", Hanley &
-  Lippman-Hand 1983, JAMA 249, 1743-1745, from memory; #hanley-1983-rule-of-three).
+  upper bound 1 - 0.05^(1/n) (Clopper & Pearson 1934 with k = 0, docs/references.md#clopper-pearson-1934), about
+  3/n (the "rule of three", Hanley & Lippman-Hand 1983, JAMA 249, from memory;
+  docs/references.md#hanley-1983-rule-of-three).
 
 Results on a simplified traffic model certify nothing about a real vehicle. Bad input raises
 :class:`wmplan.errors.ConfigError` with a one-line message.

@@ -12,7 +12,7 @@ Formulas and sources:
 - Near miss (:func:`is_near_miss`): an episode without a collision whose smallest time-to-collision fell below
   1.5 s or whose brake threat (:mod:`wmplan.sim.threat`) exceeded 1. The 1.5 s threshold is one widely used to call
   a traffic conflict serious (van der Horst 1990, TU Delft doctoral thesis; from memory:
-  docs/references.md#ttc-conflict-threshold). Its rate gets a Wilson interval.
+  docs/references.md#van-der-horst-1990-ttc-threshold). Its rate gets a Wilson interval.
 
 Bin convention (ECE depends on it): ``num_bins`` equal-width bins on [0, 1]; bin b is ``[b/B, (b+1)/B)``,
 right-open, except the last, which is closed ``[(B-1)/B, 1]``. A prediction p goes to bin
