@@ -6,9 +6,9 @@ Wilson (1927), JASA 22, 209-212 (docs/references.md#wilson-1927)::
     half   = z * sqrt(p (1 - p) / n + z^2 / 4n^2) / (1 + z^2 / n),    p = k / n
 
 It keeps its coverage near the nominal level for small counts and rates near 0, where the normal (Wald) interval
-collapses to a point. The formula needs only arithmetic and a square root, so one body serves numpy arrays, Python
-numbers and torch tensors. This module imports numpy only (never torch or scipy.stats), so the simulator, the planner and
-sweep worker processes can all import it.
+collapses to a point. The formula needs only arithmetic and a square root, so one body serves numpy arrays,
+Python numbers and torch tensors. This module imports numpy only (never torch or scipy.stats), so the simulator,
+the planner and sweep worker processes can all import it.
 """
 
 from __future__ import annotations

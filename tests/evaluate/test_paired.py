@@ -33,10 +33,21 @@ from wmplan.errors import ConfigError
 from wmplan.evaluate import paired as P
 
 ISSUE_KEYS = {
-    "reference", "collision_rate_diff", "collision_rate_diff_ci95", "collision_p_value", "success_diff",
-    "success_diff_ci95", "mean_speed_diff_mps", "mean_speed_diff_ci95", "near_miss_rate_diff",
-    "near_miss_rate_diff_ci95", "progress_diff_m", "progress_diff_ci95", "n_pairs",
-    "collision_planner_only", "collision_reference_only",
+    "reference",
+    "collision_rate_diff",
+    "collision_rate_diff_ci95",
+    "collision_p_value",
+    "success_diff",
+    "success_diff_ci95",
+    "mean_speed_diff_mps",
+    "mean_speed_diff_ci95",
+    "near_miss_rate_diff",
+    "near_miss_rate_diff_ci95",
+    "progress_diff_m",
+    "progress_diff_ci95",
+    "n_pairs",
+    "collision_planner_only",
+    "collision_reference_only",
 }
 
 
@@ -208,7 +219,10 @@ def test_compare_planners_keys_and_values_against_references():
         ref_ci = scipy.stats.ttest_rel(x, y).confidence_interval(0.95)
         unit = "_mps" if field == "mean_speed_mps" else "_m"
         assert out[key + unit] == pytest.approx(float(np.mean(x - y)), rel=1e-12)
-        assert out[key + "_ci95"] == [pytest.approx(ref_ci.low, rel=1e-10), pytest.approx(ref_ci.high, rel=1e-10)]
+        assert out[key + "_ci95"] == [
+            pytest.approx(ref_ci.low, rel=1e-10),
+            pytest.approx(ref_ci.high, rel=1e-10),
+        ]
 
     power = out["collision_power"]
     assert power["difference_source"] == "observed" and power["no_power"] is False
@@ -293,7 +307,9 @@ def test_terminal_table_is_fixed_width():
     rng = np.random.default_rng(13)
     ref_rows = make_rows(rng, 300, 0.02, 20.0)
     cmps = {
-        "mpc+constant-velocity": P.compare_planners(ref_rows, make_rows(rng, 300, 0.08, 21.0), reference="mpc+oracle"),
+        "mpc+constant-velocity": P.compare_planners(
+            ref_rows, make_rows(rng, 300, 0.08, 21.0), reference="mpc+oracle"
+        ),
         "rules": P.compare_planners(ref_rows, make_rows(rng, 300, 0.03, 18.0), reference="mpc+oracle"),
     }
     text = P.comparison_table(cmps)
@@ -302,7 +318,7 @@ def test_terminal_table_is_fixed_width():
     assert len(starts) == len(P.TABLE_HEADER)
     for line in lines[0:1] + lines[2:4]:
         for s in starts[1:]:
-            assert line[s - 2:s] == "  " and line[s] != " "
+            assert line[s - 2 : s] == "  " and line[s] != " "
     rows = table_cells(text)
     assert [r["planner"] for r in rows] == ["mpc+constant-velocity", "rules"]
     cv = cmps["mpc+constant-velocity"]
@@ -342,7 +358,9 @@ def test_other_bad_input_is_refused_in_one_line():
         P.compare_planners(rows, no_ttc)
     with pytest.raises(ConfigError, match=re.escape("planner 'reference' has no episode rows")):
         P.compare_planners([], rows)
-    with pytest.raises(ConfigError, match=re.escape("detect['collision'] must be a difference in [-1, 1] other")):
+    with pytest.raises(
+        ConfigError, match=re.escape("detect['collision'] must be a difference in [-1, 1] other")
+    ):
         P.compare_planners(rows, rows, detect={"collision": 0.0})
     with pytest.raises(ConfigError, match=re.escape("detect keys must be among")):
         P.compare_planners(rows, rows, detect={"offroad": 0.1})

@@ -10,9 +10,9 @@ and the rate difference, planner minus reference, is ``(b - c) / n``: only the b
 
 Methods and sources:
 
-- Interval for a difference of paired proportions: Newcombe (1998), Statistics in Medicine 17, 2635-2650, method 10
-  (docs/references.md#newcombe-1998-paired-difference). With Wilson intervals [l1, u1] of the planner's rate p1 = (a + b) / n and
-  [l2, u2] of the reference's p2 = (a + c) / n, theta = p1 - p2::
+- Interval for a difference of paired proportions: Newcombe (1998), Statistics in Medicine 17, 2635-2650,
+  method 10 (docs/references.md#newcombe-1998-paired-difference). With Wilson intervals [l1, u1] of the planner's
+  rate p1 = (a + b) / n and [l2, u2] of the reference's p2 = (a + c) / n, theta = p1 - p2::
 
       L = theta - sqrt((p1 - l1)^2 - 2 phi (p1 - l1)(u2 - p2) + (u2 - p2)^2)
       U = theta + sqrt((p2 - l2)^2 - 2 phi (p2 - l2)(u1 - p1) + (u1 - p1)^2)
@@ -20,10 +20,12 @@ Methods and sources:
       A = ad - bc,  P = (a + b)(c + d)(a + c)(b + d)   (phi = 0 when any of those margins is 0)
 
   It stays inside [-1, 1] and keeps a width at zero counts, where the Wald interval collapses to a point.
-- Exact McNemar test (McNemar 1947, Psychometrika 12, 153-157; docs/references.md#mcnemar-1947): under no difference
-  b ~ Binomial(b + c, 1/2); two-sided p = min(1, 2 P(X <= min(b, c))), and 1 without discordant pairs.
+- Exact McNemar test (McNemar 1947, Psychometrika 12, 153-157, pages from memory;
+  docs/references.md#mcnemar-1947): under no difference b ~ Binomial(b + c, 1/2); two-sided
+  p = min(1, 2 P(X <= min(b, c))), and 1 without discordant pairs.
 - Pairs needed for 80 % power: Connor (1987), Biometrics 43, 207-211
-  (docs/references.md#connor-1987-sample-size), for discordant probabilities p10 (planner only) and p01 (reference only), psi = p10 + p01, delta = p10 - p01::
+  (docs/references.md#connor-1987-sample-size), for discordant probabilities p10 (planner only) and p01
+  (reference only), psi = p10 + p01, delta = p10 - p01::
 
       n = [z_{1-alpha/2} sqrt(psi) + z_{power} sqrt(psi - delta^2)]^2 / delta^2,   rounded up
 
@@ -57,7 +59,11 @@ from wmplan.intervals import Z_95, wilson_interval
 BINARY_OUTCOMES = ("collision", "success", "near_miss")
 """The 0/1 outcomes compared pair by pair, in table order."""
 
-_DIFF_KEY = {"collision": "collision_rate_diff", "success": "success_diff", "near_miss": "near_miss_rate_diff"}
+_DIFF_KEY = {
+    "collision": "collision_rate_diff",
+    "success": "success_diff",
+    "near_miss": "near_miss_rate_diff",
+}
 
 METHODS = {
     "rate_difference_ci95": "Newcombe (1998) method 10, paired hybrid score interval",
@@ -68,7 +74,9 @@ METHODS = {
 }
 """Names of the methods behind each statistic, for the JSON and the report."""
 
-_ROW_FIELDS = "seed, collision, success, mean_speed_mps, progress_m and near_miss (or min_ttc_s and max_brake_threat)"
+_ROW_FIELDS = (
+    "seed, collision, success, mean_speed_mps, progress_m and near_miss (or min_ttc_s and max_brake_threat)"
+)
 
 
 # --- one 2x2 table --------------------------------------------------------------------------------------------
@@ -155,7 +163,9 @@ def mcnemar_exact_p(planner_only: int, reference_only: int) -> float:
 
 def _check_design(p10: float, p01: float, alpha: float, power: float) -> None:
     if not (0 <= p10 <= 1 and 0 <= p01 <= 1 and p10 + p01 <= 1):
-        raise ConfigError(f"discordant probabilities need 0 <= p10, p01 and p10 + p01 <= 1, got {p10!r}, {p01!r}")
+        raise ConfigError(
+            f"discordant probabilities need 0 <= p10, p01 and p10 + p01 <= 1, got {p10!r}, {p01!r}"
+        )
     if not 0 < alpha < 1:
         raise ConfigError(f"alpha must lie in (0, 1), got {alpha!r}")
     if not 0 < power < 1:
@@ -284,7 +294,9 @@ def _values(rows: list[dict], key: str, name: str) -> np.ndarray:
         ) from None
 
 
-def paired_mean_difference(planner: object, reference: object, level: float = 0.95) -> tuple[float, list[float]]:
+def paired_mean_difference(
+    planner: object, reference: object, level: float = 0.95
+) -> tuple[float, list[float]]:
     """Mean of the per-pair differences (planner minus reference) with its paired t interval.
 
     Pairs where either value is not finite are left out.
@@ -296,7 +308,9 @@ def paired_mean_difference(planner: object, reference: object, level: float = 0.
     p = np.asarray(planner, dtype=np.float64).ravel()
     r = np.asarray(reference, dtype=np.float64).ravel()
     if p.shape != r.shape:
-        raise ConfigError(f"paired_mean_difference: needs two arrays of one length, got {p.size} and {r.size}")
+        raise ConfigError(
+            f"paired_mean_difference: needs two arrays of one length, got {p.size} and {r.size}"
+        )
     diff = (p - r)[np.isfinite(p) & np.isfinite(r)]
     if diff.size == 0:
         return math.nan, [math.nan, math.nan]
@@ -515,7 +529,9 @@ def _table_rows(comparisons: Mapping[str, dict]) -> tuple[list[list[str]], list[
         for outcome in BINARY_OUTCOMES:
             key, entry = _DIFF_KEY[outcome], cmp[f"{outcome}_power"]
             if entry["no_power"]:
-                notes.append(f"{planner} vs {cmp['reference']}, {outcome.replace('_', ' ')}: {entry['statement']}")
+                notes.append(
+                    f"{planner} vs {cmp['reference']}, {outcome.replace('_', ' ')}: {entry['statement']}"
+                )
                 cells.append(f"no power [{len(notes)}]")
                 p_cell = "-"
             else:
@@ -542,7 +558,9 @@ def comparison_table(comparisons: Mapping[str, dict]) -> str:
     """
     rows, notes = _table_rows(comparisons)
     widths = [max(len(r[i]) for r in [TABLE_HEADER, *rows]) for i in range(len(TABLE_HEADER))]
-    lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [TABLE_HEADER, *rows]]
+    lines = [
+        "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [TABLE_HEADER, *rows]
+    ]
     lines.insert(1, "  ".join("-" * w for w in widths))
     lines.append(TABLE_METHODS)
     lines.extend(f"[{i}] {note}" for i, note in enumerate(notes, start=1))

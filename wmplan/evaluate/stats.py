@@ -278,7 +278,7 @@ def is_near_miss(
 
 
 def near_miss_flags(rows: list[dict], name: str = "planner", **thresholds: float) -> np.ndarray:
-    """(N,) bool near-miss flag per episode row: the row's own ``near_miss`` when present, else :func:`is_near_miss`.
+    """(N,) bool near-miss flags of episode rows: a row's own ``near_miss`` when present, else :func:`is_near_miss`.
 
     Args:
         rows: episode rows.
