@@ -23,8 +23,8 @@ from PIL import Image
 
 from wmplan.data import simulate_dataset
 from wmplan.errors import ConfigError
-from wmplan.evaluate.stats import wilson_interval
 from wmplan.evaluate.tables import calibration
+from wmplan.intervals import wilson_interval
 from wmplan.model.train import write_metrics_csv
 from wmplan.report import ASSESS_METRICS, build_report, cli_report
 from wmplan.scenario import load_scenario, scenario_to_yaml

@@ -169,7 +169,7 @@ def test_errors_name_the_value():
     """Bad input raises a one-line ConfigError naming the function, the value and the rule (DEVELOPERS.md,
     "Errors and files")."""
     with pytest.raises(
-        ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n with n > 0, got k=5 n=4")
+        ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")
     ):
         stats.wilson_interval(5, 4)
     with pytest.raises(
@@ -196,3 +196,58 @@ def test_errors_name_the_value():
         ConfigError, match=re.escape("reliability_bins: num_bins must be an integer >= 1, got 0")
     ):
         stats.reliability_bins([0.2], [0], num_bins=0)
+
+
+# --- near misses ----------------------------------------------------------------------------------------------
+# Definition: no collision, and minimum time-to-collision below 1.5 s (a threshold widely used for serious traffic
+# conflicts, van der Horst 1990, from memory: docs/references.md#van-der-horst-1990-ttc-threshold) or brake threat above 1
+# (the brakes alone can no longer avoid the obstacle, wmplan/sim/threat.py). Rate interval: Wilson (1927) against
+# scipy.stats.binomtest(...).proportion_ci(method="wilson").
+
+
+def _row(collision=False, ttc=float("inf"), threat=0.0, **extra):
+    return {"collision": collision, "min_ttc_s": ttc, "max_brake_threat": threat, **extra}
+
+
+@pytest.mark.parametrize(
+    ("row", "expected"),
+    [
+        (_row(ttc=1.49), True),
+        (_row(ttc=1.5), False),  # strictly below the threshold
+        (_row(ttc=3.0, threat=1.01), True),
+        (_row(ttc=3.0, threat=1.0), False),  # strictly above 1
+        (_row(ttc=0.2, threat=4.0, collision=True), False),  # a collision is counted as a collision only
+        (_row(ttc=float("inf"), threat=0.3), False),  # no closing leader
+        (_row(ttc=float("nan"), threat=float("nan")), False),
+    ],
+)
+def test_near_miss_definition(row, expected):
+    """The two criteria, their strict inequalities, and collisions excluded."""
+    assert stats.is_near_miss(row) is expected
+
+
+def test_near_miss_thresholds_are_parameters():
+    """A stricter TTC threshold (1.0 s, used in some studies) or threat threshold changes the verdict."""
+    assert stats.is_near_miss(_row(ttc=1.2), ttc_threshold_s=1.0) is False
+    assert stats.is_near_miss(_row(ttc=9.0, threat=0.8), brake_threat_threshold=0.5) is True
+
+
+def test_near_miss_rate_has_a_wilson_interval():
+    """7 near misses in 40 rows: rate 0.175 and scipy's Wilson interval; a precomputed near_miss key wins."""
+    rows = [_row(ttc=1.0)] * 7 + [_row(ttc=5.0)] * 33
+    rate, ci = stats.near_miss_rate(rows)
+    ref = scipy.stats.binomtest(7, 40).proportion_ci(confidence_level=0.95, method="wilson")
+    assert rate == 0.175 and ci == [pytest.approx(ref.low, rel=1e-10), pytest.approx(ref.high, rel=1e-10)]
+    flagged = [dict(r, near_miss=True) for r in rows]
+    assert stats.near_miss_rate(flagged)[0] == 1.0
+    assert stats.near_miss_flags([{"near_miss": False}]).tolist() == [False]
+
+
+def test_near_miss_bad_input():
+    """A missing field or an empty list is a one-line ConfigError naming the planner and the field."""
+    with pytest.raises(ConfigError, match=re.escape("row 1 of planner 'rules' has no 'max_brake_threat' field")):
+        stats.near_miss_flags([_row(), {"collision": False, "min_ttc_s": 2.0}], "rules")
+    with pytest.raises(ConfigError, match=re.escape("near_miss_rate: planner 'rules' has no episode rows")):
+        stats.near_miss_rate([], "rules")
+    with pytest.raises(ConfigError, match=re.escape("ttc_threshold_s must be > 0, got 0")):
+        stats.is_near_miss(_row(), ttc_threshold_s=0)

@@ -36,7 +36,7 @@ import torch
 from wmplan.evaluate import closed_loop
 from wmplan.evaluate.closed_loop import run_batch
 from wmplan.evaluate.planners import HISTORY, NUM_OBJECTS, make_planner
-from wmplan.evaluate.stats import wilson_interval
+from wmplan.intervals import wilson_interval
 from wmplan.model.config import ModelConfig
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.world_model import WorldModel
@@ -400,7 +400,7 @@ def test_mppi_update_uses_softmax_of_minus_cost_over_lambda(mppi_lambda):
 def test_chance_constraint_picks_a_feasible_plan_when_one_exists(sampler, use_upper_bound, epsilon):
     """With ``risk_mode='chance'`` the chosen candidate satisfies P(collision) <= epsilon (or its Wilson upper
     bound does) whenever any candidate does, and otherwise has the smallest bound; the reported Wilson interval is
-    the one of ``wmplan.evaluate.stats.wilson_interval`` for k of K futures (docs/references.md#wilson-1927).
+    the one of ``wmplan.intervals.wilson_interval`` for k of K futures (docs/references.md#wilson-1927).
 
     The predictor is an untrained forward model (seeded random weights): its futures give collision
     probabilities spread over 0..1, so most decisions mix feasible and infeasible candidates. With K = 8 the

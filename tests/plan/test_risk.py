@@ -102,38 +102,6 @@ def test_collision_probability_counts_futures():
     assert R.collision_probability(np.array([1, 0, 1, 1, 1])).item() == pytest.approx(0.8)
 
 
-@pytest.mark.parametrize(
-    ("k", "n", "table"),
-    [
-        (3, 200, (0.005114, 0.043166)),
-        (0, 200, (0.0, 0.018845)),
-        (7, 50, (0.069508, 0.261862)),
-        (1, 1000, (0.000177, 0.005643)),
-    ],
-)
-def test_wilson_interval_against_scipy(k, n, table):
-    """Wilson interval = scipy binomtest(k, n).proportion_ci(method='wilson') [S] and the table [D] of
-    docs/references.md#wilson-1927."""
-    low, high = R.wilson_interval(torch.tensor(k), torch.tensor(n))
-    ref = scipy.stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
-    assert low.item() == pytest.approx(ref.low, rel=1e-6, abs=1e-9)
-    assert high.item() == pytest.approx(ref.high, rel=1e-6)
-    assert low.item() == pytest.approx(table[0], abs=1e-6)
-    assert high.item() == pytest.approx(table[1], abs=1e-6)
-
-
-def test_wilson_interval_batched_and_one_sided():
-    """Batched counts give the same intervals as scalar calls; k = n gives upper end exactly 1 (scipy [S])."""
-    k = torch.tensor([[0, 3, 8], [1, 2, 8]])
-    low, high = R.wilson_interval(k, 8, z=1.6448536269514722)
-    for i in range(2):
-        for j in range(3):
-            ref = scipy.stats.binomtest(int(k[i, j]), 8).proportion_ci(confidence_level=0.9, method="wilson")
-            assert low[i, j].item() == pytest.approx(ref.low, rel=1e-6, abs=1e-9)
-            assert high[i, j].item() == pytest.approx(ref.high, rel=1e-6)
-    assert high[0, 2].item() == 1.0 and low[0, 0].item() == 0.0
-
-
 # --- CVaR -----------------------------------------------------------------------------------------------------
 
 
@@ -473,9 +441,5 @@ def test_errors_name_the_argument():
         R.clearance_m(torch.zeros(3, 2, 5))
     with pytest.raises(ConfigError, match=re.escape("alpha (CVaR/VaR level) must lie in [0, 1), got 1.0")):
         R.cvar(torch.zeros(4), 1.0)
-    with pytest.raises(
-        ConfigError, match=re.escape("wilson_interval needs 0 <= k <= n and n > 0, got k=5 n=4")
-    ):
-        R.wilson_interval(5, 4)
     with pytest.raises(ConfigError, match=re.escape("losses contains NaN")):
         R.cvar(torch.tensor([1.0, float("nan")]), 0.5)

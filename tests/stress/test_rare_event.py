@@ -30,6 +30,7 @@ import numpy as np
 import pytest
 from scipy.stats import binom, binomtest, norm
 
+from wmplan.intervals import wilson_interval
 from wmplan.stress.rare_event import (
     DefensiveMixture,
     ExponentialFamily,
@@ -39,7 +40,6 @@ from wmplan.stress.rare_event import (
     is_estimate,
     plain_monte_carlo,
 )
-from wmplan.sweep.stats import wilson_interval
 
 SEEDS = range(20)
 MIN_COVERED = 15

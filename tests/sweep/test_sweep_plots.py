@@ -2,7 +2,7 @@
 
 The summaries below are made up for the drawing checks only (no result is claimed from them). Pixel checks look
 for the planner colours of wmplan.sweep.plots in the rendered PNG (common practice, no source); the Wilson bars
-come from wmplan.sweep.stats (docs/references.md#wilson-1927).
+come from wmplan.intervals (docs/references.md#wilson-1927).
 """
 
 from __future__ import annotations

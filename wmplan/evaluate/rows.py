@@ -19,6 +19,8 @@ ROWS_VERSION = 3
 
 NEAR_MISS_TTC_S = 1.5
 """Time-to-collision below which an episode counts as a near miss (docs/references.md#van-der-horst-1990-ttc-threshold)."""
+NEAR_MISS_BRAKE_THREAT = 1.0
+"""Brake threat above which an episode counts as a near miss: the ego's brakes alone could no longer avoid it."""
 
 COLUMNS: tuple[tuple[str, str, str], ...] = (
     ("planner", "", "the planner spec that drove the ego (a name or an import path)"),
@@ -64,9 +66,12 @@ def columns_markdown() -> str:
 
 
 def is_near_miss(min_ttc_s: np.ndarray | float, max_brake_threat: np.ndarray | float,
-                 collision: np.ndarray | bool) -> np.ndarray:
-    """The ``near_miss`` column from its three inputs (arrays of one shape, or scalars)."""
-    close = (np.asarray(min_ttc_s) < NEAR_MISS_TTC_S) | (np.asarray(max_brake_threat) > 1.0)
+                 collision: np.ndarray | bool, ttc_threshold_s: float = NEAR_MISS_TTC_S,
+                 brake_threat_threshold: float = NEAR_MISS_BRAKE_THREAT) -> np.ndarray:
+    """The ``near_miss`` column from its three inputs (arrays of one shape, or scalars): no collision, and the
+    smallest TTC below ``ttc_threshold_s`` or the brake threat above ``brake_threat_threshold`` (NaN meets
+    neither). The one definition: ``wmplan.evaluate.stats.is_near_miss`` applies it to a row."""
+    close = (np.asarray(min_ttc_s) < ttc_threshold_s) | (np.asarray(max_brake_threat) > brake_threat_threshold)
     return close & ~np.asarray(collision, dtype=bool)
 
 

@@ -2,13 +2,17 @@
 
 Formulas and sources:
 
-- Wilson (1927) score interval: ``(p + z^2/2n +- z sqrt(p(1-p)/n + z^2/4n^2)) / (1 + z^2/n)``.
+- Wilson (1927) score interval: defined once in :mod:`wmplan.intervals` (imported here).
 - Clopper & Pearson (1934) exact interval: lower ``BetaInv(a/2; k, n-k+1)`` (0 if k = 0), upper
   ``BetaInv(1-a/2; k+1, n-k)`` (1 if k = n).
 - Student t interval for a mean: ``mean +- t_{(1+level)/2, n-1} s / sqrt(n)``.
 - Brier (1950) score ``mean((p - y)^2)``.
 - Expected calibration error (Naeini, Cooper, Hauskrecht, AAAI 2015; Guo et al., ICML 2017):
   ``sum_b (n_b / N) |freq_b - mean_pred_b|`` over the non-empty bins.
+- Near miss (:func:`is_near_miss`): an episode without a collision whose smallest time-to-collision fell below
+  1.5 s or whose brake threat (:mod:`wmplan.sim.threat`) exceeded 1. The 1.5 s threshold is one widely used to call
+  a traffic conflict serious (van der Horst 1990, TU Delft doctoral thesis; from memory:
+  docs/references.md#van-der-horst-1990-ttc-threshold). Its rate gets a Wilson interval.
 
 Bin convention (ECE depends on it): ``num_bins`` equal-width bins on [0, 1]; bin b is ``[b/B, (b+1)/B)``,
 right-open, except the last, which is closed ``[(B-1)/B, 1]``. A prediction p goes to bin
@@ -26,10 +30,9 @@ import numpy as np
 import scipy.stats
 
 from wmplan.errors import ConfigError
-
-Z_95 = 1.959963984540054
-"""Standard normal quantile Phi^-1(0.975): two-sided 95 % intervals."""
-
+from wmplan.evaluate.rows import NEAR_MISS_BRAKE_THREAT, NEAR_MISS_TTC_S
+from wmplan.evaluate.rows import is_near_miss as near_miss_definition
+from wmplan.intervals import Z_95, wilson_interval  # noqa: F401  (Z_95 for this module's users)
 
 # --- input checks ---------------------------------------------------------------------------------------------
 
@@ -84,29 +87,6 @@ def _check_bins(fn: str, num_bins: int) -> None:
 
 
 # --- binomial intervals ---------------------------------------------------------------------------------------
-
-
-def wilson_interval(k: object, n: object, z: float = Z_95) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson (1927) score interval for a binomial proportion.
-
-    Args:
-        k: (...) event counts, integers 0..n.
-        n: (...) trial counts > 0, broadcastable with k.
-        z: normal quantile (1.959964 for two-sided 95 %).
-
-    Returns:
-        ``(low, high)``, float64 of the broadcast shape; exactly 0 where k = 0 and 1 where k = n.
-    """
-    k_arr, n_arr = _counts("wilson_interval", k, n)
-    if not z > 0:
-        raise ConfigError(f"wilson_interval: z must be > 0, got {z!r}")
-    p = k_arr / n_arr
-    z2n = z * z / n_arr
-    centre = (p + z2n / 2) / (1 + z2n)
-    half = z * np.sqrt(p * (1 - p) / n_arr + z2n / (4 * n_arr)) / (1 + z2n)
-    low = np.where(k_arr == 0, 0.0, np.clip(centre - half, 0.0, 1.0))
-    high = np.where(k_arr == n_arr, 1.0, np.clip(centre + half, 0.0, 1.0))
-    return low[()], high[()]
 
 
 def clopper_pearson_interval(k: object, n: object, alpha: float = 0.05) -> tuple[np.ndarray, np.ndarray]:
@@ -244,3 +224,88 @@ def expected_calibration_error(p: object, y: object, num_bins: int = 10) -> floa
     sum_y = np.bincount(idx, weights=y_arr, minlength=num_bins)
     # n_b/N * |sum_y/n_b - sum_p/n_b| = |sum_y - sum_p| / N; empty bins contribute 0.
     return float(np.abs(sum_y - sum_p).sum() / p_arr.size)
+
+
+# --- near misses ----------------------------------------------------------------------------------------------
+
+
+
+def _row_value(row: dict, key: str, where: str) -> object:
+    try:
+        return row[key]
+    except (KeyError, TypeError):
+        raise ConfigError(
+            f"{where} has no '{key}' field; a near miss needs collision, min_ttc_s and max_brake_threat "
+            f"(or a precomputed near_miss)"
+        ) from None
+
+
+def is_near_miss(
+    row: dict,
+    ttc_threshold_s: float = NEAR_MISS_TTC_S,
+    brake_threat_threshold: float = NEAR_MISS_BRAKE_THREAT,
+    where: str = "episode row",
+) -> bool:
+    """Whether one episode came close to a collision without having one.
+
+    Definition: not ``collision``, and ``min_ttc_s < ttc_threshold_s`` or ``max_brake_threat >
+    brake_threat_threshold``. A collision is more severe than a near miss and is counted as a collision only, so
+    the two rates partition the episodes that went wrong. ``min_ttc_s`` is +inf in an episode without a closing
+    leader (never a near miss by time-to-collision); a NaN in either field never meets its criterion.
+
+    Args:
+        row: one episode row of :mod:`wmplan.evaluate.closed_loop` (a dict with ``collision``, ``min_ttc_s`` in s
+            and ``max_brake_threat``, dimensionless).
+        ttc_threshold_s: time-to-collision threshold, s, > 0.
+        brake_threat_threshold: brake-threat threshold, > 0.
+        where: how error messages name the row.
+
+    Raises:
+        ConfigError: a field is missing or a threshold is not > 0.
+    """
+    if not ttc_threshold_s > 0:
+        raise ConfigError(f"is_near_miss: ttc_threshold_s must be > 0, got {ttc_threshold_s!r}")
+    if not brake_threat_threshold > 0:
+        raise ConfigError(f"is_near_miss: brake_threat_threshold must be > 0, got {brake_threat_threshold!r}")
+    if bool(_row_value(row, "collision", where)):
+        return False
+    ttc = float(_row_value(row, "min_ttc_s", where))
+    threat = float(_row_value(row, "max_brake_threat", where))
+    return bool(near_miss_definition(ttc, threat, False, ttc_threshold_s, brake_threat_threshold))
+
+
+def near_miss_flags(rows: list[dict], name: str = "planner", **thresholds: float) -> np.ndarray:
+    """(N,) bool near-miss flags of episode rows: a row's own ``near_miss`` when present, else :func:`is_near_miss`.
+
+    Args:
+        rows: episode rows.
+        name: the planner, for error messages.
+        **thresholds: ``ttc_threshold_s`` and/or ``brake_threat_threshold`` for :func:`is_near_miss`.
+    """
+    return np.array(
+        [
+            bool(r["near_miss"]) if isinstance(r, dict) and "near_miss" in r
+            else is_near_miss(r, where=f"row {i} of planner '{name}'", **thresholds)
+            for i, r in enumerate(rows)
+        ],
+        dtype=bool,
+    )
+
+
+def near_miss_rate(rows: list[dict], name: str = "planner", **thresholds: float) -> tuple[float, list[float]]:
+    """Near-miss rate of a planner's episodes with its Wilson (1927) 95 % interval.
+
+    Args:
+        rows: N >= 1 episode rows (see :func:`near_miss_flags`).
+        name: the planner, for error messages.
+        **thresholds: passed to :func:`is_near_miss`.
+
+    Returns:
+        ``(rate, [low, high])`` as floats.
+    """
+    if len(rows) == 0:
+        raise ConfigError(f"near_miss_rate: planner '{name}' has no episode rows")
+    flags = near_miss_flags(rows, name, **thresholds)
+    k, n = int(flags.sum()), int(flags.size)
+    low, high = wilson_interval(k, n)
+    return k / n, [float(low), float(high)]

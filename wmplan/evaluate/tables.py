@@ -20,8 +20,8 @@ from wmplan.evaluate.stats import (
     expected_calibration_error,
     mean_ci,
     reliability_bins,
-    wilson_interval,
 )
+from wmplan.intervals import wilson_interval
 from wmplan.io import atomic_write_bytes, atomic_write_json
 from wmplan.sim.engine import CONTACT_SIDES
 

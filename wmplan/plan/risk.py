@@ -9,7 +9,7 @@ geometric quantity below is computed from positions and velocities relative to t
 Formulas and sources:
 
 - Collision probability over K equally likely futures: the fraction that collide; its Wilson (1927) score
-  interval ``(p + z^2/2n +- z sqrt(p(1-p)/n + z^2/4n^2)) / (1 + z^2/n)``.
+  interval (:func:`wmplan.intervals.wilson_interval`).
 - CVaR (Rockafellar & Uryasev, J. Risk 2(3), 2000, Theorem 1; atoms: J. Banking & Finance 26, 2002):
   ``CVaR_a(L) = min_c c + E[(L - c)^+] / (1 - a)``, the mean of the worst ``1 - a`` probability mass of ``L``,
   splitting the sample that straddles the ``a``-quantile. VaR is ``inf{c : P(L <= c) >= a}``.
@@ -38,6 +38,7 @@ import torch
 from torch import Tensor
 
 from wmplan.errors import ConfigError
+from wmplan.intervals import Z_95, wilson_interval
 from wmplan.sim.features import (
     F_HEADING,
     F_LENGTH,
@@ -50,9 +51,6 @@ from wmplan.sim.features import (
     NUM_VEHICLE_FEATURES,
     VEHICLE_FEATURES,
 )
-
-Z_95 = 1.959963984540054
-"""Standard normal quantile Phi^-1(0.975): two-sided 95 % intervals."""
 
 BOX_FIELDS = ("x_m", "y_m", "heading_rad", "length_m", "width_m")
 """Layout of the last axis of the boxes taken by :func:`box_signed_distance_m`."""
@@ -102,38 +100,6 @@ def collision_probability(collided: object) -> Tensor:
     if flags.ndim < 1 or flags.shape[-1] < 1:
         raise ConfigError(f"collided has shape {tuple(flags.shape)}; expected (B*, K) with K >= 1")
     return flags.to(torch.float32).mean(dim=-1)
-
-
-def wilson_interval(k: object, n: object, z: float = Z_95) -> tuple[Tensor, Tensor]:
-    """Wilson (1927) score interval for a binomial proportion, batched.
-
-    Args:
-        k: (B*,) number of events (integers 0..n).
-        n: (B*,) number of trials (> 0), broadcastable with k.
-        z: normal quantile; 1.959964 for a two-sided 95 % interval, 1.644854 for a one-sided 95 % bound
-            (use the upper end only).
-
-    Returns:
-        ``(low, high)``, each (B*,) float32; exactly 0 where k = 0 and exactly 1 where k = n.
-    """
-    k64 = torch.as_tensor(k).to(torch.float64)
-    n64 = torch.as_tensor(n).to(torch.float64)
-    k64, n64 = torch.broadcast_tensors(k64, n64)
-    bad = (n64 <= 0) | (k64 < 0) | (k64 > n64)
-    if bool(bad.any()):
-        i = int(torch.nonzero(bad.reshape(-1))[0])
-        raise ConfigError(
-            f"wilson_interval needs 0 <= k <= n and n > 0, got k={k64.reshape(-1)[i]:g} n={n64.reshape(-1)[i]:g}"
-        )
-    if not z > 0:
-        raise ConfigError(f"z must be > 0, got {z!r}")
-    p = k64 / n64
-    z2n = z * z / n64
-    centre = (p + z2n / 2) / (1 + z2n)
-    half = z * torch.sqrt(p * (1 - p) / n64 + z2n / (4 * n64)) / (1 + z2n)
-    low = torch.where(k64 == 0, 0.0, (centre - half).clamp(0.0, 1.0))
-    high = torch.where(k64 == n64, 1.0, (centre + half).clamp(0.0, 1.0))
-    return low.to(torch.float32), high.to(torch.float32)
 
 
 # --- VaR and CVaR ---------------------------------------------------------------------------------------------

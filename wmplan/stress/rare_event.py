@@ -2,7 +2,7 @@
 
 We want p = P_f(S(X) >= gamma), X drawn from a nominal density f, for a score S that is rarely that high.
 
-Plain Monte Carlo draws N samples from f and counts; its interval is Wilson's (``wmplan.sweep.stats``). To see a
+Plain Monte Carlo draws N samples from f and counts; its interval is Wilson's (``wmplan.intervals``). To see a
 few failures at p = 1e-4 it needs tens of thousands of samples.
 
 Importance sampling draws from a proposal g instead and weights each sample by W = f(X) / g(X)::
@@ -59,7 +59,7 @@ from statistics import NormalDist
 
 import numpy as np
 
-from wmplan.sweep.stats import wilson_interval
+from wmplan.intervals import wilson_interval
 
 ScoreFn = Callable[[np.ndarray], "np.ndarray | tuple[np.ndarray, np.ndarray]"]
 """``score(x (N, D)) -> scores (N,)``, failure meaning score >= gamma; or ``-> (scores, values)`` where ``values``

@@ -25,8 +25,8 @@ from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.figure import Figure
 
 from wmplan.caution import caution_footer
+from wmplan.intervals import wilson_interval
 from wmplan.io import atomic_write_bytes
-from wmplan.sweep.stats import wilson_interval
 
 PLANNER_COLOURS = ("#1f5fa8", "#2b8a3e", "#b8860b", "#a61e4d", "#343a40", "#5c940d")
 """Blue, green, dark gold, crimson, charcoal, olive: distinct from the scene colours and from each other."""

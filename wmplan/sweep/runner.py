@@ -46,6 +46,7 @@ from wmplan.errors import ConfigError
 from wmplan.evaluate.closed_loop import run_episodes
 from wmplan.evaluate.planners import BUILTIN_PLANNERS, planner_names, resolve_planner
 from wmplan.evaluate.rows import COLUMN_NAMES, ROWS_VERSION, rows_table
+from wmplan.intervals import wilson_interval
 from wmplan.io import atomic_write_bytes, atomic_write_json
 from wmplan.sweep.cells import (
     Cell,
@@ -54,7 +55,6 @@ from wmplan.sweep.cells import (
     param_column_value,
 )
 from wmplan.sweep.spec import Sweep, SweepError, load_sweep
-from wmplan.sweep.stats import wilson_interval
 
 SCHEDULER_TIMEOUT_S = 20.0
 """How long to try to reach a Dask scheduler before giving up."""

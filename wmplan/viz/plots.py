@@ -112,7 +112,7 @@ def reliability_figure(bins: object, *, title: str | None = None, brier: float |
         with Wilson 95% intervals on the observed frequency, joined by lines; the diagonal is perfect
         calibration), and the number of decisions per bin below (log scale when the counts span decades).
     """
-    from wmplan.evaluate.stats import wilson_interval  # scipy: imported only when a diagram is drawn
+    from wmplan.intervals import wilson_interval
 
     sets = _calibration_sets(bins)
     if len(sets) == 1:
