@@ -342,18 +342,19 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
             if not isinstance(results, dict) or not results or not all(isinstance(r, dict) for r in results.values()):
                 raise ConfigError(f"{path}: 'results' must map each planner to its summary")
             facts = [f"{label} {summary[k]}" for k, label in (("scenario", "scenario"), ("episodes", "episodes"),
-                                                               ("episodes_oracle", "episodes of mpc+oracle"),
                                                                ("seed", "seed")) if k in summary]
             if facts:
                 doc.add(_Para("Episodes in the true simulator, " + "; ".join(facts)
                               + ". Rates with Wilson 95% intervals, means with t intervals."))
             header = ["planner", "episodes", "collision [95% CI]", "success [95% CI]", "off-road [95% CI]",
-                      "mean speed [m/s]", "progress [m]", "median min TTC [s]", "decision [ms, median]",
+                      "mean speed [m/s]", "progress [m]", "near miss [95% CI]", "median min TTC [s]",
+                      "decision [ms, median]",
                       "collisions by side touched"]
             rows = [[name, _fmt(r.get("episodes")), _ci(r.get("collision_rate"), r.get("collision_ci95")),
                      _ci(r.get("success_rate"), r.get("success_ci95")), _ci(r.get("offroad_rate"), r.get("offroad_ci95")),
                      _ci(r.get("mean_speed_mps"), r.get("mean_speed_ci95"), 1),
-                     _ci(r.get("progress_m"), r.get("progress_ci95"), 0), _fmt(r.get("min_ttc_s_median"), 2),
+                     _ci(r.get("progress_m"), r.get("progress_ci95"), 0),
+                     _ci(r.get("near_miss_rate"), r.get("near_miss_ci95")), _fmt(r.get("min_ttc_s_median"), 2),
                      _fmt(r.get("decision_ms_median"), 1),
                      ", ".join(f"{k} {v}" for k, v in (r.get("collisions_by_contact_side") or {}).items()) or "-"]
                     for name, r in results.items()]
