@@ -276,6 +276,7 @@ def cmd_assess(args: argparse.Namespace) -> int:
 def cmd_evaluate(args: argparse.Namespace) -> int:
     from wmplan.caution import CAUTION
     from wmplan.evaluate.compare import compare_planners
+    from wmplan.evaluate.paired import comparison_table
     from wmplan.evaluate.tables import format_table
     from wmplan.scenario import load_scenario
 
@@ -286,15 +287,22 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         options["model"] = args.model
     if args.deterministic:
         options["deterministic"] = args.deterministic
+    detect = {"collision": args.detect} if args.detect is not None else None
     summary, _rows = compare_planners(
         scn, names, episodes=args.episodes, seed=args.seed, options=options, batch_size=args.batch_size,
-        out_dir=Path(args.out) if args.out else None, progress=_progress_factory,
-        log=lambda line: print(f"[evaluate] {line}", file=sys.stderr, flush=True))
+        out_dir=Path(args.out) if args.out else None, progress=_progress_factory, reference=args.reference,
+        detect=detect, log=lambda line: print(f"[evaluate] {line}", file=sys.stderr, flush=True))
     _write_json(args.json, summary)
     print(format_table(summary["results"]))
+    if summary["comparisons"]:
+        print()
+        print(f"paired comparisons with {summary['reference']} (the same {args.episodes} scene seeds):")
+        print(comparison_table(summary["comparisons"]))
     for name, c in summary["calibration"].items():
         if c.get("decisions"):
-            print(f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions")
+            print(f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions; "
+                  f"{c['decisions_p_above_0_01']} predicted P > 0.01, {c['positives_p_above_0_01']} of them followed "
+                  f"by a collision ({c['positives']} in all)")
     print(CAUTION)
     return 0
 
@@ -469,6 +477,12 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--epsilon", type=float, default=0.05, help="chance-constraint level (default 0.05)")
     sp.add_argument("--batch-size", type=_positive_int, default=50, help="episodes planned together (default 50)")
     sp.add_argument("--threads", type=_positive_int, default=2, help="torch threads (default 2)")
+    sp.add_argument("--reference", metavar="PLANNER", default=None,
+                    help="compare every other planner with this one, pair by pair on the same seeds (default: "
+                         "mpc+oracle when it runs, else rules)")
+    sp.add_argument("--detect", type=float, default=None, metavar="DIFF",
+                    help="size the power for this collision-rate difference (planner minus reference, e.g. 0.02) "
+                         "instead of the observed one")
     sp.add_argument("--out", metavar="DIR", help="write episodes.parquet, calibration.parquet, summary.json")
     sp.add_argument("--json", metavar="FILE", help="write the summary JSON")
     sp.set_defaults(func=cmd_evaluate)

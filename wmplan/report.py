@@ -359,6 +359,7 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
                      ", ".join(f"{k} {v}" for k, v in (r.get("collisions_by_contact_side") or {}).items()) or "-"]
                     for name, r in results.items()]
             doc.add(_Table(header, rows, [False] + [True] * (len(header) - 2) + [False]))
+            _comparisons(doc, summary)
             fig = closed_loop_figure(results)
             doc.add(_figure("closed_loop", fig, "Collision and success rates per planner; bars end at the rate, "
                             "whiskers at the 95% interval."))
@@ -370,6 +371,22 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
     if path.is_file():
         _candidates(doc, path, params)
     return summary
+
+
+def _comparisons(doc: _Doc, summary: dict) -> None:
+    """The paired comparisons with the reference planner, with the no-power notes in words."""
+    from wmplan.evaluate.paired import TABLE_HEADER, TABLE_METHODS, comparison_rows
+
+    comparisons = summary.get("comparisons")
+    if not isinstance(comparisons, dict) or not comparisons:
+        return
+    rows, notes = comparison_rows(comparisons)
+    doc.add(_Heading(3, f"Paired comparisons with {summary.get('reference')}"),
+            _Para("Every planner met the same scene seeds, so each is compared with the reference pair by pair. "
+                  + TABLE_METHODS),
+            _Table(list(TABLE_HEADER), rows, [False, False] + [True] * (len(TABLE_HEADER) - 2)))
+    if notes:
+        doc.add(_List([f"[{i}] {note}" for i, note in enumerate(notes, start=1)]))
 
 
 def _candidates(doc: _Doc, path: Path, params) -> None:
@@ -404,10 +421,16 @@ def _calibration_section(doc: _Doc, summary: dict | None) -> None:
     doc.add(_Para("At every decision a planner predicts the collision probability of the plan it chose; this compares "
                   "those predictions with whether a collision followed within the planning horizon. Brier score "
                   "(Brier 1950) and expected calibration error (equal-width bins) are lower-is-better."))
-    rows = [[name, _fmt(c.get("decisions")), _fmt(c.get("brier"), 4), _fmt(c.get("ece"), 4),
-             _fmt(c.get("mean_predicted"), 4), _fmt(c.get("observed_rate"), 4)] for name, c in usable.items()]
-    doc.add(_Table(["planner", "decisions", "Brier", "ECE", "mean predicted P", "observed rate"], rows,
-                   [False] + [True] * 5))
+    rows = [[name, _fmt(c.get("decisions")), _fmt(c.get("decisions_p_above_0_01")),
+             _fmt(c.get("positives_p_above_0_01")), _fmt(c.get("positives")), _fmt(c.get("brier"), 4),
+             _fmt(c.get("ece"), 4), _fmt(c.get("mean_predicted"), 4), _fmt(c.get("observed_rate"), 4)]
+            for name, c in usable.items()]
+    doc.add(_Table(["planner", "decisions", "with P > 0.01", "of those followed by a collision",
+                    "followed by a collision (all)", "Brier", "ECE", "mean predicted P", "observed rate"], rows,
+                   [False] + [True] * 8))
+    if all(not c.get("positives") for c in usable.values()):
+        doc.add(_Para("No decision was followed by a collision within its horizon: the calibration measures "
+                      "nothing here beyond the predictions being small."))
     try:
         fig = reliability_figure(usable, title="Reliability of predicted collision probability")
         doc.add(_figure("reliability", fig, "Observed collision frequency against mean predicted probability per bin, "

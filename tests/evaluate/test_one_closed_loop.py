@@ -138,3 +138,26 @@ def test_readme_plugin_examples_are_the_tested_ones() -> None:
     for block in blocks:
         body = block.split("\n\n\n", 1)[1]  # after the imports
         assert body.strip() and body.strip() in source
+
+
+def test_evaluate_compares_every_planner_with_the_reference(tmp_path: Path, capsys) -> None:
+    """``evaluate`` pairs every planner with the reference (rules here: no oracle runs) on the same seeds and
+    writes the issue's JSON keys; where neither planner failed it says in words that the comparison has no power
+    (the statistics themselves are checked against their references in test_paired.py)."""
+    d = short("open-road", 4.0)
+    (tmp_path / "road.yaml").write_text(yaml.safe_dump(d, sort_keys=False))
+    assert main(["evaluate", str(tmp_path / "road.yaml"), "--planners", f"rules,{CRUISE}", "--episodes", "6",
+                 "--json", str(tmp_path / "ev.json")]) == 0
+    out = capsys.readouterr().out
+    summary = json.loads((tmp_path / "ev.json").read_text())
+    assert summary["reference"] == "rules" and set(summary["comparisons"]) == {CRUISE}
+    cmp = summary["comparisons"][CRUISE]
+    for key in ("reference", "collision_rate_diff", "collision_rate_diff_ci95", "collision_p_value", "success_diff",
+                "success_diff_ci95", "mean_speed_diff_mps", "mean_speed_diff_ci95", "near_miss_rate_diff",
+                "near_miss_rate_diff_ci95"):
+        assert key in cmp, key
+    assert cmp["n_pairs"] == 6
+    if cmp["collision_power"]["no_power"]:
+        assert "cannot tell them apart" in out
+    assert main(["evaluate", "open-road", "--planners", "rules", "--reference", "mpc+oracle", "--episodes", "1"]) == 2
+    assert "--reference" in capsys.readouterr().err

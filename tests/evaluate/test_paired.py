@@ -198,7 +198,7 @@ def test_compare_planners_keys_and_values_against_references():
     rng = np.random.default_rng(16)
     ref_rows = make_rows(rng, 400, 0.01, 20.0)
     own_rows = make_rows(rng, 400, 0.06, 21.0)
-    out = P.compare_planners(ref_rows, own_rows, reference="mpc+oracle", planner="mpc+constant-velocity")
+    out = P.paired_comparison(ref_rows, own_rows, reference="mpc+oracle", planner="mpc+constant-velocity")
     assert ISSUE_KEYS <= out.keys()
     json.dumps(out, allow_nan=False)
     assert out["reference"] == "mpc+oracle" and out["n_pairs"] == 400
@@ -236,7 +236,7 @@ def test_pairs_by_seed_in_any_order():
     ref_rows = make_rows(rng, 120, 0.05, 20.0)
     own_rows = make_rows(rng, 120, 0.10, 19.0)
     shuffled = [own_rows[i] for i in rng.permutation(len(own_rows))]
-    assert P.compare_planners(ref_rows, shuffled) == P.compare_planners(ref_rows, own_rows)
+    assert P.paired_comparison(ref_rows, shuffled) == P.paired_comparison(ref_rows, own_rows)
 
 
 def test_near_miss_is_computed_from_the_definition_when_absent():
@@ -245,12 +245,12 @@ def test_near_miss_is_computed_from_the_definition_when_absent():
     rng = np.random.default_rng(9)
     ref_rows = make_rows(rng, 200, 0.0, 20.0)
     own_rows = make_rows(rng, 200, 0.0, 20.0)
-    out = P.compare_planners(ref_rows, own_rows)
+    out = P.paired_comparison(ref_rows, own_rows)
     flags = [(r["min_ttc_s"] < 1.5 or r["max_brake_threat"] > 1.0) for r in own_rows]
     ref_flags = [(r["min_ttc_s"] < 1.5 or r["max_brake_threat"] > 1.0) for r in ref_rows]
     assert out["near_miss_rate_diff"] == pytest.approx(np.mean(flags) - np.mean(ref_flags), abs=1e-15)
     given = [dict(r, near_miss=False) for r in own_rows]
-    out = P.compare_planners(ref_rows, given)
+    out = P.paired_comparison(ref_rows, given)
     assert out["near_miss_rate_diff"] == pytest.approx(-np.mean(ref_flags), abs=1e-15)
 
 
@@ -259,7 +259,7 @@ def test_no_power_is_said_in_words_with_upper_bounds():
     rng = np.random.default_rng(11)
     ref_rows = make_rows(rng, 400, 0.0, 20.0)
     own_rows = make_rows(rng, 400, 0.0, 20.5)
-    out = P.compare_planners(ref_rows, own_rows, reference="mpc+oracle", planner="rules")
+    out = P.paired_comparison(ref_rows, own_rows, reference="mpc+oracle", planner="rules")
     power = out["collision_power"]
     assert power["no_power"] is True and power["pairs_needed"] is None
     assert power["statement"] == (
@@ -294,7 +294,7 @@ def test_a_given_difference_sizes_the_power_even_without_events():
     """detect={'collision': 0.01} with no discordant pair: psi = |delta| = 0.01, Connor's n for (0.01, 0)."""
     rng = np.random.default_rng(12)
     rows = make_rows(rng, 100, 0.0, 20.0)
-    out = P.compare_planners(rows, make_rows(rng, 100, 0.0, 20.0), detect={"collision": 0.01})
+    out = P.paired_comparison(rows, make_rows(rng, 100, 0.0, 20.0), detect={"collision": 0.01})
     power = out["collision_power"]
     assert power["no_power"] is True and power["difference_source"] == "given"
     assert power["pairs_needed"] == P.mcnemar_sample_size(0.01, 0.0)
@@ -307,10 +307,10 @@ def test_terminal_table_is_fixed_width():
     rng = np.random.default_rng(13)
     ref_rows = make_rows(rng, 300, 0.02, 20.0)
     cmps = {
-        "mpc+constant-velocity": P.compare_planners(
+        "mpc+constant-velocity": P.paired_comparison(
             ref_rows, make_rows(rng, 300, 0.08, 21.0), reference="mpc+oracle"
         ),
-        "rules": P.compare_planners(ref_rows, make_rows(rng, 300, 0.03, 18.0), reference="mpc+oracle"),
+        "rules": P.paired_comparison(ref_rows, make_rows(rng, 300, 0.03, 18.0), reference="mpc+oracle"),
     }
     text = P.comparison_table(cmps)
     lines = text.splitlines()
@@ -340,7 +340,7 @@ def test_different_seed_sets_are_refused_in_one_line():
         "e.g. 10; 3 only in 'mpc+oracle', e.g. 0); run both planners with the same --seed and --episodes"
     )
     with pytest.raises(ConfigError, match=re.escape(msg)):
-        P.compare_planners(ref_rows, own_rows, reference="mpc+oracle", planner="rules")
+        P.paired_comparison(ref_rows, own_rows, reference="mpc+oracle", planner="rules")
 
 
 def test_other_bad_input_is_refused_in_one_line():
@@ -348,22 +348,22 @@ def test_other_bad_input_is_refused_in_one_line():
     rng = np.random.default_rng(15)
     rows = make_rows(rng, 5, 0.1, 20.0)
     with pytest.raises(ConfigError, match=re.escape("planner 'planner' has seed 0 twice")):
-        P.compare_planners(rows, [*rows, rows[0]])
+        P.paired_comparison(rows, [*rows, rows[0]])
     broken = [dict(r) for r in rows]
     del broken[2]["success"]
     with pytest.raises(ConfigError, match=re.escape("a row of planner 'planner' has no 'success' field")):
-        P.compare_planners(rows, broken)
+        P.paired_comparison(rows, broken)
     no_ttc = [{k: v for k, v in r.items() if k != "min_ttc_s"} for r in rows]
     with pytest.raises(ConfigError, match=re.escape("row 0 of planner 'planner' has no 'min_ttc_s' field")):
-        P.compare_planners(rows, no_ttc)
+        P.paired_comparison(rows, no_ttc)
     with pytest.raises(ConfigError, match=re.escape("planner 'reference' has no episode rows")):
-        P.compare_planners([], rows)
+        P.paired_comparison([], rows)
     with pytest.raises(
         ConfigError, match=re.escape("detect['collision'] must be a difference in [-1, 1] other")
     ):
-        P.compare_planners(rows, rows, detect={"collision": 0.0})
+        P.paired_comparison(rows, rows, detect={"collision": 0.0})
     with pytest.raises(ConfigError, match=re.escape("detect keys must be among")):
-        P.compare_planners(rows, rows, detect={"offroad": 0.1})
+        P.paired_comparison(rows, rows, detect={"offroad": 0.1})
     for err in (lambda: P.mcnemar_sample_size(0.7, 0.6), lambda: P.mcnemar_exact_power(0.1, 0.1, 0)):
         with pytest.raises(ConfigError):
             err()

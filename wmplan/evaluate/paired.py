@@ -403,7 +403,7 @@ def _power_entry(
     return entry
 
 
-def compare_planners(
+def paired_comparison(
     reference_rows: Sequence[dict],
     planner_rows: Sequence[dict],
     *,
@@ -445,10 +445,10 @@ def compare_planners(
     detect = dict(detect or {})
     for key, value in detect.items():
         if key not in BINARY_OUTCOMES:
-            raise ConfigError(f"compare_planners: detect keys must be among {BINARY_OUTCOMES}, got {key!r}")
+            raise ConfigError(f"paired_comparison: detect keys must be among {BINARY_OUTCOMES}, got {key!r}")
         if not (isinstance(value, int | float) and -1 <= value <= 1 and value != 0):
             raise ConfigError(
-                f"compare_planners: detect['{key}'] must be a difference in [-1, 1] other than 0, got {value!r}"
+                f"paired_comparison: detect['{key}'] must be a difference in [-1, 1] other than 0, got {value!r}"
             )
     _check_design(0.0, 0.0, alpha, power)
     own, ref = pair_rows(reference_rows, planner_rows, reference, planner)
@@ -520,7 +520,7 @@ def _fmt_needed(entry: dict) -> str:
     return "-" if entry["pairs_needed"] is None else str(entry["pairs_needed"])
 
 
-def _table_rows(comparisons: Mapping[str, dict]) -> tuple[list[list[str]], list[str]]:
+def comparison_rows(comparisons: Mapping[str, dict]) -> tuple[list[list[str]], list[str]]:
     """Cells of each planner's row and the numbered notes (no-power statements) below the table."""
     rows: list[list[str]] = []
     notes: list[str] = []
@@ -550,13 +550,13 @@ def comparison_table(comparisons: Mapping[str, dict]) -> str:
     """Fixed-width text table of paired comparisons, for the terminal.
 
     Args:
-        comparisons: planner name -> the dict of :func:`compare_planners` (the reference itself left out).
+        comparisons: planner name -> the dict of :func:`paired_comparison` (the reference itself left out).
 
     Returns:
         Lines (no trailing newline): a header, one row per planner, then the methods line and one numbered note per
         comparison without power (its words and upper bounds instead of a row of zeros).
     """
-    rows, notes = _table_rows(comparisons)
+    rows, notes = comparison_rows(comparisons)
     widths = [max(len(r[i]) for r in [TABLE_HEADER, *rows]) for i in range(len(TABLE_HEADER))]
     lines = [
         "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [TABLE_HEADER, *rows]
@@ -569,7 +569,7 @@ def comparison_table(comparisons: Mapping[str, dict]) -> str:
 
 def comparison_markdown(comparisons: Mapping[str, dict]) -> str:
     """The same comparison table in Markdown, for the run report (notes as a numbered list below it)."""
-    rows, notes = _table_rows(comparisons)
+    rows, notes = comparison_rows(comparisons)
 
     def line(cells: Sequence[str]) -> str:
         return "| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |"

@@ -84,8 +84,14 @@ def summarise_planner(rows: list[dict]) -> dict:
     }
 
 
+RISKY_P = 0.01
+"""Predicted P(collision) above which a decision counts as one where risk was predicted at all."""
+
+
 def calibration(predicted: list[float], happened: list[int], num_bins: int = 10) -> dict:
-    """Brier score, expected calibration error and reliability bins of predicted collision probabilities."""
+    """Brier score, expected calibration error and reliability bins of predicted collision probabilities, and
+    how many decisions predicted a probability above RISKY_P and how many of those a collision followed (with few
+    such decisions the calibration measures little)."""
     p = np.asarray(predicted, dtype=np.float64)
     y = np.asarray(happened, dtype=np.float64)
     if len(p) == 0:
@@ -94,7 +100,10 @@ def calibration(predicted: list[float], happened: list[int], num_bins: int = 10)
     clean = [{k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in b.items()} for b in bins]
     # "positives": decisions followed by a collision within the horizon; with none or few, a small ECE only says
     # that the predictions were small, not that they were calibrated where it matters
-    return {"decisions": int(len(p)), "positives": int(y.sum()), "brier": float(brier_score(p, y)),
+    risky = p > RISKY_P
+    return {"decisions": int(len(p)), "positives": int(y.sum()),
+            "decisions_p_above_0_01": int(risky.sum()), "positives_p_above_0_01": int(y[risky].sum()),
+            "brier": float(brier_score(p, y)),
             "ece": float(expected_calibration_error(p, y, num_bins)), "num_bins": num_bins,
             "mean_predicted": float(p.mean()), "observed_rate": float(y.mean()), "bins": clean}
 
@@ -121,7 +130,8 @@ def write_outputs(out_dir: Path, summary: dict, rows: list[dict], calib_rows: li
 def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None) -> str:
     """The terminal table: one row per planner, rates with their 95% intervals; with ``calib`` (planner ->
     :func:`calibration` output) also the ECE and, beside it, how many decisions were followed by a collision."""
-    head = (f"{'planner':<24}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}"
+    w = max([24, *(len(name) + 2 for name in results)])
+    head = (f"{'planner':<{w}}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}"
             f"{'timeout':>9}{'speed m/s':>11}{'decision ms':>13}")
     if calib is not None:
         head += f"{'ECE (positives)':>18}"
@@ -129,7 +139,7 @@ def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None)
     for name, r in results.items():
         c, s = r["collision_ci95"], r["success_ci95"]
         line = (
-            f"{name:<24}{r['episodes']:>5}  {r['collision_rate']:.3f} [{c[0]:.3f}, {c[1]:.3f}]   "
+            f"{name:<{w}}{r['episodes']:>5}  {r['collision_rate']:.3f} [{c[0]:.3f}, {c[1]:.3f}]   "
             f"{r['success_rate']:.3f} [{s[0]:.3f}, {s[1]:.3f}]   {r['offroad_rate']:>7.3f}"
             f"{r.get('timeout_rate', math.nan):>9.3f}{r['mean_speed_mps']:>11.1f}{r['decision_ms_median']:>13.1f}"
         )
