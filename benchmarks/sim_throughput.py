@@ -9,7 +9,7 @@ heading):
   repeat starting from the same state. A slot counts whether or not it holds a vehicle (about 3/4 do);
   ``occupied_vehicle_steps_per_s`` counts only the occupied ones. ``vehicle_steps_per_cpu_s`` divides by the
   process's CPU time instead of wall-clock time: a cross-check when other programs share the machine.
-* ``speedup_vs_loop``: seconds per step of ``benchmarks/loop_reference.step_loop`` (Python loops over scenes
+* ``speedup_vs_loop``: seconds per step of ``wmplan.sim.loop_reference.step_loop`` (Python loops over scenes
   and vehicles, ``math`` on floats) divided by those of ``engine.step``, on identical states (same scenes, same
   steps), in the same process; the two final states are compared, and the result says whether they agree.
 * ``threaded``: 8192 scenes (the oracle's batch size) stepped on one thread and split into contiguous chunks
@@ -25,7 +25,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import importlib.util
 import json
 import os
 import platform
@@ -43,17 +42,6 @@ FULL = dict(warmup_steps=30, timed_steps=30, repeats=7, loop_scenes=512, loop_st
             engine_repeats_vs_loop=15)
 QUICK = dict(warmup_steps=6, timed_steps=6, repeats=3, loop_scenes=512, loop_steps=3, loop_repeats=1,
              engine_repeats_vs_loop=5)
-
-
-def _loop_reference():
-    """Import loop_reference.py from this file's folder (works as a script, by path from the CLI, or as a package)."""
-    name = "wmplan_bench_loop_reference"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).resolve().parent / "loop_reference.py")
-        module = importlib.util.module_from_spec(spec)
-        sys.modules[name] = module
-        spec.loader.exec_module(module)
-    return sys.modules[name]
 
 
 def _advance(step_fn, state, action, params, num_steps: int):
@@ -146,7 +134,8 @@ def run(quick: bool = False) -> dict:
                 "same_states_as_one_thread": same}
 
     # --- the same steps done by the engine and by the per-vehicle loop ---
-    loop_step = _loop_reference().step_loop
+    from wmplan.sim.loop_reference import step_loop as loop_step
+
     n_s, n_k = cfg["loop_scenes"], cfg["loop_steps"]
     action = np.zeros((n_s, 2))
     state = _advance(step, initial_state(params, list(range(n_s))), action, params, cfg["warmup_steps"])
