@@ -199,9 +199,12 @@ def test_throughput_benchmark_quick_run(tmp_path, capsys):
     assert bench.main(["--quick", "--json", str(out)]) == 0
     result = json.loads(out.read_text())
     assert json.loads(capsys.readouterr().out) == result
-    assert set(result["vehicle_steps_per_s"]) == {"64", "512", "2048"}
+    assert set(result["vehicle_steps_per_s"]) == {"1", "64", "512", "2048"}
     assert all(np.isfinite(v) and v > 0 for v in result["vehicle_steps_per_s"].values())
     assert result["vs_loop"]["states_agree"] is True and result["speedup_vs_loop"] > 1.0
+    assert result["env_steps_per_s_single"] > 0 and result["vector_env_steps_per_s_64"] > 0
+    assert set(result["targets"]) == {"speedup_vs_loop", "vehicle_steps_per_s_1", "env_steps_per_s_single",
+                                      "vector_env_steps_per_s_64", "compile_s"}
     threaded = result["threaded"]  # the split over threads gives the one-thread states bit for bit
     assert threaded["same_states_as_one_thread"] is True and threaded["threads"] >= 2 and threaded["speedup"] > 0
     assert {"platform", "numpy", "cpu_count"} <= set(result["machine"])

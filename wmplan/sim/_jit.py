@@ -12,5 +12,5 @@ from __future__ import annotations
 
 import numba
 
-jit = numba.njit(cache=True, nogil=True, error_model="numpy")
+jit = numba.njit(cache=True, nogil=True, error_model="numpy", _nrt=False)
 """Decorator of every compiled simulator function."""

@@ -140,7 +140,20 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams,
         ValueError: ``action`` does not have shape (S, 2).
     """
     action = _check_action(action, state.num_scenes)
-    return _run(state, action, param_table(params), np.zeros(state.num_scenes, dtype=np.int64), threads)
+    return _run(state, action, param_table(params), _zeros(state.num_scenes), threads)
+
+
+_ZEROS: dict[int, np.ndarray] = {}
+
+
+def _zeros(num_scenes: int) -> np.ndarray:
+    """The group array of a batch with one parameter set (kept per size; nothing writes into it)."""
+    z = _ZEROS.get(num_scenes)
+    if z is None:
+        if len(_ZEROS) > 64:
+            _ZEROS.clear()
+        z = _ZEROS[num_scenes] = np.zeros(num_scenes, dtype=np.int64)
+    return z
 
 
 def step_groups(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray,
@@ -168,17 +181,22 @@ def _c(a: np.ndarray, dtype) -> np.ndarray:
     return np.array(a, dtype=dtype, order="C")
 
 
+def _same(a: np.ndarray, _dtype) -> np.ndarray:
+    return a
+
+
 def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray,
          threads: int | None) -> tuple[TrafficState, StepInfo]:
     f8, i8, b1 = np.float64, np.int64, np.bool_
     s_n, v_n = state.x_m.shape
-    key, stp, next_id = _c(state.key, np.uint64), _c(state.step, i8), _c(state.next_id, i8)
-    x, y, vx, heading = _c(state.x_m, f8), _c(state.y_m, f8), _c(state.vx_mps, f8), _c(state.heading_rad, f8)
-    length, width, valid = _c(state.length_m, f8), _c(state.width_m, f8), _c(state.valid, b1)
-    vid, lane, traits = _c(state.vehicle_id, i8), _c(state.lane, i8), _c(state.traits, f8)
-    ys, timer, decel = _c(state.yield_state, np.int8), _c(state.brake_timer_s, f8), _c(state.brake_decel_mps2, f8)
-    cd, ego_speed, ego_steer = _c(state.cooldown_s, f8), _c(state.ego_speed_mps, f8), _c(state.ego_steer_rad, f8)
-    collided, offroad, reached = _c(state.collided, b1), _c(state.offroad, b1), _c(state.reached_goal, b1)
+    c = _same if state.__dict__.get("_kernel_made", False) else _c  # the kernel's own output needs no checks
+    key, stp, next_id = c(state.key, np.uint64), c(state.step, i8), c(state.next_id, i8)
+    x, y, vx, heading = c(state.x_m, f8), c(state.y_m, f8), c(state.vx_mps, f8), c(state.heading_rad, f8)
+    length, width, valid = c(state.length_m, f8), c(state.width_m, f8), c(state.valid, b1)
+    vid, lane, traits = c(state.vehicle_id, i8), c(state.lane, i8), c(state.traits, f8)
+    ys, timer, decel = c(state.yield_state, np.int8), c(state.brake_timer_s, f8), c(state.brake_decel_mps2, f8)
+    cd, ego_speed, ego_steer = c(state.cooldown_s, f8), c(state.ego_speed_mps, f8), c(state.ego_steer_rad, f8)
+    collided, offroad, reached = c(state.collided, b1), c(state.offroad, b1), c(state.reached_goal, b1)
     # a vehicle may enter only on steps that are multiples of SPAWN_PERIOD_STEPS: otherwise the new state shares
     # the arrays that only an entry changes (states are never written in place)
     may_enter = bool(np.any((stp + 1) % SPAWN_PERIOD_STEPS == 0)) if s_n > 1 else (int(stp[0]) + 1) % SPAWN_PERIOD_STEPS == 0
@@ -205,10 +223,12 @@ def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.n
             o_wid, out["valid"], o_vid, out["lane"], o_traits, out["yield_state"], out["brake_timer_s"],
             out["brake_decel_mps2"], out["cooldown_s"], out["ego_speed_mps"], out["ego_steer_rad"], out["collided"],
             out["offroad"], out["reached_goal"], info["collision"], info["offroad"], info["goal"],
-            info["accel_mps2"], info["log_weight"])
+            info["accel_mps2"], info["log_weight"], np.empty((7, v_n), dtype=i8), np.empty((2, v_n)),
+            np.empty((2, v_n), dtype=b1))
 
     map_chunks(run, s_n, threads)
-    return TrafficState(**out), StepInfo(**info)
+    out["_kernel_made"] = True
+    return TrafficState._trusted(out), StepInfo(**info)
 
 
 @jit

@@ -207,16 +207,17 @@ def _idm(v, v0, gap, dv, t, s0, a, c):
 
 
 @jit
-def _c(tr):
-    """1 / (2 sqrt(a b)) of one driver's traits."""
-    return 0.5 / math.sqrt(tr[T_A] * tr[T_B])
+def _c(traits, j):
+    """1 / (2 sqrt(a b)) of driver j's traits. (Traits are read as traits[j, k] throughout: a row view
+    traits[j] would cost an atomic reference count change each time.)"""
+    return 0.5 / math.sqrt(traits[j, T_A] * traits[j, T_B])
 
 
 @jit
 def _follow(vx, traits, j, gap, v_lead):
     """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead``."""
-    tr = traits[j]
-    return _idm(vx[j], tr[T_V0], gap, vx[j] - v_lead, tr[T_T], tr[T_S0], tr[T_A], _c(tr))
+    return _idm(vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A],
+                _c(traits, j))
 
 
 @jit
@@ -364,13 +365,14 @@ def _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lea
 
 
 @jit
-def _bold(sc, ln, x, vx, length, lane, tr, i, gap, v_lead):
+def _bold(sc, ln, x, vx, length, lane, traits, i, gap, v_lead):
     """Acceleration of a driver who does not yield: IDM with a higher desired speed and a shorter headway."""
-    c = _c(tr)
-    v0, t = tr[T_V0] * NON_YIELD_SPEEDUP, tr[T_T] * NON_YIELD_HEADWAY_FACTOR
-    a = _idm(vx[i], v0, gap, vx[i] - v_lead, t, tr[T_S0], tr[T_A], c)
+    c = _c(traits, i)
+    v0, t, s0, a_max = traits[i, T_V0] * NON_YIELD_SPEEDUP, traits[i, T_T] * NON_YIELD_HEADWAY_FACTOR, \
+        traits[i, T_S0], traits[i, T_A]
+    a = _idm(vx[i], v0, gap, vx[i] - v_lead, t, s0, a_max, c)
     if sc[P_ANY_END] != 0.0:
-        a = min(a, _idm(vx[i], v0, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], vx[i], t, tr[T_S0], tr[T_A], c))
+        a = min(a, _idm(vx[i], v0, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], vx[i], t, s0, a_max, c))
     return a
 
 
@@ -396,11 +398,10 @@ def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_ol
         p = _next_merger_into(order, rank, n, i, own, merger, merge_to)
         if p < 0 or not x[p] - x[i] < sc[P_YIELD_WINDOW]:
             continue
-        tr = traits[i]
         state = ys_old[i]
         if state == 0:  # the interaction begins now: draw the decision
             u = to_unit(combine2(yield_key, vid[i]))
-            p_yield = tr[T_YIELD]
+            p_yield = traits[i, T_YIELD]
             if tilt_yield != 1.0 and p == EGO:  # decisions about letting the ego in are tilted
                 q_yield = p_yield * tilt_yield
                 yields = u < q_yield
@@ -413,10 +414,10 @@ def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_ol
             state = 1 if yields else 2
         ys[i] = state
         if state == 1:
-            a_yield = _follow(vx, traits, i, max(_gap_ahead(x, length, i, p), tr[T_S0]), vx[p])
-            acc[i] = min(acc[i], max(a_yield, -tr[T_BSAFE]))
+            a_yield = _follow(vx, traits, i, max(_gap_ahead(x, length, i, p), traits[i, T_S0]), vx[p])
+            acc[i] = min(acc[i], max(a_yield, -traits[i, T_BSAFE]))
         else:  # close up on the leader, so that the merging vehicle finds no gap in front
-            acc[i] = _bold(sc, ln, x, vx, length, lane, tr, i, lead_gap[i], v_lead[i])
+            acc[i] = _bold(sc, ln, x, vx, length, lane, traits, i, lead_gap[i], v_lead[i])
     return log_w
 
 
@@ -469,7 +470,6 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
     d_end_t = _to_end(sc, ln, target, x[i])
     if not (d_end_t >= sc[P_MERGE_ZONE] or d_end_t > d_end_own + 1.0):
         return -np.inf  # never into a lane that ends sooner, unless it ends later than one's own
-    tr = traits[i]
     # old follower (in any lane this vehicle occupies), before and after the change
     f = _prev_in(order, rank, i, bits, bits[i])
     f_gap = _gap_behind(x, length, i, f)
@@ -483,13 +483,13 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
     a_self_after = min(_follow(vx, traits, i, nl_gap, v_nl), _follow(vx, traits, i, d_end_t - 0.5 * length[i], 0.0))
     a_n = _follow(vx, traits, nf, nl_gap + nf_gap + length[i], v_nl) if nf >= 0 else 0.0
     a_n_after = _follow(vx, traits, nf, nf_gap, vx[i]) if nf >= 0 else 0.0
-    b_safe = tr[T_BSAFE]
+    b_safe = traits[i, T_BSAFE]
     if not ((nf < 0 or a_n_after >= -b_safe) and nl_gap > 1.0 and nf_gap > 1.0 and a_self_after >= -b_safe):
         return -np.inf
-    inc = (a_self_after - acc[i]) + tr[T_P] * ((a_n_after - a_n) + (a_o_after - a_o))
+    inc = (a_self_after - acc[i]) + traits[i, T_P] * ((a_n_after - a_n) + (a_o_after - a_o))
     if int(ln[L_MERGE_TO, lane[i]]) == target and d_end_own < sc[P_MERGE_ZONE]:  # mandatory: the lane ends
         urgency = clip(1.0 - d_end_own / sc[P_MERGE_ZONE], 0.0, 1.0)
-        inc = inc + (MANDATORY_BIAS_MPS2 * urgency + tr[T_TH])
+        inc = inc + (MANDATORY_BIAS_MPS2 * urgency + traits[i, T_TH])
     return inc
 
 
@@ -528,7 +528,7 @@ def _traffic_motion(sc, x, y, vx, traffic, acc, new_lane, o_x, o_y, o_vx, o_vy, 
         o_x[i] = x[i] + dist
         o_y[i] = y[i] + vy * dt
         o_vx[i], o_vy[i] = v_new, vy
-        o_h[i] = math.atan2(vy, max(v_new, 0.1))
+        o_h[i] = vy if vy == 0.0 else math.atan2(vy, max(v_new, 0.1))  # atan2(+-0, v > 0) = +-0
 
 
 @jit
@@ -716,14 +716,11 @@ def _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h,
 def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, valid, vid, lane, traits, ys_old,
                 timer_in, decel_in, cd_in, ego_speed, ego_steer, a_cmd, steer_cmd,
                 o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys, o_timer, o_decel,
-                o_cd, acc, scratch_i, scratch_f, traffic, merger):
+                o_cd, acc, order, rank, bits, centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger):
     """Advance one scene by one step (module docstring). Writes the scene's new rows into the ``o_*`` arrays
     (``o_len``, ``o_wid``, ``o_vid``, ``o_traits`` already hold the old rows) and the applied accelerations into
     ``acc``. Returns (log-weight, ego steering, ego speed, vehicles entered)."""
     v_n = x.shape[0]
-    order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
-    lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
-    lead_gap, v_lead = scratch_f[0], scratch_f[1]
     for i in range(v_n):
         traffic[i] = valid[i] and i != EGO
         acc[i] = 0.0
@@ -766,15 +763,15 @@ def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, stp, next_id, x, 
                valid, vid, lane, traits, ys, timer, decel, cd, ego_speed, ego_steer, collided, offroad, reached,
                action, o_next_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys,
                o_timer, o_decel, o_cd, o_ego_speed, o_ego_steer, o_collided, o_offroad, o_reached, i_collision,
-               i_offroad, i_goal, i_acc, i_log_w):
+               i_offroad, i_goal, i_acc, i_log_w, scratch_i, scratch_f, scratch_b):
     """Advance scenes [a, b) by one step: the state's arrays in, the new state's and the step's outcome arrays out
     (``o_*``, ``i_*``; shapes as :class:`~wmplan.sim.state.TrafficState` and :class:`~wmplan.sim.engine.StepInfo`).
-    Scene s uses parameter row ``group[s]``. Touches only rows [a, b)."""
-    v_n = x.shape[1]
-    scratch_i = np.empty((7, v_n), dtype=np.int64)
-    scratch_f = np.empty((2, v_n))
-    traffic = np.empty(v_n, dtype=np.bool_)
-    merger = np.empty(v_n, dtype=np.bool_)
+    Scene s uses parameter row ``group[s]``. Touches only rows [a, b). ``scratch_*``: work space of this call
+    only ((7, V) int64, (2, V) float64, (2, V) bool): the kernel runs without numba's reference counting (no
+    allocation inside), so the caller provides it."""
+    order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
+    lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
+    lead_gap, v_lead, traffic, merger = scratch_f[0], scratch_f[1], scratch_b[0], scratch_b[1]
     for s in range(a, b):
         g = group[s]
         sc, ln, pt = p_scalars[g], p_lanes[g], p_traits[g]
@@ -783,8 +780,8 @@ def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, stp, next_id, x, 
             sc, ln, pt, key[s], stp[s], new_id, x[s], y[s], vx[s], heading[s], length[s], width[s], valid[s], vid[s],
             lane[s], traits[s], ys[s], timer[s], decel[s], cd[s], ego_speed[s], ego_steer[s], action[s, 0],
             action[s, 1], o_x[s], o_y[s], o_vx[s], o_vy[s], o_h[s], o_len[s], o_wid[s], o_valid[s], o_vid[s],
-            o_lane[s], o_traits[s], o_ys[s], o_timer[s], o_decel[s], o_cd[s], i_acc[s], scratch_i, scratch_f,
-            traffic, merger)
+            o_lane[s], o_traits[s], o_ys[s], o_timer[s], o_decel[s], o_cd[s], i_acc[s], order, rank, bits,
+            centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger)
         o_next_id[s] = new_id + entered
         o_ego_speed[s], o_ego_steer[s], i_log_w[s] = ev, steer, log_w
         _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h, o_valid, o_collided, o_offroad,

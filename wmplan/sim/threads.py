@@ -78,6 +78,8 @@ def map_chunks(fn: Callable[[int, int], T], num_scenes: int, threads: int | None
     ``fn`` must touch only its own scenes (it may write into its own rows of shared output arrays). An exception in
     any chunk is raised here, after every chunk has finished.
     """
+    if num_scenes < 2 * MIN_SCENES_PER_THREAD:  # one chunk whatever the thread count
+        return [fn(0, num_scenes)]
     bounds = chunk_bounds(num_scenes, sim_threads() if threads is None else threads)
     if len(bounds) == 1 or getattr(_local, "worker", False):
         return [fn(a, b) for a, b in bounds]
