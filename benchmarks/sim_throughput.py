@@ -1,59 +1,56 @@
-"""Simulator throughput: vehicle-steps per second of the batched engine, and its speed-up over a per-vehicle loop.
+"""Simulator throughput: vehicle-steps per second of the compiled engine, its speed-up over a per-vehicle loop, the
+gymnasium environments' step rates and the cold-cache compile time.
 
 What is measured (open-road, 16 vehicle slots per scene, the ego's actions all zero, so it keeps its speed and
 heading):
 
-* ``vehicle_steps_per_s[S]`` for S = 64, 512, 2048 scenes: S x 16 slots x steps / seconds of ``engine.step``
-  alone (no action computation), from a state already advanced ``warmup_steps`` steps (so the road is in its
-  steady mix and numpy's code paths are warm); the median over ``repeats`` timings of ``timed_steps`` steps, each
-  repeat starting from the same state. A slot counts whether or not it holds a vehicle (about 3/4 do);
-  ``occupied_vehicle_steps_per_s`` counts only the occupied ones. ``vehicle_steps_per_cpu_s`` divides by the
-  process's CPU time instead of wall-clock time: a cross-check when other programs share the machine.
-* ``speedup_vs_loop``: seconds per step of ``benchmarks/loop_reference.step_loop`` (Python loops over scenes
-  and vehicles, ``math`` on floats) divided by those of ``engine.step``, on identical states (same scenes, same
-  steps), in the same process; the two final states are compared, and the result says whether they agree.
-* ``threaded``: 8192 scenes (the oracle's batch size) stepped on one thread and split into contiguous chunks
-  stepped in parallel threads of this process (``wmplan.sim.threads``), alternately, side by side: both rates, the
-  ``speedup``, and whether the final states are equal. Smaller batches are not split (they lose: see that module).
+* ``vehicle_steps_per_s[S]`` for S = 1, 64, 512, 2048 scenes: S x 16 slots x steps / seconds of ``engine.step``
+  alone (no action computation, the default thread count), from a state already advanced ``warmup_steps`` steps;
+  the median over ``repeats`` timings of ``timed_steps`` steps, each repeat starting from the same state. A slot
+  counts whether or not it holds a vehicle (about 3/4 do); ``occupied_vehicle_steps_per_s`` counts only the
+  occupied ones. ``vehicle_steps_per_cpu_s`` divides by the process's CPU time instead.
+* ``speedup_vs_loop``: seconds per step of ``wmplan.sim.loop_reference.step_loop`` (Python loops over scenes
+  and vehicles, ``math`` on floats) divided by those of ``engine.step`` (default threads, i.e. every core this
+  process may use), on identical states (512 scenes, same steps), in the same process; the two final states are
+  compared, and the result says whether they agree. ``speedup_vs_loop_one_thread``: the same with one thread.
+* ``threaded``: 8192 scenes (the oracle's batch size) on one thread and on the default thread count, alternately:
+  both rates, the ``speedup``, and whether the final states are equal.
+* ``env_steps_per_s_single``: ``LaneEnv("open-road")`` steps per second with observations (no rendering),
+  resetting when an episode ends; ``vector_env_steps_per_s_64``: scene-steps per second of a
+  ``LaneVectorEnv`` of 64 scenes.
+* ``compile_s``: a fresh Python process with an empty numba cache folder imports the simulator and takes one
+  step; the seconds of that first step (the compilation of the kernel). ``compile_s_import`` is the import.
 
 Usage: ``python benchmarks/sim_throughput.py [--quick] [--json FILE]``; ``wmplan bench`` calls :func:`run`.
 Importing this module runs nothing. Numbers depend on the machine and on what else it is doing; the load average
-at the start is recorded with them.
+at the start and the end is recorded with them. The targets compare ratios measured in this one process.
 """
 
 from __future__ import annotations
 
-import argparse
 import dataclasses
-import importlib.util
-import json
+import functools
 import os
-import platform
 import statistics
+import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
+from wmplan import benchkit
+
 SCENARIO = "open-road"
-SCENE_COUNTS = (64, 512, 2048)
+SCENE_COUNTS = (1, 64, 512, 2048)
 THREADED_SCENES = 8192  # 16 scenes x 64 plans x 8 futures: the oracle's batch at the default planner budget
 FULL = dict(warmup_steps=30, timed_steps=30, repeats=7, loop_scenes=512, loop_steps=6, loop_repeats=3,
-            engine_repeats_vs_loop=15)
+            engine_repeats_vs_loop=15, env_steps=20000, compile=True)
 QUICK = dict(warmup_steps=6, timed_steps=6, repeats=3, loop_scenes=512, loop_steps=3, loop_repeats=1,
-             engine_repeats_vs_loop=5)
-
-
-def _loop_reference():
-    """Import loop_reference.py from this file's folder (works as a script, by path from the CLI, or as a package)."""
-    name = "wmplan_bench_loop_reference"
-    if name not in sys.modules:
-        spec = importlib.util.spec_from_file_location(name, Path(__file__).resolve().parent / "loop_reference.py")
-        module = importlib.util.module_from_spec(spec)
-        sys.modules[name] = module
-        spec.loader.exec_module(module)
-    return sys.modules[name]
+             engine_repeats_vs_loop=5, env_steps=500, compile=False)
+TARGETS = {"speedup_vs_loop": 150.0, "vehicle_steps_per_s_1": 1e6, "env_steps_per_s_single": 20000.0,
+           "vector_env_steps_per_s_64": 200000.0, "compile_s": 30.0}
 
 
 def _advance(step_fn, state, action, params, num_steps: int):
@@ -65,14 +62,7 @@ def _advance(step_fn, state, action, params, num_steps: int):
 def _time_steps(step_fn, state, action, params, num_steps: int, repeats: int):
     """Wall-clock and process-CPU seconds of ``num_steps`` steps from ``state``, ``repeats`` times each; and the
     state they end in."""
-    wall, cpu = [], []
-    end = state
-    for _ in range(repeats):
-        t0, c0 = time.perf_counter(), time.process_time()
-        end = _advance(step_fn, state, action, params, num_steps)
-        wall.append(time.perf_counter() - t0)
-        cpu.append(time.process_time() - c0)
-    return wall, cpu, end
+    return benchkit.timed(lambda: _advance(step_fn, state, action, params, num_steps), repeats)
 
 
 def _max_abs_diff(a, b) -> tuple[bool, float]:
@@ -88,21 +78,59 @@ def _max_abs_diff(a, b) -> tuple[bool, float]:
     return ok, worst
 
 
-def _machine() -> dict:
-    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else None
-    return {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
-            "python": platform.python_version(), "numpy": np.__version__, "cpu_count": os.cpu_count(),
-            "load_avg_1min_at_start": load}
+def _compile_seconds() -> dict:
+    """Import and first-step seconds of a fresh process whose numba cache folder is empty."""
+    code = ("import time; t0 = time.perf_counter(); import numpy as np; from wmplan.scenario import load_scenario; "
+            "from wmplan.sim import SimParams, initial_state, step; t1 = time.perf_counter(); "
+            "p = SimParams.from_scenario(load_scenario('open-road')); st = initial_state(p, [0]); "
+            "t2 = time.perf_counter(); step(st, np.zeros((1, 2)), p); t3 = time.perf_counter(); "
+            "print(t1 - t0, t3 - t2)")
+    with tempfile.TemporaryDirectory() as cache:
+        env = {**os.environ, "NUMBA_CACHE_DIR": cache}
+        out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=600,
+                             cwd=str(Path(__file__).resolve().parent.parent))
+    if out.returncode != 0:
+        return {"error": out.stderr.strip().splitlines()[-1:]}
+    imp, first = (float(v) for v in out.stdout.split())
+    return {"compile_s": first, "compile_s_import": imp}
+
+
+def _env_rates(num_steps: int) -> dict:
+    """Steps per second of one LaneEnv and scene-steps per second of a LaneVectorEnv of 64 (zero actions)."""
+    from wmplan.sim.env import LaneEnv, LaneVectorEnv
+
+    env = LaneEnv(SCENARIO)
+    env.reset(seed=0)
+    zero = np.zeros(2, dtype=np.float32)
+    for _ in range(20):
+        env.step(zero)
+    t0 = time.perf_counter()
+    for _ in range(num_steps):
+        _, _, term, trunc, _ = env.step(zero)
+        if term or trunc:
+            env.reset()
+    single = num_steps / (time.perf_counter() - t0)
+    venv = LaneVectorEnv(SCENARIO, num_envs=64)
+    venv.reset(seed=0)
+    zeros = np.zeros((64, 2), dtype=np.float32)
+    for _ in range(10):
+        venv.step(zeros)
+    n = max(10, num_steps // 64)
+    t0 = time.perf_counter()
+    for _ in range(n):
+        venv.step(zeros)
+    return {"env_steps_per_s_single": single, "vector_env_steps_per_s_64": 64 * n / (time.perf_counter() - t0)}
 
 
 def run(quick: bool = False) -> dict:
     """Measure; return the results as a JSON-ready dict (see the module docstring for what each number means)."""
     from wmplan.scenario import load_scenario
     from wmplan.sim import SimParams, initial_state, step
-    from wmplan.sim.threads import chunk_bounds, map_chunks, sim_threads
+    from wmplan.sim.threads import chunk_bounds, sim_threads
 
     cfg = QUICK if quick else FULL
-    machine = _machine()
+    compile_info = _compile_seconds() if cfg["compile"] else {}
+    machine = benchkit.machine(sim_threads=sim_threads())
     params = SimParams.from_scenario(load_scenario(SCENARIO))
     num_slots = params.num_vehicles
 
@@ -125,19 +153,17 @@ def run(quick: bool = False) -> dict:
     action = np.zeros((n_big, 2))
     state = _advance(step, initial_state(params, list(range(n_big))), action, params, cfg["warmup_steps"])
     bounds = chunk_bounds(n_big, threads)
-
-    def run_chunk(a: int, b: int):
-        return _advance(step, state.rows(a, b), action[a:b], params, cfg["timed_steps"])
-
+    one_step = functools.partial(step, threads=1)
+    many_step = functools.partial(step, threads=threads)
     one_wall, many_wall = [], []
     for _ in range(max(3, cfg["repeats"] // 2)):
         t0 = time.perf_counter()
-        one_end = _advance(step, state, action, params, cfg["timed_steps"])
+        one_end = _advance(one_step, state, action, params, cfg["timed_steps"])
         one_wall.append(time.perf_counter() - t0)
         t0 = time.perf_counter()
-        ends = map_chunks(run_chunk, n_big, threads)  # final states, in chunk order
+        many_end = _advance(many_step, state, action, params, cfg["timed_steps"])
         many_wall.append(time.perf_counter() - t0)
-    same, _ = _max_abs_diff(one_end, type(one_end).concat(ends))
+    same, _ = _max_abs_diff(one_end, many_end)
     work = n_big * num_slots * cfg["timed_steps"]
     threaded = {"scenes": n_big, "threads": len(bounds),
                 "one_thread_vehicle_steps_per_s": work / statistics.median(one_wall),
@@ -146,15 +172,21 @@ def run(quick: bool = False) -> dict:
                 "same_states_as_one_thread": same}
 
     # --- the same steps done by the engine and by the per-vehicle loop ---
-    loop_step = _loop_reference().step_loop
+    from wmplan.sim.loop_reference import step_loop as loop_step
+
     n_s, n_k = cfg["loop_scenes"], cfg["loop_steps"]
     action = np.zeros((n_s, 2))
     state = _advance(step, initial_state(params, list(range(n_s))), action, params, cfg["warmup_steps"])
     eng_wall, eng_cpu, eng_end = _time_steps(step, state, action, params, n_k, cfg["engine_repeats_vs_loop"])
+    eng1_wall, _, _ = _time_steps(one_step, state, action, params, n_k, cfg["engine_repeats_vs_loop"])
     loop_wall, loop_cpu, loop_end = _time_steps(loop_step, state, action, params, n_k, cfg["loop_repeats"])
     agree, worst = _max_abs_diff(eng_end, loop_end)
     eng_sec, loop_sec = statistics.median(eng_wall) / n_k, statistics.median(loop_wall) / n_k
+    eng1_sec = statistics.median(eng1_wall) / n_k
     cpu_speedup = statistics.median(loop_cpu) / statistics.median(eng_cpu)
+    env_rates = _env_rates(cfg["env_steps"])
+    values = {"speedup_vs_loop": loop_sec / eng_sec, "vehicle_steps_per_s_1": rates["1"], **env_rates,
+              **compile_info}
 
     return {
         "benchmark": "sim_throughput",
@@ -165,38 +197,34 @@ def run(quick: bool = False) -> dict:
         "occupied_vehicle_steps_per_s": occupied_rates,
         "mean_occupied_slots": occupancy,
         "speedup_vs_loop": loop_sec / eng_sec,
+        "speedup_vs_loop_one_thread": loop_sec / eng1_sec,
         "speedup_vs_loop_cpu_time": cpu_speedup,
+        **env_rates,
+        **compile_info,
         "vs_loop": {
             "scenes": n_s, "vehicle_slots": num_slots, "steps": n_k, "first_step": cfg["warmup_steps"],
-            "engine_s_per_step": eng_sec, "loop_s_per_step": loop_sec,
+            "engine_s_per_step": eng_sec, "engine_one_thread_s_per_step": eng1_sec, "loop_s_per_step": loop_sec,
             "loop_vehicle_steps_per_s": n_s * num_slots / loop_sec,
             "states_agree": agree, "max_abs_diff": worst,
         },
         "settings": {
             "scenario": SCENARIO, "vehicle_slots": num_slots, "scene_counts": list(SCENE_COUNTS),
             "actions": "zero (the ego keeps its speed and heading); timing covers engine.step only",
+            "threads": sim_threads(),
             "statistic": "median over repeats, each repeat from the same warmed-up state",
             "seeds": "0 .. scenes-1", **cfg,
         },
-        "targets": {"vehicle_steps_per_s_512": 5e6, "speedup_vs_loop": 100.0},
-        "machine": {**machine, "load_avg_1min_at_end": os.getloadavg()[0] if hasattr(os, "getloadavg") else None},
-        "note": "Throughput of a simplified traffic model on one machine; it certifies nothing about a real vehicle.",
+        "targets": TARGETS,
+        "meets_targets": {k: (values[k] <= t if k == "compile_s" else values[k] >= t) for k, t in TARGETS.items()
+                          if k in values},
+        "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
+        "note": benchkit.NOTE,
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description="Simulator throughput: engine vehicle-steps/s and speed-up over a "
-                                                 "per-vehicle Python loop.")
-    parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
-    parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
-    args = parser.parse_args(argv)
-    result = run(quick=args.quick)
-    if args.json:
-        from wmplan.io import atomic_write_json
-
-        atomic_write_json(Path(args.json), result)
-    print(json.dumps(result, indent=2))
-    return 0
+    return benchkit.main(run, "Simulator throughput: engine vehicle-steps/s, speed-up over a per-vehicle Python "
+                              "loop, environment step rates, compile time.", argv)
 
 
 if __name__ == "__main__":

@@ -65,6 +65,14 @@ class TrafficState:
     offroad: np.ndarray
     reached_goal: np.ndarray
 
+    @classmethod
+    def _trusted(cls, fields: dict[str, np.ndarray]) -> TrafficState:
+        """A state from a complete dict of fields, without the dataclass's per-field assignment (the engine's hot
+        path; the caller guarantees every field is present with its documented dtype and shape)."""
+        state = object.__new__(cls)
+        state.__dict__.update(fields)
+        return state
+
     @property
     def num_scenes(self) -> int:
         return int(self.x_m.shape[0])

@@ -1,17 +1,15 @@
 """The engine on several cores of one process: scenes split into contiguous chunks, one chunk per thread.
 
 Scenes never interact and every random draw is a hash of the scene's own key and step, so a chunk advanced on its
-own gives bit for bit what it gives inside the whole batch (the determinism tests check this across batch sizes).
-numpy releases the interpreter lock inside its array loops, so two threads stepping two halves of a batch overlap
-most of their work; the Python between the numpy calls still runs one thread at a time, so only large batches
-gain. Measured side by side on a 2-core machine while this module was written (open-road stepping, and the oracle
-itself): 512 scenes ran at about half the one-thread speed on two threads, 2048 about even, and the oracle's 8192
-futures (16 scenes x 64 plans x 8) 1.8x faster. ``benchmarks/sim_throughput.py`` (``threaded``) keeps measuring
-the large-batch case.
+own gives bit for bit what it gives inside the whole batch (tests/sim/test_threads.py checks this across batch
+sizes and thread counts). The compiled step (:mod:`wmplan.sim.kernel`) releases the interpreter lock for its whole
+run, so threads of one process share the work of one step with little lost; a step of fewer than
+``MIN_SCENES_PER_THREAD`` scenes per thread is not split (handing a chunk to a thread costs some tens of
+microseconds). ``benchmarks/sim_throughput.py`` (``threaded``) measures both.
 
 The thread count is ``WMPLAN_SIM_THREADS`` if set, else the number of cores this process may use, at most 4.
 Workers of a process pool (sweeps, stress tests) set it to 1, so that N workers use N cores, not N^2 threads.
-Batches smaller than ``MIN_SCENES_PER_THREAD`` per thread are not split.
+A call of :func:`map_chunks` from inside one of its own threads runs its chunks one after the other (no nesting).
 """
 
 from __future__ import annotations
@@ -29,10 +27,11 @@ from wmplan.errors import ConfigError
 T = TypeVar("T")
 ENV_VAR = "WMPLAN_SIM_THREADS"
 MAX_DEFAULT_THREADS = 4
-MIN_SCENES_PER_THREAD = 2048
+MIN_SCENES_PER_THREAD = 128
 
 _pool_lock = threading.Lock()
 _pools: dict[int, ThreadPoolExecutor] = {}
+_local = threading.local()  # .worker: True in the pool's threads
 
 
 def sim_threads() -> int:
@@ -60,11 +59,16 @@ def chunk_bounds(num_scenes: int, threads: int) -> list[tuple[int, int]]:
     return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
 
+def _mark_worker() -> None:
+    _local.worker = True
+
+
 def _pool(threads: int) -> ThreadPoolExecutor:
     with _pool_lock:
         pool = _pools.get(threads)
         if pool is None:
-            pool = _pools[threads] = ThreadPoolExecutor(threads, thread_name_prefix="wmplan-sim")
+            pool = _pools[threads] = ThreadPoolExecutor(threads, thread_name_prefix="wmplan-sim",
+                                                        initializer=_mark_worker)
         return pool
 
 
@@ -74,9 +78,11 @@ def map_chunks(fn: Callable[[int, int], T], num_scenes: int, threads: int | None
     ``fn`` must touch only its own scenes (it may write into its own rows of shared output arrays). An exception in
     any chunk is raised here, after every chunk has finished.
     """
+    if num_scenes < 2 * MIN_SCENES_PER_THREAD:  # one chunk whatever the thread count
+        return [fn(0, num_scenes)]
     bounds = chunk_bounds(num_scenes, sim_threads() if threads is None else threads)
-    if len(bounds) == 1:
-        return [fn(*bounds[0])]
+    if len(bounds) == 1 or getattr(_local, "worker", False):
+        return [fn(a, b) for a, b in bounds]
     futures = [_pool(len(bounds)).submit(fn, a, b) for a, b in bounds]
     errors = [f.exception() for f in futures]
     for err in errors:

@@ -1,13 +1,12 @@
-"""Scenes of several variants of one scenario in one batch: contiguous groups, each stepped with its own numbers.
+"""Scenes of several variants of one scenario in one batch: contiguous groups, each with its own parameters.
 
 Stress tests draw a new scenario variant (traffic density, driver traits, the ego's start speed, ...) for almost
 every episode, so batching episodes per variant leaves the planner with batches of one to four episodes, and a
 sampling planner pays its per-call costs once per episode. A :class:`VariantBatch` lets a planner decide for
-the episodes of many variants at once (measured with ``benchmarks/stress_batching.py`` on a quiet 2-core machine:
-48 one-episode variants ran 1.5x faster shared, with the constant-velocity predictor and with a trained latent
-model alike; most of a decision's time is the rollouts themselves, which batching does not make cheaper): the engine steps each group of scenes with its own :class:`SimParams`
-(scenes never interact, and a scene's random draws depend only on its own key, so each scene evolves exactly as it
-would alone), while the planner sees one batch.
+the episodes of many variants at once (``benchmarks/stress_batching.py`` measures it): one engine call steps every
+scene with its own variant's parameters (:func:`wmplan.sim.engine.step_groups`, a row of a parameter table per
+variant; scenes never interact, and a scene's random draws depend only on its own key, so each scene evolves
+exactly as it would alone), while the planner sees one batch.
 
 The variants must agree on everything the planner and the batch bookkeeping read from the parameters: the road,
 the ego's limits, lane and goal, the time step and duration, the number of vehicle slots and the importance
@@ -17,7 +16,7 @@ event rates) and the ego's start position and speed.
 
 from __future__ import annotations
 
-import dataclasses
+import functools
 import json
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -26,7 +25,8 @@ import numpy as np
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, scenario_to_dict
-from wmplan.sim.engine import StepInfo, step
+from wmplan.sim.engine import StepInfo, step_groups
+from wmplan.sim.kernel import ParamTable
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import TrafficState
@@ -125,15 +125,18 @@ class VariantBatch:
         parts = [initial_state(p, seeds[a:b]) for p, a, b in self._groups()]
         return parts[0] if len(parts) == 1 else TrafficState.concat(parts)
 
+    @functools.cached_property
+    def table(self) -> ParamTable:
+        """The kernel's parameter table, one row per variant."""
+        return ParamTable(self.params)
+
+    @functools.cached_property
+    def group(self) -> np.ndarray:
+        """(S,) the variant of each scene."""
+        return np.repeat(np.arange(len(self.counts), dtype=np.int64), self.counts)
+
     def step(self, state: TrafficState, action: np.ndarray) -> tuple[TrafficState, StepInfo]:
-        """One engine step of every scene with its own group's parameters."""
-        groups = self._groups()
-        if len(groups) == 1:
-            return step(state, action, groups[0][0])
-        results = [step(state.rows(a, b), action[a:b], p) for p, a, b in groups]
-        new = TrafficState.concat([r[0] for r in results])
-        infos = [r[1] for r in results]
-        merged = {f.name: (None if getattr(infos[0], f.name) is None
-                           else np.concatenate([getattr(i, f.name) for i in infos]))
-                  for f in dataclasses.fields(StepInfo)}
-        return new, StepInfo(**merged)
+        """One engine step of every scene with its own group's parameters (one call of the compiled step)."""
+        if state.num_scenes != self.num_scenes:
+            raise ConfigError(f"VariantBatch holds {self.num_scenes} scenes, got a state of {state.num_scenes}")
+        return step_groups(state, action, self.table, self.group)

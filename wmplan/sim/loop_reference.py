@@ -1,12 +1,15 @@
 """A plain per-vehicle Python implementation of one simulator step: the slow, obviously correct reference.
 
+Not for use in simulations: it is some hundreds of times slower than :func:`wmplan.sim.engine.step`.
+
 :func:`step_loop` does what :func:`wmplan.sim.engine.step` does, scene by scene and vehicle by vehicle, with
 Python floats and the ``math`` module. It exists for two reasons: the equivalence test
-(``tests/test_loop_reference.py``) checks the vectorised engine against it, and the throughput benchmark
+(``tests/test_loop_reference.py``) checks the compiled engine against it, and the throughput benchmark
 (``benchmarks/sim_throughput.py``) times it next to the engine, so that the speed-up figure compares the same
 step done two ways. It is written for reading, not for speed, but without deliberate waste: state is turned into
 Python lists once per call, neighbours are found by walking a sorted list, and random numbers come from a
-pure-integer copy of the package's counter-based hash.
+pure-integer copy of the package's counter-based hash. It has no importance-sampling tilt (``params.tilt`` is
+ignored).
 
 The rules (same order as the engine):
 
@@ -41,7 +44,8 @@ import statistics
 import numpy as np
 
 from wmplan.sim.behaviour import MIN_GAP_FLOOR_M
-from wmplan.sim.engine import (
+from wmplan.sim.engine import StepInfo
+from wmplan.sim.kernel import (
     BAND_EPS_M,
     LANE_DECISION_PERIOD_STEPS,
     LATERAL_GAIN_PER_S,
@@ -51,7 +55,6 @@ from wmplan.sim.engine import (
     NON_YIELD_SPEEDUP,
     SETTLED_M,
     SPAWN_PERIOD_STEPS,
-    StepInfo,
 )
 from wmplan.sim.params import (
     LANE_CHANGE_COOLDOWN_S,
