@@ -61,13 +61,16 @@ class Trajectories:
 
     @property
     def num_episodes(self) -> int:
+        """Episodes held (the first axis of every array)."""
         return int(self.vehicles.shape[0])
 
     def as_dict(self) -> dict[str, np.ndarray]:
+        """The arrays by name (``ARRAYS``), as stored on disk."""
         return {name: getattr(self, name) for name in self.ARRAYS}
 
     @staticmethod
     def concat(parts: list[Trajectories]) -> Trajectories:
+        """The episodes of several parts, in order."""
         return Trajectories(**{n: np.concatenate([getattr(p, n) for p in parts]) for n in Trajectories.ARRAYS})
 
 
@@ -87,6 +90,7 @@ class BehaviourPolicy:
         self.target_lane = params.lane_of(state.y_m[:, EGO])
 
     def __call__(self, state: TrafficState, decision_idx: int, decision_dt_s: float) -> np.ndarray:
+        """Actions (S, 2) at one decision: the rule actions perturbed by this policy's counter-based draws."""
         p = self.params
         base = rule_actions(state, p)
         z = rng.normal(self.key, rng.STREAM_POLICY, decision_idx, 1)

@@ -93,6 +93,7 @@ class PairedCounts:
 
     @property
     def n(self) -> int:
+        """Number of pairs."""
         return self.both + self.planner_only + self.reference_only + self.neither
 
     @classmethod

@@ -119,6 +119,7 @@ def write_parquet(path: Path, rows: list[dict]) -> None:
 
 
 def write_outputs(out_dir: Path, summary: dict, rows: list[dict], calib_rows: list[dict]) -> None:
+    """Write ``episodes.parquet``, ``calibration.parquet`` (if any records) and ``summary.json`` into ``out_dir``, atomically."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     write_parquet(out_dir / "episodes.parquet", rows)

@@ -39,6 +39,7 @@ class ConstantVelocity:
     @torch.inference_mode()
     def sample(self, batch: dict, actions: torch.Tensor, num_samples: int, *, generator: torch.Generator,
                noise: bool = False, moments: bool = True) -> dict:
+        """K constant-velocity futures (identical unless ``noise``) in the rows layout of :meth:`WorldModel.sample`."""
         hist = batch["history"]
         b, c = actions.shape[:2]
         n = hist.shape[2]

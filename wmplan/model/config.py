@@ -44,13 +44,16 @@ class ModelConfig:
 
     @property
     def num_rows(self) -> int:
+        """Rows per window: the ego and ``num_objects`` others."""
         return 1 + self.num_objects
 
     def to_dict(self) -> dict:
+        """The configuration as a JSON-ready dict."""
         return asdict(self)
 
     @classmethod
     def from_dict(cls, d: dict) -> ModelConfig:
+        """The config from its JSON dict; unknown keys are a one-line error."""
         known = {f.name for f in fields(cls)}
         unknown = set(d) - known
         if unknown:
@@ -121,4 +124,5 @@ class TrainConfig:
         return 2e-3 if deterministic else 4e-3
 
     def to_dict(self) -> dict:
+        """The configuration as a JSON-ready dict."""
         return asdict(self)

@@ -30,6 +30,7 @@ class EgoKinematics:
 
     @classmethod
     def from_scenario(cls, scn, plan_dt_s: float) -> EgoKinematics:
+        """The ego of a scenario, stepped ``plan_dt_s / dt_s`` simulator steps per plan step."""
         sub = int(round(plan_dt_s / scn.dt_s))
         return cls(scn.ego.wheelbase_m, scn.ego.l_r_m, scn.limits.max_accel_mps2, scn.limits.max_brake_mps2,
                    scn.limits.max_steer_rad, scn.limits.max_steer_rate_radps, scn.dt_s, sub)

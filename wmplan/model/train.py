@@ -51,6 +51,7 @@ CACHE_LIMIT_BYTES = 2 * 1024**3
 
 @dataclass
 class TrainResult:
+    """What :func:`train` returns: the trained model, one dict of metrics per epoch, the output folder and whether the time cap stopped it."""
     model: WorldModel
     history: list[dict]
     out_dir: Path
@@ -84,6 +85,7 @@ class WindowCache:
         return 4 * per_window * count
 
     def batch(self, positions: np.ndarray) -> dict[str, torch.Tensor]:
+        """Tensors of the windows at ``positions`` (N,) (a training batch)."""
         pos = torch.from_numpy(np.asarray(positions, dtype=np.int64))
         return {k: v.index_select(0, pos) for k, v in self.tensors.items()}
 
@@ -297,6 +299,7 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
 
 
 def write_metrics_csv(path: Path, history: list[dict]) -> None:
+    """One row per epoch of ``history`` as CSV (columns in order of first appearance), atomically."""
     keys: list[str] = []
     for row in history:
         keys += [k for k in row if k not in keys]

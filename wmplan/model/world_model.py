@@ -85,6 +85,7 @@ class WorldModel(nn.Module):
     # --- pieces -----------------------------------------------------------------------------------------------
 
     def times_s(self) -> torch.Tensor:
+        """(H,) seconds of the horizon steps after the anchor."""
         return torch.arange(1, self.cfg.horizon + 1, dtype=torch.float32) * self.cfg.plan_dt_s
 
     def cv_positions(self, history: torch.Tensor) -> torch.Tensor:
@@ -327,4 +328,5 @@ class WorldModel(nn.Module):
         return target - mean, mask
 
     def num_parameters(self) -> int:
+        """Number of trainable numbers."""
         return sum(p.numel() for p in self.parameters())

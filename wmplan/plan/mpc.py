@@ -145,6 +145,7 @@ class PlannerConfig:
                               f"got {self.collision_margin_m}")
 
     def to_dict(self) -> dict:
+        """The configuration as a JSON-ready dict."""
         return asdict(self)
 
 

@@ -59,6 +59,7 @@ class DecisionContext:
     scenes: np.ndarray
 
     def model_batch(self) -> dict:
+        """The inputs a forward model's ``sample`` takes."""
         return {"history": self.history, "road": self.road, "ego_speed_mps": self.ego_speed_mps,
                 "ego_steer_rad": self.ego_steer_rad}
 
@@ -90,6 +91,7 @@ class Predictor:
 
     def predict(self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *,
                 generator: torch.Generator) -> torch.Tensor:
+        """Rows (B, C, K, H, N, F) of K futures under each of the C plans ``actions`` (B, C, H, 2)."""
         raise NotImplementedError
 
 
@@ -102,9 +104,11 @@ class ModelPredictor(Predictor):
 
     @property
     def ego(self) -> EgoKinematics:
+        """The ego's kinematics the model was trained with."""
         return self.model.ego
 
     def predict(self, ctx, actions, num_futures, *, generator):
+        """Rows (B, C, K, H, N, F) of K futures under each of the C plans ``actions`` (B, C, H, 2)."""
         return self.model.sample(ctx.model_batch(), actions, num_futures, generator=generator, moments=False)["rows"]
 
 
@@ -121,6 +125,7 @@ class OraclePredictor(Predictor):
         self._calls = 0
 
     def predict(self, ctx, actions, num_futures, *, generator):
+        """Rows (B, C, K, H, N, F) of K futures under each of the C plans ``actions`` (B, C, H, 2)."""
         gens = [generator] * len(ctx.scenes) if isinstance(generator, torch.Generator) else generator
         seed = np.array([int(torch.randint(0, 2**31 - 1, (1,), generator=g)) for g in gens])
         fut = oracle_futures_batch(ctx.state, self.params, ctx.scenes, actions.double().numpy(), num_futures,

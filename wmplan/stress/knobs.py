@@ -63,6 +63,7 @@ class Knob:
     high: float = math.inf
 
     def value(self, base: float, z: float) -> float:
+        """The knob's value at standard-normal coordinate ``z`` around ``base``, clipped to [low, high]."""
         raw = base * math.exp(self.sigma * z) if self.mode == "scale" else base + self.sigma * z
         return float(min(max(raw, self.low), self.high))
 
@@ -155,6 +156,7 @@ def variant(base: Scenario, knobs: Sequence[Knob], z: np.ndarray) -> Scenario:
 
 
 def describe_knobs(knobs: Sequence[Knob]) -> list[dict]:
+    """The knobs as JSON-ready dicts (infinite bounds as None)."""
     return [{"name": k.name, "path": k.path, "mode": k.mode, "sigma": k.sigma,
              "low": None if math.isinf(k.low) else k.low, "high": None if math.isinf(k.high) else k.high}
             for k in knobs]

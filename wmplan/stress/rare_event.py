@@ -83,6 +83,7 @@ class GaussianFamily:
 
     @property
     def dim(self) -> int:
+        """Number of coordinates."""
         return int(np.asarray(self.mean).shape[0])
 
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
@@ -107,6 +108,7 @@ class GaussianFamily:
                               alpha * other.std + (1 - alpha) * self.std)
 
     def describe(self) -> dict:
+        """The distribution as a JSON-ready dict."""
         return {"family": "gaussian", "mean": [float(v) for v in self.mean], "std": [float(v) for v in self.std]}
 
 
@@ -118,12 +120,15 @@ class ExponentialFamily:
 
     @property
     def dim(self) -> int:
+        """Number of coordinates."""
         return int(np.asarray(self.mean).shape[0])
 
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """``n`` draws, (n, D)."""
         return rng.exponential(self.mean, size=(n, self.dim))
 
     def log_pdf(self, x: np.ndarray) -> np.ndarray:
+        """Log density at ``x`` (N, D) -> (N,)."""
         return np.sum(-x / self.mean - np.log(self.mean), axis=-1)
 
     def fit(self, x: np.ndarray, w: np.ndarray, *, nominal: ExponentialFamily, std_floor: float) -> ExponentialFamily:
@@ -131,9 +136,11 @@ class ExponentialFamily:
         return ExponentialFamily((w / w.sum()) @ x)
 
     def blend(self, other: ExponentialFamily, alpha: float) -> ExponentialFamily:
+        """The distribution ``alpha * other + (1 - alpha) * self`` (parameters blended: CE smoothing)."""
         return ExponentialFamily(alpha * other.mean + (1 - alpha) * self.mean)
 
     def describe(self) -> dict:
+        """The distribution as a JSON-ready dict."""
         return {"family": "exponential", "mean": [float(v) for v in self.mean]}
 
 
@@ -147,17 +154,21 @@ class DefensiveMixture:
 
     @property
     def dim(self) -> int:
+        """Number of coordinates."""
         return self.proposal.dim
 
     def sample(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """``n`` draws, (n, D)."""
         from_nominal = rng.random(n) < self.alpha
         return np.where(from_nominal[:, None], self.nominal.sample(n, rng), self.proposal.sample(n, rng))
 
     def log_pdf(self, x: np.ndarray) -> np.ndarray:
+        """Log density at ``x`` (N, D) -> (N,)."""
         return np.logaddexp(math.log(self.alpha) + self.nominal.log_pdf(x),
                             math.log1p(-self.alpha) + self.proposal.log_pdf(x))
 
     def describe(self) -> dict:
+        """The distribution as a JSON-ready dict."""
         return {"family": "defensive mixture", "alpha": self.alpha, "proposal": self.proposal.describe()}
 
 
@@ -174,6 +185,7 @@ class PlainMCResult:
     n: int
 
     def as_dict(self) -> dict:
+        """The result as a JSON-ready dict."""
         return {"estimate": self.estimate, "ci95": list(self.ci95), "failures": self.failures, "n": self.n}
 
 
@@ -217,9 +229,11 @@ class ISResult:
 
     @property
     def relative_error(self) -> float:
+        """Standard error over the estimate (inf at an estimate of 0)."""
         return self.std_error / self.estimate if self.estimate > 0 else math.inf
 
     def as_dict(self) -> dict:
+        """The result as a JSON-ready dict."""
         hi = self.ci95[1]
         return {
             "estimate": self.estimate, "ci95": [self.ci95[0], hi if math.isfinite(hi) else None],

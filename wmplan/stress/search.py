@@ -73,6 +73,7 @@ Animate = Callable[[Path, int, str, Path], Path]
 
 
 def is_failure(row: dict) -> bool:
+    """Whether an episode row is a failure: a collision or leaving the road."""
     return bool(row["collision"]) or bool(row["offroad"])
 
 

@@ -58,6 +58,7 @@ class Cell:
         return ", ".join(parts)
 
     def load_scenario(self) -> Scenario:
+        """The cell's scenario variant, validated."""
         return parse_scenario(self.scenario, f"cell {self.cell_id}")
 
 

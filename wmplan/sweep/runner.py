@@ -105,6 +105,7 @@ class InlineExecutor(Executor):
     """An executor that runs each task at ``submit`` in the calling process (``workers=1``)."""
 
     def submit(self, fn, /, *args, **kwargs) -> Future:  # type: ignore[override]
+        """Run ``fn`` now and return a finished future holding its result or exception."""
         fut: Future = Future()
         try:
             fut.set_result(fn(*args, **kwargs))
@@ -200,6 +201,7 @@ def _table_bytes(table: pa.Table) -> bytes:
 
 
 def cell_path(out_dir: Path, cell_id: str) -> Path:
+    """The file of one cell's rows."""
     return Path(out_dir) / "cells" / f"{cell_id}.parquet"
 
 

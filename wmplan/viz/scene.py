@@ -370,6 +370,7 @@ class SceneRenderer:
 
     @property
     def ax(self) -> Axes:
+        """The axes drawn into."""
         return self.artists.ax
 
     def render(self, vehicles: np.ndarray, *, x_range_m: tuple[float, float] | None = None,
