@@ -8,7 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from wmplan.data.collect import POLICIES, Trajectories, collect, episode_seeds
-from wmplan.data.store import Dataset, load_dataset, write_dataset
+from wmplan.data.store import MAX_DATASET_BYTES, Dataset, load_dataset, write_dataset
 from wmplan.errors import ConfigError, DatasetError
 from wmplan.scenario import Scenario
 from wmplan.sim.params import SimParams
@@ -27,9 +27,6 @@ __all__ = [
 ]
 
 
-MAX_DATASET_BYTES = 2 * 2**30
-"""Largest dataset (its arrays) that :func:`simulate_dataset` makes: writing it holds about three times as much
-(the batches, their concatenation and the compressed file) and reading it back once more."""
 _BYTES_PER_SLOT = 8 * 4 + 4  # per recorded time and vehicle slot: 8 float32 features and an int32 identity
 
 

@@ -218,11 +218,9 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
     history: list[dict] = []
     start_epoch, step, elapsed_before = 0, 0, 0.0
     if state is not None:
-        from safetensors.torch import load_file
+        from wmplan.model.checkpoint import checkpoint_folder, load_weights
 
-        from wmplan.model.checkpoint import checkpoint_folder
-
-        model.load_state_dict(load_file(str(checkpoint_folder(out_dir) / "model.safetensors")))
+        model.load_state_dict(load_weights(checkpoint_folder(out_dir), ckpt_cfg))
         optimizer_from_tensors(opt, opt_tensors, state["optimizer"])
         data_rng.bit_generator.state = state["data_rng"]
         gen_noise.set_state(torch.tensor(state["noise_gen"], dtype=torch.uint8))
