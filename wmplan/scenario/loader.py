@@ -9,7 +9,7 @@ from pathlib import Path
 import yaml
 from pydantic import ValidationError
 
-from wmplan.errors import ScenarioError, format_validation_error
+from wmplan.errors import ScenarioError, format_validation_error, one_line
 from wmplan.scenario.schema import Scenario
 from wmplan.yamlio import load_yaml, read_yaml_file
 
@@ -39,15 +39,18 @@ def parse_scenario(data: object, source: str = "<scenario>") -> Scenario:
 def load_scenario(name_or_path: str | Path) -> Scenario:
     """Load a built-in scenario by name, or a scenario file by path."""
     path = Path(name_or_path)
-    if not path.suffix and not path.exists():
-        candidate = BUILTIN_DIR / f"{name_or_path}.yaml"
-        if not candidate.exists():
-            raise ScenarioError(
-                f"{name_or_path}: no such built-in scenario or file; built-ins are: {', '.join(builtin_names())}"
-            )
-        path = candidate
-    if not path.is_file():
-        raise ScenarioError(f"{path}: no such scenario file")
+    try:
+        if not path.suffix and not path.exists():
+            candidate = BUILTIN_DIR / f"{name_or_path}.yaml"
+            if not candidate.exists():
+                raise ScenarioError(
+                    f"{name_or_path}: no such built-in scenario or file; built-ins are: {', '.join(builtin_names())}"
+                )
+            path = candidate
+        if not path.is_file():
+            raise ScenarioError(f"{path}: no such scenario file")
+    except OSError as err:  # e.g. a name too long for the file system
+        raise ScenarioError(f"{one_line(str(name_or_path), 120)}: cannot open ({err.strerror or err})") from None
     return parse_scenario(read_yaml_file(path, ScenarioError), str(path))
 
 

@@ -224,6 +224,9 @@ def sweep_from_yaml(text: str, source: str = "<sweep>", base_dir: Path | str = "
 def load_sweep(path: str | Path) -> Sweep:
     """Read a sweep file."""
     path = Path(path)
-    if not path.is_file():
-        raise SweepError(f"{path}: no such sweep file")
+    try:
+        if not path.is_file():
+            raise SweepError(f"{path}: no such sweep file")
+    except OSError as err:  # e.g. a name too long for the file system
+        raise SweepError(f"{path}: cannot open ({err.strerror or err})") from None
     return parse_sweep(read_yaml_file(path, SweepError), str(path), path.parent)
