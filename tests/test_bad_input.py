@@ -417,6 +417,24 @@ def test_non_finite_simulation_leaves_nothing_behind(monkeypatch, tmp_path):
     assert not (tmp_path / "out").exists()
 
 
+def test_diverging_training_stops_in_one_line_and_saves_nothing(tmp_path):
+    """A learning rate of 1e30 sends the weights to inf within the first epoch: training stops with one line and
+    leaves no checkpoint of NaN weights behind (the folder is never created)."""
+    from wmplan.data import simulate_dataset
+    from wmplan.errors import ConfigError
+    from wmplan.model.config import ModelConfig, TrainConfig
+    from wmplan.model.train import train
+
+    data = tmp_path / "data"
+    simulate_dataset(load_scenario("open-road"), data, episodes=4, seed=1)
+    mcfg = ModelConfig(d_model=16, num_heads=2, hidden=16, num_layers=1, latent_dim=2)
+    tcfg = TrainConfig(max_epochs=2, steps_per_epoch=3, batch_size=16, threads=1, lr=1e30, val_fraction=0.5, seed=0)
+    with pytest.raises(ConfigError, match="training diverged in epoch 0") as err:
+        train(data, tmp_path / "model", model_cfg=mcfg, train_cfg=tcfg)
+    assert "\n" not in str(err.value)
+    assert not (tmp_path / "model").exists()
+
+
 def test_os_errors_are_one_line_and_bugs_keep_their_traceback(tmp_path, capsys, monkeypatch):
     """An operating-system error raised while a verb runs (here: a full disk while writing) is one line naming the
     path, exit 2; an exception that is neither a wmplan error nor an OSError is a bug and propagates."""

@@ -260,6 +260,9 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
             if progress is not None:
                 progress(1, {k: v / max(1, step - epoch * train_cfg.steps_per_epoch) for k, v in sums.items()})
         secs = time.perf_counter() - t_epoch
+        if not all(bool(torch.isfinite(p).all()) for p in model.parameters()):
+            raise ConfigError(f"{out_dir}: training diverged in epoch {epoch} (NaN or inf weights); nothing of this "
+                              "epoch was saved: the last complete checkpoint stays; try a smaller learning rate")
         row = {"epoch": epoch, "step": step, "elapsed_s": round(time.perf_counter() - t_start, 2)}
         row.update({k: v / train_cfg.steps_per_epoch for k, v in sums.items()})
         row["sched/lr"] = lr
