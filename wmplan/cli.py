@@ -9,12 +9,14 @@ from __future__ import annotations
 import argparse
 import importlib.util
 import json
+import math
+import os
 import sys
 import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
-from wmplan.errors import ConfigError, WmplanError
+from wmplan.errors import ConfigError, WmplanError, one_line
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERRUPTED = 130
@@ -25,7 +27,7 @@ class _Parser(argparse.ArgumentParser):
     """argparse with a one-line error and exit status 2."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see `{self.prog} --help`)\n")
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {one_line(message, 600)} (see `{self.prog} --help`)\n")
 
 
 def _progress(total: int, desc: str) -> tuple[Callable[[int], None], Callable[[], None]]:
@@ -48,33 +50,146 @@ def _write_json(path: str | None, payload: dict) -> None:
         atomic_write_json(Path(path), payload)
 
 
-def _int_at_least(minimum: int) -> Callable[[str], int]:
-    """argparse type: an integer >= ``minimum``."""
+SEED_MAX = 2**32 - 1
+"""Largest seed a flag accepts: 32 bits, taken alike by numpy's SeedSequence and torch's generators (also after the
+small offsets some stages add to it) and by the int64 seed arrays of the simulator."""
+MAX_EPISODES = 100_000
+MAX_ASSESS_EPISODES = 4096
+MAX_BUDGET = 1_000_000
+MAX_WORKERS = 64
+MAX_THREADS = 64
+MAX_BATCH = 4096
+MAX_DECISION_EVERY = 50
+MAX_EPOCHS = 10_000
+MAX_MINUTES = 7 * 24 * 60.0
+
+
+def _int_in(minimum: int, maximum: int) -> Callable[[str], int]:
+    """argparse type: an integer in [``minimum``, ``maximum``]."""
 
     def parse(text: str) -> int:
         try:
-            value = int(text)
+            value = int(text.strip()) if len(text) <= 40 else None
         except ValueError:
-            raise argparse.ArgumentTypeError(f"invalid integer {text!r}") from None
-        if value < minimum:
-            raise argparse.ArgumentTypeError(f"must be >= {minimum}, got {value}")
+            value = None
+        if value is None:
+            raise argparse.ArgumentTypeError(f"invalid integer {one_line(repr(text), 60)}; "
+                                             f"give a whole number in [{minimum}, {maximum}]")
+        if not minimum <= value <= maximum:
+            raise argparse.ArgumentTypeError(f"must lie in [{minimum}, {maximum}], got {value}")
         return value
 
     return parse
 
 
-_positive_int = _int_at_least(1)
-_nonneg_int = _int_at_least(0)
+_seed = _int_in(0, SEED_MAX)
+SEED_HELP = f"0 to {SEED_MAX} (2^32 - 1)"
 
 
-def _fraction(text: str) -> float:
+def _float_in(low: float, high: float, *, low_open: bool = False) -> Callable[[str], float]:
+    """argparse type: a finite number in [low, high] (or (low, high] with ``low_open``)."""
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"invalid number {one_line(repr(text), 60)}") from None
+        if not (math.isfinite(value) and (low < value if low_open else low <= value) and value <= high):
+            raise argparse.ArgumentTypeError(f"must lie in {'(' if low_open else '['}{low:g}, {high:g}], got {value}")
+        return value
+
+    return parse
+
+
+_fraction = _float_in(0.0, 1.0)
+
+
+def _name_list(text: str) -> str:
+    """argparse type: a comma-separated list of distinct, non-empty names (returned as given)."""
+    names = [n.strip() for n in text.split(",")]
+    if not any(names):
+        raise argparse.ArgumentTypeError(f"names nothing ({one_line(repr(text), 60)}); give one or more names "
+                                         "separated by commas")
+    if not all(names):
+        raise argparse.ArgumentTypeError(f"has an empty name in {one_line(repr(text), 80)}")
+    if len(set(names)) != len(names):
+        raise argparse.ArgumentTypeError(f"names something twice in {one_line(repr(text), 80)}")
+    return text
+
+
+# --- outputs, checked before any work --------------------------------------------------------------------------------
+
+_TEMP_NAME_ROOM = 24  # the atomic writers' temporary names add a dot and a suffix of about this length
+
+
+def _nearest_existing(path: Path) -> Path:
+    probe = path
+    while not os.path.lexists(probe) and probe != probe.parent:
+        probe = probe.parent
+    return probe
+
+
+def check_output(path: str | Path, kind: str, flag: str) -> None:
+    """Refuse an output path that cannot be written, before any work starts.
+
+    Args:
+        path: the path given on the command line.
+        kind: ``"file"`` (written atomically, replacing an existing file) or ``"dir"`` (a folder created if
+            missing, then filled).
+        flag: the flag that named it, for the message.
+
+    Raises:
+        ConfigError: one line naming the flag, the path and what is wrong (a folder where a file is wanted or the
+            reverse, a parent that is not a folder, no write permission, a name or path too long).
+    """
+    p = Path(os.path.abspath(path))
+    name_max = 255
+    path_max = 4096
+    base = _nearest_existing(p)
     try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"invalid number {text!r}") from None
-    if not 0.0 <= value <= 1.0:
-        raise argparse.ArgumentTypeError(f"must lie in [0, 1], got {value}")
-    return value
+        name_max = os.pathconf(base if base.is_dir() else base.parent, "PC_NAME_MAX")
+        path_max = os.pathconf(base if base.is_dir() else base.parent, "PC_PATH_MAX")
+    except (OSError, ValueError):
+        pass
+    if len(os.fsencode(str(p))) + _TEMP_NAME_ROOM >= path_max:
+        raise ConfigError(f"{flag} {one_line(str(path), 120)}: the path is too long ({len(str(p))} characters; "
+                          f"this file system takes at most {path_max - _TEMP_NAME_ROOM - 1})")
+    for part in p.parts[1:]:
+        if len(os.fsencode(part)) + _TEMP_NAME_ROOM > name_max:
+            raise ConfigError(f"{flag} {one_line(str(path), 120)}: the name {one_line(part, 40)!r} is too long "
+                              f"({len(os.fsencode(part))} bytes; at most {name_max - _TEMP_NAME_ROOM} here)")
+    if os.path.lexists(p):
+        if kind == "file" and p.is_dir():
+            raise ConfigError(f"{flag} {path}: is a folder; name a file")
+        if kind == "dir" and not p.is_dir():
+            raise ConfigError(f"{flag} {path}: exists and is not a folder; name a folder")
+        _probe_write(p if kind == "dir" else p.parent, flag, path)
+        return
+    if not base.is_dir():
+        raise ConfigError(f"{flag} {path}: {base} is not a folder, so nothing can be created under it")
+    _probe_write(base, flag, path)
+
+
+def _probe_write(folder: Path, flag: str, path: str | Path) -> None:
+    """Create and remove an empty temporary file in ``folder``: the one test that permissions, read-only file
+    systems and special folders all answer truthfully."""
+    import tempfile
+
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=".wmplan-probe-", dir=folder)
+    except OSError as err:
+        raise ConfigError(f"{flag} {one_line(str(path), 200)}: cannot write in {one_line(str(folder), 200)} "
+                          f"({err.strerror or err.__class__.__name__})") from None
+    os.close(fd)
+    os.unlink(tmp)
+
+
+def _check_outputs(args: argparse.Namespace) -> None:
+    """Check every output flag of the verb (``outputs`` in its parser defaults) before it runs."""
+    for attr, kind in getattr(args, "outputs", ()):
+        value = getattr(args, attr, None)
+        if value:
+            check_output(value, kind, "--" + attr.replace("_", "-") if attr != "run_dir" else "RUN_DIR")
 
 
 # --- scenarios -------------------------------------------------------------------------------------------------------
@@ -416,137 +531,161 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("action", choices=["list", "show", "check"])
     sp.add_argument("targets", nargs="*", help="scenario names or YAML files (show, check)")
     sp.add_argument("--json", metavar="FILE", help="also write the result as JSON")
-    sp.set_defaults(func=cmd_scenarios)
+    sp.set_defaults(func=cmd_scenarios, outputs=(("json", "file"),))
 
     sp = sub.add_parser("simulate", help="roll out episodes with behaviour policies into a dataset folder")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
-    sp.add_argument("--episodes", type=_positive_int, default=200, help="number of episodes (default 200)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0, help="dataset seed (default 0)")
+    sp.add_argument("--episodes", type=_int_in(1, MAX_EPISODES), default=200,
+                    help=f"number of episodes, 1 to {MAX_EPISODES} (default 200)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"dataset seed, {SEED_HELP} (default 0)")
     sp.add_argument("--out", required=True, metavar="DIR", help="dataset folder to write")
-    sp.add_argument("--batch-size", type=_positive_int, default=256, help="scenes simulated at once (default 256)")
+    sp.add_argument("--batch-size", type=_int_in(1, MAX_BATCH), default=256,
+                    help=f"scenes simulated at once, 1 to {MAX_BATCH} (default 256)")
     sp.add_argument("--policy-mix", type=_fraction, default=0.5,
                     help="share of episodes driven by the exploring policy rather than the rules (default 0.5)")
-    sp.add_argument("--decision-every", type=_positive_int, default=2,
-                    help="simulator steps per recorded decision (default 2, i.e. 0.2 s)")
+    sp.add_argument("--decision-every", type=_int_in(1, MAX_DECISION_EVERY), default=2,
+                    help=f"simulator steps per recorded decision, 1 to {MAX_DECISION_EVERY} (default 2, i.e. 0.2 s)")
     sp.add_argument("--overwrite", action="store_true", help="replace a dataset already in --out")
     sp.add_argument("--json", metavar="FILE", help="write a summary as JSON")
-    sp.set_defaults(func=cmd_simulate)
+    sp.set_defaults(func=cmd_simulate, outputs=(("out", "dir"), ("json", "file")))
 
     sp = sub.add_parser("render", help="draw one episode of a scenario as a PNG (one moment) or GIF (animation)")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
     sp.add_argument("--out", required=True, metavar="FILE", help="FILE.png or FILE.gif (FILE.mp4 where ffmpeg exists)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
-    sp.add_argument("--step", type=_nonneg_int, default=None, help="simulator step to draw in a PNG (default: middle)")
-    sp.set_defaults(func=cmd_render)
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
+    sp.add_argument("--step", type=_int_in(0, 10**6), default=None, help="simulator step to draw in a PNG (default: middle)")
+    sp.set_defaults(func=cmd_render, outputs=(("out", "file"),))
 
     sp = sub.add_parser("train", help="train the forward model (or its deterministic baseline) on a dataset")
     sp.add_argument("data_dir", help="dataset folder written by `wmplan simulate`")
     sp.add_argument("--out", required=True, metavar="MODEL_DIR")
-    sp.add_argument("--minutes", type=float, default=None,
-                    help="wall-clock cap: training stops after the epoch that crosses it (default 4.5)")
-    sp.add_argument("--epochs", type=_positive_int, default=None,
-                    help="epochs of 200 steps; the learning rate decays over them (default 16)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--minutes", type=_float_in(0.0, MAX_MINUTES, low_open=True), default=None,
+                    help="wall-clock cap: training stops after the epoch that crosses it (default 4.5; at most a week)")
+    sp.add_argument("--epochs", type=_int_in(1, MAX_EPOCHS), default=None,
+                    help=f"epochs of 200 steps; the learning rate decays over them, 1 to {MAX_EPOCHS} (default 16)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--deterministic", action="store_true", help="train the least-squares baseline without latent")
     sp.add_argument("--resume", action="store_true", help="continue from the newest checkpoint in --out")
     sp.add_argument("--json", metavar="FILE", help="write a summary as JSON")
-    sp.set_defaults(func=cmd_train)
+    sp.set_defaults(func=cmd_train, outputs=(("out", "dir"), ("json", "file")))
 
     sp = sub.add_parser("assess", help="compare the forward models with constant velocity and the oracle")
     sp.add_argument("model_dir", help="latent model folder")
     sp.add_argument("--scenario", default="onramp-merge")
     sp.add_argument("--deterministic", metavar="DIR", default=None, help="deterministic model folder")
-    sp.add_argument("--episodes", type=_positive_int, default=96, help="held-out episodes (default 96)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--episodes", type=_int_in(1, MAX_ASSESS_EPISODES), default=96,
+                    help=f"held-out episodes, 1 to {MAX_ASSESS_EPISODES} (default 96)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--json", metavar="FILE")
-    sp.set_defaults(func=cmd_assess)
+    sp.set_defaults(func=cmd_assess, outputs=(("json", "file"),))
 
     sp = sub.add_parser("evaluate", help="closed-loop evaluation of planners in the true simulator")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
-    sp.add_argument("--planners", default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
+    sp.add_argument("--planners", type=_name_list,
+                    default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
                     help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle, "
                          "a plug-in planner module:factory, or mpc+module:factory (the sampling planner over a "
                          "plug-in predictor)")
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
-    sp.add_argument("--episodes", type=_positive_int, default=200)
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--episodes", type=_int_in(1, MAX_EPISODES), default=200,
+                    help=f"episodes per planner, 1 to {MAX_EPISODES} (default 200)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--sampler", choices=["cem", "mppi"], default="cem")
     sp.add_argument("--risk", choices=["penalty", "chance"], default="penalty",
                     help="collision risk as a weighted penalty or as a chance constraint P(collision) <= epsilon")
-    sp.add_argument("--epsilon", type=float, default=0.05, help="chance-constraint level (default 0.05)")
-    sp.add_argument("--batch-size", type=_positive_int, default=50, help="episodes planned together (default 50)")
-    sp.add_argument("--threads", type=_positive_int, default=2, help="torch threads (default 2)")
+    sp.add_argument("--epsilon", type=_float_in(0.0, 1.0, low_open=True), default=0.05,
+                    help="chance-constraint level, in (0, 1] (default 0.05)")
+    sp.add_argument("--batch-size", type=_int_in(1, MAX_BATCH), default=50,
+                    help=f"episodes planned together, 1 to {MAX_BATCH} (default 50)")
+    sp.add_argument("--threads", type=_int_in(1, MAX_THREADS), default=2, help=f"torch threads, 1 to {MAX_THREADS} (default 2)")
     sp.add_argument("--reference", metavar="PLANNER", default=None,
                     help="compare every other planner with this one, pair by pair on the same seeds (default: "
                          "mpc+oracle when it runs, else rules)")
-    sp.add_argument("--detect", type=float, default=None, metavar="DIFF",
+    sp.add_argument("--detect", type=_float_in(-1.0, 1.0), default=None, metavar="DIFF",
                     help="size the power for this collision-rate difference (planner minus reference, e.g. 0.02) "
                          "instead of the observed one")
     sp.add_argument("--out", metavar="DIR", help="write episodes.parquet, calibration.parquet, summary.json")
     sp.add_argument("--json", metavar="FILE", help="write the summary JSON")
-    sp.set_defaults(func=cmd_evaluate)
+    sp.set_defaults(func=cmd_evaluate, outputs=(("out", "dir"), ("json", "file")))
 
     sp = sub.add_parser("sweep", help="run a sweep file over scenario variants and planners (resumable)")
     sp.add_argument("file", help="sweep YAML file")
     sp.add_argument("--out", required=True, metavar="DIR")
-    sp.add_argument("--workers", type=_positive_int, default=1, help="local worker processes (default 1)")
+    sp.add_argument("--workers", type=_int_in(1, MAX_WORKERS), default=1,
+                    help=f"local worker processes, 1 to {MAX_WORKERS} (default 1)")
     sp.add_argument("--scheduler", metavar="ADDRESS", help="run on a Dask cluster, e.g. tcp://127.0.0.1:8786")
     sp.add_argument("--json", metavar="FILE", help="also write the summary JSON here")
-    sp.set_defaults(func=cmd_sweep)
+    sp.set_defaults(func=cmd_sweep, outputs=(("out", "dir"), ("json", "file")))
 
     sp = sub.add_parser("stress", help="search for failures and estimate their probability by importance sampling")
     sp.add_argument("scenario")
     sp.add_argument("--planner", default="rules", help="a planner name or plug-in import path, as for evaluate")
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
-    sp.add_argument("--budget", type=_positive_int, default=2000, help="episodes per estimator (default 2000)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
-    sp.add_argument("--workers", type=_positive_int, default=1)
+    sp.add_argument("--budget", type=_int_in(1, MAX_BUDGET), default=2000,
+                    help=f"episodes per estimator, 1 to {MAX_BUDGET} (default 2000)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
+    sp.add_argument("--workers", type=_int_in(1, MAX_WORKERS), default=1, help=f"1 to {MAX_WORKERS} (default 1)")
     sp.add_argument("--scheduler", metavar="ADDRESS")
     sp.add_argument("--no-animation", action="store_true", help="do not draw the saved failures")
-    sp.add_argument("--knobs", metavar="NAMES", help="vary only these scenario knobs, comma-separated (default all: "
+    sp.add_argument("--knobs", metavar="NAMES", type=_name_list, help="vary only these scenario knobs, comma-separated (default all: "
                     "density, yield_prob, hard_brake_rate, desired_speed, ego_speed, ego_brake)")
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--json", metavar="FILE")
-    sp.set_defaults(func=cmd_stress)
+    sp.set_defaults(func=cmd_stress, outputs=(("out", "dir"), ("json", "file")))
 
     sp = sub.add_parser("replay", help="run a failure saved by `wmplan stress` again; exit 0 if it fails again, 1 if not")
     sp.add_argument("failure", help="the failure's .json record (or the .yaml beside it)")
     sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
     sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
     sp.add_argument("--out", metavar="FILE", help="also draw the replayed episode: FILE.gif (or .mp4 with ffmpeg)")
-    sp.set_defaults(func=cmd_replay)
+    sp.set_defaults(func=cmd_replay, outputs=(("out", "file"),))
 
     sp = sub.add_parser("report", help="write report.html and report.md from what a run left in RUN_DIR")
     sp.add_argument("run_dir")
-    sp.set_defaults(func=cmd_report)
+    sp.set_defaults(func=cmd_report, outputs=(("run_dir", "dir"),))
 
     sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
     sp.add_argument("--json", metavar="FILE", help="write all results to FILE")
-    sp.add_argument("--only", metavar="LIST", help=f"comma-separated subset of: {', '.join(BENCHMARKS)}")
+    sp.add_argument("--only", metavar="LIST", type=_name_list, help=f"comma-separated subset of: {', '.join(BENCHMARKS)}")
     sp.add_argument("--quick", action="store_true", help="short runs (for a smoke test, not for numbers)")
-    sp.set_defaults(func=cmd_bench)
+    sp.set_defaults(func=cmd_bench, outputs=(("json", "file"),))
 
     sp = sub.add_parser("demo", help="run the whole job end to end on onramp-merge and write a report")
     sp.add_argument("--out", default="demo-out", metavar="DIR")
-    sp.add_argument("--seed", type=_nonneg_int, default=0)
+    sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--quick", action="store_true", help="a small, fast version (for tests)")
-    sp.set_defaults(func=cmd_demo)
+    sp.set_defaults(func=cmd_demo, outputs=(("out", "dir"),))
     return p
 
 
+def os_error_line(err: OSError) -> str:
+    """One line for an operating-system error on an input or output: the path(s) and the system's reason."""
+    reason = err.strerror or err.__class__.__name__
+    paths = [str(f) for f in (err.filename, err.filename2) if f is not None]
+    if not paths:
+        return one_line(f"{reason} ({err.__class__.__name__}: {err})", 600)
+    return one_line(f"{' -> '.join(paths)}: {reason}", 600)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    """The ``wmplan`` command: parse ``argv`` and run the verb; returns the exit status."""
+    """Run one verb. Expected failures (wmplan's errors, and operating-system errors on inputs and outputs) end with
+    one line on stderr and exit status 2; anything else is a bug and keeps its traceback. Tunes the allocator first
+    (wmplan/_alloc.py; WMPLAN_MALLOC_TUNING=0 opts out)."""
     from wmplan._alloc import tune_malloc
 
-    tune_malloc()  # fewer page faults from short-lived large arrays (wmplan/_alloc.py; WMPLAN_MALLOC_TUNING=0 opts out)
+    tune_malloc()
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
+        _check_outputs(args)
         return int(args.func(args) or 0)
     except WmplanError as err:
-        print(f"wmplan: error: {err}", file=sys.stderr)
+        print(f"wmplan: error: {one_line(str(err), 1000)}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    except OSError as err:
+        print(f"wmplan: error: {os_error_line(err)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("wmplan: interrupted", file=sys.stderr)

@@ -220,11 +220,9 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
     history: list[dict] = []
     start_epoch, step, elapsed_before = 0, 0, 0.0
     if state is not None:
-        from safetensors.torch import load_file
+        from wmplan.model.checkpoint import checkpoint_folder, load_weights
 
-        from wmplan.model.checkpoint import checkpoint_folder
-
-        model.load_state_dict(load_file(str(checkpoint_folder(out_dir) / "model.safetensors")))
+        model.load_state_dict(load_weights(checkpoint_folder(out_dir), ckpt_cfg))
         optimizer_from_tensors(opt, opt_tensors, state["optimizer"])
         data_rng.bit_generator.state = state["data_rng"]
         gen_noise.set_state(torch.tensor(state["noise_gen"], dtype=torch.uint8))
@@ -264,6 +262,9 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
             if progress is not None:
                 progress(1, {k: v / max(1, step - epoch * train_cfg.steps_per_epoch) for k, v in sums.items()})
         secs = time.perf_counter() - t_epoch
+        if not all(bool(torch.isfinite(p).all()) for p in model.parameters()):
+            raise ConfigError(f"{out_dir}: training diverged in epoch {epoch} (NaN or inf weights); nothing of this "
+                              "epoch was saved: the last complete checkpoint stays; try a smaller learning rate")
         row = {"epoch": epoch, "step": step, "elapsed_s": round(time.perf_counter() - t_start, 2)}
         row.update({k: v / train_cfg.steps_per_epoch for k, v in sums.items()})
         row["sched/lr"] = lr

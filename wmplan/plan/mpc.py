@@ -115,6 +115,10 @@ class PlannerConfig:
     lane_prob_floor: float = 0.05
     cvar_alpha: float = 0.8
     safe_distance_m: float = 2.0
+    """Upper bound (m) of the clearance below which the CVaR shortfall cost starts. The threshold used is the
+    smaller of this and the ego's own lateral room in its lane, (lane width - ego width) / 2: a vehicle that
+    keeps to the next lane never comes closer than that, so passing it costs nothing, while one that drifts over
+    the marking, or a gap closing to under that room, does (:meth:`SamplingPlanner.shortfall_threshold_m`)."""
     collision_margin_m: float = 0.3
     """Clearance (m) at or below which a predicted future counts as a collision in the cost and the chance
     constraint (the footprints inflated by this buffer). The logged and calibrated P(collision) stays that of
@@ -308,6 +312,13 @@ class SamplingPlanner:
 
     # --- costs ------------------------------------------------------------------------------------------------
 
+    def shortfall_threshold_m(self) -> float:
+        """Clearance (m) below which the CVaR shortfall cost starts: ``min(safe_distance_m, (lane width - ego
+        width) / 2)``, and never below the collision margin."""
+        p = self.params
+        room = 0.5 * (p.lane_width_m - p.ego_width_m)
+        return float(max(self.cfg.collision_margin_m, min(self.cfg.safe_distance_m, room)))
+
     def costs(self, ctx: DecisionContext, plans: torch.Tensor, choice: torch.Tensor, futures: torch.Tensor) -> dict:
         """Cost of every candidate (B, C) and its parts."""
         cfg, p, w = self.cfg, self.params, self.cfg.weights
@@ -348,7 +359,7 @@ class SamplingPlanner:
         off = self._offroad(ex, ey, heading, start, end)
         offroad_cost = off.double().sum(-1)
         # risk from the K futures
-        risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=cfg.safe_distance_m,
+        risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=self.shortfall_threshold_m(),
                               margin_m=cfg.collision_margin_m)
         p_coll = risk.p_near.double()  # contact within the margin: what the cost and the constraint see
         ttc_short = (cfg.ttc_threshold_s - risk.min_ttc_s.double().clamp(max=cfg.ttc_threshold_s)) ** 2

@@ -4,14 +4,14 @@ from __future__ import annotations
 
 import hashlib
 import json
-import re
 from pathlib import Path
 
 import yaml
 from pydantic import ValidationError
 
-from wmplan.errors import ScenarioError
+from wmplan.errors import ScenarioError, format_validation_error, one_line
 from wmplan.scenario.schema import Scenario
+from wmplan.yamlio import load_yaml, read_yaml_file
 
 BUILTIN_DIR = Path(__file__).resolve().parent / "builtin"
 
@@ -21,58 +21,8 @@ def builtin_names() -> list[str]:
     return sorted(p.stem for p in BUILTIN_DIR.glob("*.yaml"))
 
 
-def _format_loc(loc: tuple) -> str:
-    out = ""
-    for part in loc:
-        if isinstance(part, int):
-            out += f"[{part}]"
-        else:
-            out += ("." if out else "") + str(part)
-    return out or "(top level)"
-
-
-# A custom check that names its own field starts its message with the field's path, e.g.
-# "traffic.density_veh_per_km has 2 values ..." or "density_veh_per_km[1] must lie in ...". A path here has at
-# least one "_", "." or "[" so that an ordinary first word ("must ...") or a bare "low"/"mean" stays in the text.
-_PATH_AT_START = re.compile(r"^([A-Za-z_]\w*(?:\.[A-Za-z_]\w*|\[\d+\])*) (.+)$")
-
-
-def _field_from_message(field: str, msg: str) -> tuple[str, str]:
-    """Move a field path that opens a validator's message into the field slot, joined to where pydantic
-    reported the error (a check on a whole model reports the model, not the field it is about)."""
-    m = _PATH_AT_START.match(msg)
-    if m is None or not any(ch in m.group(1) for ch in "_.["):
-        return field, msg
-    path, rest = m.groups()
-    head = re.split(r"[.\[]", path, maxsplit=1)[0]
-    if field == "(top level)":
-        return path, rest
-    if field == head or field.endswith("." + head):  # the message restates the last part of the location
-        return field[: len(field) - len(head)] + path, rest
-    return f"{field}.{path}", rest
-
-
-def format_validation_error(source: str, err: ValidationError) -> str:
-    """One line: file, field, value and rule of the first problem, plus how many more there are."""
-    problems = err.errors(include_url=False)
-    first = problems[0]
-    loc = tuple(p for p in first["loc"] if not (isinstance(p, str) and p.startswith("function-")))
-    field = _format_loc(loc)
-    msg = first["msg"]
-    if first["type"] == "extra_forbidden":
-        msg = "unknown key (check the spelling against `wmplan scenarios show open-road`)"
-    elif first["type"] == "model_type" and first.get("ctx", {}).get("class_name") == "Dist":
-        msg = "must be a number or a mapping {mean, std, low, high}"
-    elif first["type"] == "value_error":
-        if msg.startswith("Value error, "):
-            msg = msg[len("Value error, "):]
-        field, msg = _field_from_message(field, msg)
-    value = first.get("input")
-    # The value is shown unless there is none, it is a whole mapping, or our own check already states it.
-    hide = first["type"] == "missing" or isinstance(value, dict) or (first["type"] == "value_error" and ", got " in msg)
-    shown = "" if hide else f" (got {value!r})"
-    more = f" [and {len(problems) - 1} more problem(s)]" if len(problems) > 1 else ""
-    return f"{source}: {field}: {msg}{shown}{more}"
+UNKNOWN_KEY_RULE = "unknown key (check the spelling against `wmplan scenarios show open-road`)"
+_HINTS = {"Dist": "must be a number or a mapping {mean, std, low, high}"}
 
 
 def parse_scenario(data: object, source: str = "<scenario>") -> Scenario:
@@ -82,38 +32,31 @@ def parse_scenario(data: object, source: str = "<scenario>") -> Scenario:
     try:
         return Scenario.model_validate(data)
     except ValidationError as err:
-        raise ScenarioError(format_validation_error(source, err)) from None
+        raise ScenarioError(format_validation_error(source, err, unknown_key=UNKNOWN_KEY_RULE,
+                                                    model_hints=_HINTS)) from None
 
 
 def load_scenario(name_or_path: str | Path) -> Scenario:
     """Load a built-in scenario by name, or a scenario file by path."""
     path = Path(name_or_path)
-    if not path.suffix and not path.exists():
-        candidate = BUILTIN_DIR / f"{name_or_path}.yaml"
-        if not candidate.exists():
-            raise ScenarioError(
-                f"{name_or_path}: no such built-in scenario or file; built-ins are: {', '.join(builtin_names())}"
-            )
-        path = candidate
-    if not path.is_file():
-        raise ScenarioError(f"{path}: no such scenario file")
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as err:
-        raise ScenarioError(f"{path}: cannot read the file ({err.__class__.__name__}: {err})") from None
-    return scenario_from_yaml(text, str(path))
+        if not path.suffix and not path.exists():
+            candidate = BUILTIN_DIR / f"{name_or_path}.yaml"
+            if not candidate.exists():
+                raise ScenarioError(
+                    f"{name_or_path}: no such built-in scenario or file; built-ins are: {', '.join(builtin_names())}"
+                )
+            path = candidate
+        if not path.is_file():
+            raise ScenarioError(f"{path}: no such scenario file")
+    except OSError as err:  # e.g. a name too long for the file system
+        raise ScenarioError(f"{one_line(str(name_or_path), 120)}: cannot open ({err.strerror or err})") from None
+    return parse_scenario(read_yaml_file(path, ScenarioError), str(path))
 
 
 def scenario_from_yaml(text: str, source: str = "<scenario>") -> Scenario:
-    """Parse YAML text into a Scenario."""
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as err:
-        mark = getattr(err, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None else "somewhere"
-        problem = getattr(err, "problem", None) or "not valid YAML"
-        raise ScenarioError(f"{source}: (file): YAML syntax error at {where}: {problem}") from None
-    return parse_scenario(data, source)
+    """Parse YAML text into a Scenario (through the bounded loader of :mod:`wmplan.yamlio`)."""
+    return parse_scenario(load_yaml(text, source, ScenarioError), source)
 
 
 def scenario_to_dict(scn: Scenario) -> dict:

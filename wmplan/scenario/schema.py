@@ -88,9 +88,14 @@ class Dist(_Strict):
         return math.inf if self.high is None else self.high
 
 
-def _positive(name: str, dist: Dist) -> Dist:
-    if dist.mean <= 0 or (dist.std > 0 and dist.lo <= 0):
-        raise ValueError(f"{name} must be > 0: give a mean > 0 and, with std > 0, a low > 0")
+def _within(name: str, dist: Dist, low: float, high: float, unit: str, *, low_open: bool = True) -> Dist:
+    """Refuse a distribution whose values can leave (low, high] ([low, high] if not ``low_open``): its mean when
+    std is 0, else its whole support [low, high] (which must then be given)."""
+    lo, hi = (dist.mean, dist.mean) if dist.std == 0 else (dist.lo, dist.hi)
+    if not ((low < lo) if low_open else (low <= lo)) or not hi <= high:
+        interval = f"{'(' if low_open else '['}{low:g}, {high:g}] {unit}"
+        raise ValueError(f"{name} must lie in {interval}: give a mean in it and, with std > 0, low and high in it; "
+                         f"got mean={dist.mean:g}, std={dist.std:g}, low={dist.low}, high={dist.high}")
     return dist
 
 
@@ -169,6 +174,12 @@ class Traffic(_Strict):
     width_m: Dist = Dist(mean=1.85, std=0.07, low=1.6, high=2.1)
     placed: tuple[PlacedVehicle, ...] = ()
 
+    @model_validator(mode="after")
+    def _check_sizes(self) -> Traffic:
+        _within("length_m", self.length_m, 2.0, 25.0, "m")
+        _within("width_m", self.width_m, 1.0, 3.0, "m")
+        return self
+
     @field_validator("density_veh_per_km")
     @classmethod
     def _check_density(cls, value: tuple[float, ...]) -> tuple[float, ...]:
@@ -176,6 +187,26 @@ class Traffic(_Strict):
             if not 0.0 <= d <= 150.0:
                 raise ValueError(f"density_veh_per_km[{i}] must lie in [0, 150] vehicles per km, got {d}")
         return value
+
+
+# Ranges of each trait (lower end excluded unless noted): the highest speed any field takes, then wide margins
+# around the highway values of the built-in scenarios (common practice, no source). They keep every value
+# physical, so no draw can make the simulator's arithmetic overflow.
+_TRAIT_RANGES = {
+    "desired_speed_mps": (0.0, 60.0, "m/s"),
+    "time_headway_s": (0.0, 10.0, "s"),
+    "min_gap_m": (0.0, 50.0, "m"),
+    "max_accel_mps2": (0.0, 10.0, "m/s^2"),
+    "comfort_decel_mps2": (0.0, 10.0, "m/s^2"),
+    "safe_decel_mps2": (0.0, 15.0, "m/s^2"),
+    "hard_brake_decel_mps2": (0.0, 15.0, "m/s^2"),
+    "hard_brake_duration_s": (0.0, 60.0, "s"),
+}
+_CLOSED_TRAIT_RANGES = {  # lower end included
+    "politeness": (-1.0, 2.0, "(1)"),
+    "change_threshold_mps2": (0.0, 5.0, "m/s^2"),
+    "yield_prob": (0.0, 1.0, "(probability)"),
+}
 
 
 class Drivers(_Strict):
@@ -210,11 +241,11 @@ class Drivers(_Strict):
     """A driver considers yielding to a merging vehicle at most this far ahead of it."""
 
     @model_validator(mode="after")
-    def _positive_traits(self) -> Drivers:
-        for name in ("desired_speed_mps", "time_headway_s", "max_accel_mps2", "comfort_decel_mps2"):
-            _positive(name, getattr(self, name))
-        if self.yield_prob.lo < 0.0 or self.yield_prob.hi > 1.0:
-            raise ValueError("yield_prob must stay within [0, 1]: set low >= 0 and high <= 1")
+    def _trait_ranges(self) -> Drivers:
+        for name, (low, high, unit) in _TRAIT_RANGES.items():
+            _within(name, getattr(self, name), low, high, unit)
+        for name, (low, high, unit) in _CLOSED_TRAIT_RANGES.items():
+            _within(name, getattr(self, name), low, high, unit, low_open=False)
         return self
 
 
@@ -257,7 +288,8 @@ class Scenario(_Strict):
 
     name: str = Field(min_length=1, max_length=64, pattern=r"^[a-z0-9][a-z0-9-]*$")
     description: str = ""
-    dt_s: Finite = Field(0.1, gt=0.0, le=0.5)
+    dt_s: Finite = Field(0.1, ge=0.01, le=0.5)
+    """Simulator step; at least 0.01 s, so that an episode has at most 60,000 steps."""
     duration_s: Finite = Field(20.0, gt=0.0, le=600.0)
     road: Road
     traffic: Traffic

@@ -28,7 +28,6 @@ from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import numpy as np
-import yaml
 from pydantic import (
     AfterValidator,
     BaseModel,
@@ -42,8 +41,9 @@ from pydantic import (
     model_validator,
 )
 
-from wmplan.errors import WmplanError
+from wmplan.errors import WmplanError, format_validation_error
 from wmplan.sweep.paths import PathError, parse_path
+from wmplan.yamlio import load_yaml, read_yaml_file
 
 Finite = Annotated[float, Field(allow_inf_nan=False)]
 SWEEP_FILE_VERSION = 1
@@ -205,45 +205,6 @@ class Sweep:
     base_dir: Path = Path(".")
 
 
-def _format_loc(loc: tuple) -> str:
-    out = ""
-    for part in loc:
-        if isinstance(part, int):
-            out += f"[{part}]"
-        elif isinstance(part, str) and (part.startswith("function-") or part in ("grid", "random")):
-            continue  # pydantic's own markers for validators and union members, not fields of the file
-        elif isinstance(part, str) and any(ch in part for ch in ".[]"):
-            out += f"[{part!r}]"  # a dotted scenario path used as a key of ``vary``
-        else:
-            out += ("." if out else "") + str(part)
-    return out or "(top level)"
-
-
-def format_sweep_error(source: str, err: ValidationError) -> str:
-    """One line: file, field, value and rule of the first problem, plus how many more there are.
-
-    Same form as :func:`wmplan.scenario.loader.format_validation_error`; keys of ``vary`` are shown quoted in
-    brackets (``vary['drivers.yield_prob.mean'].samples``) because they contain dots themselves.
-    """
-    problems = err.errors(include_url=False)
-    first = problems[0]
-    field = _format_loc(tuple(first["loc"]))
-    msg = first["msg"]
-    if first["type"] == "extra_forbidden":
-        msg = "unknown key"
-    elif first["type"] in ("tuple_type", "list_type"):
-        msg = "must be a list"
-    elif first["type"] == "dict_type":
-        msg = "must be a mapping"
-    elif msg.startswith("Value error, "):
-        msg = msg[len("Value error, "):]
-    value = first.get("input")
-    hide = first["type"] == "missing" or isinstance(value, dict) or (first["type"] == "value_error" and ", got " in msg)
-    shown = "" if hide else f" (got {value!r})"
-    more = f" [and {len(problems) - 1} more problem(s)]" if len(problems) > 1 else ""
-    return f"{source}: {field}: {msg}{shown}{more}"
-
-
 def parse_sweep(data: object, source: str = "<sweep>", base_dir: Path | str = ".") -> Sweep:
     """Validate already-parsed YAML/JSON data into a :class:`Sweep`; errors name ``source``."""
     if not isinstance(data, dict):
@@ -251,29 +212,21 @@ def parse_sweep(data: object, source: str = "<sweep>", base_dir: Path | str = ".
     try:
         spec = SweepSpec.model_validate(data)
     except ValidationError as err:
-        raise SweepError(format_sweep_error(source, err)) from None
+        raise SweepError(format_validation_error(source, err, skip=("grid", "random"))) from None
     return Sweep(spec=spec, source=source, base_dir=Path(base_dir))
 
 
 def sweep_from_yaml(text: str, source: str = "<sweep>", base_dir: Path | str = ".") -> Sweep:
-    """Parse YAML text into a :class:`Sweep`."""
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as err:
-        mark = getattr(err, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None else "somewhere"
-        problem = getattr(err, "problem", None) or "not valid YAML"
-        raise SweepError(f"{source}: (file): YAML syntax error at {where}: {problem}") from None
-    return parse_sweep(data, source, base_dir)
+    """Parse YAML text into a :class:`Sweep` (through the bounded loader of :mod:`wmplan.yamlio`)."""
+    return parse_sweep(load_yaml(text, source, SweepError), source, base_dir)
 
 
 def load_sweep(path: str | Path) -> Sweep:
     """Read a sweep file."""
     path = Path(path)
-    if not path.is_file():
-        raise SweepError(f"{path}: no such sweep file")
     try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as err:
-        raise SweepError(f"{path}: cannot read the file ({err.__class__.__name__}: {err})") from None
-    return sweep_from_yaml(text, str(path), path.parent)
+        if not path.is_file():
+            raise SweepError(f"{path}: no such sweep file")
+    except OSError as err:  # e.g. a name too long for the file system
+        raise SweepError(f"{path}: cannot open ({err.strerror or err})") from None
+    return parse_sweep(read_yaml_file(path, SweepError), str(path), path.parent)
