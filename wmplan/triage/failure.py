@@ -84,8 +84,8 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     for stage, mode in ((STAGES[1], "known"), (STAGES[2], "resampled")):
         say(stage)
         rep, label = counterfactual(cut, planner, opts, seed, eval_seed, mode)
-        replays[f"oracle_{mode}"] = {"planner": label, "outcome": _outcome(rep.row), "avoided": not rep.failed,
-                                     "time_s": rep.row["time_s"]}
+        replays[f"oracle_{mode}"] = {"planner": label, "outcome": _outcome(rep.row) if rep.failed else "avoided",
+                                     "avoided": not rep.failed, "time_s": rep.row["time_s"], "until_s": until}
     out["replays"] = replays
 
     say(STAGES[3])

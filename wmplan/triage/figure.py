@@ -68,7 +68,7 @@ def triage_figure(result: dict) -> Figure:
         top.plot([], [], color=NO_RETURN_COLOUR, lw=6, alpha=0.3, label="no way out from the start")
     top.set_ylim(-0.03, 1.05)
     top.set_ylabel("P(collision) within the horizon [1]", fontsize=8)
-    top.legend(fontsize=7, loc="upper left", frameon=False)
+    top.legend(fontsize=7, loc="center left", frameon=False)
     err = _series(decisions, "prediction_error_m")
     best = _series(decisions, "best_prediction_error_m")
     if np.isfinite(err).any():
