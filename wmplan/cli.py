@@ -469,6 +469,24 @@ def cmd_stress(args: argparse.Namespace) -> int:
     print(f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}")
     print(f"  failure probability (importance sampling): {interval(fp)}, ESS {num(fp.get('ess'))}")
     print(f"  plain Monte Carlo, same budget:            {interval(mc)}")
+    if args.triage:
+        from wmplan.triage import format_triage, triage_run
+
+        print(format_triage(triage_run(args.out, planner_options=options or None, progress=True)))
+    print(CAUTION)
+    return 0
+
+
+def cmd_triage(args: argparse.Namespace) -> int:
+    from wmplan.caution import CAUTION
+    from wmplan.triage import format_triage, triage_run
+
+    options = {k: v for k, v in (("model", args.model), ("deterministic", args.deterministic)) if v}
+    report = triage_run(args.run_dir, planner_options=options, seed=args.seed, max_failures=args.max_failures,
+                        progress=True)
+    _write_json(args.json, report)
+    print(format_triage(report))
+    print(f"wrote {Path(args.run_dir) / 'triage.json'}")
     print(CAUTION)
     return 0
 
@@ -631,6 +649,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--no-animation", action="store_true", help="do not draw the saved failures")
     sp.add_argument("--knobs", metavar="NAMES", type=_name_list, help="vary only these scenario knobs, comma-separated (default all: "
                     "density, yield_prob, hard_brake_rate, desired_speed, ego_speed, ego_brake)")
+    sp.add_argument("--triage", action="store_true",
+                    help="then triage the saved failures (as `wmplan triage DIR`: triage.json and figures)")
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_stress, outputs=(("out", "dir"), ("json", "file")))
@@ -641,6 +661,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
     sp.add_argument("--out", metavar="FILE", help="also draw the replayed episode: FILE.gif (or .mp4 with ffmpeg)")
     sp.set_defaults(func=cmd_replay, outputs=(("out", "file"),))
+
+    sp = sub.add_parser("triage", help="was each failure of an evaluate or stress folder the prediction's, the "
+                        "plan's, or past saving? writes RUN_DIR/triage.json and a figure per failure")
+    sp.add_argument("run_dir", help="an `evaluate --out` or `stress --out` folder")
+    sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
+    sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
+    sp.add_argument("--max-failures", type=_positive_int, default=None, metavar="N",
+                    help="triage at most N failures (default all)")
+    sp.add_argument("--seed", type=_nonneg_int, default=0, help="seed of the searches (default 0)")
+    sp.add_argument("--json", metavar="FILE", help="also write the triage report here")
+    sp.set_defaults(func=cmd_triage)
 
     sp = sub.add_parser("report", help="write report.html and report.md from what a run left in RUN_DIR")
     sp.add_argument("run_dir")

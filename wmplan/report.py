@@ -15,6 +15,8 @@
 |                                        | ``p_collision``, ``chosen``, optional ``futures``, ``current``,   |
 |                                        | ``anchor_pose``; :func:`wmplan.viz.futures.candidate_arrays`)    |
 | ``scene.png``, ``episode.gif``         | a moment and an animation of an episode                          |
+| ``triage.json`` (or ``evaluate/``,     | the failure triage (``wmplan triage``): causes per planner, each |
+| ``stress/triage.json``)                | failure's point of no return, its figure                         |
 
 It writes ``RUN_DIR/report.html`` (figures embedded as base64 PNG and GIF, a small inline style sheet, no external
 assets) and ``RUN_DIR/report.md`` (figures as PNG files in ``RUN_DIR/figures/``, the GIF and scene picture linked
@@ -441,6 +443,62 @@ def _calibration_section(doc: _Doc, summary: dict | None) -> None:
         doc.skip(f"Reliability diagram skipped: {err}")
 
 
+TRIAGE_FILES = ("triage.json", "evaluate/triage.json", "stress/triage.json")
+TRIAGE_CAUSES = ("prediction", "planning", "past saving", "not reproduced")
+
+
+def _triage_section(doc: _Doc, run_dir: Path) -> None:
+    """The causes of the failures counted per planner, one row per failure, and the failures' figures."""
+    found = [run_dir / name for name in TRIAGE_FILES if (run_dir / name).is_file()]
+    if not found:
+        return
+    path = found[0]
+    doc.add(_Heading(2, "Failure triage"))
+    try:
+        data = _read_json(path)
+        counts, failures = data.get("counts"), data.get("failures")
+        if not isinstance(counts, dict) or not isinstance(failures, list):
+            raise ConfigError(f"{path}: expected 'counts' (planner -> cause -> number) and 'failures' (a list)")
+        defs = data.get("definitions") if isinstance(data.get("definitions"), dict) else {}
+        doc.add(_Para(f"{_fmt(data.get('failures_triaged'))} of {_fmt(data.get('failures_found'))} failure(s) of "
+                      f"this {data.get('source', '')} run ({path.relative_to(run_dir)}), each replayed with the "
+                      "oracle's futures and searched for a way out against the true simulator, the drivers' random "
+                      "events fixed as they happened."),
+                _List([f"{cause}: {defs[cause]}" for cause in (*TRIAGE_CAUSES, "point_of_no_return")
+                       if isinstance(defs.get(cause), str)]))
+        doc.add(_Table(["planner", *TRIAGE_CAUSES],
+                       [[str(p), *(_fmt((c or {}).get(cause, 0)) for cause in TRIAGE_CAUSES)]
+                        for p, c in counts.items() if isinstance(c, dict)], [False] + [True] * len(TRIAGE_CAUSES)))
+        rows = []
+        for f in failures:
+            if not isinstance(f, dict):
+                continue
+            pnr = f.get("point_of_no_return") if isinstance(f.get("point_of_no_return"), dict) else {}
+            when = (f"{_fmt(pnr.get('before_contact_s'), 1)} s before" if pnr.get("status") == "found"
+                    else "before the start" if pnr.get("status") == "before start" else "–")
+            reps = f.get("replays") if isinstance(f.get("replays"), dict) else {}
+            oracle = ", ".join(f"{k[len('oracle_'):]}: {v.get('outcome')}" for k, v in reps.items()
+                               if k.startswith("oracle_") and isinstance(v, dict))
+            rows.append([str(f.get("planner")), _fmt(f.get("seed")), str(f.get("outcome")),
+                         _fmt(f.get("contact_s"), 1), str(f.get("cause")), when, oracle or "–"])
+        doc.add(_Table(["planner", "scene seed", "outcome", "contact [s]", "cause", "point of no return",
+                        "oracle replays"], rows, [False, True, False, True, False, True, False]))
+        shown = 0
+        for f in failures:
+            fig = f.get("figure") if isinstance(f, dict) else None
+            fig_path = path.parent / fig if isinstance(fig, str) else None
+            if fig_path is None or not fig_path.is_file() or shown >= 6:
+                continue
+            rel = fig_path.relative_to(run_dir).as_posix()
+            doc.add(_Image(name=rel, data=fig_path.read_bytes(), mime="image/png", existing=True, caption=(
+                f"{f.get('name')}: believed (violet) and true (teal) P(collision) of the chosen plan per decision; "
+                "the shaded band runs from the point of no return to the contact (cross).")))
+            shown += 1
+        doc.sections.append("triage")
+    except WmplanError as err:
+        doc.skip(f"Failure triage skipped: {err}")
+
+
 def _media_section(doc: _Doc, run_dir: Path) -> None:
     found = [(name, mime, caption) for name, mime, caption in (
         ("scene.png", "image/png", "One moment of an episode seen from above (scene.png)."),
@@ -526,6 +584,7 @@ def _document(run_dir: Path) -> _Doc:
     _model_section(doc, run_dir, params)
     summary = _closed_loop_section(doc, run_dir, params)
     _calibration_section(doc, summary)
+    _triage_section(doc, run_dir)
     _media_section(doc, run_dir)
     doc.add(_Heading(2, "Cautions"))
     for text in CAUTIONS:

@@ -20,7 +20,7 @@ from wmplan.evaluate.closed_loop import evaluate_planner
 from wmplan.evaluate.paired import paired_comparison
 from wmplan.evaluate.planners import make_planner, split_run_options
 from wmplan.evaluate.tables import calibration, summarise_planner, write_outputs
-from wmplan.scenario import Scenario, scenario_hash
+from wmplan.scenario import Scenario, scenario_hash, scenario_to_dict
 from wmplan.sim.params import SimParams
 
 ProgressFactory = Callable[[str, int], tuple[Callable[[int], None], Callable[[], None]]]
@@ -118,7 +118,9 @@ def compare_planners(scenario: Scenario, planners: Sequence[str], *, episodes: i
             comparisons[name] = paired_comparison([r for r in ref_rows if r["seed"] in common],
                                                   [r for r in mine if r["seed"] in common], reference=reference,
                                                   planner=name, detect=detect)
-    summary = {"scenario": scenario.name, "scenario_hash": scenario_hash(scenario), "episodes": episodes,
+    summary = {"scenario": scenario.name, "scenario_hash": scenario_hash(scenario),
+               "scenario_spec": scenario_to_dict(scenario),  # what `wmplan triage` rebuilds the scenario from
+               "episodes": episodes,
                "episodes_by_planner": {p: int((episodes_by_planner or {}).get(p, episodes)) for p in planners},
                "seed": seed, "planners": list(planners),
                "options": {k: (str(v) if isinstance(v, Path) else v) for k, v in opts.items()
