@@ -88,6 +88,7 @@ EXPECTED = {
     "lane-drop": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
     "onramp-merge": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
     "open-road": ("lane_change", "spawn", "leave"),
+    "short-gap-cut-in": ("lane_change",),
     "stop-and-go": ("lane_change", "spawn", "brake_start"),
 }
 

@@ -27,13 +27,13 @@ from wmplan.scenario import (
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 
-BUILTINS = ["cut-in", "lane-drop", "onramp-merge", "open-road", "stop-and-go"]
+BUILTINS = ["cut-in", "lane-drop", "onramp-merge", "open-road", "short-gap-cut-in", "stop-and-go"]
 REPO_SCENARIOS = Path(__file__).resolve().parents[2] / "scenarios"
 UNKNOWN_KEY_HINT = "unknown key (check the spelling against `wmplan scenarios show open-road`)"
 
 
-def test_builtin_names_lists_exactly_the_five():
-    """The registry holds the five shipped scenarios, sorted, and they are the files under scenarios/."""
+def test_builtin_names_lists_exactly_the_builtins():
+    """The registry holds the shipped scenarios, sorted, and they are the files under scenarios/."""
     assert builtin_names() == BUILTINS
     assert sorted(p.stem for p in REPO_SCENARIOS.glob("*.yaml")) == BUILTINS
 

@@ -67,7 +67,7 @@ def _errors(path: Path) -> None:
      "planner_options: names planner 'mpc', which is not in planners ['rules']"),
     ("name: t\nbase: onramp-merg\n" + TAIL,
      "base: onramp-merg: no such built-in scenario or file; built-ins are: cut-in, lane-drop, onramp-merge, "
-     "open-road, stop-and-go"),
+     "open-road, short-gap-cut-in, stop-and-go"),
     ("name: t\nbase: [onramp\n", "(file): YAML syntax error at line 3, column 1: expected ',' or ']', but got "
                                  "'<stream end>'"),
     (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: [1, 2, 1.0]\n" + TAIL,
