@@ -667,11 +667,11 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("run_dir", help="an `evaluate --out` or `stress --out` folder")
     sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
     sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
-    sp.add_argument("--max-failures", type=_positive_int, default=None, metavar="N",
-                    help="triage at most N failures (default all)")
-    sp.add_argument("--seed", type=_nonneg_int, default=0, help="seed of the searches (default 0)")
+    sp.add_argument("--max-failures", type=_int_in(1, MAX_EPISODES), default=None, metavar="N",
+                    help=f"triage at most N failures, 1 to {MAX_EPISODES} (default all)")
+    sp.add_argument("--seed", type=_seed, default=0, help=f"seed of the searches, {SEED_HELP} (default 0)")
     sp.add_argument("--json", metavar="FILE", help="also write the triage report here")
-    sp.set_defaults(func=cmd_triage)
+    sp.set_defaults(func=cmd_triage, outputs=(("json", "file"), ("run_dir", "dir")))
 
     sp = sub.add_parser("report", help="write report.html and report.md from what a run left in RUN_DIR")
     sp.add_argument("run_dir")

@@ -198,7 +198,9 @@ _TRAIT_RANGES = {
     "min_gap_m": (0.0, 50.0, "m"),
     "max_accel_mps2": (0.0, 10.0, "m/s^2"),
     "comfort_decel_mps2": (0.0, 10.0, "m/s^2"),
-    "safe_decel_mps2": (0.0, 15.0, "m/s^2"),
+    # MOBIL's safety limit only gates decisions (no motion uses it): a very high limit is a driver who does not
+    # check the mirror before changing lane (scenarios/short-gap-cut-in.yaml).
+    "safe_decel_mps2": (0.0, 1000.0, "m/s^2"),
     "hard_brake_decel_mps2": (0.0, 15.0, "m/s^2"),
     "hard_brake_duration_s": (0.0, 60.0, "s"),
 }
