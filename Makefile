@@ -5,7 +5,7 @@ BIN     := $(VENV)/bin
 STAMP   := $(VENV)/.wmplan-installed
 DEMO_OUT ?= demo-out
 
-.PHONY: setup test test-fast demo bench lint clean
+.PHONY: setup test test-fast demo bench lint format clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PY) -m venv $(VENV)
@@ -30,7 +30,12 @@ bench: $(STAMP)
 	$(BIN)/wmplan bench --json bench.json
 
 lint: $(STAMP)
-	$(BIN)/ruff check wmplan tests benchmarks
+	$(BIN)/ruff format --check wmplan tests benchmarks notebooks/_build.py
+	$(BIN)/ruff check wmplan tests benchmarks notebooks/_build.py
+
+format: $(STAMP)
+	$(BIN)/ruff format wmplan tests benchmarks notebooks/_build.py
+	$(BIN)/ruff check --fix wmplan tests benchmarks notebooks/_build.py
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .pytest_cache

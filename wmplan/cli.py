@@ -196,6 +196,7 @@ def _check_outputs(args: argparse.Namespace) -> None:
 
 
 def cmd_scenarios(args: argparse.Namespace) -> int:
+    """The ``wmplan scenarios`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.scenario import (
         builtin_names,
         load_scenario,
@@ -242,6 +243,7 @@ def cmd_scenarios(args: argparse.Namespace) -> int:
 
 
 def cmd_simulate(args: argparse.Namespace) -> int:
+    """The ``wmplan simulate`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.data import decisions_per_episode, simulate_dataset
     from wmplan.data.store import MANIFEST_FILE
     from wmplan.scenario import load_scenario
@@ -276,6 +278,7 @@ def cmd_simulate(args: argparse.Namespace) -> int:
 
 
 def cmd_render(args: argparse.Namespace) -> int:
+    """The ``wmplan render`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.viz.anim import render_to_file
 
     path = render_to_file(args.scenario, Path(args.out), seed=args.seed, step=args.step)
@@ -301,6 +304,7 @@ def _load_benchmark(file_name: str):
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
+    """The ``wmplan bench`` verb: run it from parsed flags; returns the exit status."""
     wanted = [w.strip() for w in args.only.split(",")] if args.only else list(BENCHMARKS)
     unknown = [w for w in wanted if w not in BENCHMARKS]
     if unknown:
@@ -322,6 +326,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
 
 
 def cmd_train(args: argparse.Namespace) -> int:
+    """The ``wmplan train`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.model.config import ModelConfig, TrainConfig
     from wmplan.model.train import train
 
@@ -369,6 +374,7 @@ def cmd_train(args: argparse.Namespace) -> int:
 
 
 def cmd_assess(args: argparse.Namespace) -> int:
+    """The ``wmplan assess`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
     from wmplan.model.assess import assess
     from wmplan.scenario import load_scenario
@@ -389,6 +395,7 @@ def cmd_assess(args: argparse.Namespace) -> int:
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
+    """The ``wmplan evaluate`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
     from wmplan.evaluate.compare import compare_planners
     from wmplan.evaluate.paired import comparison_table
@@ -426,6 +433,7 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
 
 
 def cmd_sweep(args: argparse.Namespace) -> int:
+    """The ``wmplan sweep`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
     from wmplan.sweep.runner import format_summary, run_sweep
 
@@ -437,6 +445,7 @@ def cmd_sweep(args: argparse.Namespace) -> int:
 
 
 def cmd_stress(args: argparse.Namespace) -> int:
+    """The ``wmplan stress`` verb: run it from parsed flags; returns the exit status."""
     import functools
 
     from wmplan.caution import CAUTION
@@ -478,6 +487,7 @@ def cmd_stress(args: argparse.Namespace) -> int:
 
 
 def cmd_triage(args: argparse.Namespace) -> int:
+    """The ``wmplan triage`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
     from wmplan.triage import format_triage, triage_run
 
@@ -492,6 +502,7 @@ def cmd_triage(args: argparse.Namespace) -> int:
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
+    """The ``wmplan replay`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.stress.search import is_failure, replay_episode
     from wmplan.viz.anim import animate_failure
 
@@ -511,6 +522,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
 
 
 def cmd_report(args: argparse.Namespace) -> int:
+    """The ``wmplan report`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.report import cli_report
 
     info = cli_report(Path(args.run_dir))
@@ -524,6 +536,7 @@ def cmd_report(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    """The ``wmplan demo`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
     from wmplan.demo import run_demo
 
@@ -537,6 +550,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The ``wmplan`` argument parser: every verb, its flags with their bounds, and what each verb writes."""
     from wmplan.caution import CAUTION
 
     p = _Parser(prog="wmplan", description=(

@@ -28,8 +28,10 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
 
 
 def atomic_write_json(path: Path, obj: object) -> None:
+    """Write ``obj`` as indented JSON to ``path`` atomically (temporary file, then rename)."""
     atomic_write_bytes(path, (json.dumps(obj, indent=2, sort_keys=False) + "\n").encode())
 
 
 def atomic_write_text(path: Path, text: str) -> None:
+    """Write UTF-8 ``text`` to ``path`` atomically (temporary file, then rename)."""
     atomic_write_bytes(path, text.encode("utf-8"))

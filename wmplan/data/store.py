@@ -52,6 +52,7 @@ class ArraySpec(_Frozen):
 
 
 class Outcomes(_Frozen):
+    """How the episodes of a dataset ended: counts of collisions, leaving the road and reaching the goal."""
     collided: Count
     offroad: Count
     reached_goal: Count
@@ -123,6 +124,7 @@ class Dataset:
 
     @property
     def decision_dt_s(self) -> float:
+        """Seconds between recorded decisions."""
         return float(self.manifest["decision_dt_s"])
 
 

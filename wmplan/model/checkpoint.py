@@ -107,6 +107,7 @@ class TrainFields(_Frozen):
 
 
 class Sha256Fields(_Frozen):
+    """The SHA-256 digests of a checkpoint's files, by file name."""
     model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
 
     model: Sha256 = Field(alias="model.safetensors")

@@ -81,10 +81,12 @@ class Dist(_Strict):
 
     @property
     def lo(self) -> float:
+        """The lower truncation bound (-inf if none)."""
         return -math.inf if self.low is None else self.low
 
     @property
     def hi(self) -> float:
+        """The upper truncation bound (+inf if none)."""
         return math.inf if self.high is None else self.high
 
 
@@ -128,10 +130,12 @@ class Road(_Strict):
 
     @property
     def num_lanes(self) -> int:
+        """Number of lanes."""
         return len(self.lanes)
 
     @property
     def width_m(self) -> float:
+        """Width of the road (all lanes), m."""
         return self.num_lanes * self.lane_width_m
 
     def lane_bounds_m(self) -> list[tuple[float, float]]:
@@ -273,6 +277,7 @@ class Ego(_Strict):
 
     @property
     def l_r_m(self) -> float:
+        """Distance from the rear axle to the centre of gravity, m (half the wheelbase unless given)."""
         return self.wheelbase_m / 2 if self.rear_axle_to_cg_m is None else self.rear_axle_to_cg_m
 
 
@@ -326,6 +331,7 @@ class Scenario(_Strict):
 
     @property
     def num_steps(self) -> int:
+        """Simulator steps in the scenario's duration."""
         return int(round(self.duration_s / self.dt_s))
 
 

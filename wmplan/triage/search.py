@@ -85,6 +85,7 @@ class SearchBudget:
             raise ValueError(f"SearchBudget.smoothing must lie in [0, 1), got {self.smoothing}")
 
     def to_dict(self) -> dict:
+        """The result as a JSON-ready dict."""
         return asdict(self)
 
 
