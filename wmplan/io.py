@@ -35,3 +35,16 @@ def atomic_write_json(path: Path, obj: object) -> None:
 def atomic_write_text(path: Path, text: str) -> None:
     """Write UTF-8 ``text`` to ``path`` atomically (temporary file, then rename)."""
     atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def read_json_object(path: Path) -> dict:
+    """The JSON object in ``path``; a one-line ConfigError naming the file if it is unreadable or not an object."""
+    from wmplan.errors import ConfigError
+
+    try:
+        data = json.loads(Path(path).read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
+        raise ConfigError(f"{path}: not readable JSON ({type(err).__name__}: {err})") from None
+    if not isinstance(data, dict):
+        raise ConfigError(f"{path}: expected a JSON object at the top, got {type(data).__name__}")
+    return data

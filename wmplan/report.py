@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import base64
 import html
-import json
 import math
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
@@ -38,7 +37,7 @@ import numpy as np
 
 from wmplan.caution import CAUTION, CAUTION_DETAIL
 from wmplan.errors import ConfigError, WmplanError
-from wmplan.io import atomic_write_bytes, atomic_write_text
+from wmplan.io import atomic_write_bytes, atomic_write_text, read_json_object
 
 CAUTIONS = (CAUTION_DETAIL, CAUTION)
 
@@ -167,14 +166,6 @@ def _ci(value: object, ci: object, digits: int = 3) -> str:
 # --- reading the run folder ---------------------------------------------------------------------------------------
 
 
-def _read_json(path: Path) -> dict:
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
-        raise ConfigError(f"{path}: not readable JSON ({err.__class__.__name__}: {err})") from None
-    if not isinstance(data, dict):
-        raise ConfigError(f"{path}: expected a JSON object at the top, got {type(data).__name__}")
-    return data
 
 
 def _read_npz(path: Path) -> dict[str, np.ndarray]:
@@ -207,7 +198,7 @@ def _load_scenario(run_dir: Path, doc: _Doc):
             doc.skip(f"scenario.yaml could not be read: {err}")
     if man_path.is_file():
         try:
-            manifest = _read_json(man_path)
+            manifest = read_json_object(man_path)
             if scenario is None and isinstance(manifest.get("scenario"), dict):
                 scenario = parse_scenario(manifest["scenario"], f"{man_path} (scenario)")
         except WmplanError as err:
@@ -277,7 +268,7 @@ def _model_section(doc: _Doc, run_dir: Path, params) -> None:
     path = run_dir / "assess.json"
     if path.is_file():
         try:
-            _assessment(doc, _read_json(path))
+            _assessment(doc, read_json_object(path))
         except WmplanError as err:
             doc.skip(f"Assessment skipped: {err}")
     else:
@@ -339,7 +330,7 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
         doc.skip("No evaluate/summary.json: no closed-loop results.")
     else:
         try:
-            summary = _read_json(path)
+            summary = read_json_object(path)
             results = summary.get("results")
             if not isinstance(results, dict) or not results or not all(isinstance(r, dict) for r in results.values()):
                 raise ConfigError(f"{path}: 'results' must map each planner to its summary")
@@ -455,7 +446,7 @@ def _triage_section(doc: _Doc, run_dir: Path) -> None:
     path = found[0]
     doc.add(_Heading(2, "Failure triage"))
     try:
-        data = _read_json(path)
+        data = read_json_object(path)
         counts, failures = data.get("counts"), data.get("failures")
         if not isinstance(counts, dict) or not isinstance(failures, list):
             raise ConfigError(f"{path}: expected 'counts' (planner -> cause -> number) and 'failures' (a list)")

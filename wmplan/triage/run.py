@@ -16,7 +16,6 @@ per planner; the search budget; the caution) and ``triage/<failure>.png``, one f
 
 from __future__ import annotations
 
-import json
 import sys
 import time
 from collections.abc import Callable
@@ -26,7 +25,7 @@ from typing import Any
 from wmplan.caution import CAUTION
 from wmplan.errors import ConfigError, WmplanError
 from wmplan.evaluate.compare import _options_for
-from wmplan.io import atomic_write_bytes, atomic_write_json
+from wmplan.io import atomic_write_bytes, atomic_write_json, read_json_object
 from wmplan.scenario import Scenario, builtin_names, load_scenario, parse_scenario, scenario_hash
 from wmplan.triage.failure import CAUSES, STAGES, triage_failure
 from wmplan.triage.search import SearchBudget
@@ -35,14 +34,6 @@ TRIAGE_FILE = "triage.json"
 FIGURE_DIR = "triage"
 
 
-def _read_json(path: Path) -> dict:
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as err:
-        raise ConfigError(f"{path}: not readable JSON ({type(err).__name__}: {err})") from None
-    if not isinstance(data, dict):
-        raise ConfigError(f"{path}: expected a JSON object at the top, got {type(data).__name__}")
-    return data
 
 
 def _evaluate_scenario(run_dir: Path, summary: dict) -> Scenario:
@@ -64,7 +55,7 @@ def evaluate_failures(run_dir: Path, overrides: dict[str, Any]) -> tuple[Scenari
     episode}])."""
     import pyarrow.parquet as pq
 
-    summary = _read_json(run_dir / "summary.json")
+    summary = read_json_object(run_dir / "summary.json")
     path = run_dir / "episodes.parquet"
     try:
         rows = pq.read_table(path, columns=["planner", "seed", "collision", "offroad"]).to_pylist()
@@ -89,7 +80,7 @@ def stress_failures(run_dir: Path, overrides: dict[str, Any]) -> list[dict]:
     """The failures saved by ``wmplan stress`` in ``run_dir/failures``."""
     out = []
     for path in sorted((run_dir / "failures").glob("*.json")):
-        info = _read_json(path)
+        info = read_json_object(path)
         try:
             scn = load_scenario(path.parent / str(info["scenario_file"]))
             planner, seed = str(info["planner"]), int(info["seed"])
