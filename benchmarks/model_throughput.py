@@ -65,10 +65,24 @@ SCENARIO = "onramp-merge"
 PLANNER_SHAPE = dict(scenes=1, candidates=64, samples=8)
 CLOSED_LOOP_SCENES = 50  # wmplan.evaluate.closed_loop's default batch of episodes
 TRAIN_BATCH = 256
-FULL = dict(episodes=32, train_warmup=3, train_steps=20, rollout_warmup=5, rollout_repeats=31, matmul_repeats=31,
-            breakdown_repeats=21)
-QUICK = dict(episodes=12, train_warmup=1, train_steps=4, rollout_warmup=2, rollout_repeats=7, matmul_repeats=7,
-             breakdown_repeats=5)
+FULL = dict(
+    episodes=32,
+    train_warmup=3,
+    train_steps=20,
+    rollout_warmup=5,
+    rollout_repeats=31,
+    matmul_repeats=31,
+    breakdown_repeats=21,
+)
+QUICK = dict(
+    episodes=12,
+    train_warmup=1,
+    train_steps=4,
+    rollout_warmup=2,
+    rollout_repeats=7,
+    matmul_repeats=7,
+    breakdown_repeats=5,
+)
 TARGET_EFFICIENCY = 0.5
 SEED = 0
 
@@ -248,8 +262,9 @@ def _training(model_cfg, windows, index, cfg: dict) -> dict:
     def with_data() -> None:
         one(to_torch(windows.batch(index[rng.integers(0, len(index), TRAIN_BATCH)])))
 
-    prebuilt = [to_torch(windows.batch(index[rng.integers(0, len(index), TRAIN_BATCH)]))
-                for _ in range(cfg["train_steps"])]
+    prebuilt = [
+        to_torch(windows.batch(index[rng.integers(0, len(index), TRAIN_BATCH)])) for _ in range(cfg["train_steps"])
+    ]
     it = iter(prebuilt)
     _timed(with_data, cfg["train_warmup"])
     wall, cpu = _timed(with_data, cfg["train_steps"])
@@ -302,9 +317,17 @@ def batched_rollout(model, windows, index, scenes: int, cfg: dict) -> dict:
     r2_wall, _ = _timed(rollout, reps)
     t_roll, t_mm = statistics.median(r_wall + r2_wall), statistics.median(m_wall)
     steps = len(pick) * c * k * model.cfg.horizon * model.cfg.num_rows
-    return {"scenes": len(pick), "candidates": c, "samples": k, "s_per_call_median": t_roll, "s_loop_median": t_mm,
-            "rollout_efficiency": t_mm / t_roll, "vehicle_steps_per_s": steps / t_roll,
-            "flops_per_rollout": int(sum(2 * r * i * o for r, i, o in shapes)), "repeats": 2 * reps}
+    return {
+        "scenes": len(pick),
+        "candidates": c,
+        "samples": k,
+        "s_per_call_median": t_roll,
+        "s_loop_median": t_mm,
+        "rollout_efficiency": t_mm / t_roll,
+        "vehicle_steps_per_s": steps / t_roll,
+        "flops_per_rollout": int(sum(2 * r * i * o for r, i, o in shapes)),
+        "repeats": 2 * reps,
+    }
 
 
 def windows_ego(windows):
@@ -343,7 +366,7 @@ def run(quick: bool = False, threads: int = 1) -> dict:
         ego = windows_ego(windows)
         model = WorldModel(model_cfg, ego, generator=torch.Generator().manual_seed(SEED)).eval()
         b, c, k = PLANNER_SHAPE["scenes"], PLANNER_SHAPE["candidates"], PLANNER_SHAPE["samples"]
-        pick = index[len(index) // 2: len(index) // 2 + b]
+        pick = index[len(index) // 2 : len(index) // 2 + b]
         batch = to_torch(windows.batch(pick))
         actions = candidate_plans(batch, c, SEED + 2)
         n = model_cfg.num_rows
@@ -401,7 +424,11 @@ def run(quick: bool = False, threads: int = 1) -> dict:
             "training_samples_per_s": training["samples_per_s"],
             "training": training,
             "rollout": {
-                "scenes": b, "candidates": c, "samples": k, "horizon": model_cfg.horizon, "objects": n,
+                "scenes": b,
+                "candidates": c,
+                "samples": k,
+                "horizon": model_cfg.horizon,
+                "objects": n,
                 "vehicle_steps_per_call": vehicle_steps,
                 "s_per_call_median": t_roll,
                 "s_per_call_min": min(r_wall + r2_wall),
@@ -432,18 +459,33 @@ def run(quick: bool = False, threads: int = 1) -> dict:
             "breakdown_cpu_s": parts_cpu,
             "breakdown_sum_cpu_s": sum(v for name, v in parts_cpu.items() if "." not in name),
             "breakdown_matches_sample": matches,
-            "model": {"num_parameters": model.num_parameters(), "config": model_cfg.to_dict(),
-                      "weights": f"fresh, drawn from torch.Generator seed {SEED} (speed does not depend on training)"},
-            "settings": {"scenario": SCENARIO, "dataset_episodes": cfg["episodes"], "dataset_seed": SEED,
-                         "statistic": "median over repeats", **cfg},
-            "targets": {"rollout_efficiency": TARGET_EFFICIENCY,
-                        "rollout_efficiency_met": t_mm / t_roll >= TARGET_EFFICIENCY},
-            "machine": {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
-                        "python": platform.python_version(), "torch": torch.__version__,
-                        "cpu_count": os.cpu_count(), "load_avg_1min_at_start": load_start,
-                        "load_avg_1min_at_end": _load()},
+            "model": {
+                "num_parameters": model.num_parameters(),
+                "config": model_cfg.to_dict(),
+                "weights": f"fresh, drawn from torch.Generator seed {SEED} (speed does not depend on training)",
+            },
+            "settings": {
+                "scenario": SCENARIO,
+                "dataset_episodes": cfg["episodes"],
+                "dataset_seed": SEED,
+                "statistic": "median over repeats",
+                **cfg,
+            },
+            "targets": {
+                "rollout_efficiency": TARGET_EFFICIENCY,
+                "rollout_efficiency_met": t_mm / t_roll >= TARGET_EFFICIENCY,
+            },
+            "machine": {
+                "platform": platform.platform(),
+                "processor": platform.processor() or platform.machine(),
+                "python": platform.python_version(),
+                "torch": torch.__version__,
+                "cpu_count": os.cpu_count(),
+                "load_avg_1min_at_start": load_start,
+                "load_avg_1min_at_end": _load(),
+            },
             "note": "Speed of a model of a simplified traffic simulator on one machine; it certifies nothing about "
-                    "a real vehicle.",
+            "a real vehicle.",
         }
     finally:
         torch.set_num_threads(threads_before)
@@ -451,8 +493,10 @@ def run(quick: bool = False, threads: int = 1) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description="Forward-model throughput: training samples/s, rollout "
-                                                 "vehicle-steps/s and rollout efficiency against plain matmuls.")
+    parser = argparse.ArgumentParser(
+        description="Forward-model throughput: training samples/s, rollout "
+        "vehicle-steps/s and rollout efficiency against plain matmuls."
+    )
     parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
     parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
     parser.add_argument("--threads", type=int, default=1, help="torch intra-op threads (default 1)")

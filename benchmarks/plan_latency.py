@@ -58,9 +58,15 @@ def _load_avg() -> float | None:
 def _machine(threads: int) -> dict:
     import torch
 
-    return {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
-            "python": platform.python_version(), "torch": torch.__version__, "cpu_count": os.cpu_count(),
-            "load_avg_1min_at_start": _load_avg(), "torch_threads": threads}
+    return {
+        "platform": platform.platform(),
+        "processor": platform.processor() or platform.machine(),
+        "python": platform.python_version(),
+        "torch": torch.__version__,
+        "cpu_count": os.cpu_count(),
+        "load_avg_1min_at_start": _load_avg(),
+        "torch_threads": threads,
+    }
 
 
 def _choose_threads() -> int:
@@ -179,15 +185,18 @@ def _breakdown(params, cfg, predictor, contexts: list, num_contexts: int) -> dic
     planner.reset_state(1)
     gen = torch.Generator().manual_seed(1)
     pick = np.linspace(0, len(contexts) - 1, min(num_contexts, len(contexts))).round().astype(int)
-    parts: dict[str, list[float]] = {k: [] for k in ("plan", "candidates", "track_lane", "predictor", "costs",
-                                                     "summarise_risk", "headway_leader_search")}
+    parts: dict[str, list[float]] = {
+        k: []
+        for k in ("plan", "candidates", "track_lane", "predictor", "costs", "summarise_risk", "headway_leader_search")
+    }
     with torch.inference_mode():
         for i in pick:
             ctx = contexts[i]
             ms, _ = _time_ms(lambda ctx=ctx: planner.plan(ctx, generator=gen))
             parts["plan"].append(ms)
-            ms, (plans, choice) = _time_ms(lambda ctx=ctx: planner.candidates(ctx, planner.mean, planner.std,
-                                                                                planner.lane_p, gen))
+            ms, (plans, choice) = _time_ms(
+                lambda ctx=ctx: planner.candidates(ctx, planner.mean, planner.std, planner.lane_p, gen)
+            )
             parts["candidates"].append(ms)
             lane, _, y_road = planner._lane_info(ctx)
             d_lane = torch.tensor(LANE_CHOICES)[choice]
@@ -199,8 +208,9 @@ def _breakdown(params, cfg, predictor, contexts: list, num_contexts: int) -> dic
             parts["predictor"].append(ms)
             ms, _ = _time_ms(lambda ctx=ctx, p=plans, c=choice, f=fut: planner.costs(ctx, p, c, f))
             parts["costs"].append(ms)
-            ms, _ = _time_ms(lambda f=fut: summarise_risk(f, cvar_alpha=cfg.cvar_alpha,
-                                                            safe_distance_m=cfg.safe_distance_m))
+            ms, _ = _time_ms(
+                lambda f=fut: summarise_risk(f, cvar_alpha=cfg.cvar_alpha, safe_distance_m=cfg.safe_distance_m)
+            )
             parts["summarise_risk"].append(ms)
             ms, _ = _time_ms(lambda f=fut: leader_gap_and_closing(f))
             parts["headway_leader_search"].append(ms)
@@ -208,9 +218,13 @@ def _breakdown(params, cfg, predictor, contexts: list, num_contexts: int) -> dic
     pieces = med["candidates"] + med["predictor"] + med["costs"]
     med["rest_of_plan"] = max(med["plan"] - pieces, 0.0)
     share = {k: med[k] / med["plan"] for k in ("candidates", "predictor", "costs", "rest_of_plan")}
-    return {"median_ms": med, "share_of_decision": share, "contexts": int(len(pick)),
-            "note": "track_lane is part of candidates; summarise_risk and headway_leader_search are part of costs; "
-                    "rest_of_plan = plan - candidates - predictor - costs"}
+    return {
+        "median_ms": med,
+        "share_of_decision": share,
+        "contexts": int(len(pick)),
+        "note": "track_lane is part of candidates; summarise_risk and headway_leader_search are part of costs; "
+        "rest_of_plan = plan - candidates - predictor - costs",
+    }
 
 
 def _throughput(params, cfg, predictor, num_episodes: int) -> dict:
@@ -222,11 +236,17 @@ def _throughput(params, cfg, predictor, num_episodes: int) -> dict:
     t0, c0 = time.perf_counter(), time.process_time()
     out = run_batch(params, planner, seeds, seed=0, name=predictor.name)
     wall, cpu = time.perf_counter() - t0, time.process_time() - c0
-    return {"episodes_per_minute": num_episodes / wall * 60.0, "episodes": num_episodes, "batch_size": num_episodes,
-            "seconds": wall, "cpu_seconds": cpu, "episodes_per_cpu_minute": num_episodes / cpu * 60.0,
-            "decisions": int(sum(r["decisions"] for r in out.rows)),
-            "collision_rate": float(np.mean([r["collision"] for r in out.rows])),
-            "success_rate": float(np.mean([r["success"] for r in out.rows]))}
+    return {
+        "episodes_per_minute": num_episodes / wall * 60.0,
+        "episodes": num_episodes,
+        "batch_size": num_episodes,
+        "seconds": wall,
+        "cpu_seconds": cpu,
+        "episodes_per_cpu_minute": num_episodes / cpu * 60.0,
+        "decisions": int(sum(r["decisions"] for r in out.rows)),
+        "collision_rate": float(np.mean([r["collision"] for r in out.rows])),
+        "success_rate": float(np.mean([r["success"] for r in out.rows])),
+    }
 
 
 def run(quick: bool = False, model_dir: str | None = None) -> dict:
@@ -261,22 +281,32 @@ def run(quick: bool = False, model_dir: str | None = None) -> dict:
         "episodes_per_minute": top["closed_loop"]["episodes_per_minute"],
         "meets_target": top["decision_ms_median"] <= TARGET_DECISION_MS,
         "predictors": per,
-        "settings": {"scenario": SCENARIO, "planner_config": cfg.to_dict(), "model": model_dir, **settings,
-                     "latency_batch": 1, "statistic": "median and 95th percentile over all timed decisions"},
+        "settings": {
+            "scenario": SCENARIO,
+            "planner_config": cfg.to_dict(),
+            "model": model_dir,
+            **settings,
+            "latency_batch": 1,
+            "statistic": "median and 95th percentile over all timed decisions",
+        },
         "targets": {"decision_ms_median": TARGET_DECISION_MS},
         "machine": {**machine, "load_avg_1min_at_end": _load_avg()},
         "note": "Latency of a planner on a simplified traffic model on one machine; it certifies nothing about a "
-                "real vehicle.",
+        "real vehicle.",
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description="Planner latency (one decision, default budget) and closed-loop "
-                                                 "evaluation throughput.")
+    parser = argparse.ArgumentParser(
+        description="Planner latency (one decision, default budget) and closed-loop evaluation throughput."
+    )
     parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
     parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
-    parser.add_argument("--model", metavar="DIR", help=f"trained latent model folder (default: ${MODEL_ENV}, else "
-                                                       "an untrained model of the default size)")
+    parser.add_argument(
+        "--model",
+        metavar="DIR",
+        help=f"trained latent model folder (default: ${MODEL_ENV}, else an untrained model of the default size)",
+    )
     args = parser.parse_args(argv)
     result = run(quick=args.quick, model_dir=args.model)
     if args.json:

@@ -39,9 +39,15 @@ REFERENCE = "mpc+oracle"
 def check(name: str, *, episodes: int, oracle_episodes: int, seed: int, threads: int = 1) -> dict:
     """One scenario's figures and the issue's criteria (module docstring)."""
     t0 = time.perf_counter()
-    summary, _rows = compare_planners(load_scenario(name), list(PLANNERS), episodes=episodes, seed=seed,
-                                      options={"threads": threads},
-                                      episodes_by_planner={REFERENCE: oracle_episodes}, reference=REFERENCE)
+    summary, _rows = compare_planners(
+        load_scenario(name),
+        list(PLANNERS),
+        episodes=episodes,
+        seed=seed,
+        options={"threads": threads},
+        episodes_by_planner={REFERENCE: oracle_episodes},
+        reference=REFERENCE,
+    )
     res, comp = summary["results"], summary["comparisons"]["mpc+constant-velocity"]
     oracle = res[REFERENCE]
     p = comp.get("collision_p_value")
@@ -57,13 +63,22 @@ def check(name: str, *, episodes: int, oracle_episodes: int, seed: int, threads:
     }
 
 
-def run(quick: bool = False, *, episodes: int | None = None, oracle_episodes: int | None = None, seed: int = 13,
-        scenarios: tuple[str, ...] = SCENARIOS) -> dict:
+def run(
+    quick: bool = False,
+    *,
+    episodes: int | None = None,
+    oracle_episodes: int | None = None,
+    seed: int = 13,
+    scenarios: tuple[str, ...] = SCENARIOS,
+) -> dict:
     """All scenarios; ``quick`` runs 40 episodes (20 of the oracle) instead of 400."""
     n = episodes or (40 if quick else 400)
     m = min(n, oracle_episodes or (20 if quick else n))
-    return {"seed": seed, "scenarios": {s: check(s, episodes=n, oracle_episodes=m, seed=seed) for s in scenarios},
-            "caution": CAUTION}
+    return {
+        "seed": seed,
+        "scenarios": {s: check(s, episodes=n, oracle_episodes=m, seed=seed) for s in scenarios},
+        "caution": CAUTION,
+    }
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -75,8 +90,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--quick", action="store_true")
     ap.add_argument("--json", type=Path, default=None)
     args = ap.parse_args(argv)
-    out = run(args.quick, episodes=None if args.quick else args.episodes, oracle_episodes=args.oracle_episodes,
-              seed=args.seed, scenarios=tuple(s.strip() for s in args.scenarios.split(",") if s.strip()))
+    out = run(
+        args.quick,
+        episodes=None if args.quick else args.episodes,
+        oracle_episodes=args.oracle_episodes,
+        seed=args.seed,
+        scenarios=tuple(s.strip() for s in args.scenarios.split(",") if s.strip()),
+    )
     text = json.dumps(out, indent=2, default=str)
     if args.json is not None:
         atomic_write_json(args.json, out)

@@ -45,12 +45,35 @@ from wmplan import benchkit
 SCENARIO = "open-road"
 SCENE_COUNTS = (1, 64, 512, 2048)
 THREADED_SCENES = 8192  # 16 scenes x 64 plans x 8 futures: the oracle's batch at the default planner budget
-FULL = dict(warmup_steps=30, timed_steps=30, repeats=7, loop_scenes=512, loop_steps=6, loop_repeats=3,
-            engine_repeats_vs_loop=15, env_steps=20000, compile=True)
-QUICK = dict(warmup_steps=6, timed_steps=6, repeats=3, loop_scenes=512, loop_steps=3, loop_repeats=1,
-             engine_repeats_vs_loop=5, env_steps=500, compile=False)
-TARGETS = {"speedup_vs_loop": 150.0, "vehicle_steps_per_s_1": 1e6, "env_steps_per_s_single": 20000.0,
-           "vector_env_steps_per_s_64": 200000.0, "compile_s": 30.0}
+FULL = dict(
+    warmup_steps=30,
+    timed_steps=30,
+    repeats=7,
+    loop_scenes=512,
+    loop_steps=6,
+    loop_repeats=3,
+    engine_repeats_vs_loop=15,
+    env_steps=20000,
+    compile=True,
+)
+QUICK = dict(
+    warmup_steps=6,
+    timed_steps=6,
+    repeats=3,
+    loop_scenes=512,
+    loop_steps=3,
+    loop_repeats=1,
+    engine_repeats_vs_loop=5,
+    env_steps=500,
+    compile=False,
+)
+TARGETS = {
+    "speedup_vs_loop": 150.0,
+    "vehicle_steps_per_s_1": 1e6,
+    "env_steps_per_s_single": 20000.0,
+    "vector_env_steps_per_s_64": 200000.0,
+    "compile_s": 30.0,
+}
 
 
 def _advance(step_fn, state, action, params, num_steps: int):
@@ -80,15 +103,23 @@ def _max_abs_diff(a, b) -> tuple[bool, float]:
 
 def _compile_seconds() -> dict:
     """Import and first-step seconds of a fresh process whose numba cache folder is empty."""
-    code = ("import time; t0 = time.perf_counter(); import numpy as np; from wmplan.scenario import load_scenario; "
-            "from wmplan.sim import SimParams, initial_state, step; t1 = time.perf_counter(); "
-            "p = SimParams.from_scenario(load_scenario('open-road')); st = initial_state(p, [0]); "
-            "t2 = time.perf_counter(); step(st, np.zeros((1, 2)), p); t3 = time.perf_counter(); "
-            "print(t1 - t0, t3 - t2)")
+    code = (
+        "import time; t0 = time.perf_counter(); import numpy as np; from wmplan.scenario import load_scenario; "
+        "from wmplan.sim import SimParams, initial_state, step; t1 = time.perf_counter(); "
+        "p = SimParams.from_scenario(load_scenario('open-road')); st = initial_state(p, [0]); "
+        "t2 = time.perf_counter(); step(st, np.zeros((1, 2)), p); t3 = time.perf_counter(); "
+        "print(t1 - t0, t3 - t2)"
+    )
     with tempfile.TemporaryDirectory() as cache:
         env = {**os.environ, "NUMBA_CACHE_DIR": cache}
-        out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=600,
-                             cwd=str(Path(__file__).resolve().parent.parent))
+        out = subprocess.run(
+            [sys.executable, "-c", code],
+            env=env,
+            capture_output=True,
+            text=True,
+            timeout=600,
+            cwd=str(Path(__file__).resolve().parent.parent),
+        )
     if out.returncode != 0:
         return {"error": out.stderr.strip().splitlines()[-1:]}
     imp, first = (float(v) for v in out.stdout.split())
@@ -165,11 +196,14 @@ def run(quick: bool = False) -> dict:
         many_wall.append(time.perf_counter() - t0)
     same, _ = _max_abs_diff(one_end, many_end)
     work = n_big * num_slots * cfg["timed_steps"]
-    threaded = {"scenes": n_big, "threads": len(bounds),
-                "one_thread_vehicle_steps_per_s": work / statistics.median(one_wall),
-                "threaded_vehicle_steps_per_s": work / statistics.median(many_wall),
-                "speedup": statistics.median(one_wall) / statistics.median(many_wall),
-                "same_states_as_one_thread": same}
+    threaded = {
+        "scenes": n_big,
+        "threads": len(bounds),
+        "one_thread_vehicle_steps_per_s": work / statistics.median(one_wall),
+        "threaded_vehicle_steps_per_s": work / statistics.median(many_wall),
+        "speedup": statistics.median(one_wall) / statistics.median(many_wall),
+        "same_states_as_one_thread": same,
+    }
 
     # --- the same steps done by the engine and by the per-vehicle loop ---
     from wmplan.sim.loop_reference import step_loop as loop_step
@@ -185,8 +219,7 @@ def run(quick: bool = False) -> dict:
     eng1_sec = statistics.median(eng1_wall) / n_k
     cpu_speedup = statistics.median(loop_cpu) / statistics.median(eng_cpu)
     env_rates = _env_rates(cfg["env_steps"])
-    values = {"speedup_vs_loop": loop_sec / eng_sec, "vehicle_steps_per_s_1": rates["1"], **env_rates,
-              **compile_info}
+    values = {"speedup_vs_loop": loop_sec / eng_sec, "vehicle_steps_per_s_1": rates["1"], **env_rates, **compile_info}
 
     return {
         "benchmark": "sim_throughput",
@@ -202,29 +235,43 @@ def run(quick: bool = False) -> dict:
         **env_rates,
         **compile_info,
         "vs_loop": {
-            "scenes": n_s, "vehicle_slots": num_slots, "steps": n_k, "first_step": cfg["warmup_steps"],
-            "engine_s_per_step": eng_sec, "engine_one_thread_s_per_step": eng1_sec, "loop_s_per_step": loop_sec,
+            "scenes": n_s,
+            "vehicle_slots": num_slots,
+            "steps": n_k,
+            "first_step": cfg["warmup_steps"],
+            "engine_s_per_step": eng_sec,
+            "engine_one_thread_s_per_step": eng1_sec,
+            "loop_s_per_step": loop_sec,
             "loop_vehicle_steps_per_s": n_s * num_slots / loop_sec,
-            "states_agree": agree, "max_abs_diff": worst,
+            "states_agree": agree,
+            "max_abs_diff": worst,
         },
         "settings": {
-            "scenario": SCENARIO, "vehicle_slots": num_slots, "scene_counts": list(SCENE_COUNTS),
+            "scenario": SCENARIO,
+            "vehicle_slots": num_slots,
+            "scene_counts": list(SCENE_COUNTS),
             "actions": "zero (the ego keeps its speed and heading); timing covers engine.step only",
             "threads": sim_threads(),
             "statistic": "median over repeats, each repeat from the same warmed-up state",
-            "seeds": "0 .. scenes-1", **cfg,
+            "seeds": "0 .. scenes-1",
+            **cfg,
         },
         "targets": TARGETS,
-        "meets_targets": {k: (values[k] <= t if k == "compile_s" else values[k] >= t) for k, t in TARGETS.items()
-                          if k in values},
+        "meets_targets": {
+            k: (values[k] <= t if k == "compile_s" else values[k] >= t) for k, t in TARGETS.items() if k in values
+        },
         "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
         "note": benchkit.NOTE,
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    return benchkit.main(run, "Simulator throughput: engine vehicle-steps/s, speed-up over a per-vehicle Python "
-                              "loop, environment step rates, compile time.", argv)
+    return benchkit.main(
+        run,
+        "Simulator throughput: engine vehicle-steps/s, speed-up over a per-vehicle Python "
+        "loop, environment step rates, compile time.",
+        argv,
+    )
 
 
 if __name__ == "__main__":

@@ -68,14 +68,21 @@ def run(quick: bool = False) -> dict:
         identical &= _strip(alone) == _strip(shared)
     seconds = {k: statistics.median(v) for k, v in times.items()}
     return {
-        "planner": PLANNER, "variants": cfg["num_variants"], "episode_s": cfg["duration_s"],
-        "batch_size": cfg["batch_size"], "repeats": cfg["repeats"],
-        "seconds": seconds, "seconds_all": times,
+        "planner": PLANNER,
+        "variants": cfg["num_variants"],
+        "episode_s": cfg["duration_s"],
+        "batch_size": cfg["batch_size"],
+        "repeats": cfg["repeats"],
+        "seconds": seconds,
+        "seconds_all": times,
         "episodes_per_min": {k: 60.0 * cfg["num_variants"] / s for k, s in seconds.items()},
         "speedup": seconds["per_variant"] / seconds["shared"],
         "rows_identical": bool(identical),
-        "cpu_count": os.cpu_count(), "load_average_before": list(load_before),
-        "load_average_after": list(os.getloadavg()), "python": platform.python_version(), "quick": quick,
+        "cpu_count": os.cpu_count(),
+        "load_average_before": list(load_before),
+        "load_average_after": list(os.getloadavg()),
+        "python": platform.python_version(),
+        "quick": quick,
     }
 
 

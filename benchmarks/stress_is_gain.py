@@ -92,13 +92,26 @@ def reference(reference_episodes: int, min_per_stratum: int, seed_offset: int = 
         var += s["prob"] ** 2 * h * (1 - h) / n
         if k_fail == 0:
             zero_ratio = max(zero_ratio, s["prob"] / n)
-        rows_out.append({"brake_mps2": value, "z": [min(s["z"]), max(s["z"])], "prob": s["prob"], "episodes": n,
-                         "failures": k_fail, "h": h})
+        rows_out.append(
+            {
+                "brake_mps2": value,
+                "z": [min(s["z"]), max(s["z"])],
+                "prob": s["prob"],
+                "episodes": n,
+                "failures": k_fail,
+                "h": h,
+            }
+        )
     se = math.sqrt(var)
     upper_extra = tail + 3.0 * zero_ratio
-    return {"estimate": est, "std_error": se, "ci95": [max(0.0, est - 1.96 * se), est + 1.96 * se + upper_extra],
-            "episodes": sum(r["episodes"] for r in rows_out), "strata": rows_out,
-            "omitted_tail_prob": tail}
+    return {
+        "estimate": est,
+        "std_error": se,
+        "ci95": [max(0.0, est - 1.96 * se), est + 1.96 * se + upper_extra],
+        "episodes": sum(r["episodes"] for r in rows_out),
+        "strata": rows_out,
+        "omitted_tail_prob": tail,
+    }
 
 
 def stress_runs(budget: int, seeds: tuple[int, ...], p_ref: float) -> list[dict]:
@@ -119,16 +132,24 @@ def stress_runs(budget: int, seeds: tuple[int, ...], p_ref: float) -> list[dict]
         need_mc = mc_var / (0.1 * p_ref) ** 2
         need_is = ce_episodes + is_var / (0.1 * p_ref) ** 2 if is_var is not None else None
         hi = fp["ci95"][1]
-        out.append({
-            "seed": seed, "seconds": seconds, "is_estimate": fp["estimate"], "is_ci95": fp["ci95"],
-            "is_covers_reference": bool(hi is not None and fp["ci95"][0] <= p_ref <= hi),
-            "is_ess": fp["ess"], "is_failures_final_stage": fp["failures"], "ce_reached": fp["reached"],
-            "is_variance_per_episode": is_var, "plain_mc_variance_per_episode": mc_var,
-            "episodes_for_10pct_rel_error": {"importance_sampling": need_is, "plain_mc": need_mc},
-            "fewer_simulations_x": need_mc / need_is if need_is else None,
-            "plain_mc_same_budget": {"estimate": mc["estimate"], "ci95": mc["ci95"], "failures": mc["failures"]},
-            "failures_found": rep["failures_found"],
-        })
+        out.append(
+            {
+                "seed": seed,
+                "seconds": seconds,
+                "is_estimate": fp["estimate"],
+                "is_ci95": fp["ci95"],
+                "is_covers_reference": bool(hi is not None and fp["ci95"][0] <= p_ref <= hi),
+                "is_ess": fp["ess"],
+                "is_failures_final_stage": fp["failures"],
+                "ce_reached": fp["reached"],
+                "is_variance_per_episode": is_var,
+                "plain_mc_variance_per_episode": mc_var,
+                "episodes_for_10pct_rel_error": {"importance_sampling": need_is, "plain_mc": need_mc},
+                "fewer_simulations_x": need_mc / need_is if need_is else None,
+                "plain_mc_same_budget": {"estimate": mc["estimate"], "ci95": mc["ci95"], "failures": mc["failures"]},
+                "failures_found": rep["failures_found"],
+            }
+        )
     return out
 
 
@@ -146,18 +167,29 @@ def run(quick: bool = False) -> dict:
         # a check that does not trust the IS standard errors: the spread of the estimates across stress seeds
         rel_var_is = statistics.variance([r["is_estimate"] for r in runs]) / p**2  # per run of `budget` episodes
         rel_var_mc = (1 - p) / (p * cfg["budget"])  # plain MC with the same number of episodes
-        spread = {"is_relative_sd": math.sqrt(rel_var_is), "plain_mc_relative_sd": math.sqrt(rel_var_mc),
-                  "fewer_simulations_x": rel_var_mc / rel_var_is if rel_var_is > 0 else None}
+        spread = {
+            "is_relative_sd": math.sqrt(rel_var_is),
+            "plain_mc_relative_sd": math.sqrt(rel_var_mc),
+            "fewer_simulations_x": rel_var_mc / rel_var_is if rel_var_is > 0 else None,
+        }
     return {
-        "benchmark": "stress_is_gain", "quick": quick, "scenario": SCENARIO, "planner": PLANNER, "knobs": [KNOB],
+        "benchmark": "stress_is_gain",
+        "quick": quick,
+        "scenario": SCENARIO,
+        "planner": PLANNER,
+        "knobs": [KNOB],
         "budget_per_estimator": cfg["budget"],
         "reference": {**ref, "seconds": ref_seconds},
         "stress_runs": runs,
         "fewer_simulations_x_median": statistics.median(gains) if gains else None,
         "across_seeds": spread,
         "is_covers_reference": sum(r["is_covers_reference"] for r in runs),
-        "machine": {"platform": platform.platform(), "python": platform.python_version(), "cpu_count": os.cpu_count(),
-                    "load_avg_1min_at_start": load},
+        "machine": {
+            "platform": platform.platform(),
+            "python": platform.python_version(),
+            "cpu_count": os.cpu_count(),
+            "load_avg_1min_at_start": load,
+        },
         "caution": "A simplified traffic model; certifies nothing about a real vehicle.",
     }
 

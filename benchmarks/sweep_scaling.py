@@ -43,11 +43,17 @@ def _sweep(num_cells: int, episodes_per_cell: int):
     from wmplan.sweep import parse_sweep
 
     densities = [round(8.0 + 2.0 * i, 1) for i in range(num_cells)]
-    return parse_sweep({
-        "name": "bench-scaling", "base": "onramp-merge",
-        "vary": {"traffic.density_veh_per_km[1]": densities},
-        "planners": ["rules"], "seed": 1, "episodes_per_cell": episodes_per_cell,
-    }, source="<benchmark>")
+    return parse_sweep(
+        {
+            "name": "bench-scaling",
+            "base": "onramp-merge",
+            "vary": {"traffic.density_veh_per_km[1]": densities},
+            "planners": ["rules"],
+            "seed": 1,
+            "episodes_per_cell": episodes_per_cell,
+        },
+        source="<benchmark>",
+    )
 
 
 def _cpu_s() -> float:
@@ -90,18 +96,24 @@ def run(quick: bool = False) -> dict:
     rate = {w: 60.0 * cfg["num_cells"] / s for w, s in seconds.items()}
     scaling = rate[2] / rate[1]
     return {
-        "cells": cfg["num_cells"], "episodes_per_cell": cfg["episodes_per_cell"], "repeats": cfg["repeats"],
+        "cells": cfg["num_cells"],
+        "episodes_per_cell": cfg["episodes_per_cell"],
+        "repeats": cfg["repeats"],
         "seconds": {str(w): s for w, s in seconds.items()},
         "seconds_all": {str(w): ts for w, ts in times.items()},
         "cells_per_min": {str(w): r for w, r in rate.items()},
         "cpu_seconds": {str(w): c for w, c in cpu_med.items()},
         "cpu_utilisation": {str(w): cpu_med[w] / (w * seconds[w]) for w in seconds},
         "scaling_2x_if_idle": 2.0 * cpu_med[1] / cpu_med[2],
-        "scaling_2x": scaling, "target_scaling_2x": TARGET_SCALING_2X, "meets_target": scaling >= TARGET_SCALING_2X,
+        "scaling_2x": scaling,
+        "target_scaling_2x": TARGET_SCALING_2X,
+        "meets_target": scaling >= TARGET_SCALING_2X,
         "rows_identical": bool(identical),
-        "cpu_count": os.cpu_count(), "load_average_before": list(load_before),
+        "cpu_count": os.cpu_count(),
+        "load_average_before": list(load_before),
         "load_average_after": list(os.getloadavg()),
-        "python": platform.python_version(), "quick": quick,
+        "python": platform.python_version(),
+        "quick": quick,
     }
 
 

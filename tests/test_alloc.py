@@ -10,9 +10,11 @@ import sys
 
 import pytest
 
-CHECK = ("import wmplan._alloc as a, wmplan; before = a.applied\n"
-         "from wmplan.cli import main; main(['scenarios', 'list'])\n"
-         "print(before, a.applied)")
+CHECK = (
+    "import wmplan._alloc as a, wmplan; before = a.applied\n"
+    "from wmplan.cli import main; main(['scenarios', 'list'])\n"
+    "print(before, a.applied)"
+)
 
 
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc's mallopt exists on Linux only")

@@ -35,22 +35,24 @@ from wmplan.scenario import load_scenario, scenario_to_dict
 REPO = Path(__file__).resolve().parent.parent
 EXTRA = {
     # cases beyond the issue's reproducers: run under the slow marker, to keep the default run short
-    'train --json in an unwritable folder',
-    'array_file outside the folder',
-    'num_episodes huge',
-    'hidden that the weights do not have',
-    'ego field missing',
-    'simulate negative seed',
-    'empty planner name',
-    '10^6 workers',
-    'stress budget 10^12',
-    'minutes nan',
+    "train --json in an unwritable folder",
+    "array_file outside the folder",
+    "num_episodes huge",
+    "hidden that the weights do not have",
+    "ego field missing",
+    "simulate negative seed",
+    "empty planner name",
+    "10^6 workers",
+    "stress budget 10^12",
+    "minutes nan",
 }
 
 
 def cases(table: dict) -> list:
     """The keys of a case table as pytest parameters, the extra ones marked slow."""
     return [pytest.param(k, marks=pytest.mark.slow) if k in EXTRA else k for k in table]
+
+
 MEMORY_LIMIT = 500 * 2**20
 CPU_LIMIT_S = 5.0
 WALL_TIMEOUT_S = 60.0
@@ -73,8 +75,15 @@ def run_cli(*args: str | Path, cwd: Path) -> Run:
     """``wmplan ARGS`` in a child process under the memory limit; its exit code, output and resource usage."""
     env = {**os.environ, "PYTHONPATH": str(REPO), "TQDM_DISABLE": "1"}
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
-        proc = subprocess.Popen([sys.executable, "-m", "wmplan.cli", *map(str, args)], stdout=out, stderr=err,
-                                stdin=subprocess.DEVNULL, cwd=cwd, env=env, preexec_fn=_limit_memory)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "wmplan.cli", *map(str, args)],
+            stdout=out,
+            stderr=err,
+            stdin=subprocess.DEVNULL,
+            cwd=cwd,
+            env=env,
+            preexec_fn=_limit_memory,
+        )
         timer = threading.Timer(WALL_TIMEOUT_S, proc.kill)
         timer.start()
         try:
@@ -84,8 +93,13 @@ def run_cli(*args: str | Path, cwd: Path) -> Run:
         proc.returncode = os.waitstatus_to_exitcode(status)
         out.seek(0)
         err.seek(0)
-        return Run(proc.returncode, out.read().decode(errors="replace"), err.read().decode(errors="replace"),
-                   usage.ru_utime + usage.ru_stime, usage.ru_maxrss * 1024)
+        return Run(
+            proc.returncode,
+            out.read().decode(errors="replace"),
+            err.read().decode(errors="replace"),
+            usage.ru_utime + usage.ru_stime,
+            usage.ru_maxrss * 1024,
+        )
 
 
 def assert_one_line_refusal(run: Run, *needles: str) -> str:
@@ -130,8 +144,11 @@ def model_dir(work) -> Path:
     from wmplan.model.world_model import WorldModel
 
     cfg = ModelConfig(d_model=16, num_heads=2, hidden=16, num_layers=1, latent_dim=2)
-    model = WorldModel(cfg, EgoKinematics.from_scenario(load_scenario("onramp-merge"), cfg.plan_dt_s),
-                       generator=torch.Generator().manual_seed(0))
+    model = WorldModel(
+        cfg,
+        EgoKinematics.from_scenario(load_scenario("onramp-merge"), cfg.plan_dt_s),
+        generator=torch.Generator().manual_seed(0),
+    )
     state = {"epoch": 0, "step": 0, "elapsed_s": 0.0, "data_rng": {}, "noise_gen": [], "optimizer": {}, "history": []}
     out = work / "model"
     save_checkpoint(out, model, epoch=0, meta={}, optimizer_state={"0.step": torch.zeros(())}, train_state=state)
@@ -195,22 +212,34 @@ def _set(*path_and_value):
 
 
 OUTPUT_CASES = {
-    "simulate --out an existing file": (["simulate", "open-road", "--episodes", "1", "--out", "{file}"],
-                                        "exists and is not a folder"),
-    "simulate --out in an unwritable folder": (["simulate", "open-road", "--episodes", "1", "--out", "{unwritable}"],
-                                               "cannot write in"),
-    "simulate --json a folder": (["simulate", "open-road", "--episodes", "1", "--out", "{new}", "--json", "{folder}"],
-                                 "is a folder; name a file"),
+    "simulate --out an existing file": (
+        ["simulate", "open-road", "--episodes", "1", "--out", "{file}"],
+        "exists and is not a folder",
+    ),
+    "simulate --out in an unwritable folder": (
+        ["simulate", "open-road", "--episodes", "1", "--out", "{unwritable}"],
+        "cannot write in",
+    ),
+    "simulate --json a folder": (
+        ["simulate", "open-road", "--episodes", "1", "--out", "{new}", "--json", "{folder}"],
+        "is a folder; name a file",
+    ),
     "simulate --out a path too long": (["simulate", "open-road", "--episodes", "1", "--out", "{long}"], "too long"),
     "scenarios check --json a folder": (["scenarios", "check", "open-road", "--json", "{folder}"], "is a folder"),
     "train --out an existing file": (["train", "{data}", "--out", "{file}"], "exists and is not a folder"),
-    "train --json in an unwritable folder": (["train", "{data}", "--out", "{new}", "--json", "{unwritable}"],
-                                             "cannot write in"),
-    "evaluate --json a folder": (["evaluate", "open-road", "--planners", "rules", "--episodes", "1", "--json",
-                                  "{folder}"], "is a folder"),
+    "train --json in an unwritable folder": (
+        ["train", "{data}", "--out", "{new}", "--json", "{unwritable}"],
+        "cannot write in",
+    ),
+    "evaluate --json a folder": (
+        ["evaluate", "open-road", "--planners", "rules", "--episodes", "1", "--json", "{folder}"],
+        "is a folder",
+    ),
     "sweep --out an existing file": (["sweep", "{sweep}", "--out", "{file}"], "exists and is not a folder"),
-    "stress --out an existing file": (["stress", "open-road", "--budget", "4", "--out", "{file}"],
-                                      "exists and is not a folder"),
+    "stress --out an existing file": (
+        ["stress", "open-road", "--budget", "4", "--out", "{file}"],
+        "exists and is not a folder",
+    ),
     "render --out a folder": (["render", "open-road", "--out", "{folder}"], "is a folder"),
     "assess --json a folder": (["assess", "{model}", "--json", "{folder}"], "is a folder"),
     "bench --json a folder": (["bench", "--only", "sim", "--json", "{folder}"], "is a folder"),
@@ -226,8 +255,16 @@ def test_output_paths_are_checked_before_any_work(case, work, dataset_dir, model
     (tmp_path / "folder").mkdir()
     sweep = tmp_path / "s.yaml"
     sweep.write_text("name: t\nbase: open-road\nplanners: [rules]\nseed: 1\nepisodes_per_cell: 1\n")
-    names = {"file": tmp_path / "file", "folder": tmp_path / "folder", "new": tmp_path / "new", "data": dataset_dir,
-             "model": model_dir, "sweep": sweep, "unwritable": unwritable, "long": tmp_path / ("x" * 300)}
+    names = {
+        "file": tmp_path / "file",
+        "folder": tmp_path / "folder",
+        "new": tmp_path / "new",
+        "data": dataset_dir,
+        "model": model_dir,
+        "sweep": sweep,
+        "unwritable": unwritable,
+        "long": tmp_path / ("x" * 300),
+    }
     before = sorted(p.name for p in tmp_path.iterdir())
     line = assert_one_line_refusal(run_cli(*[a.format(**names) for a in args], cwd=tmp_path), needle)
     assert line.startswith("wmplan: error: --")
@@ -247,12 +284,21 @@ def _alias_bomb(levels: int, width: int) -> str:
 
 YAML_CASES = {
     "scenario of nested aliases": ("scenarios", "name: bomb\n" + _alias_bomb(10, 9), "aliases are not accepted"),
-    "sweep of nested aliases": ("sweep", "name: bomb\nbase: open-road\n" + _alias_bomb(9, 9),
-                                "aliases are not accepted"),
-    "scenario nested 5000 lists deep": ("scenarios", "name: deep\nroad: " + "[" * 5000 + "]" * 5000 + "\n",
-                                        "nested more than"),
-    "sweep nested 3000 mappings deep": ("sweep", "name: deep\nvary: " + "{a: " * 3000 + "1" + "}" * 3000 + "\n",
-                                        "nested more than"),
+    "sweep of nested aliases": (
+        "sweep",
+        "name: bomb\nbase: open-road\n" + _alias_bomb(9, 9),
+        "aliases are not accepted",
+    ),
+    "scenario nested 5000 lists deep": (
+        "scenarios",
+        "name: deep\nroad: " + "[" * 5000 + "]" * 5000 + "\n",
+        "nested more than",
+    ),
+    "sweep nested 3000 mappings deep": (
+        "sweep",
+        "name: deep\nvary: " + "{a: " * 3000 + "1" + "}" * 3000 + "\n",
+        "nested more than",
+    ),
     "integer of 5000 digits": ("scenarios", "name: big\ndt_s: " + "9" * 5000 + "\n", "an integer of 5000 characters"),
     "duplicate scenario key": ("scenarios", "name: a\ndt_s: 0.1\nname: b\n", "duplicate key 'name'"),
     "duplicate sweep key": ("sweep", "name: a\nbase: open-road\nseed: 1\nseed: 2\n", "duplicate key 'seed'"),
@@ -354,13 +400,17 @@ VALUE_CASES = {
     "negative vehicle width": (_set("traffic", "width_m", -1.8), "traffic.width_m"),
     "negative minimum gap": (_set("drivers", "min_gap_m", -2.0), "drivers.min_gap_m"),
     "zero safe deceleration": (_set("drivers", "safe_decel_mps2", 0.0), "drivers.safe_decel_mps2"),
-    "negative hard-braking deceleration": (_set("drivers", "hard_brake_decel_mps2", -5.0),
-                                           "drivers.hard_brake_decel_mps2"),
+    "negative hard-braking deceleration": (
+        _set("drivers", "hard_brake_decel_mps2", -5.0),
+        "drivers.hard_brake_decel_mps2",
+    ),
     "zero hard-braking duration": (_set("drivers", "hard_brake_duration_s", 0.0), "drivers.hard_brake_duration_s"),
     "negative episode duration": (_set("duration_s", -20.0), "duration_s"),
     "extreme acceleration": (_set("drivers", "max_accel_mps2", 1e30), "drivers.max_accel_mps2"),
-    "extreme acceleration spread": (_set("drivers", "max_accel_mps2", {"mean": 1.0, "std": 1e6}),
-                                    "drivers.max_accel_mps2"),
+    "extreme acceleration spread": (
+        _set("drivers", "max_accel_mps2", {"mean": 1.0, "std": 1e6}),
+        "drivers.max_accel_mps2",
+    ),
 }
 
 
@@ -369,8 +419,9 @@ def test_unphysical_scenario_values_are_refused_before_simulating(case, tmp_path
     """``wmplan simulate`` on a scenario with an unphysical value: one line naming the field; no dataset."""
     edit, field = VALUE_CASES[case]
     path = _scenario_file(tmp_path, "bad.yaml", edit)
-    assert_one_line_refusal(run_cli("simulate", path, "--episodes", "2", "--out", tmp_path / "out", cwd=tmp_path),
-                            str(path), field)
+    assert_one_line_refusal(
+        run_cli("simulate", path, "--episodes", "2", "--out", tmp_path / "out", cwd=tmp_path), str(path), field
+    )
     assert not (tmp_path / "out").exists()
 
 
@@ -392,8 +443,10 @@ FLAG_CASES = {
     "evaluate seed 2^70": (["evaluate", "open-road", "--seed", str(2**70)], "--seed"),
     "simulate negative seed": (["simulate", "open-road", "--seed", "-1", "--out", "{new}"], "--seed"),
     "simulate 10^9 episodes": (["simulate", "open-road", "--episodes", "1000000000", "--out", "{new}"], "--episodes"),
-    "decision every 1000 steps": (["simulate", "open-road", "--decision-every", "1000", "--out", "{new}"],
-                                  "--decision-every"),
+    "decision every 1000 steps": (
+        ["simulate", "open-road", "--decision-every", "1000", "--out", "{new}"],
+        "--decision-every",
+    ),
     "empty planner list": (["evaluate", "open-road", "--planners", ","], "--planners"),
     "empty planner name": (["evaluate", "open-road", "--planners", "rules,,mpc+oracle"], "--planners"),
     "empty knob list": (["stress", "open-road", "--knobs", ",", "--out", "{new}"], "--knobs"),

@@ -33,10 +33,20 @@ from wmplan.scenario import load_scenario, scenario_to_dict
 
 CPU_LIMIT_S = 5.0
 MEMORY_LIMIT = 500 * 2**20
-FEW = settings(max_examples=12, deadline=None, derandomize=True, database=None,
-               suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
-MANY = settings(max_examples=300, deadline=None, derandomize=True, database=None,
-                suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+FEW = settings(
+    max_examples=12,
+    deadline=None,
+    derandomize=True,
+    database=None,
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture],
+)
+MANY = settings(
+    max_examples=300,
+    deadline=None,
+    derandomize=True,
+    database=None,
+    suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture],
+)
 
 
 # --- the property ----------------------------------------------------------------------------------------------------
@@ -213,8 +223,10 @@ def test_hostile_scenario_files_many(text):
 BASE_SWEEP = {
     "name": "prop",
     "base": "open-road",
-    "vary": {"traffic.density_veh_per_km[1]": [10.0, 20.0],
-             "drivers.hard_brake_rate_per_min": {"low": 0.1, "high": 2.0, "dist": "loguniform", "samples": 2}},
+    "vary": {
+        "traffic.density_veh_per_km[1]": [10.0, 20.0],
+        "drivers.hard_brake_rate_per_min": {"low": 0.1, "high": 2.0, "dist": "loguniform", "samples": 2},
+    },
     "planners": ["rules"],
     "seed": 3,
     "episodes_per_cell": 2,
@@ -305,12 +317,21 @@ def model_dir(tmp_path_factory) -> Path:
     from wmplan.model.world_model import WorldModel
 
     cfg = ModelConfig(d_model=16, num_heads=2, hidden=16, num_layers=1, latent_dim=2)
-    model = WorldModel(cfg, EgoKinematics.from_scenario(load_scenario("onramp-merge"), cfg.plan_dt_s),
-                       generator=torch.Generator().manual_seed(0))
+    model = WorldModel(
+        cfg,
+        EgoKinematics.from_scenario(load_scenario("onramp-merge"), cfg.plan_dt_s),
+        generator=torch.Generator().manual_seed(0),
+    )
     state = {"epoch": 0, "step": 0, "elapsed_s": 0.0, "data_rng": {}, "noise_gen": [], "optimizer": {}, "history": []}
     out = tmp_path_factory.mktemp("props") / "model"
-    save_checkpoint(out, model, epoch=0, meta={"train": {"seed": 0, "batch_size": 64}},
-                    optimizer_state={"0.step": torch.zeros(())}, train_state=state)
+    save_checkpoint(
+        out,
+        model,
+        epoch=0,
+        meta={"train": {"seed": 0, "batch_size": 64}},
+        optimizer_state={"0.step": torch.zeros(())},
+        train_state=state,
+    )
     return out
 
 

@@ -30,7 +30,14 @@ def test_quick_demo_writes_the_whole_report(tmp_path):
     demo = json.loads((out / "demo.json").read_text())
     assert demo["quick"] is True and demo["seconds"] > 0
     assert {"simulate", "train_latent", "train_deterministic", "assess", "report"} <= set(demo["stage_seconds"])
-    for fig in ("scene.png", "episode.gif", "figures/closed_loop.png", "figures/reliability.png",
-                "figures/futures.png", "figures/candidates.png", "figures/training.png"):
+    for fig in (
+        "scene.png",
+        "episode.gif",
+        "figures/closed_loop.png",
+        "figures/reliability.png",
+        "figures/futures.png",
+        "figures/candidates.png",
+        "figures/training.png",
+    ):
         assert (out / fig).stat().st_size > 1000, fig
     assert not list(out.rglob("*.tmp*"))  # atomic writes leave no temporary files

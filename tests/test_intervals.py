@@ -46,9 +46,7 @@ def test_numpy_arrays_broadcast_and_other_levels():
     assert low.shape == high.shape == (2, 3) and low.dtype == np.float64
     for (i, j), kij in np.ndenumerate(k):
         ref = scipy.stats.binomtest(int(kij), 10).proportion_ci(confidence_level=0.9, method="wilson")
-        assert low[i, j] == pytest.approx(ref.low, abs=1e-12) and high[i, j] == pytest.approx(
-            ref.high, abs=1e-12
-        )
+        assert low[i, j] == pytest.approx(ref.low, abs=1e-12) and high[i, j] == pytest.approx(ref.high, abs=1e-12)
     assert low[0, 0] == 0.0 and high[1, 2] == 1.0
 
 
@@ -58,9 +56,7 @@ def test_torch_tensors_against_scipy(k, n, table):
     low, high = wilson_interval(torch.tensor(k), torch.tensor(n))
     ref = scipy.stats.binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
     assert isinstance(low, torch.Tensor) and low.dtype == torch.float32 and high.dtype == torch.float32
-    assert low.item() == pytest.approx(ref.low, rel=1e-6, abs=1e-9) and high.item() == pytest.approx(
-        ref.high, rel=1e-6
-    )
+    assert low.item() == pytest.approx(ref.low, rel=1e-6, abs=1e-9) and high.item() == pytest.approx(ref.high, rel=1e-6)
     assert high.item() == pytest.approx(table[1], abs=1e-6)
 
 
@@ -100,9 +96,7 @@ def test_no_trials_means_nothing_known():
 
 def test_bad_counts_are_one_line_errors():
     """k > n, negative or fractional counts, non-broadcasting shapes and z <= 0 are refused by a one-line ConfigError."""
-    with pytest.raises(
-        ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")
-    ):
+    with pytest.raises(ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")):
         wilson_interval(5, 4)
     with pytest.raises(ConfigError, match=re.escape("got k=1.5 n=4")):
         wilson_interval(np.array([1, 1.5]), 4)
@@ -117,7 +111,5 @@ def test_bad_counts_are_one_line_errors():
 def test_importing_it_imports_neither_torch_nor_scipy_stats():
     """The simulator and sweep workers import it: it must not pull torch or scipy.stats in (a fresh interpreter)."""
     code = "import sys, wmplan.intervals; print('torch' in sys.modules, 'scipy.stats' in sys.modules)"
-    out = subprocess.run(
-        [sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120
-    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120)
     assert out.stdout.split() == ["False", "False"]

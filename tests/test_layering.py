@@ -37,8 +37,9 @@ def test_importing_the_simulator_side_leaves_torch_out():
     for m in SIM_MODULES:
         lines += [f"import {m}", f"seen.append(({m!r}, 'torch' in sys.modules))"]
     lines.append("print(json.dumps(seen))")
-    out = subprocess.run([sys.executable, "-c", "\n".join(lines)], capture_output=True, text=True, check=True,
-                         timeout=120)
+    out = subprocess.run(
+        [sys.executable, "-c", "\n".join(lines)], capture_output=True, text=True, check=True, timeout=120
+    )
     seen = json.loads(out.stdout.strip().splitlines()[-1])
     assert [m for m, _ in seen] == list(SIM_MODULES)
     culprits = [m for m, has_torch in seen if has_torch]

@@ -55,8 +55,20 @@ def _assert_same(engine_state: TrafficState, loop_state: TrafficState, engine_in
 
 def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of) -> dict[str, int]:
     """Step the engine and the loop side by side; compare after every step; count the events seen."""
-    seen = dict.fromkeys(("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start",
-                          "collision", "offroad", "goal"), 0)
+    seen = dict.fromkeys(
+        (
+            "lane_change",
+            "spawn",
+            "leave",
+            "yield_decision",
+            "no_yield_decision",
+            "brake_start",
+            "collision",
+            "offroad",
+            "goal",
+        ),
+        0,
+    )
     eng, loop = state, state
     for k in range(num_steps):
         action = actions_of(k, eng)
@@ -64,8 +76,13 @@ def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of
         loop_next, loop_info = ref.step_loop(loop, action, params)
         _assert_same(eng_next, loop_next, eng_info, loop_info, where=f"after step {k}")
         # accelerations: compared on the slots that held a vehicle during the step (the loop leaves the rest NaN)
-        np.testing.assert_allclose(loop_info.accel_mps2[eng.valid], eng_info.accel_mps2[eng.valid], rtol=RTOL,
-                                   atol=ATOL, err_msg=f"after step {k}: accel_mps2")
+        np.testing.assert_allclose(
+            loop_info.accel_mps2[eng.valid],
+            eng_info.accel_mps2[eng.valid],
+            rtol=RTOL,
+            atol=ATOL,
+            err_msg=f"after step {k}: accel_mps2",
+        )
         traffic = eng.valid.copy()
         traffic[:, EGO] = False
         seen["lane_change"] += int((traffic & (eng_next.lane != eng.lane)).sum())
@@ -155,9 +172,19 @@ def test_loop_equals_engine_on_exact_position_ties():
     """
     params = SimParams.from_scenario(load_scenario("lane-drop"))
     arr = empty_state(params, rng.scene_keys([30, 31, 32, 33])).to_arrays()
-    placed = [(4, 0, 0, 100.0), (3, 0, 0, 120.0), (5, 0, 0, 120.0),
-              (2, 1, 1, 140.0), (6, 0, 1, 140.0), (10, 0, 1, 190.0), (8, 1, 1, 190.0),
-              (11, 2, 2, 250.0), (12, 1, 1, 250.0), (13, 1, 1, 300.0), (14, 2, 2, 300.0)]
+    placed = [
+        (4, 0, 0, 100.0),
+        (3, 0, 0, 120.0),
+        (5, 0, 0, 120.0),
+        (2, 1, 1, 140.0),
+        (6, 0, 1, 140.0),
+        (10, 0, 1, 190.0),
+        (8, 1, 1, 190.0),
+        (11, 2, 2, 250.0),
+        (12, 1, 1, 250.0),
+        (13, 1, 1, 300.0),
+        (14, 2, 2, 300.0),
+    ]
     for slot, lane, intent, x_m in placed:
         arr["valid"][:, slot] = True
         arr["vehicle_id"][:, slot] = slot
@@ -181,8 +208,9 @@ def test_scalar_hash_matches_package_rng(parts):
     # truncated normal by the inverse CDF: the loop uses math.erfc and statistics.NormalDist (Wichura's AS 241), the
     # package scipy.special.ndtr / ndtri; both are accurate to a few ulp, hence the tolerance
     for spec in ((1.2, 0.2, 0.8, 2.0), (30.0, 3.0, 22.0, 38.0), (2.0, 0.0, 2.0, 2.0), (0.0, 1.0, -np.inf, np.inf)):
-        np.testing.assert_allclose(ref.truncated_normal(*spec, *parts), float(rng.truncated_normal(*spec, *arrays)),
-                                   rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(
+            ref.truncated_normal(*spec, *parts), float(rng.truncated_normal(*spec, *arrays)), rtol=1e-12, atol=1e-12
+        )
 
 
 def test_loop_reference_rejects_a_bad_action_shape():
@@ -207,8 +235,13 @@ def test_throughput_benchmark_quick_run(tmp_path, capsys):
     assert all(np.isfinite(v) and v > 0 for v in result["vehicle_steps_per_s"].values())
     assert result["vs_loop"]["states_agree"] is True and result["speedup_vs_loop"] > 1.0
     assert result["env_steps_per_s_single"] > 0 and result["vector_env_steps_per_s_64"] > 0
-    assert set(result["targets"]) == {"speedup_vs_loop", "vehicle_steps_per_s_1", "env_steps_per_s_single",
-                                      "vector_env_steps_per_s_64", "compile_s"}
+    assert set(result["targets"]) == {
+        "speedup_vs_loop",
+        "vehicle_steps_per_s_1",
+        "env_steps_per_s_single",
+        "vector_env_steps_per_s_64",
+        "compile_s",
+    }
     threaded = result["threaded"]  # the split over threads gives the one-thread states bit for bit
     assert threaded["same_states_as_one_thread"] is True and threaded["threads"] >= 2 and threaded["speedup"] > 0
     assert {"platform", "numpy", "cpu_count"} <= set(result["machine"])

@@ -39,8 +39,16 @@ EXPECTED = {
     "02_train_world_model": (("data/manifest.json", "latent/latest", "latent/metrics.csv", "deterministic/latest"), 2),
     # run alone in a fresh folder, notebook 03 trains its own small model instead of reading notebook 02's
     "03_plan_under_uncertainty": (("latent/latest",), 4),
-    "04_sweeps_and_stress": (("merge-density-yield.yaml", "sweep/results.parquet", "sweep/summary.json",
-                              "stress/stress.json", "failure.gif"), 3),
+    "04_sweeps_and_stress": (
+        (
+            "merge-density-yield.yaml",
+            "sweep/results.parquet",
+            "sweep/summary.json",
+            "stress/stress.json",
+            "failure.gif",
+        ),
+        3,
+    ),
 }
 
 
@@ -51,8 +59,9 @@ def _read(name: str) -> nbformat.NotebookNode:
 def _execute(nb: nbformat.NotebookNode, folder: Path) -> None:
     """Run every cell in order in a ``python3`` kernel whose working directory is ``folder``; raises
     ``nbclient.exceptions.CellExecutionError`` at the first cell that fails."""
-    client = NotebookClient(nb, timeout=CELL_TIMEOUT_S, kernel_name="python3",
-                            resources={"metadata": {"path": str(folder)}})
+    client = NotebookClient(
+        nb, timeout=CELL_TIMEOUT_S, kernel_name="python3", resources={"metadata": {"path": str(folder)}}
+    )
     client.execute()
 
 
@@ -99,8 +108,11 @@ def test_kernel_is_this_interpreter(tmp_path, monkeypatch):
     and works in the folder given as ``resources['metadata']['path']``."""
     monkeypatch.setenv("WMPLAN_QUICK", "1")
     nb = nbformat.v4.new_notebook()
-    nb.cells = [nbformat.v4.new_code_cell("import os, sys\nprint(sys.executable)\nprint(os.getcwd())\n"
-                                          "print(os.environ.get('WMPLAN_QUICK'))")]
+    nb.cells = [
+        nbformat.v4.new_code_cell(
+            "import os, sys\nprint(sys.executable)\nprint(os.getcwd())\nprint(os.environ.get('WMPLAN_QUICK'))"
+        )
+    ]
     _execute(nb, tmp_path)
     executable, cwd, quick = nb.cells[0].outputs[0]["text"].splitlines()
     assert os.path.realpath(executable) == os.path.realpath(sys.executable)

@@ -37,12 +37,24 @@ Y_93 = [0, 0, 1, 0, 0, 1, 0, 1, 1, 1]
 def _planner(k: int, n: int) -> dict:
     """A planner's summary as wmplan.evaluate.tables.summarise_planner shapes it (collisions k of n episodes)."""
     lo, hi = wilson_interval(k, n)
-    return {"episodes": n, "collision_rate": k / n, "collision_ci95": [float(lo), float(hi)],
-            "offroad_rate": 0.0, "offroad_ci95": [0.0, float(wilson_interval(0, n)[1])],
-            "success_rate": (n - k) / n, "success_ci95": [float(v) for v in wilson_interval(n - k, n)],
-            "mean_speed_mps": 26.84, "mean_speed_ci95": [26.5, 27.2], "progress_m": 512.3,
-            "progress_ci95": [505.0, 519.6], "rms_jerk_mps3": 0.8, "rms_jerk_ci95": [0.7, 0.9],
-            "min_ttc_s_median": 3.75, "share_min_ttc_below_1_5s": 0.02, "decision_ms_median": 41.25}
+    return {
+        "episodes": n,
+        "collision_rate": k / n,
+        "collision_ci95": [float(lo), float(hi)],
+        "offroad_rate": 0.0,
+        "offroad_ci95": [0.0, float(wilson_interval(0, n)[1])],
+        "success_rate": (n - k) / n,
+        "success_ci95": [float(v) for v in wilson_interval(n - k, n)],
+        "mean_speed_mps": 26.84,
+        "mean_speed_ci95": [26.5, 27.2],
+        "progress_m": 512.3,
+        "progress_ci95": [505.0, 519.6],
+        "rms_jerk_mps3": 0.8,
+        "rms_jerk_ci95": [0.7, 0.9],
+        "min_ttc_s_median": 3.75,
+        "share_min_ttc_below_1_5s": 0.02,
+        "decision_ms_median": 41.25,
+    }
 
 
 def _futures(k: int = 6, h: int = 15, n: int = 4) -> dict[str, np.ndarray]:
@@ -56,46 +68,106 @@ def _futures(k: int = 6, h: int = 15, n: int = 4) -> dict[str, np.ndarray]:
     rows[:, :, 2, F_Y] -= np.outer(gen.integers(0, 2, k), np.clip(t / 2, 0, 1)) * 3.6  # some cut in
     hist = np.repeat(rows[:1, :1], 5, axis=1)[0]
     hist[..., F_X] -= np.arange(4, -1, -1)[:, None] * 5.0
-    return {"history": hist, "model_rows": rows, "oracle_rows": rows[::-1].copy(), "deterministic_rows": rows.mean(0),
-            "anchor_pose": np.array([150.0, 5.4, 0.0])}
+    return {
+        "history": hist,
+        "model_rows": rows,
+        "oracle_rows": rows[::-1].copy(),
+        "deterministic_rows": rows.mean(0),
+        "anchor_pose": np.array([150.0, 5.4, 0.0]),
+    }
 
 
 def _write_run(run: Path, *, gif: bool = True) -> dict:
     """A complete synthetic run folder; returns the numbers the report must show."""
     run.mkdir(parents=True, exist_ok=True)
     (run / "scenario.yaml").write_text(scenario_to_yaml(load_scenario("onramp-merge")))
-    latent = [{"epoch": e, "loss/nll": 12.0 - e, "loss/kl": 1.5, "val/nll": 12.5 - e, "val/kl": 1.6,
-               "val/min_fde_k6_m": 2.0 - 0.1 * e, "sched/kl_weight": min(1.0, (e + 1) / 3)} for e in range(5)]
+    latent = [
+        {
+            "epoch": e,
+            "loss/nll": 12.0 - e,
+            "loss/kl": 1.5,
+            "val/nll": 12.5 - e,
+            "val/kl": 1.6,
+            "val/min_fde_k6_m": 2.0 - 0.1 * e,
+            "sched/kl_weight": min(1.0, (e + 1) / 3),
+        }
+        for e in range(5)
+    ]
     det = [{"epoch": e, "loss/mse": 1.0 / (e + 1), "val/mse": 1.1 / (e + 1), "val/min_fde_k6_m": 2.6} for e in range(5)]
     write_metrics_csv(run / "latent" / "metrics.csv", latent)
     write_metrics_csv(run / "deterministic" / "metrics.csv", det)
     predictors = {
-        "latent": {"min_ade_k6_m": 0.4321, "min_fde_k6_m": 0.9876, "nll": 1.2345, "coverage_90": 0.8912,
-                   "num_objects": 4321, "energy_distance": 0.3141, "collision_prob_gap": 0.0217,
-                   "energy_distance_resampled": 0.4, "collision_prob_gap_resampled": 0.03, "collision_prob_mean": 0.04},
-        "deterministic": {"min_ade_k6_m": 0.7654, "min_fde_k6_m": 1.6543, "nll": 2.2, "coverage_90": 0.71,
-                          "num_objects": 4321, "energy_distance": 0.95, "collision_prob_gap": 0.06},
-        "constant_velocity": {"min_ade_k6_m": 1.1111, "min_fde_k6_m": 2.5, "nll": 3.0, "coverage_90": 0.6,
-                              "num_objects": 4321},
+        "latent": {
+            "min_ade_k6_m": 0.4321,
+            "min_fde_k6_m": 0.9876,
+            "nll": 1.2345,
+            "coverage_90": 0.8912,
+            "num_objects": 4321,
+            "energy_distance": 0.3141,
+            "collision_prob_gap": 0.0217,
+            "energy_distance_resampled": 0.4,
+            "collision_prob_gap_resampled": 0.03,
+            "collision_prob_mean": 0.04,
+        },
+        "deterministic": {
+            "min_ade_k6_m": 0.7654,
+            "min_fde_k6_m": 1.6543,
+            "nll": 2.2,
+            "coverage_90": 0.71,
+            "num_objects": 4321,
+            "energy_distance": 0.95,
+            "collision_prob_gap": 0.06,
+        },
+        "constant_velocity": {
+            "min_ade_k6_m": 1.1111,
+            "min_fde_k6_m": 2.5,
+            "nll": 3.0,
+            "coverage_90": 0.6,
+            "num_objects": 4321,
+        },
     }
-    (run / "assess.json").write_text(json.dumps({"scenario": "onramp-merge", "seed": 0, "heldout_episodes": 96,
-                                                 "predictors": predictors,
-                                                 "oracle_collision_prob_mean": {"known": 0.05, "resampled": 0.06}}))
+    (run / "assess.json").write_text(
+        json.dumps(
+            {
+                "scenario": "onramp-merge",
+                "seed": 0,
+                "heldout_episodes": 96,
+                "predictors": predictors,
+                "oracle_collision_prob_mean": {"known": 0.05, "resampled": 0.06},
+            }
+        )
+    )
     gen = np.random.default_rng(0)
     p = gen.beta(0.4, 5.0, 300)
     y = (gen.random(300) < p).astype(int)
-    summary = {"scenario": "onramp-merge", "episodes": 200, "seed": 0,
-               "results": {"rules": {**_planner(3, 200), "collisions_by_contact_side": {"front": 2, "left": 1}},
-                           "mpc+latent": _planner(0, 200), "mpc+constant-velocity": _planner(7, 50)},
-               "calibration": {"mpc+latent": calibration(P_93, Y_93, 2),
-                               "mpc+constant-velocity": calibration(p.tolist(), y.tolist())}}
+    summary = {
+        "scenario": "onramp-merge",
+        "episodes": 200,
+        "seed": 0,
+        "results": {
+            "rules": {**_planner(3, 200), "collisions_by_contact_side": {"front": 2, "left": 1}},
+            "mpc+latent": _planner(0, 200),
+            "mpc+constant-velocity": _planner(7, 50),
+        },
+        "calibration": {
+            "mpc+latent": calibration(P_93, Y_93, 2),
+            "mpc+constant-velocity": calibration(p.tolist(), y.tolist()),
+        },
+    }
     (run / "evaluate").mkdir(exist_ok=True)
     (run / "evaluate" / "summary.json").write_text(json.dumps(summary))
     np.savez(run / "futures.npz", **_futures())
     fut = _futures()["model_rows"]
-    np.savez(run / "candidates.npz", ego_paths=fut[0, None, :, 0].repeat(3, axis=0) + np.array([0, 0.5, 1.0])[:, None, None],
-             costs=np.array([1.0, 0.5, 2.0]), p_collision=np.array([0.0, 0.125, 0.5]), chosen=np.array(1),
-             futures=fut, current=_futures()["history"][-1], anchor_pose=np.array([150.0, 5.4, 0.0]))
+    np.savez(
+        run / "candidates.npz",
+        ego_paths=fut[0, None, :, 0].repeat(3, axis=0) + np.array([0, 0.5, 1.0])[:, None, None],
+        costs=np.array([1.0, 0.5, 2.0]),
+        p_collision=np.array([0.0, 0.125, 0.5]),
+        chosen=np.array(1),
+        futures=fut,
+        current=_futures()["history"][-1],
+        anchor_pose=np.array([150.0, 5.4, 0.0]),
+    )
     Image.new("RGB", (320, 60), (205, 209, 214)).save(run / "scene.png")
     if gif:
         frames = [Image.new("RGB", (64, 32), (200, 70 + 20 * i, 12)) for i in range(3)]
@@ -142,11 +214,24 @@ def test_full_report_shows_tables_figures_and_cautions(tmp_path):
     html_path, md_path = build_report(run)
     assert html_path == run / "report.html" and md_path == run / "report.md"
     page = html_path.read_text(encoding="utf-8")
-    for text in ("0.015 [0.005, 0.043]", "0.000 [0.000, 0.019]", "0.140 [0.070, 0.262]",  # Wilson: 3/200 0/200 7/50
-                 "0.985 [0.957, 0.995]",  # success 197/200 (Wilson, computed by wmplan.evaluate.stats)
-                 "26.8 [26.5, 27.2]", "41.2", "3.75",
-                 "0.432", "0.988", "1.234", "0.891", "0.314", "0.022", "1.111",  # assessment, 3 decimals
-                 "0.1650", "0.0300"):  # Brier and ECE of the calibration example
+    for text in (
+        "0.015 [0.005, 0.043]",
+        "0.000 [0.000, 0.019]",
+        "0.140 [0.070, 0.262]",  # Wilson: 3/200 0/200 7/50
+        "0.985 [0.957, 0.995]",  # success 197/200 (Wilson, computed by wmplan.evaluate.stats)
+        "26.8 [26.5, 27.2]",
+        "41.2",
+        "3.75",
+        "0.432",
+        "0.988",
+        "1.234",
+        "0.891",
+        "0.314",
+        "0.022",
+        "1.111",  # assessment, 3 decimals
+        "0.1650",
+        "0.0300",
+    ):  # Brier and ECE of the calibration example
         assert text in page, text
     for _key, label, explanation in ASSESS_METRICS[:6]:
         assert label.replace("&", "&amp;") in page and explanation.replace("'", "&#x27;") in page
@@ -173,8 +258,15 @@ def test_full_report_shows_tables_figures_and_cautions(tmp_path):
     assert re.search(r"\| mpc\+latent \| 200 \|.*\| - \|", md)
     assert "certify nothing about a real vehicle" in md
     linked = re.findall(r"!\[[^\]]*\]\(([^)]+)\)", md)
-    assert set(linked) == {"figures/training.png", "figures/futures.png", "figures/closed_loop.png",
-                           "figures/candidates.png", "figures/reliability.png", "scene.png", "episode.gif"}
+    assert set(linked) == {
+        "figures/training.png",
+        "figures/futures.png",
+        "figures/closed_loop.png",
+        "figures/candidates.png",
+        "figures/reliability.png",
+        "scene.png",
+        "episode.gif",
+    }
     for rel in linked:
         assert (run / rel).is_file(), rel
         if rel.endswith(".png"):
@@ -188,11 +280,24 @@ def test_cli_report_lists_what_it_wrote(tmp_path):
     _write_run(run, gif=False)
     out = cli_report(run)
     assert out["html"] == str(run / "report.html") and out["markdown"] == str(run / "report.md")
-    assert sorted(Path(f).name for f in out["figures"]) == ["candidates.png", "closed_loop.png", "futures.png",
-                                                            "reliability.png", "training.png"]
+    assert sorted(Path(f).name for f in out["figures"]) == [
+        "candidates.png",
+        "closed_loop.png",
+        "futures.png",
+        "reliability.png",
+        "training.png",
+    ]
     assert all(Path(f).is_file() for f in out["figures"])
-    assert out["sections"] == ["scenario", "training", "assessment", "futures", "closed_loop", "candidates",
-                               "calibration", "media"]
+    assert out["sections"] == [
+        "scenario",
+        "training",
+        "assessment",
+        "futures",
+        "closed_loop",
+        "candidates",
+        "calibration",
+        "media",
+    ]
     assert out["skipped"] == []
     json.dumps(out)  # the CLI prints it with --json
 
@@ -221,10 +326,14 @@ def test_unreadable_pieces_are_skipped_with_the_file_named(tmp_path):
     (run / "assess.json").write_text("{not json")
     (run / "evaluate" / "summary.json").write_text(json.dumps({"results": []}))
     out = cli_report(run)
-    assert any(s.startswith(f"Assessment skipped: {run / 'assess.json'}: not readable JSON (JSONDecodeError")
-               for s in out["skipped"])
-    assert f"Closed-loop results skipped: {run / 'evaluate' / 'summary.json'}: 'results' must map each planner to its summary" \
+    assert any(
+        s.startswith(f"Assessment skipped: {run / 'assess.json'}: not readable JSON (JSONDecodeError")
+        for s in out["skipped"]
+    )
+    assert (
+        f"Closed-loop results skipped: {run / 'evaluate' / 'summary.json'}: 'results' must map each planner to its summary"
         in out["skipped"]
+    )
     assert "assessment" not in out["sections"] and "closed_loop" not in out["sections"]
     assert "training" in out["sections"]
 
@@ -237,8 +346,8 @@ def test_report_from_a_simulated_dataset(tmp_path):
     assert out["sections"] == ["scenario", "dataset"]
     page = (run / "report.html").read_text(encoding="utf-8")
     assert "Training data (data/manifest.json)" in page
-    assert f"<td>episodes</td><td class=\"num\">{ds.traj.num_episodes}</td>" in page
-    assert f"<td class=\"num\">{ds.manifest['num_decisions']}</td>" in page
+    assert f'<td>episodes</td><td class="num">{ds.traj.num_episodes}</td>' in page
+    assert f'<td class="num">{ds.manifest["num_decisions"]}</td>' in page
 
 
 def test_missing_folder_is_a_one_line_error(tmp_path):
@@ -253,8 +362,10 @@ def test_folder_with_nothing_usable_is_a_one_line_error(tmp_path):
     (tmp_path / "notes.txt").write_text("nothing for the report")
     with pytest.raises(ConfigError) as err:
         build_report(tmp_path)
-    assert str(err.value) == (f"{tmp_path}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
-                              "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png")
+    assert str(err.value) == (
+        f"{tmp_path}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
+        "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png"
+    )
     assert not (tmp_path / "report.html").exists()
 
 

@@ -71,9 +71,7 @@ def entry_keys(doc: str) -> list[str]:
 
 def missing_keys(texts: dict[str, str], keys: set[str]) -> list[str]:
     """'file: key' for every citation of a key that is not an entry."""
-    return [
-        f"{rel}: {key}" for rel, text in texts.items() for key in CITATION.findall(text) if key not in keys
-    ]
+    return [f"{rel}: {key}" for rel, text in texts.items() for key in CITATION.findall(text) if key not in keys]
 
 
 def uncited_test_modules(texts: dict[str, str]) -> list[str]:
@@ -145,9 +143,7 @@ def test_every_scenario_file_cites_its_sources(texts):
     """Each scenario file's header comment cites at least one entry for its defaults."""
     scenario_files = [rel for rel in texts if rel.startswith("scenarios/") and rel.endswith(".yaml")]
     assert len(scenario_files) >= 5
-    header = {
-        rel: "".join(ln for ln in texts[rel].splitlines(True) if ln.startswith("#")) for rel in scenario_files
-    }
+    header = {rel: "".join(ln for ln in texts[rel].splitlines(True) if ln.startswith("#")) for rel in scenario_files}
     bad = [rel for rel, h in header.items() if "Sources" in h and not CITATION.search(h)]
     assert not bad, bad
 

@@ -13,8 +13,10 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-NOTE = ("Measured on a simplified traffic model on one machine; it certifies nothing about a real vehicle (see "
-        "functional-safety standards, local regulation and licensed engineering practice for that).")
+NOTE = (
+    "Measured on a simplified traffic model on one machine; it certifies nothing about a real vehicle (see "
+    "functional-safety standards, local regulation and licensed engineering practice for that)."
+)
 
 
 def load_avg() -> float | None:
@@ -26,9 +28,14 @@ def machine(**extra) -> dict:
     """Platform, processor, Python and numpy versions, core count and the load average now (plus ``extra``)."""
     import numpy as np
 
-    out = {"platform": platform.platform(), "processor": platform.processor() or platform.machine(),
-           "python": platform.python_version(), "numpy": np.__version__, "cpu_count": os.cpu_count(),
-           "load_avg_1min_at_start": load_avg()}
+    out = {
+        "platform": platform.platform(),
+        "processor": platform.processor() or platform.machine(),
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "cpu_count": os.cpu_count(),
+        "load_avg_1min_at_start": load_avg(),
+    }
     if "numba" in sys.modules:
         out["numba"] = sys.modules["numba"].__version__
     if "torch" in sys.modules:
@@ -48,8 +55,12 @@ def timed(fn: Callable[[], object], repeats: int) -> tuple[list[float], list[flo
     return wall, cpu, out
 
 
-def main(run: Callable[..., dict], description: str, argv: list[str] | None = None,
-         add_arguments: Callable[[argparse.ArgumentParser], None] | None = None) -> int:
+def main(
+    run: Callable[..., dict],
+    description: str,
+    argv: list[str] | None = None,
+    add_arguments: Callable[[argparse.ArgumentParser], None] | None = None,
+) -> int:
     """The command line of a benchmark: ``--quick``, ``--json FILE`` (written atomically) and any arguments
     ``add_arguments`` adds (passed to ``run`` by name); prints the result as JSON."""
     parser = argparse.ArgumentParser(description=description)

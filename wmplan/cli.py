@@ -34,8 +34,16 @@ def _progress(total: int, desc: str) -> tuple[Callable[[int], None], Callable[[]
     """A tqdm progress bar on stderr; returns (advance, close)."""
     from tqdm.auto import tqdm
 
-    bar = tqdm(total=total, desc=desc, unit="step", leave=False, dynamic_ncols=True, file=sys.stderr,
-               mininterval=0.5, disable=None)
+    bar = tqdm(
+        total=total,
+        desc=desc,
+        unit="step",
+        leave=False,
+        dynamic_ncols=True,
+        file=sys.stderr,
+        mininterval=0.5,
+        disable=None,
+    )
     return bar.update, bar.close
 
 
@@ -73,8 +81,9 @@ def _int_in(minimum: int, maximum: int) -> Callable[[str], int]:
         except ValueError:
             value = None
         if value is None:
-            raise argparse.ArgumentTypeError(f"invalid integer {one_line(repr(text), 60)}; "
-                                             f"give a whole number in [{minimum}, {maximum}]")
+            raise argparse.ArgumentTypeError(
+                f"invalid integer {one_line(repr(text), 60)}; give a whole number in [{minimum}, {maximum}]"
+            )
         if not minimum <= value <= maximum:
             raise argparse.ArgumentTypeError(f"must lie in [{minimum}, {maximum}], got {value}")
         return value
@@ -108,8 +117,9 @@ def _name_list(text: str) -> str:
     """argparse type: a comma-separated list of distinct, non-empty names (returned as given)."""
     names = [n.strip() for n in text.split(",")]
     if not any(names):
-        raise argparse.ArgumentTypeError(f"names nothing ({one_line(repr(text), 60)}); give one or more names "
-                                         "separated by commas")
+        raise argparse.ArgumentTypeError(
+            f"names nothing ({one_line(repr(text), 60)}); give one or more names separated by commas"
+        )
     if not all(names):
         raise argparse.ArgumentTypeError(f"has an empty name in {one_line(repr(text), 80)}")
     if len(set(names)) != len(names):
@@ -152,12 +162,16 @@ def check_output(path: str | Path, kind: str, flag: str) -> None:
     except (OSError, ValueError):
         pass
     if len(os.fsencode(str(p))) + _TEMP_NAME_ROOM >= path_max:
-        raise ConfigError(f"{flag} {one_line(str(path), 120)}: the path is too long ({len(str(p))} characters; "
-                          f"this file system takes at most {path_max - _TEMP_NAME_ROOM - 1})")
+        raise ConfigError(
+            f"{flag} {one_line(str(path), 120)}: the path is too long ({len(str(p))} characters; "
+            f"this file system takes at most {path_max - _TEMP_NAME_ROOM - 1})"
+        )
     for part in p.parts[1:]:
         if len(os.fsencode(part)) + _TEMP_NAME_ROOM > name_max:
-            raise ConfigError(f"{flag} {one_line(str(path), 120)}: the name {one_line(part, 40)!r} is too long "
-                              f"({len(os.fsencode(part))} bytes; at most {name_max - _TEMP_NAME_ROOM} here)")
+            raise ConfigError(
+                f"{flag} {one_line(str(path), 120)}: the name {one_line(part, 40)!r} is too long "
+                f"({len(os.fsencode(part))} bytes; at most {name_max - _TEMP_NAME_ROOM} here)"
+            )
     if os.path.lexists(p):
         if kind == "file" and p.is_dir():
             raise ConfigError(f"{flag} {path}: is a folder; name a file")
@@ -178,8 +192,10 @@ def _probe_write(folder: Path, flag: str, path: str | Path) -> None:
     try:
         fd, tmp = tempfile.mkstemp(prefix=".wmplan-probe-", dir=folder)
     except OSError as err:
-        raise ConfigError(f"{flag} {one_line(str(path), 200)}: cannot write in {one_line(str(folder), 200)} "
-                          f"({err.strerror or err.__class__.__name__})") from None
+        raise ConfigError(
+            f"{flag} {one_line(str(path), 200)}: cannot write in {one_line(str(folder), 200)} "
+            f"({err.strerror or err.__class__.__name__})"
+        ) from None
     os.close(fd)
     os.unlink(tmp)
 
@@ -209,8 +225,14 @@ def cmd_scenarios(args: argparse.Namespace) -> int:
         rows = []
         for name in builtin_names():
             scn = load_scenario(name)
-            rows.append({"name": name, "lanes": scn.road.num_lanes, "duration_s": scn.duration_s,
-                         "description": scn.description})
+            rows.append(
+                {
+                    "name": name,
+                    "lanes": scn.road.num_lanes,
+                    "duration_s": scn.duration_s,
+                    "description": scn.description,
+                }
+            )
         if args.json:
             _write_json(args.json, {"scenarios": rows})
         width = max(len(r["name"]) for r in rows)
@@ -258,19 +280,36 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     advance, close = _progress(total, f"simulate {scn.name}")
     t0 = time.perf_counter()
     try:
-        ds = simulate_dataset(scn, out, episodes=args.episodes, seed=args.seed, batch_size=args.batch_size,
-                              policy_mix=args.policy_mix, decision_every=args.decision_every, progress=advance)
+        ds = simulate_dataset(
+            scn,
+            out,
+            episodes=args.episodes,
+            seed=args.seed,
+            batch_size=args.batch_size,
+            policy_mix=args.policy_mix,
+            decision_every=args.decision_every,
+            progress=advance,
+        )
     finally:
         close()
     secs = time.perf_counter() - t0
     m = ds.manifest
-    summary = {"out": str(out), "scenario": scn.name, "episodes": m["num_episodes"], "seed": args.seed,
-               "decisions_per_episode": m["num_decisions"], "seconds": round(secs, 2), "outcomes": m["outcomes"]}
+    summary = {
+        "out": str(out),
+        "scenario": scn.name,
+        "episodes": m["num_episodes"],
+        "seed": args.seed,
+        "decisions_per_episode": m["num_decisions"],
+        "seconds": round(secs, 2),
+        "outcomes": m["outcomes"],
+    }
     _write_json(args.json, summary)
     o = m["outcomes"]
-    print(f"wrote {m['num_episodes']} episodes of {scn.name} ({m['num_decisions']} decisions of {m['decision_dt_s']} s "
-          f"each) to {out} in {secs:.1f} s; goal reached {o['reached_goal']}, collisions {o['collided']}, "
-          f"off-road {o['offroad']}")
+    print(
+        f"wrote {m['num_episodes']} episodes of {scn.name} ({m['num_decisions']} decisions of {m['decision_dt_s']} s "
+        f"each) to {out} in {secs:.1f} s; goal reached {o['reached_goal']}, collisions {o['collided']}, "
+        f"off-road {o['offroad']}"
+    )
     return 0
 
 
@@ -288,8 +327,13 @@ def cmd_render(args: argparse.Namespace) -> int:
 
 # --- bench -----------------------------------------------------------------------------------------------------------
 
-BENCHMARKS = {"sim": "sim_throughput.py", "model": "model_throughput.py", "plan": "plan_latency.py",
-              "sweep": "sweep_scaling.py", "stress": "stress_batching.py"}
+BENCHMARKS = {
+    "sim": "sim_throughput.py",
+    "model": "model_throughput.py",
+    "plan": "plan_latency.py",
+    "sweep": "sweep_scaling.py",
+    "stress": "stress_batching.py",
+}
 
 
 def _load_benchmark(file_name: str):
@@ -331,13 +375,24 @@ def cmd_train(args: argparse.Namespace) -> int:
     from wmplan.model.train import train
 
     mcfg = ModelConfig(deterministic=args.deterministic)
-    tcfg = TrainConfig(seed=args.seed, **({"minutes": args.minutes} if args.minutes is not None else {}),
-                       **({"max_epochs": args.epochs} if args.epochs else {}))
+    tcfg = TrainConfig(
+        seed=args.seed,
+        **({"minutes": args.minutes} if args.minutes is not None else {}),
+        **({"max_epochs": args.epochs} if args.epochs else {}),
+    )
     total = tcfg.max_epochs * tcfg.steps_per_epoch
     from tqdm.auto import tqdm
 
-    bar = tqdm(total=total, desc="train " + ("deterministic" if args.deterministic else "latent"), unit="step",
-               leave=False, file=sys.stderr, dynamic_ncols=True, mininterval=0.5, disable=None)
+    bar = tqdm(
+        total=total,
+        desc="train " + ("deterministic" if args.deterministic else "latent"),
+        unit="step",
+        leave=False,
+        file=sys.stderr,
+        dynamic_ncols=True,
+        mininterval=0.5,
+        disable=None,
+    )
 
     def progress(n: int, running: dict) -> None:
         bar.update(n)
@@ -353,23 +408,34 @@ def cmd_train(args: argparse.Namespace) -> int:
         res = train(args.data_dir, args.out, model_cfg=mcfg, train_cfg=tcfg, resume=args.resume, progress=progress)
     except KeyboardInterrupt:
         bar.close()
-        print(f"wmplan: interrupted; the last finished epoch is saved in {args.out}; continue with --resume",
-              file=sys.stderr)
+        print(
+            f"wmplan: interrupted; the last finished epoch is saved in {args.out}; continue with --resume",
+            file=sys.stderr,
+        )
         return EXIT_INTERRUPTED
     bar.close()
     last = res.history[-1] if res.history else {}
-    summary = {"out": str(res.out_dir), "epochs": len(res.history), "seconds": round(time.perf_counter() - t0, 1),
-               "stopped_by_time_budget": res.stopped_early, "num_parameters": res.model.num_parameters(),
-               "last_epoch": last}
+    summary = {
+        "out": str(res.out_dir),
+        "epochs": len(res.history),
+        "seconds": round(time.perf_counter() - t0, 1),
+        "stopped_by_time_budget": res.stopped_early,
+        "num_parameters": res.model.num_parameters(),
+        "last_epoch": last,
+    }
     _write_json(args.json, summary)
     keys = [k for k in ("val/nll", "val/mse", "val/min_fde_k6_m") if k in last]
     shown = ", ".join(f"{k} {last[k]:.3f}" for k in keys)
-    print(f"trained {'deterministic' if args.deterministic else 'latent'} model ({res.model.num_parameters()} "
-          f"parameters) for {len(res.history)} epochs in {summary['seconds']} s -> {res.out_dir}; {shown}")
+    print(
+        f"trained {'deterministic' if args.deterministic else 'latent'} model ({res.model.num_parameters()} "
+        f"parameters) for {len(res.history)} epochs in {summary['seconds']} s -> {res.out_dir}; {shown}"
+    )
     if res.stopped_early:
-        print(f"wmplan: stopped by the {tcfg.minutes:g}-minute cap after {len(res.history)} of {tcfg.max_epochs} "
-              f"epochs, before the learning rate finished its decay (a larger --minutes or fewer --epochs lets it finish)",
-              file=sys.stderr)
+        print(
+            f"wmplan: stopped by the {tcfg.minutes:g}-minute cap after {len(res.history)} of {tcfg.max_epochs} "
+            f"epochs, before the learning rate finished its decay (a larger --minutes or fewer --epochs lets it finish)",
+            file=sys.stderr,
+        )
     return 0
 
 
@@ -380,8 +446,14 @@ def cmd_assess(args: argparse.Namespace) -> int:
     from wmplan.scenario import load_scenario
 
     scn = load_scenario(args.scenario)
-    result = assess(args.model_dir, scn, deterministic_dir=args.deterministic, episodes=args.episodes,
-                    seed=args.seed, progress=lambda msg: print(f"[assess] {msg}", file=sys.stderr, flush=True))
+    result = assess(
+        args.model_dir,
+        scn,
+        deterministic_dir=args.deterministic,
+        episodes=args.episodes,
+        seed=args.seed,
+        progress=lambda msg: print(f"[assess] {msg}", file=sys.stderr, flush=True),
+    )
     _write_json(args.json, result)
     keys = ["min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance", "collision_prob_gap"]
     print(f"{'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
@@ -411,9 +483,18 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         options["deterministic"] = args.deterministic
     detect = {"collision": args.detect} if args.detect is not None else None
     summary, _rows = compare_planners(
-        scn, names, episodes=args.episodes, seed=args.seed, options=options, batch_size=args.batch_size,
-        out_dir=Path(args.out) if args.out else None, progress=_progress_factory, reference=args.reference,
-        detect=detect, log=lambda line: print(f"[evaluate] {line}", file=sys.stderr, flush=True))
+        scn,
+        names,
+        episodes=args.episodes,
+        seed=args.seed,
+        options=options,
+        batch_size=args.batch_size,
+        out_dir=Path(args.out) if args.out else None,
+        progress=_progress_factory,
+        reference=args.reference,
+        detect=detect,
+        log=lambda line: print(f"[evaluate] {line}", file=sys.stderr, flush=True),
+    )
     _write_json(args.json, summary)
     print(format_table(summary["results"]))
     if summary["comparisons"]:
@@ -422,9 +503,11 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         print(comparison_table(summary["comparisons"]))
     for name, c in summary["calibration"].items():
         if c.get("decisions"):
-            print(f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions; "
-                  f"{c['decisions_p_above_0_01']} predicted P > 0.01, {c['positives_p_above_0_01']} of them followed "
-                  f"by a collision ({c['positives']} in all)")
+            print(
+                f"calibration {name}: Brier {c['brier']:.4f}, ECE {c['ece']:.4f} over {c['decisions']} decisions; "
+                f"{c['decisions_p_above_0_01']} predicted P > 0.01, {c['positives_p_above_0_01']} of them followed "
+                f"by a collision ({c['positives']} in all)"
+            )
     print(CAUTION)
     return 0
 
@@ -462,9 +545,19 @@ def cmd_stress(args: argparse.Namespace) -> int:
     animate = None
     if not args.no_animation:
         animate = functools.partial(animate_failure, options=options)
-    report = run_stress(args.scenario, args.planner, args.budget, args.out, args.seed, workers=args.workers,
-                        scheduler=args.scheduler, planner_options=options or None, animate=animate, progress=True,
-                        knobs=knobs)
+    report = run_stress(
+        args.scenario,
+        args.planner,
+        args.budget,
+        args.out,
+        args.seed,
+        workers=args.workers,
+        scheduler=args.scheduler,
+        planner_options=options or None,
+        animate=animate,
+        progress=True,
+        knobs=knobs,
+    )
     _write_json(args.json, report)
     fp, mc = report["failure_prob"], report["plain_mc"]
 
@@ -475,7 +568,9 @@ def cmd_stress(args: argparse.Namespace) -> int:
         ci = d.get("ci95") or [None, None]
         return f"{num(d.get('estimate'))} [{num(ci[0])}, {num(ci[1])}]"
 
-    print(f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}")
+    print(
+        f"stress {args.planner} on {args.scenario}: {report['failures_found']} distinct failure(s) saved in {args.out}"
+    )
     print(f"  failure probability (importance sampling): {interval(fp)}, ESS {num(fp.get('ess'))}")
     print(f"  plain Monte Carlo, same budget:            {interval(mc)}")
     if args.triage:
@@ -492,8 +587,9 @@ def cmd_triage(args: argparse.Namespace) -> int:
     from wmplan.triage import format_triage, triage_run
 
     options = {k: v for k, v in (("model", args.model), ("deterministic", args.deterministic)) if v}
-    report = triage_run(args.run_dir, planner_options=options, seed=args.seed, max_failures=args.max_failures,
-                        progress=True)
+    report = triage_run(
+        args.run_dir, planner_options=options, seed=args.seed, max_failures=args.max_failures, progress=True
+    )
     _write_json(args.json, report)
     print(format_triage(report))
     print(f"wrote {Path(args.run_dir) / 'triage.json'}")
@@ -510,13 +606,16 @@ def cmd_replay(args: argparse.Namespace) -> int:
     info, row = replay_episode(args.failure, options)
     what = row.get("outcome") or ("collision" if row["collision"] else "off-road" if row["offroad"] else "no failure")
     again = is_failure(row)
-    print(f"{args.failure}: {info['planner']} on {info['scenario_file']}, seed {info['seed']}: "
-          f"{'fails again' if again else 'does NOT fail again'} ({what} at t = {row['time_s']:.1f} s)")
+    print(
+        f"{args.failure}: {info['planner']} on {info['scenario_file']}, seed {info['seed']}: "
+        f"{'fails again' if again else 'does NOT fail again'} ({what} at t = {row['time_s']:.1f} s)"
+    )
     if args.out:
         folder = Path(args.failure).parent
         merged = {**(info.get("planner_options") or {}), **options}
-        path = animate_failure(folder / info["scenario_file"], int(info["seed"]), info["planner"], Path(args.out),
-                               options=merged)
+        path = animate_failure(
+            folder / info["scenario_file"], int(info["seed"]), info["planner"], Path(args.out), options=merged
+        )
         print(f"wrote {path}")
     return 0 if again else 1
 
@@ -553,9 +652,13 @@ def build_parser() -> argparse.ArgumentParser:
     """The ``wmplan`` argument parser: every verb, its flags with their bounds, and what each verb writes."""
     from wmplan.caution import CAUTION
 
-    p = _Parser(prog="wmplan", description=(
-        "Learned stochastic world models of lane traffic, sampling MPC over their futures, and collision-risk "
-        "evaluation with confidence intervals. " + CAUTION))
+    p = _Parser(
+        prog="wmplan",
+        description=(
+            "Learned stochastic world models of lane traffic, sampling MPC over their futures, and collision-risk "
+            "evaluation with confidence intervals. " + CAUTION
+        ),
+    )
     sub = p.add_subparsers(dest="verb", metavar="VERB", parser_class=_Parser)
     sub.required = True
 
@@ -567,16 +670,32 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = sub.add_parser("simulate", help="roll out episodes with behaviour policies into a dataset folder")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
-    sp.add_argument("--episodes", type=_int_in(1, MAX_EPISODES), default=200,
-                    help=f"number of episodes, 1 to {MAX_EPISODES} (default 200)")
+    sp.add_argument(
+        "--episodes",
+        type=_int_in(1, MAX_EPISODES),
+        default=200,
+        help=f"number of episodes, 1 to {MAX_EPISODES} (default 200)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"dataset seed, {SEED_HELP} (default 0)")
     sp.add_argument("--out", required=True, metavar="DIR", help="dataset folder to write")
-    sp.add_argument("--batch-size", type=_int_in(1, MAX_BATCH), default=256,
-                    help=f"scenes simulated at once, 1 to {MAX_BATCH} (default 256)")
-    sp.add_argument("--policy-mix", type=_fraction, default=0.5,
-                    help="share of episodes driven by the exploring policy rather than the rules (default 0.5)")
-    sp.add_argument("--decision-every", type=_int_in(1, MAX_DECISION_EVERY), default=2,
-                    help=f"simulator steps per recorded decision, 1 to {MAX_DECISION_EVERY} (default 2, i.e. 0.2 s)")
+    sp.add_argument(
+        "--batch-size",
+        type=_int_in(1, MAX_BATCH),
+        default=256,
+        help=f"scenes simulated at once, 1 to {MAX_BATCH} (default 256)",
+    )
+    sp.add_argument(
+        "--policy-mix",
+        type=_fraction,
+        default=0.5,
+        help="share of episodes driven by the exploring policy rather than the rules (default 0.5)",
+    )
+    sp.add_argument(
+        "--decision-every",
+        type=_int_in(1, MAX_DECISION_EVERY),
+        default=2,
+        help=f"simulator steps per recorded decision, 1 to {MAX_DECISION_EVERY} (default 2, i.e. 0.2 s)",
+    )
     sp.add_argument("--overwrite", action="store_true", help="replace a dataset already in --out")
     sp.add_argument("--json", metavar="FILE", help="write a summary as JSON")
     sp.set_defaults(func=cmd_simulate, outputs=(("out", "dir"), ("json", "file")))
@@ -585,16 +704,26 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
     sp.add_argument("--out", required=True, metavar="FILE", help="FILE.png or FILE.gif (FILE.mp4 where ffmpeg exists)")
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
-    sp.add_argument("--step", type=_int_in(0, 10**6), default=None, help="simulator step to draw in a PNG (default: middle)")
+    sp.add_argument(
+        "--step", type=_int_in(0, 10**6), default=None, help="simulator step to draw in a PNG (default: middle)"
+    )
     sp.set_defaults(func=cmd_render, outputs=(("out", "file"),))
 
     sp = sub.add_parser("train", help="train the forward model (or its deterministic baseline) on a dataset")
     sp.add_argument("data_dir", help="dataset folder written by `wmplan simulate`")
     sp.add_argument("--out", required=True, metavar="MODEL_DIR")
-    sp.add_argument("--minutes", type=_float_in(0.0, MAX_MINUTES, low_open=True), default=None,
-                    help="wall-clock cap: training stops after the epoch that crosses it (default 4.5; at most a week)")
-    sp.add_argument("--epochs", type=_int_in(1, MAX_EPOCHS), default=None,
-                    help=f"epochs of 200 steps; the learning rate decays over them, 1 to {MAX_EPOCHS} (default 16)")
+    sp.add_argument(
+        "--minutes",
+        type=_float_in(0.0, MAX_MINUTES, low_open=True),
+        default=None,
+        help="wall-clock cap: training stops after the epoch that crosses it (default 4.5; at most a week)",
+    )
+    sp.add_argument(
+        "--epochs",
+        type=_int_in(1, MAX_EPOCHS),
+        default=None,
+        help=f"epochs of 200 steps; the learning rate decays over them, 1 to {MAX_EPOCHS} (default 16)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--deterministic", action="store_true", help="train the least-squares baseline without latent")
     sp.add_argument("--resume", action="store_true", help="continue from the newest checkpoint in --out")
@@ -605,38 +734,72 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("model_dir", help="latent model folder")
     sp.add_argument("--scenario", default="onramp-merge")
     sp.add_argument("--deterministic", metavar="DIR", default=None, help="deterministic model folder")
-    sp.add_argument("--episodes", type=_int_in(1, MAX_ASSESS_EPISODES), default=96,
-                    help=f"held-out episodes, 1 to {MAX_ASSESS_EPISODES} (default 96)")
+    sp.add_argument(
+        "--episodes",
+        type=_int_in(1, MAX_ASSESS_EPISODES),
+        default=96,
+        help=f"held-out episodes, 1 to {MAX_ASSESS_EPISODES} (default 96)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_assess, outputs=(("json", "file"),))
 
     sp = sub.add_parser("evaluate", help="closed-loop evaluation of planners in the true simulator")
     sp.add_argument("scenario", help="built-in scenario name or YAML file")
-    sp.add_argument("--planners", type=_name_list,
-                    default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
-                    help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle, "
-                         "a plug-in planner module:factory, or mpc+module:factory (the sampling planner over a "
-                         "plug-in predictor)")
+    sp.add_argument(
+        "--planners",
+        type=_name_list,
+        default="rules,mpc+latent,mpc+deterministic,mpc+constant-velocity,mpc+oracle",
+        help="comma-separated: rules, mpc+latent, mpc+deterministic, mpc+constant-velocity, mpc+oracle, "
+        "a plug-in planner module:factory, or mpc+module:factory (the sampling planner over a "
+        "plug-in predictor)",
+    )
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
-    sp.add_argument("--episodes", type=_int_in(1, MAX_EPISODES), default=200,
-                    help=f"episodes per planner, 1 to {MAX_EPISODES} (default 200)")
+    sp.add_argument(
+        "--episodes",
+        type=_int_in(1, MAX_EPISODES),
+        default=200,
+        help=f"episodes per planner, 1 to {MAX_EPISODES} (default 200)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--sampler", choices=["cem", "mppi"], default="cem")
-    sp.add_argument("--risk", choices=["penalty", "chance"], default="penalty",
-                    help="collision risk as a weighted penalty or as a chance constraint P(collision) <= epsilon")
-    sp.add_argument("--epsilon", type=_float_in(0.0, 1.0, low_open=True), default=0.05,
-                    help="chance-constraint level, in (0, 1] (default 0.05)")
-    sp.add_argument("--batch-size", type=_int_in(1, MAX_BATCH), default=50,
-                    help=f"episodes planned together, 1 to {MAX_BATCH} (default 50)")
-    sp.add_argument("--threads", type=_int_in(1, MAX_THREADS), default=2, help=f"torch threads, 1 to {MAX_THREADS} (default 2)")
-    sp.add_argument("--reference", metavar="PLANNER", default=None,
-                    help="compare every other planner with this one, pair by pair on the same seeds (default: "
-                         "mpc+oracle when it runs, else rules)")
-    sp.add_argument("--detect", type=_float_in(-1.0, 1.0), default=None, metavar="DIFF",
-                    help="size the power for this collision-rate difference (planner minus reference, e.g. 0.02) "
-                         "instead of the observed one")
+    sp.add_argument(
+        "--risk",
+        choices=["penalty", "chance"],
+        default="penalty",
+        help="collision risk as a weighted penalty or as a chance constraint P(collision) <= epsilon",
+    )
+    sp.add_argument(
+        "--epsilon",
+        type=_float_in(0.0, 1.0, low_open=True),
+        default=0.05,
+        help="chance-constraint level, in (0, 1] (default 0.05)",
+    )
+    sp.add_argument(
+        "--batch-size",
+        type=_int_in(1, MAX_BATCH),
+        default=50,
+        help=f"episodes planned together, 1 to {MAX_BATCH} (default 50)",
+    )
+    sp.add_argument(
+        "--threads", type=_int_in(1, MAX_THREADS), default=2, help=f"torch threads, 1 to {MAX_THREADS} (default 2)"
+    )
+    sp.add_argument(
+        "--reference",
+        metavar="PLANNER",
+        default=None,
+        help="compare every other planner with this one, pair by pair on the same seeds (default: "
+        "mpc+oracle when it runs, else rules)",
+    )
+    sp.add_argument(
+        "--detect",
+        type=_float_in(-1.0, 1.0),
+        default=None,
+        metavar="DIFF",
+        help="size the power for this collision-rate difference (planner minus reference, e.g. 0.02) "
+        "instead of the observed one",
+    )
     sp.add_argument("--out", metavar="DIR", help="write episodes.parquet, calibration.parquet, summary.json")
     sp.add_argument("--json", metavar="FILE", help="write the summary JSON")
     sp.set_defaults(func=cmd_evaluate, outputs=(("out", "dir"), ("json", "file")))
@@ -644,8 +807,12 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("sweep", help="run a sweep file over scenario variants and planners (resumable)")
     sp.add_argument("file", help="sweep YAML file")
     sp.add_argument("--out", required=True, metavar="DIR")
-    sp.add_argument("--workers", type=_int_in(1, MAX_WORKERS), default=1,
-                    help=f"local worker processes, 1 to {MAX_WORKERS} (default 1)")
+    sp.add_argument(
+        "--workers",
+        type=_int_in(1, MAX_WORKERS),
+        default=1,
+        help=f"local worker processes, 1 to {MAX_WORKERS} (default 1)",
+    )
     sp.add_argument("--scheduler", metavar="ADDRESS", help="run on a Dask cluster, e.g. tcp://127.0.0.1:8786")
     sp.add_argument("--json", metavar="FILE", help="also write the summary JSON here")
     sp.set_defaults(func=cmd_sweep, outputs=(("out", "dir"), ("json", "file")))
@@ -655,34 +822,56 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--planner", default="rules", help="a planner name or plug-in import path, as for evaluate")
     sp.add_argument("--model", metavar="MODEL_DIR", help="latent model (for mpc+latent)")
     sp.add_argument("--deterministic", metavar="DIR", help="least-squares model (for mpc+deterministic)")
-    sp.add_argument("--budget", type=_int_in(1, MAX_BUDGET), default=2000,
-                    help=f"episodes per estimator, 1 to {MAX_BUDGET} (default 2000)")
+    sp.add_argument(
+        "--budget",
+        type=_int_in(1, MAX_BUDGET),
+        default=2000,
+        help=f"episodes per estimator, 1 to {MAX_BUDGET} (default 2000)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--workers", type=_int_in(1, MAX_WORKERS), default=1, help=f"1 to {MAX_WORKERS} (default 1)")
     sp.add_argument("--scheduler", metavar="ADDRESS")
     sp.add_argument("--no-animation", action="store_true", help="do not draw the saved failures")
-    sp.add_argument("--knobs", metavar="NAMES", type=_name_list, help="vary only these scenario knobs, comma-separated (default all: "
-                    "density, yield_prob, hard_brake_rate, desired_speed, ego_speed, ego_brake)")
-    sp.add_argument("--triage", action="store_true",
-                    help="then triage the saved failures (as `wmplan triage DIR`: triage.json and figures)")
+    sp.add_argument(
+        "--knobs",
+        metavar="NAMES",
+        type=_name_list,
+        help="vary only these scenario knobs, comma-separated (default all: "
+        "density, yield_prob, hard_brake_rate, desired_speed, ego_speed, ego_brake)",
+    )
+    sp.add_argument(
+        "--triage",
+        action="store_true",
+        help="then triage the saved failures (as `wmplan triage DIR`: triage.json and figures)",
+    )
     sp.add_argument("--out", required=True, metavar="DIR")
     sp.add_argument("--json", metavar="FILE")
     sp.set_defaults(func=cmd_stress, outputs=(("out", "dir"), ("json", "file")))
 
-    sp = sub.add_parser("replay", help="run a failure saved by `wmplan stress` again; exit 0 if it fails again, 1 if not")
+    sp = sub.add_parser(
+        "replay", help="run a failure saved by `wmplan stress` again; exit 0 if it fails again, 1 if not"
+    )
     sp.add_argument("failure", help="the failure's .json record (or the .yaml beside it)")
     sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
     sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
     sp.add_argument("--out", metavar="FILE", help="also draw the replayed episode: FILE.gif (or .mp4 with ffmpeg)")
     sp.set_defaults(func=cmd_replay, outputs=(("out", "file"),))
 
-    sp = sub.add_parser("triage", help="was each failure of an evaluate or stress folder the prediction's, the "
-                        "plan's, or past saving? writes RUN_DIR/triage.json and a figure per failure")
+    sp = sub.add_parser(
+        "triage",
+        help="was each failure of an evaluate or stress folder the prediction's, the "
+        "plan's, or past saving? writes RUN_DIR/triage.json and a figure per failure",
+    )
     sp.add_argument("run_dir", help="an `evaluate --out` or `stress --out` folder")
     sp.add_argument("--model", metavar="MODEL_DIR", help="use this latent model instead of the recorded folder")
     sp.add_argument("--deterministic", metavar="DIR", help="use this least-squares model instead of the recorded one")
-    sp.add_argument("--max-failures", type=_int_in(1, MAX_EPISODES), default=None, metavar="N",
-                    help=f"triage at most N failures, 1 to {MAX_EPISODES} (default all)")
+    sp.add_argument(
+        "--max-failures",
+        type=_int_in(1, MAX_EPISODES),
+        default=None,
+        metavar="N",
+        help=f"triage at most N failures, 1 to {MAX_EPISODES} (default all)",
+    )
     sp.add_argument("--seed", type=_seed, default=0, help=f"seed of the searches, {SEED_HELP} (default 0)")
     sp.add_argument("--json", metavar="FILE", help="also write the triage report here")
     sp.set_defaults(func=cmd_triage, outputs=(("json", "file"), ("run_dir", "dir")))
@@ -693,7 +882,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = sub.add_parser("bench", help="run the benchmarks and print their JSON")
     sp.add_argument("--json", metavar="FILE", help="write all results to FILE")
-    sp.add_argument("--only", metavar="LIST", type=_name_list, help=f"comma-separated subset of: {', '.join(BENCHMARKS)}")
+    sp.add_argument(
+        "--only", metavar="LIST", type=_name_list, help=f"comma-separated subset of: {', '.join(BENCHMARKS)}"
+    )
     sp.add_argument("--quick", action="store_true", help="short runs (for a smoke test, not for numbers)")
     sp.set_defaults(func=cmd_bench, outputs=(("json", "file"),))
 

@@ -61,18 +61,31 @@ def _example_decision(out: Path, model_dir: Path, det_dir: Path, seed: int) -> N
     gen = torch.Generator().manual_seed(seed)
     res = planner.plan(ctx, generator=gen, keep=True)
     chosen = int(res.chosen[0])
-    plan = res.plans[:, chosen:chosen + 1]
+    plan = res.plans[:, chosen : chosen + 1]
     latent, _ = load_model(model_dir)
     det, _ = load_model(det_dir)
     model_rows = latent.sample(ctx.model_batch(), plan, 32, generator=gen)["rows"][0, 0].numpy()
     det_rows = det.sample(ctx.model_batch(), plan, 1, generator=gen)["rows"][0, 0, 0].numpy()
     oracle = OraclePredictor(params, latent.ego, 0.2).predict(ctx, plan, 32, generator=gen)[0, 0].numpy()
-    np.savez(out / "futures.npz", history=ctx.history[0].numpy(), model_rows=model_rows, oracle_rows=oracle,
-             deterministic_rows=det_rows, anchor_pose=ctx.ego_pose[0])
+    np.savez(
+        out / "futures.npz",
+        history=ctx.history[0].numpy(),
+        model_rows=model_rows,
+        oracle_rows=oracle,
+        deterministic_rows=det_rows,
+        anchor_pose=ctx.ego_pose[0],
+    )
     ego_paths = res.futures[0, :, 0, :, 0, :5].numpy()  # (C, H, 5)
-    np.savez(out / "candidates.npz", ego_paths=ego_paths, costs=res.costs[0].numpy(),
-             p_collision=res.risk["p_collision"][0].numpy(), chosen=np.array(chosen),
-             futures=res.futures[0, chosen].numpy(), current=ctx.history[0, -1].numpy(), anchor_pose=ctx.ego_pose[0])
+    np.savez(
+        out / "candidates.npz",
+        ego_paths=ego_paths,
+        costs=res.costs[0].numpy(),
+        p_collision=res.risk["p_collision"][0].numpy(),
+        chosen=np.array(chosen),
+        futures=res.futures[0, chosen].numpy(),
+        current=ctx.history[0, -1].numpy(),
+        anchor_pose=ctx.ego_pose[0],
+    )
 
 
 def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
@@ -98,6 +111,7 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
         now = time.perf_counter()
         stages[name] = round(now - mark[0], 1)
         mark[0] = now
+
     out = Path(out)
     out.mkdir(parents=True, exist_ok=True)
     torch.set_num_threads(2)
@@ -117,18 +131,32 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     # --- train ---
     # Epochs sized to fit the demo's ten minutes on two cores (about 12 s each, measured); the learning rate decays
     # over them, and the minutes are a cap in case the machine is slower.
-    for kind, det, epochs, minutes in (("latent", False, 2 if quick else 10, 0.3 if quick else 2.5),
-                                       ("deterministic", True, 2 if quick else 4, 0.2 if quick else 1.2)):
+    for kind, det, epochs, minutes in (
+        ("latent", False, 2 if quick else 10, 0.3 if quick else 2.5),
+        ("deterministic", True, 2 if quick else 4, 0.2 if quick else 1.2),
+    ):
         tcfg = TrainConfig(minutes=minutes, seed=seed, max_epochs=epochs, steps_per_epoch=20 if quick else 200)
         _say(f"3/7 training the {kind} model (at most {minutes} min)")
         with _bar(tcfg.max_epochs * tcfg.steps_per_epoch, f"train {kind}") as bar:
-            train(out / "data", out / kind, model_cfg=ModelConfig(deterministic=det), train_cfg=tcfg,
-                  progress=lambda n, _m, b=bar: b.update(n))
+            train(
+                out / "data",
+                out / kind,
+                model_cfg=ModelConfig(deterministic=det),
+                train_cfg=tcfg,
+                progress=lambda n, _m, b=bar: b.update(n),
+            )
         lap(f"train_{kind}")
     # --- assess ---
     _say("4/7 assessing the models against constant velocity and the oracle")
-    result = assess(out / "latent", scn, deterministic_dir=out / "deterministic", episodes=16 if quick else 64,
-                    oracle_states=6 if quick else 24, oracle_samples=8 if quick else 32, seed=seed)
+    result = assess(
+        out / "latent",
+        scn,
+        deterministic_dir=out / "deterministic",
+        episodes=16 if quick else 64,
+        oracle_states=6 if quick else 24,
+        oracle_samples=8 if quick else 32,
+        seed=seed,
+    )
     atomic_write_json(out / "assess.json", result)
     lap("assess")
     # --- one decision, for the figures ---
@@ -140,27 +168,43 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     # The oracle plans by running the true simulator for every candidate and sample (64 x 8 futures of 30 steps per
     # decision): about 20 s per episode on two cores, so the demo gives it fewer episodes (the table shows n).
     n_oracle = 4 if quick else 6
-    _say(f"6/7 closed-loop evaluation of {len(BUILTIN_PLANNERS)} planners, {n_eval} episodes each "
-         f"({n_oracle} for mpc+oracle)")
+    _say(
+        f"6/7 closed-loop evaluation of {len(BUILTIN_PLANNERS)} planners, {n_eval} episodes each "
+        f"({n_oracle} for mpc+oracle)"
+    )
 
     def bar_factory(label: str, total: int):
         bar = _bar(total, label).__enter__()
         return bar.update, bar.close
 
-    summary, _rows = compare_planners(scn, BUILTIN_PLANNERS, episodes=n_eval, seed=seed,
-                                      options={"model": out / "latent", "deterministic": out / "deterministic"},
-                                      episodes_by_planner={"mpc+oracle": n_oracle}, batch_size=n_eval,
-                                      out_dir=out / "evaluate", progress=bar_factory,
-                                      log=lambda line: lap(f"evaluate_{line.split(':')[0]}"))
+    summary, _rows = compare_planners(
+        scn,
+        BUILTIN_PLANNERS,
+        episodes=n_eval,
+        seed=seed,
+        options={"model": out / "latent", "deterministic": out / "deterministic"},
+        episodes_by_planner={"mpc+oracle": n_oracle},
+        batch_size=n_eval,
+        out_dir=out / "evaluate",
+        progress=bar_factory,
+        log=lambda line: lap(f"evaluate_{line.split(':')[0]}"),
+    )
     results = summary["results"]
     print(format_table(results), file=sys.stderr)
     # --- report ---
     _say("7/7 writing the report")
     html, md = build_report(out)
     lap("report")
-    atomic_write_json(out / "demo.json", {"seconds": round(time.perf_counter() - t_start, 1), "quick": quick,
-                                          "stage_seconds": stages,
-                                          "report_html": str(html), "report_md": str(md)})
+    atomic_write_json(
+        out / "demo.json",
+        {
+            "seconds": round(time.perf_counter() - t_start, 1),
+            "quick": quick,
+            "stage_seconds": stages,
+            "report_html": str(html),
+            "report_md": str(md),
+        },
+    )
     _say(f"done in {time.perf_counter() - t_start:.0f} s")
     return html
 

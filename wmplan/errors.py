@@ -71,8 +71,14 @@ def _field_from_message(field: str, msg: str) -> tuple[str, str]:
     return f"{field}.{path}", rest
 
 
-def format_validation_error(source: str, err, *, unknown_key: str = "unknown key",
-                            model_hints: dict[str, str] | None = None, skip: tuple[str, ...] = ()) -> str:
+def format_validation_error(
+    source: str,
+    err,
+    *,
+    unknown_key: str = "unknown key",
+    model_hints: dict[str, str] | None = None,
+    skip: tuple[str, ...] = (),
+) -> str:
     """One line for a pydantic ``ValidationError``: file, field, value and rule of the first problem, plus how many
     more there are. The one formatter of the package (scenario files, sweep files, manifests, checkpoints).
 
@@ -102,7 +108,7 @@ def format_validation_error(source: str, err, *, unknown_key: str = "unknown key
         msg = "must be a mapping"
     elif kind == "value_error" or msg.startswith("Value error, "):
         if msg.startswith("Value error, "):
-            msg = msg[len("Value error, "):]
+            msg = msg[len("Value error, ") :]
         field, msg = _field_from_message(field, msg)
     value = first.get("input")
     # The value is shown unless there is none, it is a whole mapping, or our own check already states it.

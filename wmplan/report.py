@@ -42,25 +42,56 @@ from wmplan.io import atomic_write_bytes, atomic_write_text, read_json_object
 CAUTIONS = (CAUTION_DETAIL, CAUTION)
 
 ASSESS_METRICS = (
-    ("min_ade_k6_m", "minADE, K = 6 [m]", "best of 6 sampled futures per object: mean distance to the true track "
-                                          "over the horizon; lower is better"),
-    ("min_fde_k6_m", "minFDE, K = 6 [m]", "best of 6: distance to the true position at the end of the horizon; "
-                                          "lower is better"),
-    ("nll", "NLL [nats]", "negative log-likelihood of each true position (x, y) per object and step under the "
-                          "predictive distribution; lower is better"),
-    ("coverage_90", "coverage of 90% intervals [1]", "share of true coordinates inside the central 90% predictive "
-                                                     "interval; 0.90 is calibrated, less is overconfident"),
-    ("energy_distance", "energy distance to oracle [m]", "distance between the distribution of predicted futures and "
-                                                         "the true simulator's (drivers' traits known); 0 is equal"),
-    ("collision_prob_gap", "|ΔP(collision)| vs oracle [1]", "mean absolute gap between predicted and true collision "
-                                                            "probability of the same plans (traits known); lower is "
-                                                            "better"),
-    ("energy_distance_resampled", "energy distance, traits re-drawn [m]", "as above, against an oracle that re-draws "
-                                                                          "the drivers' hidden traits"),
-    ("collision_prob_gap_resampled", "|ΔP(collision)|, traits re-drawn [1]", "as above, against the oracle that "
-                                                                             "re-draws the traits"),
-    ("collision_prob_mean", "mean predicted P(collision) [1]", "average predicted collision probability over the "
-                                                               "assessed states and plans"),
+    (
+        "min_ade_k6_m",
+        "minADE, K = 6 [m]",
+        "best of 6 sampled futures per object: mean distance to the true track over the horizon; lower is better",
+    ),
+    (
+        "min_fde_k6_m",
+        "minFDE, K = 6 [m]",
+        "best of 6: distance to the true position at the end of the horizon; lower is better",
+    ),
+    (
+        "nll",
+        "NLL [nats]",
+        "negative log-likelihood of each true position (x, y) per object and step under the "
+        "predictive distribution; lower is better",
+    ),
+    (
+        "coverage_90",
+        "coverage of 90% intervals [1]",
+        "share of true coordinates inside the central 90% predictive "
+        "interval; 0.90 is calibrated, less is overconfident",
+    ),
+    (
+        "energy_distance",
+        "energy distance to oracle [m]",
+        "distance between the distribution of predicted futures and "
+        "the true simulator's (drivers' traits known); 0 is equal",
+    ),
+    (
+        "collision_prob_gap",
+        "|ΔP(collision)| vs oracle [1]",
+        "mean absolute gap between predicted and true collision "
+        "probability of the same plans (traits known); lower is "
+        "better",
+    ),
+    (
+        "energy_distance_resampled",
+        "energy distance, traits re-drawn [m]",
+        "as above, against an oracle that re-draws the drivers' hidden traits",
+    ),
+    (
+        "collision_prob_gap_resampled",
+        "|ΔP(collision)|, traits re-drawn [1]",
+        "as above, against the oracle that re-draws the traits",
+    ),
+    (
+        "collision_prob_mean",
+        "mean predicted P(collision) [1]",
+        "average predicted collision probability over the assessed states and plans",
+    ),
     ("num_objects", "objects assessed [count]", "objects behind the displacement numbers"),
 )
 """(key of ``assess.json``, column heading with unit, one-line explanation) of each assessment metric."""
@@ -166,8 +197,6 @@ def _ci(value: object, ci: object, digits: int = 3) -> str:
 # --- reading the run folder ---------------------------------------------------------------------------------------
 
 
-
-
 def _read_npz(path: Path) -> dict[str, np.ndarray]:
     try:
         with np.load(path, allow_pickle=False) as npz:
@@ -224,25 +253,39 @@ def _scenario_section(doc: _Doc, scenario, manifest: dict | None) -> None:
             ["road", f"{road.length_m:.0f} m long, {road.num_lanes} lanes of {road.lane_width_m:.2f} m ({lanes})"],
             ["speed limit", f"{road.speed_limit_mps:.1f} m/s ({road.speed_limit_mps * 3.6:.0f} km/h)"],
             ["episode", f"{scenario.duration_s:.1f} s in steps of {scenario.dt_s:.2f} s"],
-            ["traffic", f"up to {traffic.max_vehicles} vehicles; density per lane "
-                        f"{', '.join(f'{d:g}' for d in traffic.density_veh_per_km)} veh/km"],
-            ["drivers", f"desired speed {drivers.desired_speed_mps.mean:.1f} ± {drivers.desired_speed_mps.std:.1f} m/s, "
-                        f"time headway {drivers.time_headway_s.mean:.2f} s, yield probability "
-                        f"{drivers.yield_prob.mean:.2f}, hard braking {drivers.hard_brake_rate_per_min:g} per minute"],
-            ["ego", f"starts in lane {ego.lane} at x = {ego.x_m:.0f} m, {ego.speed_mps:.1f} m/s; goal: x = "
-                    f"{ego.goal.x_m:.0f} m in lane(s) {', '.join(str(v) for v in ego.goal.lanes)}"],
+            [
+                "traffic",
+                f"up to {traffic.max_vehicles} vehicles; density per lane "
+                f"{', '.join(f'{d:g}' for d in traffic.density_veh_per_km)} veh/km",
+            ],
+            [
+                "drivers",
+                f"desired speed {drivers.desired_speed_mps.mean:.1f} ± {drivers.desired_speed_mps.std:.1f} m/s, "
+                f"time headway {drivers.time_headway_s.mean:.2f} s, yield probability "
+                f"{drivers.yield_prob.mean:.2f}, hard braking {drivers.hard_brake_rate_per_min:g} per minute",
+            ],
+            [
+                "ego",
+                f"starts in lane {ego.lane} at x = {ego.x_m:.0f} m, {ego.speed_mps:.1f} m/s; goal: x = "
+                f"{ego.goal.x_m:.0f} m in lane(s) {', '.join(str(v) for v in ego.goal.lanes)}",
+            ],
         ]
         doc.add(_Table(["", "value"], rows))
     if manifest is not None:
         doc.sections.append("dataset")
         out = manifest.get("outcomes") if isinstance(manifest.get("outcomes"), dict) else {}
-        rows = [["episodes", _fmt(manifest.get("num_episodes"))],
-                ["decisions per episode", _fmt(manifest.get("num_decisions"))],
-                ["decision step [s]", _fmt(manifest.get("decision_dt_s"), 2)],
-                ["share driven by the exploring policy [1]", _fmt(manifest.get("policy_mix"), 2)],
-                ["seed", _fmt(manifest.get("seed"))]]
-        words = {"collided": "episodes with a collision", "offroad": "episodes that left the road",
-                 "reached_goal": "episodes that reached the goal"}
+        rows = [
+            ["episodes", _fmt(manifest.get("num_episodes"))],
+            ["decisions per episode", _fmt(manifest.get("num_decisions"))],
+            ["decision step [s]", _fmt(manifest.get("decision_dt_s"), 2)],
+            ["share driven by the exploring policy [1]", _fmt(manifest.get("policy_mix"), 2)],
+            ["seed", _fmt(manifest.get("seed"))],
+        ]
+        words = {
+            "collided": "episodes with a collision",
+            "offroad": "episodes that left the road",
+            "reached_goal": "episodes that reached the goal",
+        }
         rows += [[words.get(k, k.replace("_", " ")), _fmt(v)] for k, v in out.items()]
         doc.add(_Heading(3, "Training data (data/manifest.json)"), _Table(["", "value"], rows, [False, True]))
 
@@ -252,13 +295,18 @@ def _model_section(doc: _Doc, run_dir: Path, params) -> None:
     from wmplan.viz.plots import training_figure
 
     doc.add(_Heading(2, "Forward model"))
-    runs = {name: run_dir / name / "metrics.csv" for name in ("latent", "deterministic")
-            if (run_dir / name / "metrics.csv").is_file()}
+    runs = {
+        name: run_dir / name / "metrics.csv"
+        for name in ("latent", "deterministic")
+        if (run_dir / name / "metrics.csv").is_file()
+    }
     if runs:
         try:
             fig = training_figure(runs, title="Training curves (" + " and ".join(runs) + " model)")
-            doc.add(_Heading(3, "Training"), _figure("training", fig, "Per-epoch training (solid) and validation "
-                                                     "(dashed) values from metrics.csv."))
+            doc.add(
+                _Heading(3, "Training"),
+                _figure("training", fig, "Per-epoch training (solid) and validation (dashed) values from metrics.csv."),
+            )
             doc.sections.append("training")
         except WmplanError as err:
             doc.skip(f"Training curves skipped: {err}")
@@ -282,12 +330,23 @@ def _model_section(doc: _Doc, run_dir: Path, params) -> None:
             if missing:
                 raise ConfigError(f"{path}: missing array(s) {', '.join(missing)}")
             pose = arr.get("anchor_pose")
-            fig = futures_figure(arr["history"], arr["model_rows"], arr.get("oracle_rows"),
-                                 params if pose is not None else None, deterministic_rows=arr.get("deterministic_rows"),
-                                 anchor_pose=pose)
-            doc.add(_Heading(3, "Sampled futures at one decision"), _figure(
-                "futures", fig, "Futures sampled from the learned model (violet) against the true simulator's (teal) "
-                "and the least-squares model's single prediction (dark grey, dashed); ego in deep orange."))
+            fig = futures_figure(
+                arr["history"],
+                arr["model_rows"],
+                arr.get("oracle_rows"),
+                params if pose is not None else None,
+                deterministic_rows=arr.get("deterministic_rows"),
+                anchor_pose=pose,
+            )
+            doc.add(
+                _Heading(3, "Sampled futures at one decision"),
+                _figure(
+                    "futures",
+                    fig,
+                    "Futures sampled from the learned model (violet) against the true simulator's (teal) "
+                    "and the least-squares model's single prediction (dark grey, dashed); ego in deep orange.",
+                ),
+            )
             doc.sections.append("futures")
         except WmplanError as err:
             doc.skip(f"Futures figure skipped: {err}")
@@ -299,15 +358,26 @@ def _assessment(doc: _Doc, data: dict) -> None:
         raise ConfigError("assess.json: 'predictors' must map each predictor name to a dict of metrics")
     names = list(preds)
     known = [m for m in ASSESS_METRICS if any(m[0] in preds[n] for n in names)]
-    extra = sorted({k for n in names for k, v in preds[n].items()
-                    if k not in {m[0] for m in ASSESS_METRICS} and isinstance(v, (int, float))})
+    extra = sorted(
+        {
+            k
+            for n in names
+            for k, v in preds[n].items()
+            if k not in {m[0] for m in ASSESS_METRICS} and isinstance(v, (int, float))
+        }
+    )
     rows = [[label, *[_fmt(preds[n].get(key)) for n in names], text] for key, label, text in known]
     rows += [[key, *[_fmt(preds[n].get(key)) for n in names], "(no description)"] for key in extra]
     doc.add(_Heading(3, "Assessment against held-out episodes and the oracle (assess.json)"))
     facts = []
-    for key, label in (("scenario", "scenario"), ("heldout_episodes", "held-out episodes"),
-                       ("heldout_windows", "windows"), ("oracle_states", "oracle states"),
-                       ("oracle_samples", "oracle futures per plan"), ("seed", "seed")):
+    for key, label in (
+        ("scenario", "scenario"),
+        ("heldout_episodes", "held-out episodes"),
+        ("heldout_windows", "windows"),
+        ("oracle_states", "oracle states"),
+        ("oracle_samples", "oracle futures per plan"),
+        ("seed", "seed"),
+    ):
         if key in data:
             facts.append(f"{label} {data[key]}")
     if facts:
@@ -315,8 +385,13 @@ def _assessment(doc: _Doc, data: dict) -> None:
     doc.add(_Table(["metric", *names, "what it measures"], rows, [False, *[True] * len(names), False]))
     oracle = data.get("oracle_collision_prob_mean")
     if isinstance(oracle, dict):
-        doc.add(_Para("True collision probability of the assessed plans (oracle): "
-                      + ", ".join(f"{k} {_fmt(v)}" for k, v in oracle.items()) + "."))
+        doc.add(
+            _Para(
+                "True collision probability of the assessed plans (oracle): "
+                + ", ".join(f"{k} {_fmt(v)}" for k, v in oracle.items())
+                + "."
+            )
+        )
     doc.sections.append("assessment")
 
 
@@ -334,28 +409,58 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
             results = summary.get("results")
             if not isinstance(results, dict) or not results or not all(isinstance(r, dict) for r in results.values()):
                 raise ConfigError(f"{path}: 'results' must map each planner to its summary")
-            facts = [f"{label} {summary[k]}" for k, label in (("scenario", "scenario"), ("episodes", "episodes"),
-                                                               ("seed", "seed")) if k in summary]
+            facts = [
+                f"{label} {summary[k]}"
+                for k, label in (("scenario", "scenario"), ("episodes", "episodes"), ("seed", "seed"))
+                if k in summary
+            ]
             if facts:
-                doc.add(_Para("Episodes in the true simulator, " + "; ".join(facts)
-                              + ". Rates with Wilson 95% intervals, means with t intervals."))
-            header = ["planner", "episodes", "collision [95% CI]", "success [95% CI]", "off-road [95% CI]",
-                      "mean speed [m/s]", "progress [m]", "near miss [95% CI]", "median min TTC [s]",
-                      "decision [ms, median]",
-                      "collisions by side touched"]
-            rows = [[name, _fmt(r.get("episodes")), _ci(r.get("collision_rate"), r.get("collision_ci95")),
-                     _ci(r.get("success_rate"), r.get("success_ci95")), _ci(r.get("offroad_rate"), r.get("offroad_ci95")),
-                     _ci(r.get("mean_speed_mps"), r.get("mean_speed_ci95"), 1),
-                     _ci(r.get("progress_m"), r.get("progress_ci95"), 0),
-                     _ci(r.get("near_miss_rate"), r.get("near_miss_ci95")), _fmt(r.get("min_ttc_s_median"), 2),
-                     _fmt(r.get("decision_ms_median"), 1),
-                     ", ".join(f"{k} {v}" for k, v in (r.get("collisions_by_contact_side") or {}).items()) or "-"]
-                    for name, r in results.items()]
+                doc.add(
+                    _Para(
+                        "Episodes in the true simulator, "
+                        + "; ".join(facts)
+                        + ". Rates with Wilson 95% intervals, means with t intervals."
+                    )
+                )
+            header = [
+                "planner",
+                "episodes",
+                "collision [95% CI]",
+                "success [95% CI]",
+                "off-road [95% CI]",
+                "mean speed [m/s]",
+                "progress [m]",
+                "near miss [95% CI]",
+                "median min TTC [s]",
+                "decision [ms, median]",
+                "collisions by side touched",
+            ]
+            rows = [
+                [
+                    name,
+                    _fmt(r.get("episodes")),
+                    _ci(r.get("collision_rate"), r.get("collision_ci95")),
+                    _ci(r.get("success_rate"), r.get("success_ci95")),
+                    _ci(r.get("offroad_rate"), r.get("offroad_ci95")),
+                    _ci(r.get("mean_speed_mps"), r.get("mean_speed_ci95"), 1),
+                    _ci(r.get("progress_m"), r.get("progress_ci95"), 0),
+                    _ci(r.get("near_miss_rate"), r.get("near_miss_ci95")),
+                    _fmt(r.get("min_ttc_s_median"), 2),
+                    _fmt(r.get("decision_ms_median"), 1),
+                    ", ".join(f"{k} {v}" for k, v in (r.get("collisions_by_contact_side") or {}).items()) or "-",
+                ]
+                for name, r in results.items()
+            ]
             doc.add(_Table(header, rows, [False] + [True] * (len(header) - 2) + [False]))
             _comparisons(doc, summary)
             fig = closed_loop_figure(results)
-            doc.add(_figure("closed_loop", fig, "Collision and success rates per planner; bars end at the rate, "
-                            "whiskers at the 95% interval."))
+            doc.add(
+                _figure(
+                    "closed_loop",
+                    fig,
+                    "Collision and success rates per planner; bars end at the rate, whiskers at the 95% interval.",
+                )
+            )
             doc.sections.append("closed_loop")
         except WmplanError as err:
             doc.skip(f"Closed-loop results skipped: {err}")
@@ -374,10 +479,14 @@ def _comparisons(doc: _Doc, summary: dict) -> None:
     if not isinstance(comparisons, dict) or not comparisons:
         return
     rows, notes = comparison_rows(comparisons)
-    doc.add(_Heading(3, f"Paired comparisons with {summary.get('reference')}"),
-            _Para("Every planner met the same scene seeds, so each is compared with the reference pair by pair. "
-                  + TABLE_METHODS),
-            _Table(list(TABLE_HEADER), rows, [False, False] + [True] * (len(TABLE_HEADER) - 2)))
+    doc.add(
+        _Heading(3, f"Paired comparisons with {summary.get('reference')}"),
+        _Para(
+            "Every planner met the same scene seeds, so each is compared with the reference pair by pair. "
+            + TABLE_METHODS
+        ),
+        _Table(list(TABLE_HEADER), rows, [False, False] + [True] * (len(TABLE_HEADER) - 2)),
+    )
     if notes:
         doc.add(_List([f"[{i}] {note}" for i, note in enumerate(notes, start=1)]))
 
@@ -391,12 +500,25 @@ def _candidates(doc: _Doc, path: Path, params) -> None:
         if missing:
             raise ConfigError(f"{path}: missing array(s) {', '.join(missing)}")
         pose = arr.get("anchor_pose")
-        fig = candidates_figure(arr["ego_paths"], arr["costs"], arr["p_collision"], arr["chosen"][()],
-                                arr.get("futures"), current=arr.get("current"),
-                                params=params if pose is not None else None, anchor_pose=pose)
-        doc.add(_Heading(3, "One decision: candidate plans and their risk"), _figure(
-            "candidates", fig, "Candidate paths of the ego coloured by predicted P(collision), the chosen one outlined "
-            "in black, the predicted futures of the chosen plan in violet; below, cost against P(collision)."))
+        fig = candidates_figure(
+            arr["ego_paths"],
+            arr["costs"],
+            arr["p_collision"],
+            arr["chosen"][()],
+            arr.get("futures"),
+            current=arr.get("current"),
+            params=params if pose is not None else None,
+            anchor_pose=pose,
+        )
+        doc.add(
+            _Heading(3, "One decision: candidate plans and their risk"),
+            _figure(
+                "candidates",
+                fig,
+                "Candidate paths of the ego coloured by predicted P(collision), the chosen one outlined "
+                "in black, the predicted futures of the chosen plan in violet; below, cost against P(collision).",
+            ),
+        )
         doc.sections.append("candidates")
     except WmplanError as err:
         doc.skip(f"Candidates figure skipped: {err}")
@@ -407,28 +529,68 @@ def _calibration_section(doc: _Doc, summary: dict | None) -> None:
 
     doc.add(_Heading(2, "Calibration of predicted risk"))
     calib = summary.get("calibration") if summary is not None else None
-    usable = {k: v for k, v in calib.items() if isinstance(v, dict) and v.get("bins")} if isinstance(calib, dict) else {}
+    usable = (
+        {k: v for k, v in calib.items() if isinstance(v, dict) and v.get("bins")} if isinstance(calib, dict) else {}
+    )
     if not usable:
         doc.skip("No calibration records in evaluate/summary.json (no planner predicted risk, or no evaluation).")
         return
-    doc.add(_Para("At every decision a planner predicts the collision probability of the plan it chose; this compares "
-                  "those predictions with whether a collision followed within the planning horizon. Brier score "
-                  "(Brier 1950) and expected calibration error (equal-width bins) are lower-is-better."))
-    rows = [[name, _fmt(c.get("decisions")), _fmt(c.get("decisions_p_above_0_01")),
-             _fmt(c.get("positives_p_above_0_01")), _fmt(c.get("positives")), _fmt(c.get("brier"), 4),
-             _fmt(c.get("ece"), 4), _fmt(c.get("mean_predicted"), 4), _fmt(c.get("observed_rate"), 4)]
-            for name, c in usable.items()]
-    doc.add(_Table(["planner", "decisions", "with P > 0.01", "of those followed by a collision",
-                    "followed by a collision (all)", "Brier", "ECE", "mean predicted P", "observed rate"], rows,
-                   [False] + [True] * 8))
+    doc.add(
+        _Para(
+            "At every decision a planner predicts the collision probability of the plan it chose; this compares "
+            "those predictions with whether a collision followed within the planning horizon. Brier score "
+            "(Brier 1950) and expected calibration error (equal-width bins) are lower-is-better."
+        )
+    )
+    rows = [
+        [
+            name,
+            _fmt(c.get("decisions")),
+            _fmt(c.get("decisions_p_above_0_01")),
+            _fmt(c.get("positives_p_above_0_01")),
+            _fmt(c.get("positives")),
+            _fmt(c.get("brier"), 4),
+            _fmt(c.get("ece"), 4),
+            _fmt(c.get("mean_predicted"), 4),
+            _fmt(c.get("observed_rate"), 4),
+        ]
+        for name, c in usable.items()
+    ]
+    doc.add(
+        _Table(
+            [
+                "planner",
+                "decisions",
+                "with P > 0.01",
+                "of those followed by a collision",
+                "followed by a collision (all)",
+                "Brier",
+                "ECE",
+                "mean predicted P",
+                "observed rate",
+            ],
+            rows,
+            [False] + [True] * 8,
+        )
+    )
     if all(not c.get("positives") for c in usable.values()):
-        doc.add(_Para("No decision was followed by a collision within its horizon: the calibration measures "
-                      "nothing here beyond the predictions being small."))
+        doc.add(
+            _Para(
+                "No decision was followed by a collision within its horizon: the calibration measures "
+                "nothing here beyond the predictions being small."
+            )
+        )
     try:
         fig = reliability_figure(usable, title="Reliability of predicted collision probability")
-        doc.add(_figure("reliability", fig, "Observed collision frequency against mean predicted probability per bin, "
-                        "with Wilson 95% intervals; the dashed diagonal is perfect calibration. Below: decisions per "
-                        "bin."))
+        doc.add(
+            _figure(
+                "reliability",
+                fig,
+                "Observed collision frequency against mean predicted probability per bin, "
+                "with Wilson 95% intervals; the dashed diagonal is perfect calibration. Below: decisions per "
+                "bin.",
+            )
+        )
         doc.sections.append("calibration")
     except WmplanError as err:
         doc.skip(f"Reliability diagram skipped: {err}")
@@ -451,29 +613,68 @@ def _triage_section(doc: _Doc, run_dir: Path) -> None:
         if not isinstance(counts, dict) or not isinstance(failures, list):
             raise ConfigError(f"{path}: expected 'counts' (planner -> cause -> number) and 'failures' (a list)")
         defs = data.get("definitions") if isinstance(data.get("definitions"), dict) else {}
-        doc.add(_Para(f"{_fmt(data.get('failures_triaged'))} of {_fmt(data.get('failures_found'))} failure(s) of "
-                      f"this {data.get('source', '')} run ({path.relative_to(run_dir)}), each replayed with the "
-                      "oracle's futures and searched for a way out against the true simulator, the drivers' random "
-                      "events fixed as they happened."),
-                _List([f"{cause}: {defs[cause]}" for cause in (*TRIAGE_CAUSES, "point_of_no_return")
-                       if isinstance(defs.get(cause), str)]))
-        doc.add(_Table(["planner", *TRIAGE_CAUSES],
-                       [[str(p), *(_fmt((c or {}).get(cause, 0)) for cause in TRIAGE_CAUSES)]
-                        for p, c in counts.items() if isinstance(c, dict)], [False] + [True] * len(TRIAGE_CAUSES)))
+        doc.add(
+            _Para(
+                f"{_fmt(data.get('failures_triaged'))} of {_fmt(data.get('failures_found'))} failure(s) of "
+                f"this {data.get('source', '')} run ({path.relative_to(run_dir)}), each replayed with the "
+                "oracle's futures and searched for a way out against the true simulator, the drivers' random "
+                "events fixed as they happened."
+            ),
+            _List(
+                [
+                    f"{cause}: {defs[cause]}"
+                    for cause in (*TRIAGE_CAUSES, "point_of_no_return")
+                    if isinstance(defs.get(cause), str)
+                ]
+            ),
+        )
+        doc.add(
+            _Table(
+                ["planner", *TRIAGE_CAUSES],
+                [
+                    [str(p), *(_fmt((c or {}).get(cause, 0)) for cause in TRIAGE_CAUSES)]
+                    for p, c in counts.items()
+                    if isinstance(c, dict)
+                ],
+                [False] + [True] * len(TRIAGE_CAUSES),
+            )
+        )
         rows = []
         for f in failures:
             if not isinstance(f, dict):
                 continue
             pnr = f.get("point_of_no_return") if isinstance(f.get("point_of_no_return"), dict) else {}
-            when = (f"{_fmt(pnr.get('before_contact_s'), 1)} s before" if pnr.get("status") == "found"
-                    else "before the start" if pnr.get("status") == "before start" else "–")
+            when = (
+                f"{_fmt(pnr.get('before_contact_s'), 1)} s before"
+                if pnr.get("status") == "found"
+                else "before the start"
+                if pnr.get("status") == "before start"
+                else "–"
+            )
             reps = f.get("replays") if isinstance(f.get("replays"), dict) else {}
-            oracle = ", ".join(f"{k[len('oracle_'):]}: {v.get('outcome')}" for k, v in reps.items()
-                               if k.startswith("oracle_") and isinstance(v, dict))
-            rows.append([str(f.get("planner")), _fmt(f.get("seed")), str(f.get("outcome")),
-                         _fmt(f.get("contact_s"), 1), str(f.get("cause")), when, oracle or "–"])
-        doc.add(_Table(["planner", "scene seed", "outcome", "contact [s]", "cause", "point of no return",
-                        "oracle replays"], rows, [False, True, False, True, False, True, False]))
+            oracle = ", ".join(
+                f"{k[len('oracle_') :]}: {v.get('outcome')}"
+                for k, v in reps.items()
+                if k.startswith("oracle_") and isinstance(v, dict)
+            )
+            rows.append(
+                [
+                    str(f.get("planner")),
+                    _fmt(f.get("seed")),
+                    str(f.get("outcome")),
+                    _fmt(f.get("contact_s"), 1),
+                    str(f.get("cause")),
+                    when,
+                    oracle or "–",
+                ]
+            )
+        doc.add(
+            _Table(
+                ["planner", "scene seed", "outcome", "contact [s]", "cause", "point of no return", "oracle replays"],
+                rows,
+                [False, True, False, True, False, True, False],
+            )
+        )
         shown = 0
         for f in failures:
             fig = f.get("figure") if isinstance(f, dict) else None
@@ -481,9 +682,18 @@ def _triage_section(doc: _Doc, run_dir: Path) -> None:
             if fig_path is None or not fig_path.is_file() or shown >= 6:
                 continue
             rel = fig_path.relative_to(run_dir).as_posix()
-            doc.add(_Image(name=rel, data=fig_path.read_bytes(), mime="image/png", existing=True, caption=(
-                f"{f.get('name')}: believed (violet) and true (teal) P(collision) of the chosen plan per decision; "
-                "the shaded band runs from the point of no return to the contact (cross).")))
+            doc.add(
+                _Image(
+                    name=rel,
+                    data=fig_path.read_bytes(),
+                    mime="image/png",
+                    existing=True,
+                    caption=(
+                        f"{f.get('name')}: believed (violet) and true (teal) P(collision) of the chosen plan per decision; "
+                        "the shaded band runs from the point of no return to the contact (cross)."
+                    ),
+                )
+            )
             shown += 1
         doc.sections.append("triage")
     except WmplanError as err:
@@ -491,10 +701,14 @@ def _triage_section(doc: _Doc, run_dir: Path) -> None:
 
 
 def _media_section(doc: _Doc, run_dir: Path) -> None:
-    found = [(name, mime, caption) for name, mime, caption in (
-        ("scene.png", "image/png", "One moment of an episode seen from above (scene.png)."),
-        ("episode.gif", "image/gif", "An episode, animated (episode.gif)."),
-    ) if (run_dir / name).is_file()]
+    found = [
+        (name, mime, caption)
+        for name, mime, caption in (
+            ("scene.png", "image/png", "One moment of an episode seen from above (scene.png)."),
+            ("episode.gif", "image/gif", "An episode, animated (episode.gif)."),
+        )
+        if (run_dir / name).is_file()
+    ]
     doc.add(_Heading(2, "Scene and episode"))
     if not found:
         doc.skip("No scene.png or episode.gif in this run.")
@@ -509,10 +723,20 @@ def _media_section(doc: _Doc, run_dir: Path) -> None:
 
 def _html(doc: _Doc, title: str, meta: str) -> str:
     e = html.escape
-    out = ["<!DOCTYPE html>", '<html lang="en">', "<head>", '<meta charset="utf-8">',
-           '<meta name="viewport" content="width=device-width, initial-scale=1">', f"<title>{e(title)}</title>",
-           f"<style>\n{_CSS}\n</style>", "</head>", "<body>", "<main>", f"<h1>{e(title)}</h1>",
-           f'<p class="meta">{e(meta)}</p>']
+    out = [
+        "<!DOCTYPE html>",
+        '<html lang="en">',
+        "<head>",
+        '<meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{e(title)}</title>",
+        f"<style>\n{_CSS}\n</style>",
+        "</head>",
+        "<body>",
+        "<main>",
+        f"<h1>{e(title)}</h1>",
+        f'<p class="meta">{e(meta)}</p>',
+    ]
     for b in doc.blocks:
         if isinstance(b, _Heading):
             out.append(f"<h{b.level}>{e(b.text)}</h{b.level}>")
@@ -526,14 +750,16 @@ def _html(doc: _Doc, title: str, meta: str) -> str:
             numeric = b.numeric or [False] * len(b.header)
             out.append("<table><thead><tr>" + "".join(f"<th>{e(h)}</th>" for h in b.header) + "</tr></thead><tbody>")
             for row in b.rows:
-                cells = "".join(f'<td class="num">{e(c)}</td>' if numeric[i] else f"<td>{e(c)}</td>"
-                                for i, c in enumerate(row))
+                cells = "".join(
+                    f'<td class="num">{e(c)}</td>' if numeric[i] else f"<td>{e(c)}</td>" for i, c in enumerate(row)
+                )
                 out.append(f"<tr>{cells}</tr>")
             out.append("</tbody></table>")
         elif isinstance(b, _Image):
             src = f"data:{b.mime};base64,{base64.b64encode(b.data).decode('ascii')}"
-            out.append(f'<figure><img src="{src}" alt="{e(b.caption)}"><figcaption>{e(b.caption)}</figcaption>'
-                       "</figure>")
+            out.append(
+                f'<figure><img src="{src}" alt="{e(b.caption)}"><figcaption>{e(b.caption)}</figcaption></figure>'
+            )
     out += ["</main>", "</body>", "</html>", ""]
     return "\n".join(out)
 
@@ -591,13 +817,17 @@ def _write(run_dir: Path | str) -> tuple[Path, Path, _Doc]:
         raise ConfigError(f"{run_dir}: is a file, not a run folder")
     doc = _document(run_dir)
     if not doc.sections:
-        raise ConfigError(f"{run_dir}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
-                          "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png")
+        raise ConfigError(
+            f"{run_dir}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
+            "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png"
+        )
     if doc.skipped:
         doc.add(_Heading(2, "Not in this run"), _List(doc.skipped, css="skipped"))
     title = f"wmplan run report: {run_dir.resolve().name}"
-    meta = (f"Run folder {run_dir.resolve()}; written {datetime.now(timezone.utc).strftime('%Y-%m-%d %H:%M UTC')}. "
-            + CAUTION)
+    meta = (
+        f"Run folder {run_dir.resolve()}; written {datetime.now(timezone.utc).strftime('%Y-%m-%d %H:%M UTC')}. "
+        + CAUTION
+    )
     for b in doc.blocks:
         if isinstance(b, _Image) and not b.existing:
             atomic_write_bytes(run_dir / b.name, b.data)
@@ -632,5 +862,10 @@ def cli_report(run_dir: Path | str) -> dict:
     """
     html_path, md_path, doc = _write(run_dir)
     figures = [str(Path(run_dir) / b.name) for b in doc.blocks if isinstance(b, _Image) and not b.existing]
-    return {"html": str(html_path), "markdown": str(md_path), "figures": figures, "sections": list(doc.sections),
-            "skipped": list(doc.skipped)}
+    return {
+        "html": str(html_path),
+        "markdown": str(md_path),
+        "figures": figures,
+        "sections": list(doc.sections),
+        "skipped": list(doc.skipped),
+    }

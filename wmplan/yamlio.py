@@ -61,15 +61,19 @@ class _BoundedLoader(_Base):  # type: ignore[valid-type, misc]
                     raise _Refused(key_node.start_mark, "a key must be a plain value, not a list or a mapping")
                 key = self.construct_object(key_node, deep=True)
                 if key in first_line:
-                    raise _Refused(key_node.start_mark, f"duplicate key {one_line(repr(key), 60)} (first given on "
-                                                        f"line {first_line[key]}); give each key once")
+                    raise _Refused(
+                        key_node.start_mark,
+                        f"duplicate key {one_line(repr(key), 60)} (first given on "
+                        f"line {first_line[key]}); give each key once",
+                    )
                 first_line[key] = key_node.start_mark.line + 1
         return super().construct_mapping(node, deep=deep)
 
     def construct_yaml_int(self, node):
         if len(node.value) > MAX_INT_CHARS:
-            raise _Refused(node.start_mark, f"an integer of {len(node.value)} characters; at most {MAX_INT_CHARS} "
-                                            "are accepted")
+            raise _Refused(
+                node.start_mark, f"an integer of {len(node.value)} characters; at most {MAX_INT_CHARS} are accepted"
+            )
         return super().construct_yaml_int(node)
 
 
@@ -81,8 +85,10 @@ def _check_events(text: str, loader: type = _Base) -> None:
     depth = 0
     for event in yaml.parse(text, Loader=loader):
         if isinstance(event, AliasEvent):
-            raise _Refused(event.start_mark, f"alias *{one_line(str(event.anchor), 40)}: aliases are not accepted; "
-                                             "write the value out")
+            raise _Refused(
+                event.start_mark,
+                f"alias *{one_line(str(event.anchor), 40)}: aliases are not accepted; write the value out",
+            )
         if isinstance(event, CollectionStartEvent):
             depth += 1
             if depth > MAX_DEPTH:
@@ -132,8 +138,9 @@ def load_yaml(text: str, source: str, error: type[WmplanError]) -> object:
             raise error(f"{source}: (file): {refused.where}: {refused.message}") from None
         if isinstance(err, yaml.reader.ReaderError):
             code = err.character if isinstance(err.character, int) else ord(str(err.character)[:1] or "\0")
-            raise error(f"{source}: (file): character #x{code:04x} at position {err.position}: "
-                        f"{one_line(str(err.reason), 80)}") from None
+            raise error(
+                f"{source}: (file): character #x{code:04x} at position {err.position}: {one_line(str(err.reason), 80)}"
+            ) from None
         mark = getattr(err, "problem_mark", None)
         problem = getattr(err, "problem", None) or "not valid YAML"
         problem = one_line(_PROBLEM_CLEAN.sub(" ", str(problem)), 120)

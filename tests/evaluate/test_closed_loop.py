@@ -88,8 +88,7 @@ def test_same_seed_gives_the_same_episodes(name):
     """Two evaluations with the same seed give identical episode rows and calibration records
     (docs/references.md#practice-determinism)."""
     scn = short_scenario("onramp-merge", 4.0)
-    runs = [evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3)
-            for _ in range(2)]
+    runs = [evaluate_planner(scn, name, episodes=3, seed=3, options=opts(name), batch_size=3) for _ in range(2)]
     assert without_latency(runs[0].rows) == without_latency(runs[1].rows)
     assert runs[0].predicted == runs[1].predicted
     assert runs[0].happened == runs[1].happened
@@ -135,8 +134,9 @@ def test_planner_episodes_do_not_depend_on_the_batch_size(name):
 def _variants(duration_s: float) -> list[Scenario]:
     """Four variants of a shortened onramp-merge that differ in traffic, drivers and the ego's start speed."""
     out = []
-    for k, (density, speed, rate) in enumerate([(1.0, 22.0, 0.1), (1.6, 18.0, 2.0), (0.6, 26.0, 0.0),
-                                                (1.2, 22.0, 6.0)]):
+    for k, (density, speed, rate) in enumerate(
+        [(1.0, 22.0, 0.1), (1.6, 18.0, 2.0), (0.6, 26.0, 0.0), (1.2, 22.0, 6.0)]
+    ):
         d = copy.deepcopy(scenario_to_dict(short_scenario("onramp-merge", duration_s)))
         d["traffic"]["density_veh_per_km"] = [density * v for v in d["traffic"]["density_veh_per_km"]]
         d["ego"]["speed_mps"] = speed
@@ -154,8 +154,10 @@ def test_variants_sharing_batches_give_the_rows_of_separate_runs(name):
     scenarios = _variants(4.0)
     seeds = [np.array([11]), np.array([12, 13, 14]), np.array([15, 16]), np.array([17])]
     shared = evaluate_variants(scenarios, seeds, name, seed=5, options=opts(name), batch_size=3)
-    alone = [evaluate_seeds(scn, name, s, seed=5, options=opts(name), batch_size=4).rows
-             for scn, s in zip(scenarios, seeds, strict=True)]
+    alone = [
+        evaluate_seeds(scn, name, s, seed=5, options=opts(name), batch_size=4).rows
+        for scn, s in zip(scenarios, seeds, strict=True)
+    ]
     assert [len(g) for g in shared] == [1, 3, 2, 1]
     assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
     # the variants do differ: the start speeds show in the rows
@@ -186,7 +188,9 @@ def test_variants_of_two_braking_limits_share_batches_within_each_limit(name):
     assert batch_classes(scenarios) == [[0, 2], [1, 3]] and not batchable(scenarios)
     seeds = [np.array([21]), np.array([22, 23]), np.array([24]), np.array([25])]
     shared = evaluate_variants(scenarios, seeds, name, seed=5, options=opts(name), batch_size=3)
-    alone = [evaluate_seeds(scn, name, s, seed=5, options=opts(name)).rows for scn, s in zip(scenarios, seeds, strict=True)]
+    alone = [
+        evaluate_seeds(scn, name, s, seed=5, options=opts(name)).rows for scn, s in zip(scenarios, seeds, strict=True)
+    ]
     assert [without_latency(g) for g in shared] == [without_latency(g) for g in alone]
 
 
@@ -209,8 +213,10 @@ def footprint(row: np.ndarray) -> shapely.Polygon:
     """The rectangle of one vehicle row (world frame) as a shapely polygon."""
     hl, hw = 0.5 * row[F_LENGTH], 0.5 * row[F_WIDTH]
     c, s = math.cos(row[F_HEADING]), math.sin(row[F_HEADING])
-    corners = [(row[F_X] + c * dx - s * dy, row[F_Y] + s * dx + c * dy)
-               for dx, dy in ((hl, hw), (-hl, hw), (-hl, -hw), (hl, -hw))]
+    corners = [
+        (row[F_X] + c * dx - s * dy, row[F_Y] + s * dx + c * dy)
+        for dx, dy in ((hl, hw), (-hl, hw), (-hl, -hw), (hl, -hw))
+    ]
     return shapely.Polygon(corners)
 
 
@@ -231,8 +237,9 @@ def test_calibration_labels_mark_the_horizon_before_a_certain_collision():
     collision falls in that decision's horizon, c - H <= t <= c - 1, where c is the decision period in which the
     footprints first meet, found here with shapely from the recorded frames."""
     params = SimParams.from_scenario(stopped_vehicle_one_lane())
-    cfg = PlannerConfig(num_candidates=16, num_futures=2,
-                        weights=CostWeights(collision=0.0, cvar=0.0, ttc=0.0, headway=0.0))
+    cfg = PlannerConfig(
+        num_candidates=16, num_futures=2, weights=CostWeights(collision=0.0, cvar=0.0, ttc=0.0, headway=0.0)
+    )
     planner = make_planner("mpc+constant-velocity", params, {"config": cfg})
     seeds = np.array([0, 1])
     frames = [initial_state(params, seeds).vehicles()]
@@ -293,8 +300,24 @@ def test_evaluate_cli_writes_episodes_and_summary(tmp_path, capsys):
     """``wmplan evaluate`` end to end: exit 0, episodes.parquet with 4 rows per planner, summary.json with the
     figures the issue names, Wilson intervals that match the statistics module, calibration for the MPC."""
     out_dir, json_file = tmp_path / "eval", tmp_path / "summary-copy.json"
-    code = main(["evaluate", "open-road", "--planners", "rules,mpc+constant-velocity", "--episodes", "4",
-                 "--batch-size", "4", "--threads", "1", "--out", str(out_dir), "--json", str(json_file)])
+    code = main(
+        [
+            "evaluate",
+            "open-road",
+            "--planners",
+            "rules,mpc+constant-velocity",
+            "--episodes",
+            "4",
+            "--batch-size",
+            "4",
+            "--threads",
+            "1",
+            "--out",
+            str(out_dir),
+            "--json",
+            str(json_file),
+        ]
+    )
     captured = capsys.readouterr()
     assert code == 0, captured.err
     assert "Traceback" not in captured.err
@@ -322,11 +345,14 @@ def test_evaluate_cli_writes_episodes_and_summary(tmp_path, capsys):
     assert (out_dir / "calibration.parquet").is_file()
 
 
-@pytest.mark.parametrize(("argv", "named"), [
-    (["evaluate", "open-road", "--planners", "foo", "--episodes", "1"], "'foo'"),
-    (["evaluate", "open-road", "--planners", "mpc+latent", "--episodes", "1"], "--model"),
-    (["evaluate", "open-road", "--planners", "rules", "--episodes", "0"], "--episodes"),
-])
+@pytest.mark.parametrize(
+    ("argv", "named"),
+    [
+        (["evaluate", "open-road", "--planners", "foo", "--episodes", "1"], "'foo'"),
+        (["evaluate", "open-road", "--planners", "mpc+latent", "--episodes", "1"], "--model"),
+        (["evaluate", "open-road", "--planners", "rules", "--episodes", "0"], "--episodes"),
+    ],
+)
 def test_evaluate_cli_bad_input_is_one_line(argv, named, capsys, tmp_path):
     """Bad input: exit status 2, exactly one line on stderr naming the problem, no traceback, nothing written."""
     argv = [*argv, "--out", str(tmp_path / "never")]
@@ -357,8 +383,9 @@ def test_tilted_episodes_carry_their_importance_weight():
     same = evaluate_seeds(scn, "rules", seeds, seed=0, batch_size=48, tilt=EventTilt())
     assert all("log_weight" not in r for r in nominal.rows + same.rows)  # factors 1: not tilted at all
     assert [r["progress_m"] for r in same.rows] == [r["progress_m"] for r in nominal.rows]
-    tilted = evaluate_seeds(scn, "rules", seeds, seed=0, batch_size=48,
-                            tilt=EventTilt(brake_factor=20.0, yield_factor=0.3))
+    tilted = evaluate_seeds(
+        scn, "rules", seeds, seed=0, batch_size=48, tilt=EventTilt(brake_factor=20.0, yield_factor=0.3)
+    )
     log_w = np.array([r["log_weight"] for r in tilted.rows])
     assert np.any(log_w != 0.0) and np.all(np.isfinite(log_w) | (log_w == -np.inf))
     assert [r["progress_m"] for r in tilted.rows] != [r["progress_m"] for r in nominal.rows]

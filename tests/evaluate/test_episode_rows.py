@@ -49,10 +49,14 @@ def _reference_episode(params: SimParams, seed: int) -> dict:
         speeds.append(float(state.ego_speed_mps[0]))
         if state.done[0]:
             break
-    return {"collision": bool(state.collided[0]), "offroad": bool(state.offroad[0]),
-            "success": bool(state.reached_goal[0] and not state.collided[0] and not state.offroad[0]),
-            "progress_m": float(state.x_m[0, EGO]) - x0, "mean_speed_mps": sum(speeds) / len(speeds),
-            "time_s": len(speeds) * params.dt_s}
+    return {
+        "collision": bool(state.collided[0]),
+        "offroad": bool(state.offroad[0]),
+        "success": bool(state.reached_goal[0] and not state.collided[0] and not state.offroad[0]),
+        "progress_m": float(state.x_m[0, EGO]) - x0,
+        "mean_speed_mps": sum(speeds) / len(speeds),
+        "time_s": len(speeds) * params.dt_s,
+    }
 
 
 @pytest.mark.parametrize("scenario", ["onramp-merge", "cut-in"])
@@ -104,8 +108,15 @@ def test_full_throttle_into_a_stopped_car_collides_when_kinematics_say(scenario_
     ends there (progress = ego travel, no success), and the smallest clearance is an overlap (<= 0)."""
     d = scenario_to_dict(scenario_variant_open)
     d["ego"]["speed_mps"] = 20.0
-    d["traffic"]["placed"] = [{"lane": d["ego"]["lane"], "offset_m": 50.0 + 0.5 * (4.7 + 4.7), "speed_mps": 0.0,
-                               "desired_speed_mps": 0.01, "length_m": 4.7}]
+    d["traffic"]["placed"] = [
+        {
+            "lane": d["ego"]["lane"],
+            "offset_m": 50.0 + 0.5 * (4.7 + 4.7),
+            "speed_mps": 0.0,
+            "desired_speed_mps": 0.01,
+            "length_m": 4.7,
+        }
+    ]
     scn = parse_scenario(d)
 
     class Throttle(RulePlanner):
@@ -154,18 +165,22 @@ def test_registry_errors_are_one_line() -> None:
     """Unknown names list the known ones; a taken name needs replace=True; the rules planner takes no options;
     a planner that breaks the protocol is named with what it lacks or returned wrong."""
     assert "rules" in planner_names()
-    with pytest.raises(ConfigError, match=re.escape("unknown planner 'no-such-planner'; known: "
-                                                    f"{', '.join(planner_names())}")):
+    with pytest.raises(
+        ConfigError, match=re.escape(f"unknown planner 'no-such-planner'; known: {', '.join(planner_names())}")
+    ):
         run_episodes("open-road", "no-such-planner", [1])
-    with pytest.raises(ConfigError, match=re.escape("planner 'rules' is already registered; pass replace=True to "
-                                                    "replace it")):
+    with pytest.raises(
+        ConfigError, match=re.escape("planner 'rules' is already registered; pass replace=True to replace it")
+    ):
         register_planner("rules", RulePlanner)
     with pytest.raises(ConfigError, match=re.escape("planner 'rules' takes no options, got ['horizon_s']")):
         run_episodes("open-road", "rules", [1], horizon_s=3.0)
     cases = {
         "wrong-shape": (_WrongShape, "planner 'wrong-shape': decide() returned actions of shape (2, 3)"),
-        "no-decide": (lambda params: _NoDecide(), "planner 'no-decide': the factory returned _NoDecide, which "
-                                                  "lacks decide"),
+        "no-decide": (
+            lambda params: _NoDecide(),
+            "planner 'no-decide': the factory returned _NoDecide, which lacks decide",
+        ),
     }
     try:
         for name, (fn, msg) in cases.items():

@@ -55,15 +55,22 @@ def short(name: str, duration_s: float) -> dict:
     return d
 
 
-@pytest.mark.parametrize(("planner", "options"), [("rules", {}), ("mpc+constant-velocity", SMALL),
-                                                  (CRUISE, {}), (BRAKING, SMALL)])
+@pytest.mark.parametrize(
+    ("planner", "options"), [("rules", {}), ("mpc+constant-velocity", SMALL), (CRUISE, {}), (BRAKING, SMALL)]
+)
 def test_rows_agree_between_evaluate_a_sweep_and_a_stress_task(tmp_path: Path, planner: str, options: dict):
     """The same planner, scenario and seeds give the same rows from ``evaluate`` (evaluate_seeds), a sweep cell
     and a stress task; the built-in planners and both plug-ins (a planner and a predictor) alike."""
     base = short("onramp-merge", 3.0)
     (tmp_path / "base.yaml").write_text(yaml.safe_dump(base, sort_keys=False))
-    spec = {"name": "one-cell", "base": "base.yaml", "vary": {"drivers.yield_prob.mean": [0.5]},
-            "planners": [planner], "seed": 3, "episodes_per_cell": 3}
+    spec = {
+        "name": "one-cell",
+        "base": "base.yaml",
+        "vary": {"drivers.yield_prob.mean": [0.5]},
+        "planners": [planner],
+        "seed": 3,
+        "episodes_per_cell": 3,
+    }
     if options:
         spec["planner_options"] = {planner: options}
     (tmp_path / "sweep.yaml").write_text(yaml.safe_dump(spec, sort_keys=False))
@@ -76,8 +83,9 @@ def test_rows_agree_between_evaluate_a_sweep_and_a_stress_task(tmp_path: Path, p
     eval_rows = evaluate_seeds(scn, planner, seeds, options=options).rows
     assert [comparable(r) for r in sweep_rows] == [comparable(r) for r in eval_rows]
 
-    ev = StressEvaluator(parse_scenario(base), planner, DEFAULT_KNOBS[:1], 0.25, np.random.default_rng(7),
-                         planner_options=options)
+    ev = StressEvaluator(
+        parse_scenario(base), planner, DEFAULT_KNOBS[:1], 0.25, np.random.default_rng(7), planner_options=options
+    )
     (stress_rows,) = ev.simulate(np.zeros((1, 1)), "test")
     variant = parse_scenario(next(iter(ev._variants.values()))[1])
     again = evaluate_seeds(variant, planner, [r["seed"] for r in stress_rows], options=options).rows
@@ -89,14 +97,46 @@ def test_plugins_run_through_the_cli_evaluate_and_stress(tmp_path: Path, capsys)
     """The README's plug-in strings work on the command line: ``evaluate --planners`` and ``stress --planner``."""
     d = short("open-road", 4.0)
     (tmp_path / "road.yaml").write_text(yaml.safe_dump(d, sort_keys=False))
-    assert main(["evaluate", str(tmp_path / "road.yaml"), "--planners", f"rules,{CRUISE},{BRAKING}",
-                 "--episodes", "2", "--threads", "1", "--json", str(tmp_path / "ev.json")]) == 0
+    assert (
+        main(
+            [
+                "evaluate",
+                str(tmp_path / "road.yaml"),
+                "--planners",
+                f"rules,{CRUISE},{BRAKING}",
+                "--episodes",
+                "2",
+                "--threads",
+                "1",
+                "--json",
+                str(tmp_path / "ev.json"),
+            ]
+        )
+        == 0
+    )
     out = json.loads((tmp_path / "ev.json").read_text())
     assert set(out["results"]) == {"rules", CRUISE, BRAKING} and out["caution"]
     assert "certify nothing" in capsys.readouterr().out
-    assert main(["stress", str(tmp_path / "road.yaml"), "--planner", CRUISE, "--budget", "120", "--knobs",
-                 "density", "--no-animation", "--out", str(tmp_path / "stress"), "--json",
-                 str(tmp_path / "st.json")]) == 0
+    assert (
+        main(
+            [
+                "stress",
+                str(tmp_path / "road.yaml"),
+                "--planner",
+                CRUISE,
+                "--budget",
+                "120",
+                "--knobs",
+                "density",
+                "--no-animation",
+                "--out",
+                str(tmp_path / "stress"),
+                "--json",
+                str(tmp_path / "st.json"),
+            ]
+        )
+        == 0
+    )
     assert json.loads((tmp_path / "st.json").read_text())["planner"] == CRUISE
 
 
@@ -146,15 +186,37 @@ def test_evaluate_compares_every_planner_with_the_reference(tmp_path: Path, caps
     (the statistics themselves are checked against their references in test_paired.py)."""
     d = short("open-road", 4.0)
     (tmp_path / "road.yaml").write_text(yaml.safe_dump(d, sort_keys=False))
-    assert main(["evaluate", str(tmp_path / "road.yaml"), "--planners", f"rules,{CRUISE}", "--episodes", "6",
-                 "--json", str(tmp_path / "ev.json")]) == 0
+    assert (
+        main(
+            [
+                "evaluate",
+                str(tmp_path / "road.yaml"),
+                "--planners",
+                f"rules,{CRUISE}",
+                "--episodes",
+                "6",
+                "--json",
+                str(tmp_path / "ev.json"),
+            ]
+        )
+        == 0
+    )
     out = capsys.readouterr().out
     summary = json.loads((tmp_path / "ev.json").read_text())
     assert summary["reference"] == "rules" and set(summary["comparisons"]) == {CRUISE}
     cmp = summary["comparisons"][CRUISE]
-    for key in ("reference", "collision_rate_diff", "collision_rate_diff_ci95", "collision_p_value", "success_diff",
-                "success_diff_ci95", "mean_speed_diff_mps", "mean_speed_diff_ci95", "near_miss_rate_diff",
-                "near_miss_rate_diff_ci95"):
+    for key in (
+        "reference",
+        "collision_rate_diff",
+        "collision_rate_diff_ci95",
+        "collision_p_value",
+        "success_diff",
+        "success_diff_ci95",
+        "mean_speed_diff_mps",
+        "mean_speed_diff_ci95",
+        "near_miss_rate_diff",
+        "near_miss_rate_diff_ci95",
+    ):
         assert key in cmp, key
     assert cmp["n_pairs"] == 6
     if cmp["collision_power"]["no_power"]:

@@ -98,8 +98,9 @@ def test_a_collision_is_the_outcome_when_the_ego_hits_a_stopped_vehicle():
     d["traffic"]["placed"] = [{"lane": 0, "offset_m": 120.0, "speed_mps": 0.0, "desired_speed_mps": 0.1}]
     d["duration_s"] = 10.0
     scn = parse_scenario(d, source="stopped-vehicle-one-lane")
-    cfg = PlannerConfig(num_candidates=16, num_futures=2,
-                        weights=CostWeights(collision=0.0, cvar=0.0, ttc=0.0, headway=0.0))
+    cfg = PlannerConfig(
+        num_candidates=16, num_futures=2, weights=CostWeights(collision=0.0, cvar=0.0, ttc=0.0, headway=0.0)
+    )
     _, out, _ = run_with_frames(scn, "mpc+constant-velocity", np.array([0]), cfg=cfg)
     row = out.rows[0]
     assert row["collision"] and row["outcome"] == "collision"
@@ -110,25 +111,45 @@ def test_a_collision_is_the_outcome_when_the_ego_hits_a_stopped_vehicle():
 
 
 def _row(outcome: str, in_goal_lane: bool) -> dict:
-    return {"collision": outcome == "collision", "offroad": outcome == "offroad", "success": outcome == "goal",
-            "outcome": outcome, "in_goal_lane": in_goal_lane, "mean_speed_mps": 20.0, "progress_m": 250.0,
-            "rms_jerk_mps3": 1.0, "min_ttc_s": 3.0, "near_miss": False, "decision_ms": 10.0}
+    return {
+        "collision": outcome == "collision",
+        "offroad": outcome == "offroad",
+        "success": outcome == "goal",
+        "outcome": outcome,
+        "in_goal_lane": in_goal_lane,
+        "mean_speed_mps": 20.0,
+        "progress_m": 250.0,
+        "rms_jerk_mps3": 1.0,
+        "min_ttc_s": 3.0,
+        "near_miss": False,
+        "decision_ms": 10.0,
+    }
 
 
 def test_timeout_rate_has_a_wilson_interval():
     """7 timeouts (3 of them outside the goal's lanes), 2 collisions, 1 off-road and 30 goals out of 40 episodes:
     rate and interval as scipy's Wilson interval gives them."""
-    rows = ([_row("timeout", False)] * 3 + [_row("timeout", True)] * 4 + [_row("collision", True)] * 2
-            + [_row("offroad", False)] + [_row("goal", True)] * 30)
+    rows = (
+        [_row("timeout", False)] * 3
+        + [_row("timeout", True)] * 4
+        + [_row("collision", True)] * 2
+        + [_row("offroad", False)]
+        + [_row("goal", True)] * 30
+    )
     s = summarise_planner(rows)
     ci = scipy.stats.binomtest(7, 40).proportion_ci(confidence_level=0.95, method="wilson")
     assert s["timeout_rate"] == pytest.approx(7 / 40)
     assert s["timeout_ci95"] == pytest.approx([ci.low, ci.high], abs=1e-9)
     assert s["timeouts_outside_goal_lanes"] == 3
     assert s["collisions_by_contact_side"] == {}  # these rows carry no contact side
-    s2 = summarise_planner([{**_row("collision", True), "contact_side": "rear"}, _row("goal", True),
-                            {**_row("collision", True), "contact_side": "left"},
-                            {**_row("collision", True), "contact_side": "rear"}])
+    s2 = summarise_planner(
+        [
+            {**_row("collision", True), "contact_side": "rear"},
+            _row("goal", True),
+            {**_row("collision", True), "contact_side": "left"},
+            {**_row("collision", True), "contact_side": "rear"},
+        ]
+    )
     assert s2["collisions_by_contact_side"] == {"rear": 2, "left": 1}
     table = format_table({"a": s2, "b": s})
     assert table.splitlines()[-1] == "collisions by the side of the ego touched: a rear 2, left 1"

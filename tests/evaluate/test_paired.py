@@ -74,8 +74,7 @@ def table_cells(text: str) -> list[dict[str, str]]:
     starts = [m.start() for m in re.finditer(r"-+", lines[1])] + [None]
     rows = [line for line in lines[2:] if not line.startswith(("Differences", "["))]
     return [
-        {h: line[a:b].strip() for h, a, b in zip(P.TABLE_HEADER, starts[:-1], starts[1:], strict=True)}
-        for line in rows
+        {h: line[a:b].strip() for h, a, b in zip(P.TABLE_HEADER, starts[:-1], starts[1:], strict=True)} for line in rows
     ]
 
 
@@ -307,9 +306,7 @@ def test_terminal_table_is_fixed_width():
     rng = np.random.default_rng(13)
     ref_rows = make_rows(rng, 300, 0.02, 20.0)
     cmps = {
-        "mpc+constant-velocity": P.paired_comparison(
-            ref_rows, make_rows(rng, 300, 0.08, 21.0), reference="mpc+oracle"
-        ),
+        "mpc+constant-velocity": P.paired_comparison(ref_rows, make_rows(rng, 300, 0.08, 21.0), reference="mpc+oracle"),
         "rules": P.paired_comparison(ref_rows, make_rows(rng, 300, 0.03, 18.0), reference="mpc+oracle"),
     }
     text = P.comparison_table(cmps)
@@ -358,9 +355,7 @@ def test_other_bad_input_is_refused_in_one_line():
         P.paired_comparison(rows, no_ttc)
     with pytest.raises(ConfigError, match=re.escape("planner 'reference' has no episode rows")):
         P.paired_comparison([], rows)
-    with pytest.raises(
-        ConfigError, match=re.escape("detect['collision'] must be a difference in [-1, 1] other")
-    ):
+    with pytest.raises(ConfigError, match=re.escape("detect['collision'] must be a difference in [-1, 1] other")):
         P.paired_comparison(rows, rows, detect={"collision": 0.0})
     with pytest.raises(ConfigError, match=re.escape("detect keys must be among")):
         P.paired_comparison(rows, rows, detect={"offroad": 0.1})

@@ -80,12 +80,8 @@ def test_intervals_vectorised_and_other_levels():
         ref = scipy.stats.binomtest(int(ki), 10)
         ref_w = ref.proportion_ci(confidence_level=0.9, method="wilson")
         ref_cp = ref.proportion_ci(confidence_level=0.9, method="exact")
-        assert w_low[i] == pytest.approx(ref_w.low, abs=1e-12) and w_high[i] == pytest.approx(
-            ref_w.high, abs=1e-12
-        )
-        assert cp_low[i] == pytest.approx(ref_cp.low, abs=1e-12) and cp_high[i] == pytest.approx(
-            ref_cp.high, abs=1e-12
-        )
+        assert w_low[i] == pytest.approx(ref_w.low, abs=1e-12) and w_high[i] == pytest.approx(ref_w.high, abs=1e-12)
+        assert cp_low[i] == pytest.approx(ref_cp.low, abs=1e-12) and cp_high[i] == pytest.approx(ref_cp.high, abs=1e-12)
 
 
 def test_brier_examples():
@@ -155,9 +151,7 @@ def test_mean_ci_by_hand_and_edge_cases():
     from scipy); one value -> NaN bounds; constant values -> zero width."""
     ci = stats.mean_ci([1, 2, 3, 4, 5])
     half = 2.7764451051977987 * math.sqrt(2.5) / math.sqrt(5)
-    assert (
-        ci.mean == 3.0 and ci.low == pytest.approx(3 - half, rel=1e-12) and ci.high == pytest.approx(3 + half)
-    )
+    assert ci.mean == 3.0 and ci.low == pytest.approx(3 - half, rel=1e-12) and ci.high == pytest.approx(3 + half)
     assert half == pytest.approx(1.963243, abs=1e-6)
     one = stats.mean_ci([4.2])
     assert one.mean == 4.2 and math.isnan(one.low) and math.isnan(one.high)
@@ -168,9 +162,7 @@ def test_mean_ci_by_hand_and_edge_cases():
 def test_errors_name_the_value():
     """Bad input raises a one-line ConfigError naming the function, the value and the rule (DEVELOPERS.md,
     "Errors and files")."""
-    with pytest.raises(
-        ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")
-    ):
+    with pytest.raises(ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")):
         stats.wilson_interval(5, 4)
     with pytest.raises(
         ConfigError,
@@ -192,9 +184,7 @@ def test_errors_name_the_value():
         ConfigError, match=re.escape("mean_ci: values has 1 non-finite entries (inf/nan); filter them first")
     ):
         stats.mean_ci([1.0, math.inf])
-    with pytest.raises(
-        ConfigError, match=re.escape("reliability_bins: num_bins must be an integer >= 1, got 0")
-    ):
+    with pytest.raises(ConfigError, match=re.escape("reliability_bins: num_bins must be an integer >= 1, got 0")):
         stats.reliability_bins([0.2], [0], num_bins=0)
 
 

@@ -38,14 +38,30 @@ def tiny_train_config(**changes) -> TrainConfig:
 
 # --- hand-built batches --------------------------------------------------------------------------------------------
 
-TOY_EGO = EgoKinematics(wheelbase_m=2.7, l_r_m=1.35, max_accel_mps2=3.0, max_brake_mps2=8.0, max_steer_rad=0.5,
-                        max_steer_rate_radps=0.5, sim_dt_s=0.1, substeps=2)
+TOY_EGO = EgoKinematics(
+    wheelbase_m=2.7,
+    l_r_m=1.35,
+    max_accel_mps2=3.0,
+    max_brake_mps2=8.0,
+    max_steer_rad=0.5,
+    max_steer_rate_radps=0.5,
+    sim_dt_s=0.1,
+    substeps=2,
+)
 """An ego with round-number limits (invented for the toy batches; not a scenario's)."""
 
 
-def straight_batch(num: int, history: int, horizon: int, *, dt_s: float = 0.2, speed_mps: float = 20.0,
-                   gap_m: torch.Tensor | float = 20.0, future_dy_m: torch.Tensor | float = 0.0,
-                   future_dx_m: torch.Tensor | float = 0.0) -> dict[str, torch.Tensor]:
+def straight_batch(
+    num: int,
+    history: int,
+    horizon: int,
+    *,
+    dt_s: float = 0.2,
+    speed_mps: float = 20.0,
+    gap_m: torch.Tensor | float = 20.0,
+    future_dy_m: torch.Tensor | float = 0.0,
+    future_dx_m: torch.Tensor | float = 0.0,
+) -> dict[str, torch.Tensor]:
     """A batch in the ``WindowBatch`` dict format with two objects: the ego (row 0) and one vehicle ahead in the
     same lane, both driving straight at ``speed_mps``; the vehicle's future rows are its constant-velocity path
     plus ``future_dx_m`` / ``future_dy_m`` (scalars or (B,)) times the fraction of the horizon elapsed.
@@ -79,5 +95,3 @@ def straight_batch(num: int, history: int, horizon: int, *, dt_s: float = 0.2, s
         "ego_speed_mps": torch.full((num,), float(speed_mps)),
         "ego_steer_rad": torch.zeros(num),
     }
-
-

@@ -25,8 +25,15 @@ KEYS = ("min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance",
 
 @pytest.fixture(scope="module")
 def result(latent_run, deterministic_run) -> dict:
-    return assess(latent_run.out_dir, load_scenario("onramp-merge"), deterministic_dir=deterministic_run.out_dir,
-                  episodes=8, oracle_states=4, oracle_samples=8, seed=0)
+    return assess(
+        latent_run.out_dir,
+        load_scenario("onramp-merge"),
+        deterministic_dir=deterministic_run.out_dir,
+        episodes=8,
+        oracle_states=4,
+        oracle_samples=8,
+        seed=0,
+    )
 
 
 def test_json_shape_and_keys(result):

@@ -30,8 +30,9 @@ def test_flop_count_of_a_rollout(bench):
     48), the plan encoder B C N = 12 (its first layer by parts: the plan part B C = 6, the object part B N = 4),
     the prior B C N = 12 (its first layer's history part B N = 4), the object MLP B N = 4, the road MLP B = 2."""
     d, hid, hz, z, w = 8, 16, 5, 2, 2
-    cfg = ModelConfig(history=w, horizon=hz, num_objects=1, d_model=d, num_heads=2, hidden=hid, num_layers=1,
-                      latent_dim=z)
+    cfg = ModelConfig(
+        history=w, horizon=hz, num_objects=1, d_model=d, num_heads=2, hidden=hid, num_layers=1, latent_dim=z
+    )
     model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(0)).eval()
     batch = straight_batch(2, w, hz)
     actions = torch.zeros(2, 3, hz, 2)

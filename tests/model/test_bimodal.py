@@ -41,14 +41,28 @@ def fit(deterministic: bool, seed: int) -> WorldModel:
     the first third of the steps and 0.5 nats of free bits per latent dimension
     (docs/references.md#kingma-2016-free-bits); no hybrid prior term."""
     torch.set_num_threads(1)
-    cfg = ModelConfig(history=HISTORY, horizon=HORIZON, num_objects=1, d_model=16, num_heads=2, hidden=32,
-                      num_layers=1, latent_dim=2, deterministic=deterministic)
+    cfg = ModelConfig(
+        history=HISTORY,
+        horizon=HORIZON,
+        num_objects=1,
+        d_model=16,
+        num_heads=2,
+        hidden=32,
+        num_layers=1,
+        latent_dim=2,
+        deterministic=deterministic,
+    )
     model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(seed))
     opt = torch.optim.Adam(model.parameters(), lr=LR)
     g_data, g_noise = torch.Generator().manual_seed(seed + 1), torch.Generator().manual_seed(seed + 2)
     for i in range(STEPS):
-        loss, _ = model.loss(toy_batch(BATCH, g_data), kl_weight=min(1.0, 3.0 * i / STEPS), free_bits=0.5,
-                             prior_weight=0.0, generator=g_noise)
+        loss, _ = model.loss(
+            toy_batch(BATCH, g_data),
+            kl_weight=min(1.0, 3.0 * i / STEPS),
+            free_bits=0.5,
+            prior_weight=0.0,
+            generator=g_noise,
+        )
         opt.zero_grad(set_to_none=True)
         loss.backward()
         opt.step()

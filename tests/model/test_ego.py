@@ -42,8 +42,9 @@ def numpy_plan(ego: EgoKinematics, x, y, heading, speed, steer, actions):
         for _ in range(ego.substeps):
             d = ego.max_steer_rate_radps * ego.sim_dt_s
             steer = np.clip(want, steer - d, steer + d)
-            x, y, heading, speed, vx, vy, _ = bicycle_step(x, y, heading, speed, a, steer, wheelbase_m=ego.wheelbase_m,
-                                                           l_r_m=ego.l_r_m, dt_s=ego.sim_dt_s)
+            x, y, heading, speed, vx, vy, _ = bicycle_step(
+                x, y, heading, speed, a, steer, wheelbase_m=ego.wheelbase_m, l_r_m=ego.l_r_m, dt_s=ego.sim_dt_s
+            )
         rows.append(np.stack([x, y, vx, vy, heading], -1))
         applied.append(steer)
     return np.stack(rows, 1), np.stack(applied, 1)
@@ -80,8 +81,12 @@ def test_rollout_matches_numpy_bicycle_float64(ego):
     random plans, seeded); headings compared modulo 2 pi (the numpy step wraps them, the rollout does not)."""
     speed, steer, heading, actions = random_plans(np.random.default_rng(42), 64)
     ref, applied = numpy_plan(ego, np.zeros(64), np.zeros(64), heading, speed, steer, actions)
-    out = ego.rollout(torch.from_numpy(speed), torch.from_numpy(steer), torch.from_numpy(actions),
-                      heading0_rad=torch.from_numpy(heading)).numpy()
+    out = ego.rollout(
+        torch.from_numpy(speed),
+        torch.from_numpy(steer),
+        torch.from_numpy(actions),
+        heading0_rad=torch.from_numpy(heading),
+    ).numpy()
     assert out.shape == (64, HORIZON, 5)
     np.testing.assert_allclose(out[..., :4], ref[..., :4], rtol=0, atol=1e-9)
     np.testing.assert_allclose(_wrap(out[..., 4] - ref[..., 4]), 0.0, atol=1e-9)
@@ -126,12 +131,23 @@ def test_rollout_matches_the_simulator_engine(ego):
     for h in range(HORIZON):
         for _ in range(ego.substeps):
             state, _ = engine.step(state, actions[:, h], params)
-        rows.append(np.stack([state.x_m[:, EGO] - x0, state.y_m[:, EGO] - y0, state.vx_mps[:, EGO],
-                              state.vy_mps[:, EGO], state.heading_rad[:, EGO]], -1))
+        rows.append(
+            np.stack(
+                [
+                    state.x_m[:, EGO] - x0,
+                    state.y_m[:, EGO] - y0,
+                    state.vx_mps[:, EGO],
+                    state.vy_mps[:, EGO],
+                    state.heading_rad[:, EGO],
+                ],
+                -1,
+            )
+        )
     truth = np.stack(rows, 1)  # (S, H, 5)
     f32 = lambda a: torch.from_numpy(np.asarray(a, dtype=np.float32))  # noqa: E731
-    out = ego.rollout(f32(start.ego_speed_mps), f32(start.ego_steer_rad), f32(actions),
-                      heading0_rad=f32(start.heading_rad[:, EGO])).numpy()
+    out = ego.rollout(
+        f32(start.ego_speed_mps), f32(start.ego_steer_rad), f32(actions), heading0_rad=f32(start.heading_rad[:, EGO])
+    ).numpy()
     assert np.abs(start.ego_steer_rad).max() > 0.0 and np.abs(start.heading_rad[:, EGO]).max() > 0.0
     np.testing.assert_allclose(out[..., :4], truth[..., :4], rtol=0, atol=2e-4)
     np.testing.assert_allclose(_wrap(out[..., 4] - truth[..., 4]), 0.0, atol=2e-5)
@@ -145,13 +161,15 @@ def test_world_model_ego_rows_are_the_kinematic_path(ego):
     from wmplan.model.config import ModelConfig
     from wmplan.model.world_model import WorldModel
 
-    cfg = ModelConfig(history=2, horizon=HORIZON, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1,
-                      latent_dim=2)
+    cfg = ModelConfig(
+        history=2, horizon=HORIZON, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1, latent_dim=2
+    )
     model = WorldModel(cfg, ego, generator=torch.Generator().manual_seed(0)).eval()
     batch = straight_batch(3, 2, HORIZON, speed_mps=15.0)
     g = torch.Generator().manual_seed(1)
-    actions = torch.stack([torch.rand(3, 4, HORIZON, generator=g) * 6 - 4,
-                           torch.rand(3, 4, HORIZON, generator=g) * 0.2 - 0.1], -1)  # (B, C, H, 2)
+    actions = torch.stack(
+        [torch.rand(3, 4, HORIZON, generator=g) * 6 - 4, torch.rand(3, 4, HORIZON, generator=g) * 0.2 - 0.1], -1
+    )  # (B, C, H, 2)
     rows = model.sample(batch, actions, 5, generator=torch.Generator().manual_seed(2))["rows"]  # (B, C, K, H, N, F)
     expect = ego.rollout(batch["ego_speed_mps"][:, None], batch["ego_steer_rad"][:, None], actions)  # (B, C, H, 5)
     torch.testing.assert_close(rows[..., 0, :5], expect[:, :, None].expand(-1, -1, 5, -1, -1))

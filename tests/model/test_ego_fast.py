@@ -71,8 +71,9 @@ def test_rollout_equals_the_stepwise_loop_in_float64(ego):
     torch.testing.assert_close(out, ref, rtol=0, atol=1e-10)
     assert ((ref[..., 2] ** 2 + ref[..., 3] ** 2) == 0).any()  # some stop
     # without an initial heading: the anchor frame
-    torch.testing.assert_close(ego.rollout(speed, steer, actions), stepwise_rollout(ego, speed, steer, actions),
-                               rtol=0, atol=1e-10)
+    torch.testing.assert_close(
+        ego.rollout(speed, steer, actions), stepwise_rollout(ego, speed, steer, actions), rtol=0, atol=1e-10
+    )
 
 
 def test_rollout_in_float32_is_within_float32_rounding(ego):

@@ -41,8 +41,13 @@ def model() -> WorldModel:
 
 
 def plans(batch: dict, num: int, seed: int) -> torch.Tensor:
-    noise = torch.randn(batch["actions"].shape[0], num, *batch["actions"].shape[1:],
-                        generator=torch.Generator().manual_seed(seed), dtype=torch.float64)
+    noise = torch.randn(
+        batch["actions"].shape[0],
+        num,
+        *batch["actions"].shape[1:],
+        generator=torch.Generator().manual_seed(seed),
+        dtype=torch.float64,
+    )
     return batch["actions"][:, None] + noise * torch.tensor([1.5, 0.1], dtype=torch.float64)
 
 

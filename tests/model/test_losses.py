@@ -45,8 +45,10 @@ def test_gaussian_kl_check_values(q, p, expected_sum):
     library)."""
     kl = _kl(*q, *p)
     assert float(kl.sum()) == pytest.approx(expected_sum, abs=5e-7)
-    ref = kl_divergence(Independent(Normal(torch.tensor(q[0]), torch.tensor(q[1])), 1),
-                        Independent(Normal(torch.tensor(p[0]), torch.tensor(p[1])), 1))
+    ref = kl_divergence(
+        Independent(Normal(torch.tensor(q[0]), torch.tensor(q[1])), 1),
+        Independent(Normal(torch.tensor(p[0]), torch.tensor(p[1])), 1),
+    )
     assert float(kl.sum()) == pytest.approx(float(ref), rel=1e-6)
 
 
@@ -96,14 +98,15 @@ def _fixed_variance_example(hz: int) -> tuple[WorldModel, dict]:
     from wmplan.model.config import ModelConfig
     from wmplan.model.nets import RESIDUAL_SCALE_M
 
-    cfg = ModelConfig(history=2, horizon=hz, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1,
-                      latent_dim=2)
+    cfg = ModelConfig(
+        history=2, horizon=hz, num_objects=1, d_model=8, num_heads=2, hidden=16, num_layers=1, latent_dim=2
+    )
     model = WorldModel(cfg, TOY_EGO, generator=torch.Generator().manual_seed(5))
     last = model.decoder[-1]
     with torch.no_grad():
         last.weight.zero_()
         last.bias[: 2 * hz] = 0.0
-        last.bias[2 * hz:] = math.log(4.0 / RESIDUAL_SCALE_M**2)  # raw log-variance; x RESIDUAL_SCALE_M^2 -> 4 m^2
+        last.bias[2 * hz :] = math.log(4.0 / RESIDUAL_SCALE_M**2)  # raw log-variance; x RESIDUAL_SCALE_M^2 -> 4 m^2
     # A residual of 1 m at every step (straight_batch ramps future_dx/dy with elapsed fraction; undo the ramp).
     batch = straight_batch(4, 2, hz, future_dx_m=0.0, future_dy_m=0.0)
     batch["future"][..., 1, 0] += 1.0
@@ -124,7 +127,8 @@ def test_world_model_loss_nll_on_reference_example(prior_weight):
     _, metrics = model.loss(batch, prior_weight=prior_weight, generator=torch.Generator().manual_seed(6))
     assert metrics["loss/nll"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
     ref = torch.nn.GaussianNLLLoss(full=True, reduction="sum")(
-        torch.zeros(2 * hz), torch.ones(2 * hz), torch.full((2 * hz,), 4.0))
+        torch.zeros(2 * hz), torch.ones(2 * hz), torch.full((2 * hz,), 4.0)
+    )
     assert metrics["loss/nll"] == pytest.approx(float(ref), rel=1e-6)
     if prior_weight > 0:
         assert metrics["loss/nll_prior"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
@@ -146,7 +150,7 @@ def test_beta_nll_weights_each_term_by_its_variance_without_differentiating_it()
     assert metrics["loss/nll"] == pytest.approx(2 * hz * NLL_EXAMPLE, rel=1e-6)
     assert float(loss.detach()) == pytest.approx(2.0 * 2 * hz * NLL_EXAMPLE, rel=1e-6)
     grad = torch.autograd.grad(loss, last.bias)[0]
-    torch.testing.assert_close(grad[2 * hz:], torch.full((2 * hz,), 0.75), rtol=1e-5, atol=0.0)
+    torch.testing.assert_close(grad[2 * hz :], torch.full((2 * hz,), 0.75), rtol=1e-5, atol=0.0)
 
 
 def test_mixture_nll_with_one_component_is_the_gaussian_nll():
@@ -199,7 +203,7 @@ def test_ade_fde_lane_change_example():
     assert bool(full.all())
     # Per mode (K = 1 each): the tabled ADE and FDE.
     for k, (a, f) in enumerate([(1.75, 3.5), (0.175, 0.35), (3.5, 7.0)]):
-        ade_k, fde_k, _ = ade_fde(pred[:, k:k + 1], true[None, :, None, :], torch.ones(1, 6, 1, dtype=torch.bool))
+        ade_k, fde_k, _ = ade_fde(pred[:, k : k + 1], true[None, :, None, :], torch.ones(1, 6, 1, dtype=torch.bool))
         assert (float(ade_k), float(fde_k)) == pytest.approx((a, f), abs=1e-12)
     # An object missing at one step is not counted (its mask is False).
     valid = torch.ones(1, 6, 1, dtype=torch.bool)
@@ -220,7 +224,9 @@ def test_energy_distance_against_scipy(seed):
     v = rng.normal(0.7, 1.5, 25)
     ours = energy_distance(torch.from_numpy(u)[:, None], torch.from_numpy(v)[:, None])
     assert float(ours) == pytest.approx(scipy.stats.energy_distance(u, v) ** 2, rel=1e-9)
-    assert float(energy_distance(torch.from_numpy(u)[:, None], torch.from_numpy(u)[:, None])) == pytest.approx(0.0, abs=1e-12)
+    assert float(energy_distance(torch.from_numpy(u)[:, None], torch.from_numpy(u)[:, None])) == pytest.approx(
+        0.0, abs=1e-12
+    )
     assert float(ours) > 0.0
 
 

@@ -160,9 +160,16 @@ def test_the_benchmark_replay_reproduces_sample(windows, ego):
     wall, cpu, matches = bench.breakdown(model, batch, plans(batch, 16, 8), 4, 2, 9)
     assert matches
     assert set(wall) == set(cpu)
-    assert {"scene_encoder", "ego_kinematics", "plan_encoder", "prior_and_latent_draw",
-            "decoder_first_layer_latent_part", "decoder_linear_2", "decoder_last_layer_means_into_planes",
-            "finish_rows"} <= set(wall)
+    assert {
+        "scene_encoder",
+        "ego_kinematics",
+        "plan_encoder",
+        "prior_and_latent_draw",
+        "decoder_first_layer_latent_part",
+        "decoder_linear_2",
+        "decoder_last_layer_means_into_planes",
+        "finish_rows",
+    } <= set(wall)
 
 
 def test_float64_copy_is_the_model(windows, ego):
@@ -214,8 +221,11 @@ def test_rows_alone_equal_the_rows_with_moments(windows, ego, kind):
     they equal the rows of the full call up to float32 rounding of a matrix product with fewer columns (positions
     within 1e-4 m), the result holds no moments, and the rows are a view of feature planes: what the risk
     computations read, features and vehicles first, is contiguous without a copy."""
-    model = ConstantVelocity(ModelConfig(), ego) if kind == "constant_velocity" else \
-        fresh(ModelConfig(deterministic=kind == "deterministic"), ego)
+    model = (
+        ConstantVelocity(ModelConfig(), ego)
+        if kind == "constant_velocity"
+        else fresh(ModelConfig(deterministic=kind == "deterministic"), ego)
+    )
     actions = plans(windows, NUM_PLANS, 12)
     full = model.sample(windows, actions, 4, generator=gens(4, 30))
     alone = model.sample(windows, actions, 4, generator=gens(4, 30), moments=False)

@@ -51,8 +51,12 @@ def assert_same_weights(a, b) -> None:
 @pytest.fixture(scope="module")
 def straight(dataset_dir, tmp_path_factory):
     """The reference: 3 epochs without interruption."""
-    return train(dataset_dir, tmp_path_factory.mktemp("resume") / "straight", model_cfg=tiny_model_config(),
-                 train_cfg=three_epochs())
+    return train(
+        dataset_dir,
+        tmp_path_factory.mktemp("resume") / "straight",
+        model_cfg=tiny_model_config(),
+        train_cfg=three_epochs(),
+    )
 
 
 class Counter:
@@ -75,16 +79,27 @@ def test_resume_after_ctrl_c_equals_the_uninterrupted_run(straight, dataset_dir,
     and history."""
     out = tmp_path / "cut"
     with pytest.raises(KeyboardInterrupt):
-        train(dataset_dir, out, model_cfg=tiny_model_config(), train_cfg=three_epochs(),
-              progress=Counter(stop_after=2 * STEPS_PER_EPOCH + 4))
+        train(
+            dataset_dir,
+            out,
+            model_cfg=tiny_model_config(),
+            train_cfg=three_epochs(),
+            progress=Counter(stop_after=2 * STEPS_PER_EPOCH + 4),
+        )
     assert (out / "latest").read_text().strip() == "ckpt-000001"
     assert len((out / "metrics.csv").read_text().strip().splitlines()) == 1 + 2
     assert not list(out.glob(".ckpt-*"))  # the interrupted epoch never started writing
 
     counter = Counter()
     # Configurations passed on resume are ignored in favour of the stored ones: pass different ones to show it.
-    resumed = train(dataset_dir, out, model_cfg=tiny_model_config(hidden=48), train_cfg=tiny_train_config(seed=5),
-                    resume=True, progress=counter)
+    resumed = train(
+        dataset_dir,
+        out,
+        model_cfg=tiny_model_config(hidden=48),
+        train_cfg=tiny_train_config(seed=5),
+        resume=True,
+        progress=counter,
+    )
     assert counter.steps == STEPS_PER_EPOCH
     assert len(resumed.history) == 3
     assert without_timing(resumed.history) == without_timing(straight.history)
@@ -144,18 +159,19 @@ KILL_SCRIPT = textwrap.dedent(
         ("latest", 3, "ckpt-000001"),  # killed after epoch 3's folder is in place, before `latest` points at it
     ],
 )
-def test_resume_after_sigkill_while_writing_a_checkpoint(straight, dataset_dir, tmp_path, target, count,
-                                                         latest_after_kill):
+def test_resume_after_sigkill_while_writing_a_checkpoint(
+    straight, dataset_dir, tmp_path, target, count, latest_after_kill
+):
     """A training process killed (SIGKILL, no chance to clean up) in the middle of writing the third checkpoint
     leaves the second one readable as ``latest``; resuming ends with the uninterrupted run's weights and
     history."""
     out = tmp_path / "killed"
-    script = KILL_SCRIPT.format(target=target, count=count, data=str(dataset_dir), out=str(out),
-                                spe=STEPS_PER_EPOCH)
+    script = KILL_SCRIPT.format(target=target, count=count, data=str(dataset_dir), out=str(out), spe=STEPS_PER_EPOCH)
     repo = Path(__file__).resolve().parents[2]
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(repo), os.environ.get("PYTHONPATH", "")])}
-    proc = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, timeout=600, cwd=repo,
-                          env=env)
+    proc = subprocess.run(
+        [sys.executable, "-c", script], capture_output=True, text=True, timeout=600, cwd=repo, env=env
+    )
     assert proc.returncode == -9, proc.stderr[-2000:]
     assert (out / "latest").read_text().strip() == latest_after_kill
     model, cfg = load_model(out)  # the previous checkpoint is complete and verifies

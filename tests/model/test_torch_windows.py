@@ -55,9 +55,10 @@ def test_works_with_dataloader(dataset):
     batches = list(torch.utils.data.DataLoader(ds, batch_size=8, collate_fn=lambda x: x))
     assert [b["history"].shape[0] for b in batches] == [8, 8, 8, 8, 8, 5]
     for i, b in enumerate(batches):
-        _assert_batch_equal(b, windows.batch(index[8 * i: 8 * i + 8]))
-    loader = torch.utils.data.DataLoader(ds, batch_size=8, shuffle=True, collate_fn=lambda x: x,
-                                         generator=torch.Generator().manual_seed(3))
+        _assert_batch_equal(b, windows.batch(index[8 * i : 8 * i + 8]))
+    loader = torch.utils.data.DataLoader(
+        ds, batch_size=8, shuffle=True, collate_fn=lambda x: x, generator=torch.Generator().manual_seed(3)
+    )
     speeds = torch.cat([b["ego_speed_mps"] for b in loader]).numpy()
     np.testing.assert_array_equal(np.sort(speeds), np.sort(windows.batch(index).ego_speed_mps))
 

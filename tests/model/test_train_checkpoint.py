@@ -62,7 +62,11 @@ def test_training_writes_checkpoints_and_metrics(latent_run):
     assert sorted(p.name for p in out.glob("ckpt-*")) == ["ckpt-000000", "ckpt-000001"]
     for folder in out.glob("ckpt-*"):
         assert sorted(p.name for p in folder.iterdir()) == [
-            "config.json", "model.safetensors", "optimizer.safetensors", "train_state.json"]
+            "config.json",
+            "model.safetensors",
+            "optimizer.safetensors",
+            "train_state.json",
+        ]
     assert not list(out.glob(".ckpt-*"))  # no temporary folder left behind
     with open(out / "metrics.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))

@@ -70,7 +70,6 @@ def one_torch_thread():
     torch.set_num_threads(before)
 
 
-
 def stopped_vehicle_scenario(*, num_lanes: int, offset_m: float, duration_s: float = 16.0) -> Scenario:
     """open-road with no random traffic, the ego at 100 km/h and one stopped vehicle ``offset_m`` ahead (centres).
 
@@ -86,8 +85,9 @@ def stopped_vehicle_scenario(*, num_lanes: int, offset_m: float, duration_s: flo
     lane = d["ego"]["lane"]
     d["traffic"]["density_veh_per_km"] = [0.0] * len(d["road"]["lanes"])
     d["traffic"]["window_ahead_m"] = 400.0
-    d["traffic"]["placed"] = [{"lane": lane, "offset_m": offset_m, "speed_mps": 0.0, "desired_speed_mps": 0.1,
-                               "politeness": 0.0}]
+    d["traffic"]["placed"] = [
+        {"lane": lane, "offset_m": offset_m, "speed_mps": 0.0, "desired_speed_mps": 0.1, "politeness": 0.0}
+    ]
     d["drivers"]["hard_brake_rate_per_min"] = 0.0
     d["ego"]["speed_mps"] = SPEED_100_KMH_MPS
     d["road"]["speed_limit_mps"] = SPEED_100_KMH_MPS / PlannerConfig().target_speed_fraction
@@ -268,8 +268,9 @@ def test_oracle_planner_brakes_in_time_at_the_default_budget():
     assert v_onset**2 / (2.0 * (gap_onset - gap[-1])) < R157_EMERGENCY_DECEL_MPS2
 
 
-@pytest.mark.parametrize("cfg", [PlannerConfig(num_candidates=32, num_futures=2), PlannerConfig()],
-                         ids=["32x2", "default"])
+@pytest.mark.parametrize(
+    "cfg", [PlannerConfig(num_candidates=32, num_futures=2), PlannerConfig()], ids=["32x2", "default"]
+)
 def test_oracle_planner_brakes_fully_when_firm_braking_is_not_enough(cfg):
     """One lane, 100 km/h, a vehicle stopped 60 m ahead (bumper gap) from the first decision: no collision.
 
@@ -305,16 +306,18 @@ def test_a_follower_the_predictor_thinks_will_not_brake_does_not_stop_the_ego_br
     the others and ran into the stopped vehicle (measured: both scenes collided within 2.2 s)."""
     scn = stopped_vehicle_scenario(num_lanes=1, offset_m=60.0 + 4.7, duration_s=8.0)
     d = copy.deepcopy(scenario_to_dict(scn))
-    d["traffic"]["placed"].append({"lane": 0, "offset_m": -25.0, "speed_mps": SPEED_100_KMH_MPS,
-                                   "desired_speed_mps": SPEED_100_KMH_MPS})
+    d["traffic"]["placed"].append(
+        {"lane": 0, "offset_m": -25.0, "speed_mps": SPEED_100_KMH_MPS, "desired_speed_mps": SPEED_100_KMH_MPS}
+    )
     d["traffic"]["window_behind_m"] = 60.0
     params = SimParams.from_scenario(parse_scenario(d, source="stopped-ahead-follower-behind"))
     state = initial_state(params, [0, 1])
     assert np.all(state.valid.sum(axis=1) == 3)
     outcomes = {}
     for share in (1.0, CostWeights().from_behind):
-        planner = make_planner("mpc+constant-velocity", params,
-                               {"config": PlannerConfig(weights=CostWeights(from_behind=share))})
+        planner = make_planner(
+            "mpc+constant-velocity", params, {"config": PlannerConfig(weights=CostWeights(from_behind=share))}
+        )
         out = run_batch(params, planner, np.array([0, 1]), seed=0, name="mpc+constant-velocity")
         outcomes[share] = [r["collision"] for r in out.rows]
     assert CostWeights().from_behind < 1.0
@@ -341,15 +344,15 @@ def test_actions_and_candidates_stay_within_the_limits(sampler, risk_mode, monke
     planner = make_planner("mpc+constant-velocity", params, {"config": cfg})
     log = record_decisions(planner, keep=True)
     applied = []
-    engine_step = variants.step
+    batch_step = variants.VariantBatch.step
 
-    def recording_step(state, actions, p):
-        new, info = engine_step(state, actions, p)
+    def recording_step(self, state, actions):
+        new, info = batch_step(self, state, actions)
         live = ~state.done
         applied.append((actions[live, 0].copy(), info.accel_mps2[live, EGO].copy()))
         return new, info
 
-    monkeypatch.setattr(variants, "step", recording_step)
+    monkeypatch.setattr(variants.VariantBatch, "step", recording_step)
     run_batch(params, planner, np.arange(4), seed=11, name="mpc+constant-velocity")
     actions = np.concatenate([res.action for _, res in log])  # (decisions x scenes, 2)
     plans = torch.cat([res.plans.reshape(-1, 2) for _, res in log]).double().numpy()
@@ -395,8 +398,10 @@ def test_mppi_update_uses_softmax_of_minus_cost_over_lambda(mppi_lambda):
 # --- 5. chance constraint -------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("sampler", "use_upper_bound", "epsilon"),
-                         [("cem", False, 0.05), ("mppi", False, 0.05), ("cem", True, 0.4), ("mppi", True, 0.4)])
+@pytest.mark.parametrize(
+    ("sampler", "use_upper_bound", "epsilon"),
+    [("cem", False, 0.05), ("mppi", False, 0.05), ("cem", True, 0.4), ("mppi", True, 0.4)],
+)
 def test_chance_constraint_picks_a_feasible_plan_when_one_exists(sampler, use_upper_bound, epsilon):
     """With ``risk_mode='chance'`` the chosen candidate satisfies P(collision) <= epsilon (or its Wilson upper
     bound does) whenever any candidate does, and otherwise has the smallest bound; the reported Wilson interval is
@@ -407,8 +412,14 @@ def test_chance_constraint_picks_a_feasible_plan_when_one_exists(sampler, use_up
     Wilson upper bound is 0.324 for k = 0 [D], so the upper-bound variant uses epsilon = 0.4.
     """
     params = SimParams.from_scenario(short_scenario("onramp-merge", 6.0))
-    cfg = PlannerConfig(sampler=sampler, risk_mode="chance", epsilon=epsilon, use_upper_bound=use_upper_bound,
-                        num_candidates=32, num_futures=8)
+    cfg = PlannerConfig(
+        sampler=sampler,
+        risk_mode="chance",
+        epsilon=epsilon,
+        use_upper_bound=use_upper_bound,
+        num_candidates=32,
+        num_futures=8,
+    )
     planner = untrained_latent_planner(params, cfg, seed=1)
     log = record_decisions(planner, keep=True)
     run_batch(params, planner, np.arange(2), seed=2, name="mpc+latent")

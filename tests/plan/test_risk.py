@@ -49,9 +49,7 @@ def corners(x: float, y: float, heading_rad: float, length: float, width: float)
 
 def minkowski_signed_distance(a, b) -> float:
     """Signed distance via the Minkowski difference A - B: outside -> +distance, inside -> -depth (shapely)."""
-    diff = shapely.geometry.MultiPoint(
-        (corners(*a)[:, None, :] - corners(*b)[None, :, :]).reshape(-1, 2)
-    ).convex_hull
+    diff = shapely.geometry.MultiPoint((corners(*a)[:, None, :] - corners(*b)[None, :, :]).reshape(-1, 2)).convex_hull
     origin = shapely.geometry.Point(0.0, 0.0)
     d = diff.exterior.distance(origin)
     return -d if diff.contains(origin) else d
@@ -163,18 +161,14 @@ def test_cvar_batched_limits_and_infinity():
 def test_time_to_collision_reference_checks():
     """Gap 30 m, 25 vs 15 m/s -> 3.0 s; gap 20 m, 30 vs 20 m/s -> 2.0 s; not closing -> inf ([D],
     docs/references.md#hayward-1972-ttc)."""
-    ttc = R.time_to_collision(
-        torch.tensor([30.0, 20.0, 30.0, 30.0]), torch.tensor([25 - 15, 30 - 20, 0.0, -5.0])
-    )
+    ttc = R.time_to_collision(torch.tensor([30.0, 20.0, 30.0, 30.0]), torch.tensor([25 - 15, 30 - 20, 0.0, -5.0]))
     assert ttc.tolist() == [3.0, 2.0, math.inf, math.inf]
     assert R.time_to_collision(np.array([0.0, -1.0]), np.array([3.0, 0.0])).tolist() == [0.0, 0.0]
 
 
 def test_drac_reference_checks():
     """DRAC = (v_f - v_l)^2 / (2 gap): 1.6667 and 2.5 m/s^2 for the two section 5.3 cases [D]; 0 if not closing."""
-    drac = R.deceleration_to_avoid_crash_mps2(
-        torch.tensor([30.0, 20.0, 30.0]), torch.tensor([10.0, 10.0, -2.0])
-    )
+    drac = R.deceleration_to_avoid_crash_mps2(torch.tensor([30.0, 20.0, 30.0]), torch.tensor([10.0, 10.0, -2.0]))
     np.testing.assert_allclose(drac.numpy(), [10**2 / 60, 2.5, 0.0], rtol=1e-6)
     assert drac[0].item() == pytest.approx(1.6667, abs=5e-5)
 
@@ -323,9 +317,7 @@ def test_box_signed_distance_against_shapely(seed):
 
 def slow_clearance(scene: np.ndarray) -> tuple[float, bool]:
     """Per-vehicle shapely loop for one (V, 8) scene: (distance clipped at 0, intersects any)."""
-    ego = shapely_box(
-        scene[0, F_X], scene[0, F_Y], scene[0, F_HEADING], scene[0, F_LENGTH], scene[0, F_WIDTH]
-    )
+    ego = shapely_box(scene[0, F_X], scene[0, F_Y], scene[0, F_HEADING], scene[0, F_LENGTH], scene[0, F_WIDTH])
     best, hit = math.inf, False
     for row in scene[1:]:
         if row[F_VALID] <= 0.5:

@@ -52,8 +52,19 @@ def draw(mean, std, num: int, *, smoothing: float = 0.0, generator: torch.Genera
     return mean.unsqueeze(-3) + (std.unsqueeze(-3) if std.ndim >= 2 else std) * noise
 
 
-def cem_loop(cost_fn, mean, std, *, num: int, elites: int, iterations: int, generator: torch.Generator,
-             low=None, high=None, smoothing: float = 0.0) -> torch.Tensor:
+def cem_loop(
+    cost_fn,
+    mean,
+    std,
+    *,
+    num: int,
+    elites: int,
+    iterations: int,
+    generator: torch.Generator,
+    low=None,
+    high=None,
+    smoothing: float = 0.0,
+) -> torch.Tensor:
     """Iterate the planner's CEM update (draw, clip, score, refit) and return the final mean."""
     std = torch.broadcast_to(torch.as_tensor(std, dtype=torch.float32), mean.shape)
     for _ in range(iterations):
@@ -116,10 +127,6 @@ def test_sampler_marginal_std_and_lag1_correlation(seed, smoothing):
     assert torch.all((lag1 - smoothing).abs() < 5 * se_corr)
 
 
-
-
-
-
 def test_batched_sampling_shapes():
     """Leading batch axes of the mean carry through: (B, H, A) -> (B, C, H, A)."""
     x = draw(torch.zeros(3, 5, 2), torch.ones(3, 5, 2), 11, generator=gen(0))
@@ -159,9 +166,7 @@ def test_cem_update_by_hand():
 def test_cem_update_nan_cost_is_never_an_elite():
     """A NaN cost ranks worst (contract)."""
     samples = torch.tensor([[[0.0]], [[1.0]], [[2.0]]])
-    mean, _ = S.cem_update(
-        samples, torch.tensor([float("nan"), 1.0, 2.0]), 1, torch.zeros(1, 1), torch.ones(1, 1)
-    )
+    mean, _ = S.cem_update(samples, torch.tensor([float("nan"), 1.0, 2.0]), 1, torch.zeros(1, 1), torch.ones(1, 1))
     assert mean.item() == 1.0
 
 
@@ -187,8 +192,9 @@ def test_cem_converges_on_1d_quadratic(seed):
 
     Source: the convergence check [D] of docs/references.md#de-boer-2005-cem-tutorial.
     """
-    mean = cem_loop(quadratic_cost(3.0), torch.zeros(1, 1), 10.0, num=200, elites=20, iterations=30,
-                    generator=gen(seed))
+    mean = cem_loop(
+        quadratic_cost(3.0), torch.zeros(1, 1), 10.0, num=200, elites=20, iterations=30, generator=gen(seed)
+    )
     assert abs(mean.item() - 3.0) < 1e-3
 
 
@@ -199,9 +205,18 @@ def test_cem_update_iterated_batched_and_bounded():
     box has its optimum at the bound (convexity of the quadratic, [C]).
     """
     target = torch.tensor([[[1.0, -0.2]], [[5.0, 0.3]]])  # (B=2, H=1, A=2); the 5.0 lies beyond high
-    mean = cem_loop(lambda x: ((x - target[:, None]) ** 2).sum(dim=(-2, -1)), torch.zeros(2, 4, 2),
-                    torch.tensor([3.0, 0.5]), num=300, elites=30, iterations=40, low=torch.tensor([-3.0, -0.5]),
-                    high=torch.tensor([3.0, 0.5]), smoothing=0.5, generator=gen(11))
+    mean = cem_loop(
+        lambda x: ((x - target[:, None]) ** 2).sum(dim=(-2, -1)),
+        torch.zeros(2, 4, 2),
+        torch.tensor([3.0, 0.5]),
+        num=300,
+        elites=30,
+        iterations=40,
+        low=torch.tensor([-3.0, -0.5]),
+        high=torch.tensor([3.0, 0.5]),
+        smoothing=0.5,
+        generator=gen(11),
+    )
     expected = torch.tensor([[1.0, -0.2], [3.0, 0.3]])[:, None, :].expand(2, 4, 2)
     torch.testing.assert_close(mean, expected, atol=1e-3, rtol=0)
 
@@ -288,20 +303,14 @@ def test_mppi_weights_equal_softmax_batched(seed):
 def test_mppi_weights_stable_and_handle_infinities():
     """Huge costs do not overflow; +inf and NaN get weight 0; all +inf gives uniform weights (contract)."""
     w = S.mppi_weights(torch.tensor([1e6, 1e6 + 1.0]), 1.0)
-    np.testing.assert_allclose(
-        w.numpy(), [1 / (1 + math.exp(-1)), math.exp(-1) / (1 + math.exp(-1))], rtol=1e-6
-    )
+    np.testing.assert_allclose(w.numpy(), [1 / (1 + math.exp(-1)), math.exp(-1) / (1 + math.exp(-1))], rtol=1e-6)
     w = S.mppi_weights(torch.tensor([1.0, float("inf"), float("nan")]), 1.0)
     assert w.tolist() == [1.0, 0.0, 0.0]
     w = S.mppi_weights(torch.full((4,), float("inf")), 1.0)
     assert w.tolist() == [0.25] * 4
 
 
-
-
-def _mppi_mean_and_se(
-    mu: float, sigma: float, c: float, lam: float, num: int, seed: int
-) -> tuple[float, float]:
+def _mppi_mean_and_se(mu: float, sigma: float, c: float, lam: float, num: int, seed: int) -> tuple[float, float]:
     u = draw(torch.full((1, 1), mu), sigma, num, generator=gen(seed))  # (C, 1, 1)
     costs = (u[:, 0, 0] - c) ** 2
     new_mean = S.mppi_update(torch.full((1, 1), mu), u, costs, lam).item()
@@ -335,8 +344,9 @@ def test_mppi_update_iterated_reaches_the_minimiser():
     kappa = (lambda/2) / (sigma^2 + lambda/2) = 0.5 [D]. Tolerance: 5 such standard deviations, SE measured at c.
     """
     num, lam = 20_000, 2.0
-    mean, ess = mppi_loop(quadratic_cost(3.0), torch.zeros(1, 1), 1.0, num=num, iterations=40, lam=lam,
-                          generator=gen(5))
+    mean, ess = mppi_loop(
+        quadratic_cost(3.0), torch.zeros(1, 1), 1.0, num=num, iterations=40, lam=lam, generator=gen(5)
+    )
     _, se = _mppi_mean_and_se(3.0, 1.0, 3.0, lam, num, seed=6)
     tol = 5 * se / math.sqrt(1 - 0.5**2)
     assert tol < 0.05
@@ -356,8 +366,6 @@ def test_mppi_update_is_weighted_average_and_batched():
         torch.testing.assert_close(got[b], (w[:, None, None] * samples[b]).sum(0), rtol=1e-5, atol=1e-5)
 
 
-
-
 # --- errors ---------------------------------------------------------------------------------------------------
 
 
@@ -366,9 +374,7 @@ def test_errors_name_the_argument():
     "Errors and files")."""
     with pytest.raises(ConfigError, match=re.escape("num_elites must be <= 4, got 5")):
         S.cem_update(torch.zeros(4, 1, 1), torch.zeros(4), 5, torch.zeros(1, 1), torch.ones(1, 1))
-    with pytest.raises(
-        ConfigError, match=re.escape("lam (MPPI temperature lambda) must be finite and > 0, got 0.0")
-    ):
+    with pytest.raises(ConfigError, match=re.escape("lam (MPPI temperature lambda) must be finite and > 0, got 0.0")):
         S.mppi_weights(torch.zeros(3), 0.0)
     with pytest.raises(ConfigError, match=re.escape("smoothing must lie in [0, 1), got 1.0")):
         S.ar1_filter_matrix(3, 1.0)

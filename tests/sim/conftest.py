@@ -48,8 +48,15 @@ class HighwaySet:
     def traits(self, politeness: float = 0.2, threshold_mps2: float = 0.2, safe_decel_mps2: float = 4.0) -> dict:
         """Trait index -> value for one driver of this set."""
         return {
-            T_V0: self.desired_mps, T_T: self.t_s, T_S0: self.s0_m, T_A: self.a_mps2, T_B: self.b_mps2,
-            T_P: politeness, T_TH: threshold_mps2, T_BSAFE: safe_decel_mps2, T_YIELD: 0.5,
+            T_V0: self.desired_mps,
+            T_T: self.t_s,
+            T_S0: self.s0_m,
+            T_A: self.a_mps2,
+            T_B: self.b_mps2,
+            T_P: politeness,
+            T_TH: threshold_mps2,
+            T_BSAFE: safe_decel_mps2,
+            T_YIELD: 0.5,
         }
 
 
@@ -116,9 +123,17 @@ def place() -> Callable[..., TrafficState]:
     one number per scene).
     """
 
-    def make(params: SimParams, vehicles: Sequence[dict], *, seeds=(0,), step: int = 0,
-             ego_x_m: float | None = None, ego_lane: int | None = None, ego_speed_mps: float | None = None,
-             ego_steer_rad: np.ndarray | float = 0.0) -> TrafficState:
+    def make(
+        params: SimParams,
+        vehicles: Sequence[dict],
+        *,
+        seeds=(0,),
+        step: int = 0,
+        ego_x_m: float | None = None,
+        ego_lane: int | None = None,
+        ego_speed_mps: float | None = None,
+        ego_steer_rad: np.ndarray | float = 0.0,
+    ) -> TrafficState:
         st = empty_state(params, rng.scene_keys(list(seeds)))
         arr = st.to_arrays()
         arr["step"][:] = step

@@ -60,8 +60,9 @@ def test_one_euler_step_from_origin():
 
     Source: docs/references.md#rajamani-2012-vehicle-dynamics, [D] explicit Euler on the [S] equations.
     """
-    x, y, psi, v, vx, vy, beta = bicycle_step(0.0, 0.0, 0.0, SPEED_MPS, 0.0, math.radians(5.0),
-                                              wheelbase_m=WHEELBASE_M, l_r_m=L_R_M, dt_s=0.1)
+    x, y, psi, v, vx, vy, beta = bicycle_step(
+        0.0, 0.0, 0.0, SPEED_MPS, 0.0, math.radians(5.0), wheelbase_m=WHEELBASE_M, l_r_m=L_R_M, dt_s=0.1
+    )
     assert x == pytest.approx(0.999045, abs=5e-7)
     assert y == pytest.approx(0.043703, abs=5e-7)
     assert psi == pytest.approx(0.032372, abs=5e-7)
@@ -119,8 +120,15 @@ def test_engine_clips_ego_actions(scenario_variant, place):
     """The ego's acceleration is clipped to [-max_brake, max_accel], the steering angle to +-max_steer and then
     to a change of at most max_steer_rate * dt from the previous angle (the scenario's ``limits``; the clipping
     rule is the engine's documented contract, common practice, no source)."""
-    scn = scenario_variant(num_lanes=3, **{"limits.max_accel_mps2": 2.5, "limits.max_brake_mps2": 7.0,
-                                           "limits.max_steer_rad": 0.4, "limits.max_steer_rate_radps": 0.5})
+    scn = scenario_variant(
+        num_lanes=3,
+        **{
+            "limits.max_accel_mps2": 2.5,
+            "limits.max_brake_mps2": 7.0,
+            "limits.max_steer_rad": 0.4,
+            "limits.max_steer_rate_radps": 0.5,
+        },
+    )
     params = SimParams.from_scenario(scn)
     dt = params.dt_s
     # (previous steering, commanded accel, commanded steering) -> (applied accel, applied steering)
@@ -148,8 +156,27 @@ def test_engine_moves_the_ego_by_the_bicycle_model(scenario_variant, place):
     params = SimParams.from_scenario(scn)
     state = place(params, [], seeds=[0], ego_speed_mps=10.0, ego_steer_rad=0.05)
     new, info = engine.step(state, np.array([[0.5, 0.2]]), params)
-    x, y, psi, v, vx, vy, _ = bicycle_step(state.x_m[0, EGO], state.y_m[0, EGO], 0.0, 10.0, 0.5, info.steer_rad[0],
-                                           wheelbase_m=2.7, l_r_m=1.35, dt_s=params.dt_s)
+    x, y, psi, v, vx, vy, _ = bicycle_step(
+        state.x_m[0, EGO],
+        state.y_m[0, EGO],
+        0.0,
+        10.0,
+        0.5,
+        info.steer_rad[0],
+        wheelbase_m=2.7,
+        l_r_m=1.35,
+        dt_s=params.dt_s,
+    )
     assert info.steer_rad[0] == pytest.approx(0.05 + params.max_steer_rate_radps * params.dt_s, abs=1e-12)
-    np.testing.assert_allclose([new.x_m[0, EGO], new.y_m[0, EGO], new.heading_rad[0, EGO], new.ego_speed_mps[0],
-                                new.vx_mps[0, EGO], new.vy_mps[0, EGO]], [x, y, psi, v, vx, vy], rtol=1e-12)
+    np.testing.assert_allclose(
+        [
+            new.x_m[0, EGO],
+            new.y_m[0, EGO],
+            new.heading_rad[0, EGO],
+            new.ego_speed_mps[0],
+            new.vx_mps[0, EGO],
+            new.vy_mps[0, EGO],
+        ],
+        [x, y, psi, v, vx, vy],
+        rtol=1e-12,
+    )

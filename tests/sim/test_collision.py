@@ -108,8 +108,9 @@ def _random_pairs(gen: np.random.Generator, n: int) -> np.ndarray:
     ln = gen.uniform(0.5, 12.0, (n, 2))
     wd = gen.uniform(0.3, 2.6, (n, 2))
     hd = gen.uniform(-np.pi, np.pi, (n, 2))
-    return np.column_stack([cx[:, 0], cy[:, 0], ln[:, 0], wd[:, 0], hd[:, 0],
-                            cx[:, 1], cy[:, 1], ln[:, 1], wd[:, 1], hd[:, 1]])
+    return np.column_stack(
+        [cx[:, 0], cy[:, 0], ln[:, 0], wd[:, 0], hd[:, 0], cx[:, 1], cy[:, 1], ln[:, 1], wd[:, 1], hd[:, 1]]
+    )
 
 
 def test_agrees_with_shapely_on_random_pairs():
@@ -181,8 +182,12 @@ def test_touching_and_nearly_touching_boxes(a, b_size, side, nudge, slide):
 @seed(20240612)
 @settings(max_examples=300, deadline=None, database=None)
 @given(
-    length=st.floats(0.5, 15.0), width=st.floats(0.3, 3.0), heading=st.floats(-10.0, 10.0),
-    dx=st.floats(-8.0, 8.0), dy=st.floats(-8.0, 8.0), dh=st.floats(-4.0, 4.0),
+    length=st.floats(0.5, 15.0),
+    width=st.floats(0.3, 3.0),
+    heading=st.floats(-10.0, 10.0),
+    dx=st.floats(-8.0, 8.0),
+    dy=st.floats(-8.0, 8.0),
+    dh=st.floats(-4.0, 4.0),
 )
 def test_symmetric_and_invariant_under_rigid_motion(length, width, heading, dx, dy, dh):
     """Swapping the boxes, or moving both by one rotation and translation, never changes the answer away from the

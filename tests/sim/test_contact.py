@@ -35,11 +35,11 @@ def _shapely_box(cx, cy, length, width, heading):
 
 # other car's centre and heading in the ego's frame (x forward, y left), and the side it touches
 CASES = [
-    ((0.5 * (EGO_L + CAR_L) - 0.2, 0.3, 0.0), "front"),    # the ego runs into the car ahead
-    ((-0.5 * (EGO_L + CAR_L) + 0.2, -0.4, 0.0), "rear"),   # run into from behind
-    ((1.0, 0.5 * (EGO_W + CAR_W) - 0.2, 0.0), "left"),      # side by side, the car to the left
+    ((0.5 * (EGO_L + CAR_L) - 0.2, 0.3, 0.0), "front"),  # the ego runs into the car ahead
+    ((-0.5 * (EGO_L + CAR_L) + 0.2, -0.4, 0.0), "rear"),  # run into from behind
+    ((1.0, 0.5 * (EGO_W + CAR_W) - 0.2, 0.0), "left"),  # side by side, the car to the left
     ((-1.5, -0.5 * (EGO_W + CAR_W) + 0.2, 0.05), "right"),  # and to the right, slightly turned
-    ((3.0, 2.2, 0.0), ""),                                  # near, not touching
+    ((3.0, 2.2, 0.0), ""),  # near, not touching
 ]
 
 
@@ -91,7 +91,10 @@ def test_a_fast_run_into_the_car_ahead_is_a_front_contact():
 def test_contact_side_ignores_empty_slots_and_picks_the_nearest_car():
     st = _scene([CASES[0][0], CASES[1][0]])
     st.valid[0, 1] = False  # scene 0: the car ahead is an empty slot now
-    st.x_m[1, 2], st.y_m[1, 2] = st.x_m[1, EGO] + 4.55, st.y_m[1, EGO]  # scene 1: a second car touching in front, farther
+    st.x_m[1, 2], st.y_m[1, 2] = (
+        st.x_m[1, EGO] + 4.55,
+        st.y_m[1, EGO],
+    )  # scene 1: a second car touching in front, farther
     st.length_m[1, 2], st.width_m[1, 2], st.valid[1, 2] = CAR_L, CAR_W, True
     assert contact_sides(st, np.array([0, 1])) == ["", "rear"]
     assert contact_sides(st, np.array([], dtype=np.int64)) == []

@@ -155,7 +155,9 @@ def test_from_arrays_refuses_a_missing_field():
 def test_from_arrays_refuses_mismatched_shapes():
     snap = initial_state(_params("open-road"), [1, 2]).to_arrays()
     snap["y_m"] = snap["y_m"][:, :-1]
-    with pytest.raises(ValueError, match=re.escape("snapshot field y_m has shape (2, 15), expected leading axes (2, 16)")):
+    with pytest.raises(
+        ValueError, match=re.escape("snapshot field y_m has shape (2, 15), expected leading axes (2, 16)")
+    ):
         TrafficState.from_arrays(snap)
 
 

@@ -42,8 +42,9 @@ def test_rules_ego_does_not_merge_into_a_short_gap_behind_a_slower_car():
     for offset in (10.0, 11.4, 13.0):
         for wanted in (13.0, 14.0, 15.0):
             data = _quiet_onramp()
-            data["traffic"]["placed"] = [{"lane": 1, "offset_m": offset, "speed_mps": 22.0,
-                                          "desired_speed_mps": wanted}]
+            data["traffic"]["placed"] = [
+                {"lane": 1, "offset_m": offset, "speed_mps": 22.0, "desired_speed_mps": wanted}
+            ]
             scenario = parse_scenario(data, "short gap")
             params = SimParams.from_scenario(scenario)
             state = initial_state(params, [0])

@@ -268,8 +268,16 @@ def test_docstring_tabulates_every_feature_in_order():
     for names in (VEHICLE_FEATURES, ROAD_FEATURES):
         positions = [doc.index(f"| {name} ") for name in names]
         assert positions == sorted(positions)
-    for section in ("## Description", "## Action Space", "## Observation Space", "## Rewards", "## Starting State",
-                    "## Episode End", "## Arguments", "## Version History"):
+    for section in (
+        "## Description",
+        "## Action Space",
+        "## Observation Space",
+        "## Rewards",
+        "## Starting State",
+        "## Episode End",
+        "## Arguments",
+        "## Version History",
+    ):
         assert section in doc
 
 
@@ -282,8 +290,9 @@ def test_action_space_is_the_physical_box_from_the_scenario():
     np.testing.assert_array_equal(env.action_space.low, np.array([-8.0, -0.5], dtype=np.float32))
     np.testing.assert_array_equal(env.action_space.high, np.array([3.0, 0.5], dtype=np.float32))
     assert env.action_space.dtype == np.float32
-    np.testing.assert_allclose(to_physical(np.array([[1.0, -1.0], [-0.5, 0.25]]), env.params),
-                               [[3.0, -0.5], [-4.0, 0.125]])
+    np.testing.assert_allclose(
+        to_physical(np.array([[1.0, -1.0], [-0.5, 0.25]]), env.params), [[3.0, -0.5], [-4.0, 0.125]]
+    )
 
 
 def test_progress_reward_matches_constant_speed_and_constant_acceleration_kinematics():

@@ -58,8 +58,9 @@ def test_free_road_acceleration(highway, speed_mps, fraction):
 
     Source: THH 2000 / Treiber & Kesting 2013 free-road term [S] (docs/references.md#treiber-2000-idm); values [D].
     """
-    acc = idm_accel(speed_mps, highway.desired_mps, np.inf, 0.0, highway.t_s, highway.s0_m, highway.a_mps2,
-                    highway.b_mps2)
+    acc = idm_accel(
+        speed_mps, highway.desired_mps, np.inf, 0.0, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2
+    )
     assert acc == pytest.approx(fraction * highway.a_mps2, rel=1e-12)
 
 
@@ -97,8 +98,10 @@ def test_idm_broadcasts_elementwise(highway):
     gap = np.array([np.inf, 15.0, 50.0, 40.0])
     dv = np.array([0.0, -2.0, 20.0, 3.0])
     got = idm_accel(v, highway.desired_mps, gap, dv, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
-    want = [idm_accel(v[i], highway.desired_mps, gap[i], dv[i], highway.t_s, highway.s0_m, highway.a_mps2,
-                      highway.b_mps2) for i in range(4)]
+    want = [
+        idm_accel(v[i], highway.desired_mps, gap[i], dv[i], highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2)
+        for i in range(4)
+    ]
     np.testing.assert_allclose(got, want, rtol=0, atol=0)
 
 
@@ -115,24 +118,35 @@ def test_engine_applies_the_same_law(scenario_variant, place, highway):
     gen = np.random.default_rng(20240611)
     n_random = 64
     # (follower speed, leader speed, gap): following at equilibrium-ish, closing in, pulling away, near stop.
-    fixed = np.array([[20.0, 20.0, 23.5811], [20.0, 15.0, 30.0], [25.0, 30.0, 40.0], [20.0, 0.0, 50.0],
-                      [5.0, 0.0, 4.0]])
+    fixed = np.array(
+        [[20.0, 20.0, 23.5811], [20.0, 15.0, 30.0], [25.0, 30.0, 40.0], [20.0, 0.0, 50.0], [5.0, 0.0, 4.0]]
+    )
     v_f = np.concatenate([fixed[:, 0], gen.uniform(0.0, 35.0, n_random)])
     v_l = np.concatenate([fixed[:, 1], gen.uniform(0.0, 35.0, n_random)])
     gap = np.concatenate([fixed[:, 2], gen.uniform(2.0, 120.0, n_random)])
-    traits = np.tile([highway.desired_mps, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2],
-                     (len(v_f), 1))
-    traits[len(fixed):] = np.column_stack([
-        gen.uniform(20.0, 40.0, n_random), gen.uniform(0.6, 2.5, n_random), gen.uniform(1.0, 4.0, n_random),
-        gen.uniform(0.5, 2.5, n_random), gen.uniform(1.0, 3.5, n_random),
-    ])
+    traits = np.tile([highway.desired_mps, highway.t_s, highway.s0_m, highway.a_mps2, highway.b_mps2], (len(v_f), 1))
+    traits[len(fixed) :] = np.column_stack(
+        [
+            gen.uniform(20.0, 40.0, n_random),
+            gen.uniform(0.6, 2.5, n_random),
+            gen.uniform(1.0, 4.0, n_random),
+            gen.uniform(0.5, 2.5, n_random),
+            gen.uniform(1.0, 3.5, n_random),
+        ]
+    )
     s = len(v_f)
     lead_len_m, foll_len_m, x_lead_m = 4.5, 5.0, 1000.0
     trait_cols = dict(zip((T_V0, T_T, T_S0, T_A, T_B), traits.T, strict=True))
     vehicles = [
         dict(slot=1, lane=1, x_m=x_lead_m, speed_mps=v_l, length_m=lead_len_m, traits=trait_cols),
-        dict(slot=2, lane=1, x_m=x_lead_m - 0.5 * (lead_len_m + foll_len_m) - gap, speed_mps=v_f,
-             length_m=foll_len_m, traits=trait_cols),
+        dict(
+            slot=2,
+            lane=1,
+            x_m=x_lead_m - 0.5 * (lead_len_m + foll_len_m) - gap,
+            speed_mps=v_f,
+            length_m=foll_len_m,
+            traits=trait_cols,
+        ),
     ]
     state = place(params, vehicles, seeds=range(s), step=1, ego_x_m=100.0, ego_lane=0, ego_speed_mps=0.0)
     _, info = engine.step(state, np.zeros((s, 2)), params)

@@ -35,9 +35,23 @@ from wmplan.sim import EGO, SimParams, TrafficState, initial_state, step, traffi
 from wmplan.sim.ego_rules import rule_actions
 from wmplan.sim.params import MAX_PHYSICAL_DECEL_MPS2, NUM_TRAITS
 
-FLOAT_FIELDS = tuple(f.name for f in dataclasses.fields(TrafficState) if f.name not in
-                     ("key", "step", "next_id", "valid", "vehicle_id", "lane", "yield_state", "collided",
-                      "offroad", "reached_goal"))
+FLOAT_FIELDS = tuple(
+    f.name
+    for f in dataclasses.fields(TrafficState)
+    if f.name
+    not in (
+        "key",
+        "step",
+        "next_id",
+        "valid",
+        "vehicle_id",
+        "lane",
+        "yield_state",
+        "collided",
+        "offroad",
+        "reached_goal",
+    )
+)
 OTHER_SCENARIOS = ("cut-in", "lane-drop", "onramp-merge", "stop-and-go")
 EPS_M = 1e-9
 
@@ -85,14 +99,22 @@ def _check_state(st: TrafficState, params: SimParams, seeds: np.ndarray, k: int,
     flag("negative traffic speed", (traffic & (st.vx_mps < 0.0)).any(axis=1))
     flag("negative ego speed", st.ego_speed_mps < 0.0)
     half_w = 0.5 * st.width_m
-    flag("traffic body band off the carriageway",
-         (traffic & ((st.y_m - half_w < -EPS_M) | (st.y_m + half_w > params.road_width_m + EPS_M))).any(axis=1))
+    flag(
+        "traffic body band off the carriageway",
+        (traffic & ((st.y_m - half_w < -EPS_M) | (st.y_m + half_w > params.road_width_m + EPS_M))).any(axis=1),
+    )
     lo_y, hi_y = _footprint_y_extent(st)
     over_m = np.where(traffic, np.maximum(-lo_y, hi_y - params.road_width_m), -np.inf)
     for s in np.nonzero((over_m > EPS_M).any(axis=1))[0][:3]:
         v = int(over_m[s].argmax())
-        rec.footprint_off.append((int(seeds[s]), k, f"slot {v} {over_m[s, v]:.3f} m over, heading "
-                                  f"{np.degrees(st.heading_rad[s, v]):.1f} deg at {st.vx_mps[s, v]:.2f} m/s"))
+        rec.footprint_off.append(
+            (
+                int(seeds[s]),
+                k,
+                f"slot {v} {over_m[s, v]:.3f} m over, heading "
+                f"{np.degrees(st.heading_rad[s, v]):.1f} deg at {st.vx_mps[s, v]:.2f} m/s",
+            )
+        )
     flag("ego slot invalid", ~st.valid[:, EGO])
     flag("lane out of range", (st.valid & ((st.lane < 0) | (st.lane >= params.num_lanes))).any(axis=1))
     flag("bad yield state", ~np.isin(st.yield_state, (0, 1, 2)).all(axis=1))
@@ -201,17 +223,25 @@ def test_reproducers_keep_traffic_within_its_lane(name, seed, bad_step):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("name", [
-    "open-road", "cut-in", "lane-drop", "onramp-merge",
-    "stop-and-go",
-])
+@pytest.mark.parametrize(
+    "name",
+    [
+        "open-road",
+        "cut-in",
+        "lane-drop",
+        "onramp-merge",
+        "stop-and-go",
+    ],
+)
 def test_no_traffic_collisions_1024_episodes(name):
     """1024 episodes of 1.5 scenario durations each: no overlap among traffic."""
     params = _params(name)
     rec = _run_cached(name, 10000, 1024, int(1.5 * params.num_steps))
     assert rec.vehicle_steps > 1_000_000
     assert rec.violations == {}, rec.violations
-    assert rec.collision_pairs == 0, f"{name}: {rec.collision_pairs} overlapping pair-steps, first: {rec.collisions[:5]}"
+    assert rec.collision_pairs == 0, (
+        f"{name}: {rec.collision_pairs} overlapping pair-steps, first: {rec.collisions[:5]}"
+    )
 
 
 @pytest.mark.slow
@@ -222,12 +252,17 @@ def test_traffic_never_passes_the_end_of_its_lane_1024_episodes(name):
     assert rec.past_lane_end == [], f"{name}: {len(rec.past_lane_end)} offences, first: {rec.past_lane_end[:3]}"
 
 
-@pytest.mark.parametrize("name", [
-    "open-road",
-    *OTHER_SCENARIOS,
-])
+@pytest.mark.parametrize(
+    "name",
+    [
+        "open-road",
+        *OTHER_SCENARIOS,
+    ],
+)
 def test_traffic_footprint_stays_on_the_carriageway(name):
     """The rotated rectangle of every valid traffic vehicle stays between y = 0 and the road width."""
     params = _params(name)
     rec = _run_cached(name, 3000, 64, params.num_steps)
-    assert rec.footprint_off == [], f"{name}: {len(rec.footprint_off)} offences, first (seed, step): {rec.footprint_off[:3]}"
+    assert rec.footprint_off == [], (
+        f"{name}: {len(rec.footprint_off)} offences, first (seed, step): {rec.footprint_off[:3]}"
+    )

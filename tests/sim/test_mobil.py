@@ -40,12 +40,17 @@ def _accelerations(ex: dict, hw) -> tuple[float, ...]:
         (xf, vf), (xl, vl) = follower, leader
         return float(idm_accel(vf, hw.desired_mps, xl - xf - LENGTH_M, vf - vl, hw.t_s, hw.s0_m, hw.a_mps2, hw.b_mps2))
 
-    return (acc(ex["c"], ex["ol"]), acc(ex["c"], ex["nl"]), acc(ex["of"], ex["c"]), acc(ex["of"], ex["ol"]),
-            acc(ex["nf"], ex["nl"]), acc(ex["nf"], ex["c"]))
+    return (
+        acc(ex["c"], ex["ol"]),
+        acc(ex["c"], ex["nl"]),
+        acc(ex["of"], ex["c"]),
+        acc(ex["of"], ex["ol"]),
+        acc(ex["nf"], ex["nl"]),
+        acc(ex["nf"], ex["c"]),
+    )
 
 
-@pytest.mark.parametrize(("example", "expected"), [(EXAMPLE_A, EXPECTED_A), (EXAMPLE_B, EXPECTED_B)],
-                         ids=["A", "B"])
+@pytest.mark.parametrize(("example", "expected"), [(EXAMPLE_A, EXPECTED_A), (EXAMPLE_B, EXPECTED_B)], ids=["A", "B"])
 def test_worked_example_accelerations_and_incentive(highway, example, expected):
     """IDM accelerations before/after and the MOBIL incentive for p in {0, 0.2, 0.5, 1}.
 
@@ -99,19 +104,34 @@ X_OFFSET_M = 1000.0  # the five vehicles sit 1 km ahead of the parked ego
 LEFT_PHASE = LANE_DECISION_PERIOD_STEPS // 2  # engine.step considers left changes when step % P == P // 2
 
 
-def _run_example(example: dict, politeness: float, step: int, make_scenario, place, highway,
-                 safe_decel_mps2: float = 4.0):
+def _run_example(
+    example: dict, politeness: float, step: int, make_scenario, place, highway, safe_decel_mps2: float = 4.0
+):
     """Put the five vehicles of a worked example on a 2-lane road (lane 0 right, lane 1 left), the ego parked
     1 km behind in lane 0, and take one engine step. Returns (lane before, lane after) of the candidate."""
-    scn = make_scenario(num_lanes=2, **{"road.length_m": 5000.0, "traffic.window_ahead_m": 2000.0,
-                                        "ego.x_m": 100.0, "ego.lane": 0, "ego.speed_mps": 0.0})
+    scn = make_scenario(
+        num_lanes=2,
+        **{
+            "road.length_m": 5000.0,
+            "traffic.window_ahead_m": 2000.0,
+            "ego.x_m": 100.0,
+            "ego.lane": 0,
+            "ego.speed_mps": 0.0,
+        },
+    )
     params = SimParams.from_scenario(scn)
     traits = highway.traits(politeness=politeness, threshold_mps2=0.2, safe_decel_mps2=safe_decel_mps2)
     lanes = dict(c=0, ol=0, of=0, nl=1, nf=1)
     slots = dict(c=3, ol=1, of=5, nl=2, nf=4)  # slot order unrelated to position on purpose
     vehicles = [
-        dict(slot=slots[k], lane=lanes[k], x_m=X_OFFSET_M + xf - 0.5 * LENGTH_M, speed_mps=v, traits=traits,
-             length_m=LENGTH_M)
+        dict(
+            slot=slots[k],
+            lane=lanes[k],
+            x_m=X_OFFSET_M + xf - 0.5 * LENGTH_M,
+            speed_mps=v,
+            traits=traits,
+            length_m=LENGTH_M,
+        )
         for k, (xf, v) in example.items()
     ]
     state = place(params, vehicles, step=step, ego_x_m=100.0, ego_lane=0, ego_speed_mps=0.0)
@@ -163,8 +183,13 @@ def test_engine_decisions_match_the_criteria_on_random_situations(scenario_varia
     n = 3000
     gen = np.random.default_rng(4242 + direction)
     own, tgt = (0, 1) if direction == 1 else (1, 0)
-    front = {"c": np.zeros(n), "ol": gen.uniform(7.0, 90.0, n), "of": -gen.uniform(7.0, 90.0, n),
-             "nl": gen.uniform(7.0, 70.0, n), "nf": -gen.uniform(7.0, 70.0, n)}
+    front = {
+        "c": np.zeros(n),
+        "ol": gen.uniform(7.0, 90.0, n),
+        "of": -gen.uniform(7.0, 90.0, n),
+        "nl": gen.uniform(7.0, 70.0, n),
+        "nf": -gen.uniform(7.0, 70.0, n),
+    }
     speed = {k: gen.uniform(12.0, 34.0, n) for k in front}
     politeness = gen.uniform(0.0, 1.5, n)
     b_safe = gen.uniform(2.0, 9.0, n)
@@ -183,8 +208,16 @@ def test_engine_decisions_match_the_criteria_on_random_situations(scenario_varia
     want = mobil_safe(a_n_after, b_safe) & (a_c_after >= -b_safe) & (inc > 0.2)
     clear = (np.abs(inc - 0.2) > 1e-9) & (np.abs(a_n_after + b_safe) > 1e-9) & (np.abs(a_c_after + b_safe) > 1e-9)
 
-    scn = scenario_variant(num_lanes=2, **{"road.length_m": 5000.0, "traffic.window_ahead_m": 2000.0,
-                                           "ego.x_m": 100.0, "ego.lane": 0, "ego.speed_mps": 0.0})
+    scn = scenario_variant(
+        num_lanes=2,
+        **{
+            "road.length_m": 5000.0,
+            "traffic.window_ahead_m": 2000.0,
+            "ego.x_m": 100.0,
+            "ego.lane": 0,
+            "ego.speed_mps": 0.0,
+        },
+    )
     params = SimParams.from_scenario(scn)
     lanes = dict(c=own, ol=own, of=own, nl=tgt, nf=tgt)
     slots = dict(c=4, ol=2, of=1, nl=5, nf=3)
@@ -194,8 +227,16 @@ def test_engine_decisions_match_the_criteria_on_random_situations(scenario_varia
         t = dict(traits)
         if k == "c":
             t[T_P], t[T_BSAFE] = politeness, b_safe
-        vehicles.append(dict(slot=slots[k], lane=lanes[k], x_m=X_OFFSET_M + front[k] - 0.5 * LENGTH_M,
-                             speed_mps=speed[k], traits=t, length_m=LENGTH_M))
+        vehicles.append(
+            dict(
+                slot=slots[k],
+                lane=lanes[k],
+                x_m=X_OFFSET_M + front[k] - 0.5 * LENGTH_M,
+                speed_mps=speed[k],
+                traits=t,
+                length_m=LENGTH_M,
+            )
+        )
     phase = LEFT_PHASE if direction == 1 else 0
     state = place(params, vehicles, seeds=range(n), step=phase, ego_x_m=100.0, ego_lane=0, ego_speed_mps=0.0)
     new, _ = engine.step(state, np.zeros((n, 2)), params)

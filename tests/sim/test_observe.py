@@ -43,8 +43,14 @@ def _rot(angle_rad: float) -> np.ndarray:
 
 def test_feature_layout_is_the_documented_one():
     assert VEHICLE_FEATURES == ("x_m", "y_m", "vx_mps", "vy_mps", "heading_rad", "length_m", "width_m", "valid")
-    assert ROAD_FEATURES == ("lane_offset_m", "lane_end_m", "lanes_left", "lanes_right", "right_lane_end_m",
-                             "left_lane_end_m")
+    assert ROAD_FEATURES == (
+        "lane_offset_m",
+        "lane_end_m",
+        "lanes_left",
+        "lanes_right",
+        "right_lane_end_m",
+        "left_lane_end_m",
+    )
 
 
 def test_vehicle_ten_metres_ahead_in_the_same_lane():
@@ -200,19 +206,21 @@ def test_road_features_at_the_start_of_onramp_merge():
     np.testing.assert_allclose(road, [expected, expected], rtol=0, atol=1e-12)
 
 
-@pytest.mark.parametrize(("x_m", "y_m", "expected"), [
-    # lane 1 at x = 100 (1.0 m left of its centre 5.4): lane 0 to the right ends in 220 m, lane 2 to the left
-    (100.0, 6.4, [1.0, 500.0, 1.0, 1.0, 220.0, 500.0]),
-    # lane 1 at x = 330, past the end of lane 0: nothing to the right any more
-    (330.0, 5.4, [0.0, 500.0, 1.0, 0.0, 0.0, 500.0]),
-    # lane 2 at x = 900: road end at 1200 is 300 m away but lanes that reach the road's end count as not ending
-    # (lane 0 ended at 320 m, so only lane 1 is to the right)
-    (900.0, 9.0 - 0.5, [-0.5, 500.0, 0.0, 1.0, 500.0, 0.0]),
-    # lane 0 at x = 300, 0.7 m right of centre: 20 m to its end
-    (300.0, 1.1, [-0.7, 20.0, 2.0, 0.0, 0.0, 500.0]),
-])
+@pytest.mark.parametrize(
+    ("x_m", "y_m", "expected"),
+    [
+        # lane 1 at x = 100 (1.0 m left of its centre 5.4): lane 0 to the right ends in 220 m, lane 2 to the left
+        (100.0, 6.4, [1.0, 500.0, 1.0, 1.0, 220.0, 500.0]),
+        # lane 1 at x = 330, past the end of lane 0: nothing to the right any more
+        (330.0, 5.4, [0.0, 500.0, 1.0, 0.0, 0.0, 500.0]),
+        # lane 2 at x = 900: road end at 1200 is 300 m away but lanes that reach the road's end count as not ending
+        # (lane 0 ended at 320 m, so only lane 1 is to the right)
+        (900.0, 9.0 - 0.5, [-0.5, 500.0, 0.0, 1.0, 500.0, 0.0]),
+        # lane 0 at x = 300, 0.7 m right of centre: 20 m to its end
+        (300.0, 1.1, [-0.7, 20.0, 2.0, 0.0, 0.0, 500.0]),
+    ],
+)
 def test_road_features_elsewhere_on_onramp_merge(x_m, y_m, expected):
     """More hand-worked points on the same road (lane centres 1.8, 5.4, 9.0 m)."""
     params = SimParams.from_scenario(load_scenario("onramp-merge"))
-    np.testing.assert_allclose(road_features(params, np.array([x_m]), np.array([y_m]))[0], expected, rtol=0,
-                               atol=1e-9)
+    np.testing.assert_allclose(road_features(params, np.array([x_m]), np.array([y_m]))[0], expected, rtol=0, atol=1e-9)

@@ -36,9 +36,25 @@ from wmplan.sim.oracle import OracleFutures, branch, oracle_futures
 from wmplan.sim.params import T_V0, T_YIELD, TRAIT_NAMES
 
 # Fields an observer can see (or that are bookkeeping of the scene, not of the drivers' minds).
-OBSERVABLE = ("step", "next_id", "x_m", "y_m", "vx_mps", "vy_mps", "heading_rad", "length_m", "width_m", "valid",
-              "vehicle_id", "lane", "brake_timer_s", "brake_decel_mps2", "cooldown_s", "ego_speed_mps",
-              "ego_steer_rad")
+OBSERVABLE = (
+    "step",
+    "next_id",
+    "x_m",
+    "y_m",
+    "vx_mps",
+    "vy_mps",
+    "heading_rad",
+    "length_m",
+    "width_m",
+    "valid",
+    "vehicle_id",
+    "lane",
+    "brake_timer_s",
+    "brake_decel_mps2",
+    "cooldown_s",
+    "ego_speed_mps",
+    "ego_steer_rad",
+)
 
 
 def _params(name: str) -> SimParams:
@@ -55,8 +71,9 @@ def _warm_state(params: SimParams, seeds, num_steps: int) -> TrafficState:
 def _plans(num_plans: int, horizon: int, seed: int) -> np.ndarray:
     """(C, H, 2) gentle random plans: accelerations within +-1.5 m/s^2, steering within +-0.01 rad."""
     gen = np.random.default_rng(seed)
-    return np.stack([gen.uniform(-1.5, 1.5, (num_plans, horizon)), gen.uniform(-0.01, 0.01, (num_plans, horizon))],
-                    axis=-1)
+    return np.stack(
+        [gen.uniform(-1.5, 1.5, (num_plans, horizon)), gen.uniform(-0.01, 0.01, (num_plans, horizon))], axis=-1
+    )
 
 
 def _all_equal(a: OracleFutures, b: OracleFutures) -> bool:
@@ -213,8 +230,9 @@ def _resampled_desired_speeds(num_batches: int, per_batch: int) -> tuple[np.ndar
 
 
 def _truncnorm(dist) -> scipy.stats.rv_continuous:
-    return scipy.stats.truncnorm((dist.low - dist.mean) / dist.std, (dist.high - dist.mean) / dist.std,
-                                 loc=dist.mean, scale=dist.std)
+    return scipy.stats.truncnorm(
+        (dist.low - dist.mean) / dist.std, (dist.high - dist.mean) / dist.std, loc=dist.mean, scale=dist.std
+    )
 
 
 def test_resampled_desired_speeds_follow_the_truncated_normal():
@@ -261,8 +279,12 @@ def _undecided_yield_interaction() -> tuple[TrafficState, SimParams, int, int]:
         for s, v in zip(*np.nonzero(begins), strict=True):
             dx = st.x_m[s, EGO] - st.x_m[s, v]
             between = is_merger[s] & (st.x_m[s] > st.x_m[s, v]) & (st.x_m[s] < st.x_m[s, EGO])
-            if (is_merger[s, EGO] and 0.0 < dx < params.yield_window_m and not between.any()
-                    and 0.2 <= st.traits[s, v, T_YIELD] <= 0.8):
+            if (
+                is_merger[s, EGO]
+                and 0.0 < dx < params.yield_window_m
+                and not between.any()
+                and 0.2 <= st.traits[s, v, T_YIELD] <= 0.8
+            ):
                 return st, params, int(s), int(v)
         st = nxt
     raise AssertionError("no undecided yield interaction with the ego found in 64 scenes x 60 steps")
@@ -321,9 +343,18 @@ def _stopped_vehicle_ahead() -> tuple[TrafficState, SimParams]:
     ego_x = float(arr["x_m"][0, EGO])
     assert ego_x == 100.0 and arr["lane"][0, EGO] == 1 and arr["ego_speed_mps"][0] == 27.0
     assert arr["length_m"][0, EGO] == 4.7
-    for name, value in (("valid", True), ("x_m", ego_x + 70.0), ("y_m", arr["y_m"][0, EGO]), ("vx_mps", 0.0),
-                        ("lane", 1), ("length_m", 4.7), ("width_m", 1.85), ("brake_timer_s", 100.0),
-                        ("brake_decel_mps2", 5.0), ("cooldown_s", 100.0)):
+    for name, value in (
+        ("valid", True),
+        ("x_m", ego_x + 70.0),
+        ("y_m", arr["y_m"][0, EGO]),
+        ("vx_mps", 0.0),
+        ("lane", 1),
+        ("length_m", 4.7),
+        ("width_m", 1.85),
+        ("brake_timer_s", 100.0),
+        ("brake_decel_mps2", 5.0),
+        ("cooldown_s", 100.0),
+    ):
         arr[name][0, 1] = value
     density = params.density_veh_per_m.copy()
     density[1] = 0.0
@@ -363,12 +394,15 @@ def test_plan_step_not_a_multiple_of_dt_is_refused(plan_dt_s):
     assert "\n" not in str(err.value)
 
 
-@pytest.mark.parametrize(("kwargs", "msg"), [
-    ({"plans": np.zeros((3, 2))}, "plans must have shape (C, H, 2), got (3, 2)"),
-    ({"plans": np.zeros((1, 3, 3))}, "plans must have shape (C, H, 2), got (1, 3, 3)"),
-    ({"num_futures": 0}, "num_futures must be >= 1, got 0"),
-    ({"mode": "psychic"}, "mode must be 'known' or 'resampled', got 'psychic'"),
-])
+@pytest.mark.parametrize(
+    ("kwargs", "msg"),
+    [
+        ({"plans": np.zeros((3, 2))}, "plans must have shape (C, H, 2), got (3, 2)"),
+        ({"plans": np.zeros((1, 3, 3))}, "plans must have shape (C, H, 2), got (1, 3, 3)"),
+        ({"num_futures": 0}, "num_futures must be >= 1, got 0"),
+        ({"mode": "psychic"}, "mode must be 'known' or 'resampled', got 'psychic'"),
+    ],
+)
 def test_bad_arguments_are_refused_in_one_line(kwargs, msg):
     params = _params("open-road")
     st = initial_state(params, [0])

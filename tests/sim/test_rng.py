@@ -71,11 +71,15 @@ def test_normal_tails_have_the_normal_frequency():
     assert abs(freq - p) < 5 * np.sqrt(p * (1 - p) / z.size)
 
 
-@pytest.mark.parametrize(("parts_a", "parts_b"), [
-    ((rng.STREAM_TRAITS,), (rng.STREAM_SPAWN,)),  # different streams
-    ((rng.STREAM_YIELD, 0), (rng.STREAM_YIELD, 1)),  # neighbouring step counters
-    ((rng.STREAM_BRAKE_START, 7), (rng.STREAM_BRAKE_START, 8)),
-], ids=["streams", "steps-0-1", "steps-7-8"])
+@pytest.mark.parametrize(
+    ("parts_a", "parts_b"),
+    [
+        ((rng.STREAM_TRAITS,), (rng.STREAM_SPAWN,)),  # different streams
+        ((rng.STREAM_YIELD, 0), (rng.STREAM_YIELD, 1)),  # neighbouring step counters
+        ((rng.STREAM_BRAKE_START, 7), (rng.STREAM_BRAKE_START, 8)),
+    ],
+    ids=["streams", "steps-0-1", "steps-7-8"],
+)
 def test_streams_and_counters_are_uncorrelated(parts_a, parts_b):
     idx = np.arange(N)
     a = rng.uniform(KEY, *parts_a, idx)
@@ -120,7 +124,9 @@ def test_make_rngs_is_reproducible_and_splits_streams():
     assert not np.array_equal(a.data.random(8), rng.make_rngs(5).sim.random(8))
     ta = torch.rand(4, generator=a.plan)
     assert torch.equal(ta, torch.rand(4, generator=b.plan))
-    assert not torch.equal(torch.rand(4, generator=rng.make_rngs(5).init), torch.rand(4, generator=rng.make_rngs(5).plan))
+    assert not torch.equal(
+        torch.rand(4, generator=rng.make_rngs(5).init), torch.rand(4, generator=rng.make_rngs(5).plan)
+    )
 
 
 def test_compiled_draws_equal_the_numpy_draws():
@@ -135,15 +141,27 @@ def test_compiled_draws_equal_the_numpy_draws():
     ids = gen.integers(-1, 500, 10_000)
     want = rng.uniform(rng.combine(keys, steps, rng.STREAM_YIELD), ids)
     u64 = np.uint64  # a hash comes back to Python as an int; keep it unsigned going in
-    got = np.array([draws.to_unit(u64(draws.combine2(u64(draws.combine3(k, s, rng.STREAM_YIELD)), np.int64(i))))
-                    for k, s, i in zip(keys, steps, ids, strict=True)])
+    got = np.array(
+        [
+            draws.to_unit(u64(draws.combine2(u64(draws.combine3(k, s, rng.STREAM_YIELD)), np.int64(i))))
+            for k, s, i in zip(keys, steps, ids, strict=True)
+        ]
+    )
     assert np.array_equal(got, want)
     spec = (30.0, 3.0, 22.0, 38.0)
     want_tn = rng.truncated_normal(*spec, keys, rng.STREAM_BRAKE_SIZE, ids, 1)
-    got_tn = np.array([draws.truncated_normal(*spec, draws.to_unit(u64(draws.combine4(k, rng.STREAM_BRAKE_SIZE, i, 1))))
-                       for k, i in zip(keys, ids, strict=True)])
+    got_tn = np.array(
+        [
+            draws.truncated_normal(*spec, draws.to_unit(u64(draws.combine4(k, rng.STREAM_BRAKE_SIZE, i, 1))))
+            for k, i in zip(keys, ids, strict=True)
+        ]
+    )
     np.testing.assert_allclose(got_tn, want_tn, rtol=1e-12, atol=1e-12)
     # the kernel's stream ids are those of wmplan.rng
-    assert (kernel.STREAM_TRAITS, kernel.STREAM_SPAWN, kernel.STREAM_YIELD, kernel.STREAM_BRAKE_START,
-            kernel.STREAM_BRAKE_SIZE) == (rng.STREAM_TRAITS, rng.STREAM_SPAWN, rng.STREAM_YIELD,
-                                          rng.STREAM_BRAKE_START, rng.STREAM_BRAKE_SIZE)
+    assert (
+        kernel.STREAM_TRAITS,
+        kernel.STREAM_SPAWN,
+        kernel.STREAM_YIELD,
+        kernel.STREAM_BRAKE_START,
+        kernel.STREAM_BRAKE_SIZE,
+    ) == (rng.STREAM_TRAITS, rng.STREAM_SPAWN, rng.STREAM_YIELD, rng.STREAM_BRAKE_START, rng.STREAM_BRAKE_SIZE)

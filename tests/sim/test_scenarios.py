@@ -80,28 +80,38 @@ def _set(*path_and_value):
 
 CASES = {
     "unknown key": (_set("road", "lane_widht_m", 3.5), f"road.lane_widht_m: {UNKNOWN_KEY_HINT} (got 3.5)"),
-    "wrong type": (_set("road", "length_m", "long"),
-                   "road.length_m: Input should be a valid number, unable to parse string as a number (got 'long')"),
-    "wrong type int": (_set("traffic", "max_vehicles", 2.5),
-                       "traffic.max_vehicles: Input should be a valid integer, got a number with a fractional part "
-                       "(got 2.5)"),
+    "wrong type": (
+        _set("road", "length_m", "long"),
+        "road.length_m: Input should be a valid number, unable to parse string as a number (got 'long')",
+    ),
+    "wrong type int": (
+        _set("traffic", "max_vehicles", 2.5),
+        "traffic.max_vehicles: Input should be a valid integer, got a number with a fractional part (got 2.5)",
+    ),
     "nan": (_set("road", "length_m", math.nan), "road.length_m: Input should be a finite number (got nan)"),
     "inf": (_set("road", "length_m", math.inf), "road.length_m: Input should be a finite number (got inf)"),
-    "nan in a distribution": (_set("drivers", "desired_speed_mps", "mean", math.nan),
-                              "drivers.desired_speed_mps.mean: Input should be a finite number (got nan)"),
-    "out of range": (_set("road", "lane_width_m", 7.0),
-                     "road.lane_width_m: Input should be less than or equal to 5 (got 7.0)"),
-    "out of range in a list": (_set("traffic", "density_veh_per_km", [15.0, 200.0, 12.0]),
-                               "traffic.density_veh_per_km[1]: must lie in [0, 150] vehicles per km, got 200.0"),
-    "density length mismatch": (_set("traffic", "density_veh_per_km", [15.0, 15.0]),
-                                "traffic.density_veh_per_km: has 2 values but the road has 3 lanes; give one "
-                                "density per lane"),
+    "nan in a distribution": (
+        _set("drivers", "desired_speed_mps", "mean", math.nan),
+        "drivers.desired_speed_mps.mean: Input should be a finite number (got nan)",
+    ),
+    "out of range": (
+        _set("road", "lane_width_m", 7.0),
+        "road.lane_width_m: Input should be less than or equal to 5 (got 7.0)",
+    ),
+    "out of range in a list": (
+        _set("traffic", "density_veh_per_km", [15.0, 200.0, 12.0]),
+        "traffic.density_veh_per_km[1]: must lie in [0, 150] vehicles per km, got 200.0",
+    ),
+    "density length mismatch": (
+        _set("traffic", "density_veh_per_km", [15.0, 15.0]),
+        "traffic.density_veh_per_km: has 2 values but the road has 3 lanes; give one density per lane",
+    ),
     "ego lane out of range": (_set("ego", "lane", 3), "ego.lane: must be < 3 (the road's lane count), got 3"),
-    "ego off its lane": (_set("ego", "x_m", 2500.0),
-                         "ego.x_m: (2500.0) must lie on lane 1, which spans [0.0, 2000.0)"),
-    "distribution of the wrong kind": (_set("drivers", "time_headway_s", "fast"),
-                                       "drivers.time_headway_s: must be a number or a mapping {mean, std, low, high} "
-                                       "(got 'fast')"),
+    "ego off its lane": (_set("ego", "x_m", 2500.0), "ego.x_m: (2500.0) must lie on lane 1, which spans [0.0, 2000.0)"),
+    "distribution of the wrong kind": (
+        _set("drivers", "time_headway_s", "fast"),
+        "drivers.time_headway_s: must be a number or a mapping {mean, std, low, high} (got 'fast')",
+    ),
     "missing field": (lambda d: d["road"].pop("length_m"), "road.length_m: Field required"),
 }
 

@@ -38,8 +38,10 @@ ROWS = {
 def _drive_and_stop(scenario_variant, place, speed_kmh: float) -> tuple[float, np.ndarray]:
     """Run the manoeuvre in the engine; returns the distance travelled and the ego's lateral positions."""
     v0 = speed_kmh / 3.6
-    scn = scenario_variant(num_lanes=3, **{"road.length_m": 2000.0, "ego.x_m": 100.0, "ego.lane": 1,
-                                           "ego.speed_mps": v0, "ego.goal.x_m": 2000.0})
+    scn = scenario_variant(
+        num_lanes=3,
+        **{"road.length_m": 2000.0, "ego.x_m": 100.0, "ego.lane": 1, "ego.speed_mps": v0, "ego.goal.x_m": 2000.0},
+    )
     params = SimParams.from_scenario(scn)
     state = place(params, [], seeds=[0])
     assert state.ego_speed_mps[0] == pytest.approx(v0, rel=1e-15)

@@ -21,8 +21,11 @@ def _one_lane(offset_m: float | None, lead_speed: float, ego_speed: float, max_b
     d["road"]["lanes"] = [{"start_m": 0.0}]
     d["traffic"]["density_veh_per_km"] = [0.0]
     d["drivers"]["hard_brake_rate_per_min"] = 0.0
-    d["traffic"]["placed"] = [] if offset_m is None else [
-        {"lane": 0, "offset_m": offset_m, "speed_mps": lead_speed, "desired_speed_mps": max(lead_speed, 0.1)}]
+    d["traffic"]["placed"] = (
+        []
+        if offset_m is None
+        else [{"lane": 0, "offset_m": offset_m, "speed_mps": lead_speed, "desired_speed_mps": max(lead_speed, 0.1)}]
+    )
     d["ego"] = {**d["ego"], "lane": 0, "speed_mps": ego_speed, "goal": {"x_m": 1900.0, "lanes": [0]}}
     d["limits"]["max_brake_mps2"] = max_brake
     params = SimParams.from_scenario(parse_scenario(d, "one lane"))

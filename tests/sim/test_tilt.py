@@ -125,13 +125,16 @@ def test_oracle_ignores_the_tilt(onramp):
     assert not np.array_equal(nominal.brake_timer_s, tilted.brake_timer_s)
 
 
-@pytest.mark.parametrize("kwargs, field, rng_text", [
-    (dict(brake_factor=0.5), "brake_factor", "[1, 1000]"),
-    (dict(brake_factor=float("nan")), "brake_factor", "[1, 1000]"),
-    (dict(yield_factor=1.5), "yield_factor", "[0, 1]"),
-    (dict(radius_m=-1.0), "radius_m", "[0, 10000]"),
-    (dict(brake_factor=True), "brake_factor", "[1, 1000]"),
-])
+@pytest.mark.parametrize(
+    "kwargs, field, rng_text",
+    [
+        (dict(brake_factor=0.5), "brake_factor", "[1, 1000]"),
+        (dict(brake_factor=float("nan")), "brake_factor", "[1, 1000]"),
+        (dict(yield_factor=1.5), "yield_factor", "[0, 1]"),
+        (dict(radius_m=-1.0), "radius_m", "[0, 10000]"),
+        (dict(brake_factor=True), "brake_factor", "[1, 1000]"),
+    ],
+)
 def test_bad_tilt_values_are_refused(kwargs, field, rng_text):
     with pytest.raises(ValueError) as err:
         EventTilt(**kwargs)

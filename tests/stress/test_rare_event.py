@@ -46,19 +46,34 @@ MIN_COVERED = 15
 
 
 def _gauss_tail(seed: int):
-    return cross_entropy_is(lambda x: x[:, 0], GaussianFamily.standard(1), 4.0, n_per_level=1000, n_final=4000,
-                            rng=np.random.default_rng(seed))
+    return cross_entropy_is(
+        lambda x: x[:, 0],
+        GaussianFamily.standard(1),
+        4.0,
+        n_per_level=1000,
+        n_final=4000,
+        rng=np.random.default_rng(seed),
+    )
 
 
 def _exp_tail(seed: int):
-    return cross_entropy_is(lambda x: x[:, 0], ExponentialFamily(np.ones(1)), 20.0, n_per_level=2000, n_final=4000,
-                            rng=np.random.default_rng(seed))
+    return cross_entropy_is(
+        lambda x: x[:, 0],
+        ExponentialFamily(np.ones(1)),
+        20.0,
+        n_per_level=2000,
+        n_final=4000,
+        rng=np.random.default_rng(seed),
+    )
 
 
-@pytest.mark.parametrize(("run", "truth", "ce_mean"), [
-    (_gauss_tail, float(norm.sf(4.0)), float(norm.pdf(4.0) / norm.sf(4.0))),
-    (_exp_tail, math.exp(-20.0), 21.0),
-])
+@pytest.mark.parametrize(
+    ("run", "truth", "ce_mean"),
+    [
+        (_gauss_tail, float(norm.sf(4.0)), float(norm.pdf(4.0) / norm.sf(4.0))),
+        (_exp_tail, math.exp(-20.0), 21.0),
+    ],
+)
 def test_cross_entropy_is_covers_the_truth_and_beats_plain_monte_carlo(run, truth: float, ce_mean: float) -> None:
     """Over 20 seeds: the 95% interval covers the known probability in >= 15 runs; the mean estimate is within
     4 standard errors of the truth (no bias); the spread of the estimates is far below plain Monte Carlo's at the
@@ -89,8 +104,18 @@ def test_defensive_mixture_bounds_the_weights_and_keeps_the_estimate() -> None:
     assert np.allclose(np.exp(mix.log_pdf(x)), dens)
     assert np.all(np.exp(nominal.log_pdf(x) - mix.log_pdf(x)) <= 1.0 / 0.2 + 1e-12)
     truth = float(norm.sf(4.0))
-    results = [cross_entropy_is(lambda z: z[:, 0], nominal, 4.0, n_per_level=1000, n_final=4000, defensive=0.2,
-                                rng=np.random.default_rng(seed)) for seed in SEEDS]
+    results = [
+        cross_entropy_is(
+            lambda z: z[:, 0],
+            nominal,
+            4.0,
+            n_per_level=1000,
+            n_final=4000,
+            defensive=0.2,
+            rng=np.random.default_rng(seed),
+        )
+        for seed in SEEDS
+    ]
     assert sum(r.ci95[0] <= truth <= r.ci95[1] for r in results) >= MIN_COVERED
     est = np.array([r.estimate for r in results])
     assert est.var(ddof=1) < truth * (1 - truth) / results[0].num_evaluations / 100.0
@@ -105,9 +130,15 @@ def test_plain_monte_carlo_counts_and_uses_wilson() -> None:
     assert res.ci95[0] <= norm.sf(1.0) <= res.ci95[1]
 
 
-@pytest.mark.parametrize(("k", "n", "lo", "hi"), [
-    (3, 200, 0.005114, 0.043166), (0, 200, 0.0, 0.018845), (7, 50, 0.069508, 0.261862), (1, 1000, 0.000177, 0.005643),
-])
+@pytest.mark.parametrize(
+    ("k", "n", "lo", "hi"),
+    [
+        (3, 200, 0.005114, 0.043166),
+        (0, 200, 0.0, 0.018845),
+        (7, 50, 0.069508, 0.261862),
+        (1, 1000, 0.000177, 0.005643),
+    ],
+)
 def test_wilson_interval_matches_the_reference_table(k: int, n: int, lo: float, hi: float) -> None:
     """The Wilson values of docs/references.md#wilson-1927 (6 decimals) and scipy's binomtest."""
     got = wilson_interval(k, n)
@@ -136,12 +167,14 @@ def test_gaussian_fit_is_the_weighted_mle_with_a_floor() -> None:
 def test_fractional_values_estimate_the_conditional_probability() -> None:
     """A score may return (scores, values): with values = P(failure | x) exactly, the estimate of
     P(Z > 3 and a fair coin lands heads) = norm.sf(3) / 2 stays unbiased; values must be 0 below the level."""
+
     def score(x):
         s = x[:, 0] - 3.0
         return s, np.where(s >= 0, 0.5, 0.0)
 
-    res = cross_entropy_is(score, GaussianFamily.standard(1), 0.0, n_per_level=1000, n_final=4000,
-                           rng=np.random.default_rng(1))
+    res = cross_entropy_is(
+        score, GaussianFamily.standard(1), 0.0, n_per_level=1000, n_final=4000, rng=np.random.default_rng(1)
+    )
     truth = norm.sf(3.0) / 2
     assert res.ci95[0] <= truth <= res.ci95[1]
     with pytest.raises(ValueError, match="score values must lie in"):

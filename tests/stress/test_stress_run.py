@@ -148,8 +148,11 @@ def test_sample_score_by_brake_threat() -> None:
 
 def test_select_knobs() -> None:
     assert [k.name for k in select_knobs("ego_brake,density")] == ["ego_brake", "density"]
-    with pytest.raises(ConfigError, match=r"^knobs: unknown knob 'brakes'; allowed: density, yield_prob, "
-                                          r"hard_brake_rate, desired_speed, ego_speed, ego_brake$"):
+    with pytest.raises(
+        ConfigError,
+        match=r"^knobs: unknown knob 'brakes'; allowed: density, yield_prob, "
+        r"hard_brake_rate, desired_speed, ego_speed, ego_brake$",
+    ):
         select_knobs("brakes")
     with pytest.raises(ConfigError, match="each knob at most once"):
         select_knobs(["density", "density"])
@@ -168,8 +171,10 @@ def test_sample_score() -> None:
 
 def test_bad_arguments_are_one_line(harsh: Scenario, tmp_path: Path) -> None:
     """Budget, seed and knob paths are checked before anything runs."""
-    with pytest.raises(ConfigError, match=re.escape("budget must be an integer >= 120 episodes (30 knob samples x 4 "
-                                                    "seeds per sample), got 50")):
+    with pytest.raises(
+        ConfigError,
+        match=re.escape("budget must be an integer >= 120 episodes (30 knob samples x 4 seeds per sample), got 50"),
+    ):
         run_stress(harsh, "rules", 50, tmp_path, 0)
     with pytest.raises(ConfigError, match=re.escape("seed must be an integer >= 0, got -1")):
         run_stress(harsh, "rules", 200, tmp_path, -1)

@@ -54,7 +54,7 @@ worker, which inherits the environment."""
 
 
 def flaky(params, **options):
-    """"rules", or on the dense cells a planner bug or a dying worker, as the environment variable FLAKY_ENV says."""
+    """ "rules", or on the dense cells a planner bug or a dying worker, as the environment variable FLAKY_ENV says."""
     mode = os.environ.get(FLAKY_ENV, "")
     if mode == "raise":
         return raises_on_dense(params)

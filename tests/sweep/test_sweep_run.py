@@ -47,10 +47,15 @@ def _sweep_file(tmp_path: Path, planners: list[str], episodes: int = 4, seed: in
     base["duration_s"] = 6.0
     (tmp_path / "short-merge.yaml").write_text(yaml.safe_dump(base))
     spec = {
-        "name": "grid", "base": "short-merge.yaml",
-        "vary": {"traffic.density_veh_per_km[1]": [12.0, sweep_planners.CRASH_DENSITY],
-                 "drivers.yield_prob.mean": [0.2, 0.8]},
-        "planners": planners, "seed": seed, "episodes_per_cell": episodes,
+        "name": "grid",
+        "base": "short-merge.yaml",
+        "vary": {
+            "traffic.density_veh_per_km[1]": [12.0, sweep_planners.CRASH_DENSITY],
+            "drivers.yield_prob.mean": [0.2, 0.8],
+        },
+        "planners": planners,
+        "seed": seed,
+        "episodes_per_cell": episodes,
     }
     path = tmp_path / "grid.yaml"
     path.write_text(yaml.safe_dump(spec, sort_keys=False))
@@ -71,8 +76,15 @@ def test_rows_identical_for_one_and_two_workers_and_well_formed(tmp_path: Path) 
     assert len(rows) == 12 * 4
     keys = [(r["cell_id"], r["seed"]) for r in rows]
     assert keys == sorted(keys) and len(set(keys)) == len(keys)
-    assert a.column_names[:7] == ["cell_id", "variant_id", "traffic.density_veh_per_km[1]",
-                                  "drivers.yield_prob.mean", "planner", "episode", "seed"]
+    assert a.column_names[:7] == [
+        "cell_id",
+        "variant_id",
+        "traffic.density_veh_per_km[1]",
+        "drivers.yield_prob.mean",
+        "planner",
+        "episode",
+        "seed",
+    ]
     by = {(r["variant_id"], r["planner"], r["seed"]): r for r in rows}
     variants = {r["variant_id"] for r in rows}
     assert len(variants) == 4
@@ -104,9 +116,13 @@ def test_missing_dask_gives_the_pip_command(tmp_path: Path, monkeypatch: pytest.
     """Without the cluster extra, asking for a scheduler names the exact install command."""
     monkeypatch.setitem(sys.modules, "distributed", None)
     path = _sweep_file(tmp_path, ["rules"])
-    with pytest.raises(ConfigError, match=re.escape(
+    with pytest.raises(
+        ConfigError,
+        match=re.escape(
             "a Dask scheduler was given but the Dask distributed client is not installed; install it with: "
-            "pip install 'wmplan[cluster]'")):
+            "pip install 'wmplan[cluster]'"
+        ),
+    ):
         run_sweep(path, tmp_path / "out", scheduler="tcp://127.0.0.1:1", progress=False)
 
 
@@ -126,8 +142,9 @@ def test_rerun_after_deleting_cells_gives_identical_rows(tmp_path: Path) -> None
 
 
 @pytest.mark.parametrize(("broken", "workers"), [("raise", 1), ("raise", 2), ("exit", 2)])
-def test_interrupted_run_resumes_to_the_uninterrupted_rows(tmp_path: Path, broken: str, workers: int,
-                                                          monkeypatch: pytest.MonkeyPatch) -> None:
+def test_interrupted_run_resumes_to_the_uninterrupted_rows(
+    tmp_path: Path, broken: str, workers: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
     """A planner that raises, or a worker that dies, stops the run with a one-line error after saving the
     finished cells; no partial cell reaches the tables; rerunning with a working planner completes the sweep with
     rows identical to an uninterrupted run."""
@@ -143,8 +160,11 @@ def test_interrupted_run_resumes_to_the_uninterrupted_rows(tmp_path: Path, broke
     msg = str(info.value)
     # (a worker that dies takes the cells in flight on the other worker with it: the first unfinished cell, in
     # cell-id order, may then be a rules cell)
-    assert "\n" not in msg and re.search(r"cells did not finish; first: cell [0-9a-f]{16} \(planner (tests\.sweep\.sweep_planners:flaky|rules), "
-                                         r"traffic\.density_veh_per_km\[1\]=", msg)
+    assert "\n" not in msg and re.search(
+        r"cells did not finish; first: cell [0-9a-f]{16} \(planner (tests\.sweep\.sweep_planners:flaky|rules), "
+        r"traffic\.density_veh_per_km\[1\]=",
+        msg,
+    )
     assert msg.endswith(f"are saved in {out / 'cells'}; rerun the same command to run the rest")
     summary = json.loads((out / "summary.json").read_text())
     assert not summary["complete"] and summary["missing_cells"]
@@ -186,7 +206,8 @@ def test_killed_run_resumes_without_lost_or_duplicate_rows(tmp_path: Path, worke
     script = tmp_path / "run.py"
     script.write_text(
         "from wmplan.sweep import run_sweep\n"
-        f"if __name__ == '__main__':\n    run_sweep({str(path)!r}, {str(out)!r}, workers={workers}, progress=False)\n")
+        f"if __name__ == '__main__':\n    run_sweep({str(path)!r}, {str(out)!r}, workers={workers}, progress=False)\n"
+    )
     env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(REPO), os.environ.get("PYTHONPATH", "")])}
     proc = subprocess.Popen([sys.executable, str(script)], stderr=subprocess.DEVNULL, cwd=REPO, env=env)
     deadline = time.monotonic() + 120.0
@@ -240,9 +261,13 @@ def test_a_planner_registered_in_process_is_refused_for_the_process_pool(tmp_pat
     register_planner("local", sweep_planners.rules_twin, replace=True)
     try:
         path = _sweep_file(tmp_path, ["local"])
-        with pytest.raises(ConfigError, match=re.escape(
+        with pytest.raises(
+            ConfigError,
+            match=re.escape(
                 "planner 'local' was registered in this process only, so worker processes cannot find it; name it "
-                "by import path (module:factory) or run with one worker")):
+                "by import path (module:factory) or run with one worker"
+            ),
+        ):
             run_sweep(path, tmp_path / "out", workers=2, progress=False)
         assert run_sweep(path, tmp_path / "out", workers=1, progress=False)["complete"]
     finally:

@@ -37,43 +37,78 @@ def _errors(path: Path) -> None:
     expand_cells(sweep)
 
 
-@pytest.mark.parametrize(("body", "message"), [
-    (HEAD + TAIL + "workers: 3\n", "workers: unknown key (got 3)"),
-    (HEAD + "vary:\n  drivers.yield_prob.mean: [0.2, .nan]\n" + TAIL,
-     "vary['drivers.yield_prob.mean']: grid value [1] must be finite, got nan"),
-    (HEAD + "vary:\n  drivers.yield_prob.mean: {low: .nan, high: 1, dist: uniform, samples: 2}\n" + TAIL,
-     "vary['drivers.yield_prob.mean'].low: Input should be a finite number (got nan)"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.1, high: .inf, dist: loguniform, samples: 2}\n" + TAIL,
-     "vary['drivers.hard_brake_rate_per_min'].high: Input should be a finite number (got inf)"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.0, high: 1.0, dist: loguniform, samples: 2}\n" + TAIL,
-     "vary['drivers.hard_brake_rate_per_min']: loguniform needs low > 0, got low = 0.0"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.1, high: 1.0, dist: normal, samples: 2}\n" + TAIL,
-     "vary['drivers.hard_brake_rate_per_min'].dist: Input should be 'uniform' or 'loguniform' (got 'normal')"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: 3\n" + TAIL,
-     "vary['drivers.hard_brake_rate_per_min']: must be a list of values (a grid) or a mapping "
-     "{low, high, dist, samples} (random values) (got 3)"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: []\n" + TAIL,
-     "vary['drivers.hard_brake_rate_per_min']: a grid needs at least one value (got [])"),
-    (HEAD + "vary:\n  traffic..density: [1]\n" + TAIL,
-     "vary: key 'traffic..density' is not a dotted path like 'traffic.density_veh_per_km[1]' or "
-     "'drivers.yield_prob.mean'"),
-    (HEAD + "planners: [rules, rules]\nseed: 1\nepisodes_per_cell: 2\n",
-     "planners: entry [1] repeats 'rules'; list each planner once (got ['rules', 'rules'])"),
-    (HEAD + "planners: rules\nseed: 1\nepisodes_per_cell: 2\n", "planners: must be a list (got 'rules')"),
-    (HEAD + "planners: [rules]\nseed: 1\nepisodes_per_cell: 0\n",
-     "episodes_per_cell: Input should be greater than or equal to 1 (got 0)"),
-    (HEAD + "planners: [rules]\nepisodes_per_cell: 2\n", "seed: Field required"),
-    (HEAD + "planners: [rules]\nplanner_options: {mpc: {k: 1}}\nseed: 1\nepisodes_per_cell: 2\n",
-     "planner_options: names planner 'mpc', which is not in planners ['rules']"),
-    ("name: t\nbase: onramp-merg\n" + TAIL,
-     "base: onramp-merg: no such built-in scenario or file; built-ins are: cut-in, lane-drop, onramp-merge, "
-     "open-road, short-gap-cut-in, stop-and-go"),
-    ("name: t\nbase: [onramp\n", "(file): YAML syntax error at line 3, column 1: expected ',' or ']', but got "
-                                 "'<stream end>'"),
-    (HEAD + "vary:\n  drivers.hard_brake_rate_per_min: [1, 2, 1.0]\n" + TAIL,
-     "vary: the cells (planner rules, drivers.hard_brake_rate_per_min=1) and (planner rules, "
-     "drivers.hard_brake_rate_per_min=1.0) make the same scenario; remove one of the values"),
-])
+@pytest.mark.parametrize(
+    ("body", "message"),
+    [
+        (HEAD + TAIL + "workers: 3\n", "workers: unknown key (got 3)"),
+        (
+            HEAD + "vary:\n  drivers.yield_prob.mean: [0.2, .nan]\n" + TAIL,
+            "vary['drivers.yield_prob.mean']: grid value [1] must be finite, got nan",
+        ),
+        (
+            HEAD + "vary:\n  drivers.yield_prob.mean: {low: .nan, high: 1, dist: uniform, samples: 2}\n" + TAIL,
+            "vary['drivers.yield_prob.mean'].low: Input should be a finite number (got nan)",
+        ),
+        (
+            HEAD
+            + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.1, high: .inf, dist: loguniform, samples: 2}\n"
+            + TAIL,
+            "vary['drivers.hard_brake_rate_per_min'].high: Input should be a finite number (got inf)",
+        ),
+        (
+            HEAD
+            + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.0, high: 1.0, dist: loguniform, samples: 2}\n"
+            + TAIL,
+            "vary['drivers.hard_brake_rate_per_min']: loguniform needs low > 0, got low = 0.0",
+        ),
+        (
+            HEAD + "vary:\n  drivers.hard_brake_rate_per_min: {low: 0.1, high: 1.0, dist: normal, samples: 2}\n" + TAIL,
+            "vary['drivers.hard_brake_rate_per_min'].dist: Input should be 'uniform' or 'loguniform' (got 'normal')",
+        ),
+        (
+            HEAD + "vary:\n  drivers.hard_brake_rate_per_min: 3\n" + TAIL,
+            "vary['drivers.hard_brake_rate_per_min']: must be a list of values (a grid) or a mapping "
+            "{low, high, dist, samples} (random values) (got 3)",
+        ),
+        (
+            HEAD + "vary:\n  drivers.hard_brake_rate_per_min: []\n" + TAIL,
+            "vary['drivers.hard_brake_rate_per_min']: a grid needs at least one value (got [])",
+        ),
+        (
+            HEAD + "vary:\n  traffic..density: [1]\n" + TAIL,
+            "vary: key 'traffic..density' is not a dotted path like 'traffic.density_veh_per_km[1]' or "
+            "'drivers.yield_prob.mean'",
+        ),
+        (
+            HEAD + "planners: [rules, rules]\nseed: 1\nepisodes_per_cell: 2\n",
+            "planners: entry [1] repeats 'rules'; list each planner once (got ['rules', 'rules'])",
+        ),
+        (HEAD + "planners: rules\nseed: 1\nepisodes_per_cell: 2\n", "planners: must be a list (got 'rules')"),
+        (
+            HEAD + "planners: [rules]\nseed: 1\nepisodes_per_cell: 0\n",
+            "episodes_per_cell: Input should be greater than or equal to 1 (got 0)",
+        ),
+        (HEAD + "planners: [rules]\nepisodes_per_cell: 2\n", "seed: Field required"),
+        (
+            HEAD + "planners: [rules]\nplanner_options: {mpc: {k: 1}}\nseed: 1\nepisodes_per_cell: 2\n",
+            "planner_options: names planner 'mpc', which is not in planners ['rules']",
+        ),
+        (
+            "name: t\nbase: onramp-merg\n" + TAIL,
+            "base: onramp-merg: no such built-in scenario or file; built-ins are: cut-in, lane-drop, onramp-merge, "
+            "open-road, short-gap-cut-in, stop-and-go",
+        ),
+        (
+            "name: t\nbase: [onramp\n",
+            "(file): YAML syntax error at line 3, column 1: expected ',' or ']', but got '<stream end>'",
+        ),
+        (
+            HEAD + "vary:\n  drivers.hard_brake_rate_per_min: [1, 2, 1.0]\n" + TAIL,
+            "vary: the cells (planner rules, drivers.hard_brake_rate_per_min=1) and (planner rules, "
+            "drivers.hard_brake_rate_per_min=1.0) make the same scenario; remove one of the values",
+        ),
+    ],
+)
 def test_bad_sweep_file_gives_one_line_error(tmp_path: Path, body: str, message: str) -> None:
     """Each malformed file is refused with one line: file, field, rule and (where there is one) the value."""
     path = _write(tmp_path, body)
@@ -86,18 +121,26 @@ def test_unknown_planner_lists_the_registered_ones(tmp_path: Path) -> None:
     """A planner name that is not registered is refused with the names that are."""
     path = _write(tmp_path, HEAD + "planners: [rules, no-such-planner]\nseed: 1\nepisodes_per_cell: 2\n")
     known = ", ".join(planner_names())
-    with pytest.raises(SweepError, match="^" + re.escape(
+    with pytest.raises(
+        SweepError,
+        match="^"
+        + re.escape(
             f"{path}: planners[1]: unknown planner 'no-such-planner'; known: {known}, or an import path "
-                "module:factory (a plug-in)") + "$"):
+            "module:factory (a plug-in)"
+        )
+        + "$",
+    ):
         _errors(path)
 
 
 def test_unknown_path_lists_close_matches(tmp_path: Path) -> None:
     """A misspelt path is refused, and the message offers the real paths that look like it (difflib)."""
     path = _write(tmp_path, HEAD + "vary:\n  traffic.density[1]: [1.0]\n" + TAIL)
-    expected = (f"{path}: vary['traffic.density[1]']: is not a field of the scenario (base scenario onramp-merge); "
-                "close matches: traffic.density_veh_per_km[1], traffic.density_veh_per_km[2], "
-                "traffic.density_veh_per_km[0], traffic.density_veh_per_km, traffic.length_m")
+    expected = (
+        f"{path}: vary['traffic.density[1]']: is not a field of the scenario (base scenario onramp-merge); "
+        "close matches: traffic.density_veh_per_km[1], traffic.density_veh_per_km[2], "
+        "traffic.density_veh_per_km[0], traffic.density_veh_per_km, traffic.length_m"
+    )
     with pytest.raises(SweepError, match=re.escape(expected)):
         _errors(path)
     path2 = _write(tmp_path, HEAD + "vary:\n  drivers.yeild_prob.mean: [0.5]\n" + TAIL, "s2.yaml")
@@ -108,9 +151,13 @@ def test_unknown_path_lists_close_matches(tmp_path: Path) -> None:
 def test_index_out_of_range_is_refused(tmp_path: Path) -> None:
     """A list index beyond the list says how long the list is."""
     path = _write(tmp_path, HEAD + "vary:\n  traffic.density_veh_per_km[3]: [1.0]\n" + TAIL)
-    with pytest.raises(SweepError, match=re.escape(
+    with pytest.raises(
+        SweepError,
+        match=re.escape(
             f"{path}: vary['traffic.density_veh_per_km[3]']: index [3] is out of range: "
-            "traffic.density_veh_per_km has 3 value(s) (base scenario onramp-merge); close matches:")):
+            "traffic.density_veh_per_km has 3 value(s) (base scenario onramp-merge); close matches:"
+        ),
+    ):
         _errors(path)
 
 
@@ -138,7 +185,9 @@ def test_base_scenario_file_relative_to_the_sweep_file(tmp_path: Path) -> None:
     cells = expand_cells(load_sweep(path))
     assert len(cells) == 1 and cells[0].scenario == scn
     missing = _write(tmp_path, "name: t\nbase: nope.yaml\n" + TAIL, "m.yaml")
-    with pytest.raises(SweepError, match=re.escape(f"{missing}: base: {tmp_path / 'nope.yaml'}: no such scenario file")):
+    with pytest.raises(
+        SweepError, match=re.escape(f"{missing}: base: {tmp_path / 'nope.yaml'}: no such scenario file")
+    ):
         _errors(missing)
 
 
@@ -160,12 +209,19 @@ def test_dotted_paths_round_trip_and_set_on_a_copy() -> None:
 
 
 def _two_planner_sweep(seed: int = 5, episodes: int = 3):
-    return parse_sweep({
-        "name": "t", "base": "onramp-merge",
-        "vary": {"traffic.density_veh_per_km[1]": [12.0, 36.0],
-                 "drivers.hard_brake_rate_per_min": {"low": 0.05, "high": 2.0, "dist": "loguniform", "samples": 2}},
-        "planners": ["rules", "rules-twin"], "seed": seed, "episodes_per_cell": episodes,
-    })
+    return parse_sweep(
+        {
+            "name": "t",
+            "base": "onramp-merge",
+            "vary": {
+                "traffic.density_veh_per_km[1]": [12.0, 36.0],
+                "drivers.hard_brake_rate_per_min": {"low": 0.05, "high": 2.0, "dist": "loguniform", "samples": 2},
+            },
+            "planners": ["rules", "rules-twin"],
+            "seed": seed,
+            "episodes_per_cell": episodes,
+        }
+    )
 
 
 def test_cells_are_the_product_with_stable_ids_and_paired_seeds() -> None:
@@ -197,11 +253,19 @@ def test_random_draws_lie_in_range_and_follow_the_distribution() -> None:
     scipy.stats.uniform on the log scale does not reject (p > 0.001) for 2000 draws."""
     from scipy.stats import kstest
 
-    spec = parse_sweep({"name": "t", "base": "onramp-merge", "planners": ["rules"], "seed": 3,
-                        "episodes_per_cell": 1,
-                        "vary": {"drivers.hard_brake_rate_per_min": {"low": 0.01, "high": 10.0,
-                                                                     "dist": "loguniform", "samples": 2000}}}).spec
-    (_, values), = spec.axes()
+    spec = parse_sweep(
+        {
+            "name": "t",
+            "base": "onramp-merge",
+            "planners": ["rules"],
+            "seed": 3,
+            "episodes_per_cell": 1,
+            "vary": {
+                "drivers.hard_brake_rate_per_min": {"low": 0.01, "high": 10.0, "dist": "loguniform", "samples": 2000}
+            },
+        }
+    ).spec
+    ((_, values),) = spec.axes()
     arr = np.array(values)
     assert arr.min() >= 0.01 and arr.max() <= 10.0
     u = (np.log(arr) - np.log(0.01)) / (np.log(10.0) - np.log(0.01))

@@ -111,8 +111,7 @@ def test_bisection_finds_the_last_true_in_few_calls():
 
 def _evaluate_folder(tmp_path: Path) -> Path:
     out = tmp_path / "run"
-    compare_planners(_scenario("hit-from-behind"), [f"{PLUGINS}:standstill_planner"], episodes=2, seed=3,
-                     out_dir=out)
+    compare_planners(_scenario("hit-from-behind"), [f"{PLUGINS}:standstill_planner"], episodes=2, seed=3, out_dir=out)
     return out
 
 
@@ -126,8 +125,9 @@ def test_triage_run_on_an_evaluate_folder_writes_json_figures_and_a_report_secti
     report = triage_run(run, progress=lambda done, total, stage: seen.append((done, total)))
     assert seen[-1] == (seen[-1][1], seen[-1][1])  # every stage reported
     assert report["source"] == "evaluate" and report["failures_found"] == 2
-    assert report["counts"] == {f"{PLUGINS}:standstill_planner": {"prediction": 0, "planning": 0,
-                                                                   "past saving": 2, "not reproduced": 0}}
+    assert report["counts"] == {
+        f"{PLUGINS}:standstill_planner": {"prediction": 0, "planning": 0, "past saving": 2, "not reproduced": 0}
+    }
     on_disk = json.loads((run / "triage.json").read_text())
     assert on_disk["caution"].startswith("Caution")
     for f in on_disk["failures"]:
@@ -142,8 +142,9 @@ def test_triage_run_on_an_evaluate_folder_writes_json_figures_and_a_report_secti
 
 def _cli(*args: str) -> subprocess.CompletedProcess:
     env = {**os.environ, "PYTHONPATH": str(ROOT)}
-    return subprocess.run([sys.executable, "-m", "wmplan.cli", *args], capture_output=True, text=True, cwd=ROOT,
-                          env=env, timeout=300)
+    return subprocess.run(
+        [sys.executable, "-m", "wmplan.cli", *args], capture_output=True, text=True, cwd=ROOT, env=env, timeout=300
+    )
 
 
 def test_cli_triage_prints_causes_and_the_caution(tmp_path):
@@ -154,10 +155,13 @@ def test_cli_triage_prints_causes_and_the_caution(tmp_path):
     assert json.loads((run / "triage.json").read_text())["failures_triaged"] == 1
 
 
-@pytest.mark.parametrize("make, needle", [
-    (lambda p: p / "missing", "no such run folder"),
-    (lambda p: p, "not an evaluate or stress output folder"),
-])
+@pytest.mark.parametrize(
+    "make, needle",
+    [
+        (lambda p: p / "missing", "no such run folder"),
+        (lambda p: p, "not an evaluate or stress output folder"),
+    ],
+)
 def test_cli_bad_folder_is_one_line_and_exit_2(tmp_path, make, needle):
     out = _cli("triage", str(make(tmp_path)))
     assert out.returncode == 2

@@ -99,8 +99,9 @@ def _decision(seed: int, steps: int = 60, history: int = 5, horizon: int = 15, k
 
     def frame(world: np.ndarray, world_ids: np.ndarray) -> np.ndarray:
         picked = gather_slots(world, np.broadcast_to(slots, world.shape[:-2] + slots.shape))
-        same = np.take_along_axis(world_ids, np.broadcast_to(np.where(slots >= 0, slots, 0), world_ids.shape[:-1]
-                                                             + slots.shape), axis=-1)
+        same = np.take_along_axis(
+            world_ids, np.broadcast_to(np.where(slots >= 0, slots, 0), world_ids.shape[:-1] + slots.shape), axis=-1
+        )
         anchor_ids = state.vehicle_id[0][np.where(slots >= 0, slots, 0)]
         picked[..., F_VALID] *= (same == anchor_ids) & (slots >= 0)
         lead = world.shape[:-2]
@@ -188,8 +189,9 @@ def test_future_collisions_agree_with_shapely():
     points = future_collisions(rows, 4.5, 1.8)
 
     def box(r):
-        b = shapely.box(r[F_X] - r[F_LENGTH] / 2, r[F_Y] - r[F_WIDTH] / 2, r[F_X] + r[F_LENGTH] / 2,
-                        r[F_Y] + r[F_WIDTH] / 2)
+        b = shapely.box(
+            r[F_X] - r[F_LENGTH] / 2, r[F_Y] - r[F_WIDTH] / 2, r[F_X] + r[F_LENGTH] / 2, r[F_Y] + r[F_WIDTH] / 2
+        )
         return shapely.affinity.rotate(b, r[F_HEADING], origin=(r[F_X], r[F_Y]), use_radians=True)
 
     touching = [t for t in range(h) if box(rows[0, t, 0]).intersects(box(rows[0, t, 1]))]
@@ -299,9 +301,12 @@ def test_reliability_overlays_planners_from_summary_json(tmp_path):
         p = gen.beta(0.5, 4.0, 400)
         y = (gen.random(400) < p * scale).astype(int)
         bins = reliability_bins(p, y, 10)
-        calib[name] = {"decisions": 400, "brier": brier_score(p, y), "ece": expected_calibration_error(p, y),
-                       "bins": [{k: (None if isinstance(v, float) and np.isnan(v) else v) for k, v in b.items()}
-                                for b in bins]}
+        calib[name] = {
+            "decisions": 400,
+            "brier": brier_score(p, y),
+            "ece": expected_calibration_error(p, y),
+            "bins": [{k: (None if isinstance(v, float) and np.isnan(v) else v) for k, v in b.items()} for b in bins],
+        }
     calib["mpc+constant-velocity"] = {"decisions": 0}
     fig = reliability_figure(calib)
     labels = [t.get_text() for t in fig.legends[0].get_texts()]
@@ -313,17 +318,30 @@ def test_reliability_overlays_planners_from_summary_json(tmp_path):
 def test_training_figure_reads_metrics_csv(tmp_path):
     """A metrics.csv written by the training code's own writer: panels for the logged keys, epochs counted from 1,
     values as written; the y axes carry units."""
-    rows = [{"epoch": e, "step": 10 * (e + 1), "loss/nll": 20.0 / (e + 1), "loss/kl": 1.0 + 0.1 * e,
-             "val/nll": 21.0 / (e + 1), "val/kl": 1.05 + 0.1 * e, "val/min_fde_k6_m": 3.0 - 0.2 * e,
-             "sched/kl_weight": min(1.0, (e + 1) / 4)} for e in range(6)]
+    rows = [
+        {
+            "epoch": e,
+            "step": 10 * (e + 1),
+            "loss/nll": 20.0 / (e + 1),
+            "loss/kl": 1.0 + 0.1 * e,
+            "val/nll": 21.0 / (e + 1),
+            "val/kl": 1.05 + 0.1 * e,
+            "val/min_fde_k6_m": 3.0 - 0.2 * e,
+            "sched/kl_weight": min(1.0, (e + 1) / 4),
+        }
+        for e in range(6)
+    ]
     path = tmp_path / "metrics.csv"
     write_metrics_csv(path, rows)
     assert read_metrics_csv(path)[2]["loss/nll"] == pytest.approx(20.0 / 3)
     fig = training_figure(path)
     visible = [ax for ax in fig.axes if ax.get_visible()]
-    assert [ax.get_title(loc="left") for ax in visible] == ["Gaussian NLL of the future", "KL(posterior || prior)",
-                                                  "best-of-6 final displacement (validation)",
-                                                  "KL weight (warm-up schedule)"]
+    assert [ax.get_title(loc="left") for ax in visible] == [
+        "Gaussian NLL of the future",
+        "KL(posterior || prior)",
+        "best-of-6 final displacement (validation)",
+        "KL weight (warm-up schedule)",
+    ]
     for ax in visible:
         assert ax.get_xlabel() == "epoch [count]" and "[" in ax.get_ylabel()
     fde = visible[2].lines[0]
@@ -348,10 +366,20 @@ def test_closed_loop_figure_bars_and_wilson_intervals(tmp_path):
     """Bars at the rates and whiskers at the Wilson ends: 3/200 collisions -> [0.005114, 0.043166] and 7/50 ->
     [0.069508, 0.261862] ([D], docs/references.md#wilson-1927), labelled on the bars."""
     results = {
-        "rules": {"episodes": 200, "collision_rate": 0.015, "collision_ci95": [0.005114, 0.043166],
-                  "success_rate": 0.9, "success_ci95": [0.85, 0.935]},
-        "mpc+latent": {"episodes": 50, "collision_rate": 0.14, "collision_ci95": [0.069508, 0.261862],
-                       "success_rate": 0.8, "success_ci95": [0.67, 0.89]},
+        "rules": {
+            "episodes": 200,
+            "collision_rate": 0.015,
+            "collision_ci95": [0.005114, 0.043166],
+            "success_rate": 0.9,
+            "success_ci95": [0.85, 0.935],
+        },
+        "mpc+latent": {
+            "episodes": 50,
+            "collision_rate": 0.14,
+            "collision_ci95": [0.069508, 0.261862],
+            "success_rate": 0.8,
+            "success_ci95": [0.67, 0.89],
+        },
     }
     fig = closed_loop_figure({"results": results, "scenario": "onramp-merge"})
     ax_c, ax_s = fig.axes[:2]
@@ -359,8 +387,9 @@ def test_closed_loop_figure_bars_and_wilson_intervals(tmp_path):
     assert ax_s.get_xlabel() == "success rate, share of episodes [1]"
     np.testing.assert_allclose([p.get_width() for p in ax_c.patches], [0.015, 0.14])
     whiskers = [c for c in ax_c.collections if isinstance(c, LineCollection)][0].get_segments()
-    np.testing.assert_allclose([sorted(s[:, 0]) for s in whiskers], [[0.005114, 0.043166], [0.069508, 0.261862]],
-                               atol=1e-9)
+    np.testing.assert_allclose(
+        [sorted(s[:, 0]) for s in whiskers], [[0.005114, 0.043166], [0.069508, 0.261862]], atol=1e-9
+    )
     texts = [t.get_text() for t in ax_c.texts]
     assert "0.015 [0.005, 0.043]" in texts and "0.140 [0.070, 0.262]" in texts
     assert [t.get_text() for t in ax_c.get_yticklabels()] == ["rules\n(n = 200)", "mpc+latent\n(n = 50)"]
@@ -377,24 +406,41 @@ def test_figure_png_is_a_png():
 @pytest.mark.parametrize(
     ("call", "message"),
     [
-        (lambda: futures_figure(np.zeros((5, 3, 7)), np.zeros((2, 4, 3, 8))),
-         "history must have shape (W, N, 8) with F = 8 features and no empty axis, got (5, 3, 7)"),
-        (lambda: futures_figure(np.zeros((5, 3, 8)), np.zeros((2, 4, 4, 8))),
-         "model_rows has 4 object rows but history has 3; both must hold the same objects (row 0 the ego)"),
-        (lambda: futures_figure(np.zeros((5, 3, 8)), np.zeros((2, 4, 3, 8)),
-                                params=SimParams.from_scenario(load_scenario("onramp-merge"))),
-         "params was given without anchor_pose; pass the ego's world (x_m, y_m, heading_rad) at the decision to "
-         "draw the road in the anchor frame, or leave params out"),
-        (lambda: candidates_figure(np.zeros((3, 4, 2)), [1, 2, 3], [0.0, 0.5, 1.5], 0),
-         "p_collision must lie in [0, 1] for every candidate (no NaN)"),
-        (lambda: candidates_figure(np.zeros((3, 4, 2)), [1, 2, 3], [0.0, 0.5, 1.0], 3),
-         "chosen must be a candidate index (an integer) in 0..2, got 3"),
-        (lambda: reliability_figure({"mpc+latent": {"decisions": 0}}),
-         "reliability_figure: no bins to draw; pass reliability_bins(...) or a calibration dict"),
+        (
+            lambda: futures_figure(np.zeros((5, 3, 7)), np.zeros((2, 4, 3, 8))),
+            "history must have shape (W, N, 8) with F = 8 features and no empty axis, got (5, 3, 7)",
+        ),
+        (
+            lambda: futures_figure(np.zeros((5, 3, 8)), np.zeros((2, 4, 4, 8))),
+            "model_rows has 4 object rows but history has 3; both must hold the same objects (row 0 the ego)",
+        ),
+        (
+            lambda: futures_figure(
+                np.zeros((5, 3, 8)),
+                np.zeros((2, 4, 3, 8)),
+                params=SimParams.from_scenario(load_scenario("onramp-merge")),
+            ),
+            "params was given without anchor_pose; pass the ego's world (x_m, y_m, heading_rad) at the decision to "
+            "draw the road in the anchor frame, or leave params out",
+        ),
+        (
+            lambda: candidates_figure(np.zeros((3, 4, 2)), [1, 2, 3], [0.0, 0.5, 1.5], 0),
+            "p_collision must lie in [0, 1] for every candidate (no NaN)",
+        ),
+        (
+            lambda: candidates_figure(np.zeros((3, 4, 2)), [1, 2, 3], [0.0, 0.5, 1.0], 3),
+            "chosen must be a candidate index (an integer) in 0..2, got 3",
+        ),
+        (
+            lambda: reliability_figure({"mpc+latent": {"decisions": 0}}),
+            "reliability_figure: no bins to draw; pass reliability_bins(...) or a calibration dict",
+        ),
         (lambda: closed_loop_figure({}), "closed_loop_figure: results must be a non-empty dict {planner: summary}"),
-        (lambda: training_figure([{"epoch": 0, "perf/samples_per_s": 10.0}]),
-         "training_figure: none of the keys ['loss/nll', 'loss/kl', 'loss/mse', 'val/min_fde_k6_m', "
-         "'sched/kl_weight'] was logged"),
+        (
+            lambda: training_figure([{"epoch": 0, "perf/samples_per_s": 10.0}]),
+            "training_figure: none of the keys ['loss/nll', 'loss/kl', 'loss/mse', 'val/min_fde_k6_m', "
+            "'sched/kl_weight'] was logged",
+        ),
     ],
 )
 def test_bad_input_gives_one_line_errors(call, message):
@@ -409,11 +455,13 @@ def test_no_pyplot_state():
     import subprocess
     import sys
 
-    code = ("import sys, numpy as np\n"
-            "from wmplan.viz.plots import reliability_figure\n"
-            "from wmplan.viz.futures import candidates_figure\n"
-            "reliability_figure([{'low': 0.0, 'high': 1.0, 'count': 3, 'mean_pred': 0.5, 'freq': 0.3333}])\n"
-            "candidates_figure(np.zeros((2, 3, 2)) + 1.0, [1.0, 2.0], [0.0, 0.5], 1)\n"
-            "print('matplotlib.pyplot' in sys.modules, 'torch' in sys.modules)")
+    code = (
+        "import sys, numpy as np\n"
+        "from wmplan.viz.plots import reliability_figure\n"
+        "from wmplan.viz.futures import candidates_figure\n"
+        "reliability_figure([{'low': 0.0, 'high': 1.0, 'count': 3, 'mean_pred': 0.5, 'freq': 0.3333}])\n"
+        "candidates_figure(np.zeros((2, 3, 2)) + 1.0, [1.0, 2.0], [0.0, 0.5], 1)\n"
+        "print('matplotlib.pyplot' in sys.modules, 'torch' in sys.modules)"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120)
     assert out.stdout.split() == ["False", "False"]

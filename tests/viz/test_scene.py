@@ -57,8 +57,12 @@ def test_onramp_markings_worked_by_hand():
     across lane 0 at x = 320 where it ends."""
     dashed, solid = road_markings(_params("onramp-merge"))
     assert dashed == [(3.6, 0.0, 320.0), (7.2, 0.0, 1200.0)]
-    expected = {((0.0, 0.0), (320.0, 0.0)), ((0.0, 10.8), (1200.0, 10.8)), ((320.0, 3.6), (1200.0, 3.6)),
-                ((320.0, 0.0), (320.0, 3.6))}
+    expected = {
+        ((0.0, 0.0), (320.0, 0.0)),
+        ((0.0, 10.8), (1200.0, 10.8)),
+        ((320.0, 3.6), (1200.0, 3.6)),
+        ((320.0, 0.0), (320.0, 3.6)),
+    }
     got = {tuple(tuple(round(float(v), 9) for v in p) for p in seg) for seg in solid}
     assert got == expected
 
@@ -69,9 +73,12 @@ def test_lane_drop_markings_worked_by_hand():
     w = _params("lane-drop").lane_width_m
     assert dashed == [(w, 0.0, 1500.0), (2 * w, 0.0, 400.0)]
     got = {tuple(tuple(round(float(v), 9) for v in p) for p in seg) for seg in solid}
-    assert got == {((0.0, 0.0), (1500.0, 0.0)), ((0.0, round(3 * w, 9)), (400.0, round(3 * w, 9))),
-                   ((400.0, round(2 * w, 9)), (1500.0, round(2 * w, 9))),
-                   ((400.0, round(2 * w, 9)), (400.0, round(3 * w, 9)))}
+    assert got == {
+        ((0.0, 0.0), (1500.0, 0.0)),
+        ((0.0, round(3 * w, 9)), (400.0, round(3 * w, 9))),
+        ((400.0, round(2 * w, 9)), (1500.0, round(2 * w, 9))),
+        ((400.0, round(2 * w, 9)), (400.0, round(3 * w, 9))),
+    }
 
 
 def test_dashes_sit_at_fixed_road_positions():
@@ -95,12 +102,20 @@ def test_vehicle_polygons_match_shapely_boxes(seed):
     gen = np.random.default_rng(seed)
     rows = np.zeros((6, 8))
     rows[:, F_X], rows[:, F_Y] = gen.uniform(0, 100, 6), gen.uniform(0, 10, 6)
-    rows[:, 4], rows[:, 5], rows[:, 6], rows[:, F_VALID] = gen.uniform(-3, 3, 6), gen.uniform(3, 12, 6), \
-        gen.uniform(1.5, 2.6, 6), 1.0
+    rows[:, 4], rows[:, 5], rows[:, 6], rows[:, F_VALID] = (
+        gen.uniform(-3, 3, 6),
+        gen.uniform(3, 12, 6),
+        gen.uniform(1.5, 2.6, 6),
+        1.0,
+    )
     polys, marks = vehicle_polygons(rows)
     for r, p, m in zip(rows, polys, marks, strict=True):
-        ref = shapely.affinity.rotate(shapely.box(r[0] - r[5] / 2, r[1] - r[6] / 2, r[0] + r[5] / 2, r[1] + r[6] / 2),
-                                      r[4], origin=(r[0], r[1]), use_radians=True)
+        ref = shapely.affinity.rotate(
+            shapely.box(r[0] - r[5] / 2, r[1] - r[6] / 2, r[0] + r[5] / 2, r[1] + r[6] / 2),
+            r[4],
+            origin=(r[0], r[1]),
+            use_radians=True,
+        )
         ours = shapely.Polygon(p)
         assert ours.is_valid and ours.area == pytest.approx(r[5] * r[6], rel=1e-9)
         assert ours.symmetric_difference(ref).area < 1e-9
@@ -165,7 +180,7 @@ def test_collision_cross_is_drawn_only_on_collision():
     black = [np.abs(im.astype(int)).max(axis=-1) <= 10 for im in (calm, crash)]
     assert black[0].sum() == 0 and black[1].sum() > 20
     r, c = rnd.pixel_of(102.0, rows[0, F_Y])
-    assert black[1][r - 3:r + 4, c - 3:c + 4].any()
+    assert black[1][r - 3 : r + 4, c - 3 : c + 4].any()
 
 
 def test_draw_scene_on_a_callers_axes_and_bad_rows():
@@ -177,19 +192,25 @@ def test_draw_scene_on_a_callers_axes_and_bad_rows():
     assert ax.get_xlim() == (0.0, 300.0)
     artists.update(rows, x_range_m=(50.0, 150.0))
     assert ax.get_xlim() == (50.0, 150.0)
-    msg = ("vehicles must have shape (V, 8) with V >= 1 (world-frame rows in VEHICLE_FEATURES order, slot 0 the "
-           "ego), got shape (3, 5)")
+    msg = (
+        "vehicles must have shape (V, 8) with V >= 1 (world-frame rows in VEHICLE_FEATURES order, slot 0 the "
+        "ego), got shape (3, 5)"
+    )
     with pytest.raises(ConfigError, match=re.escape(msg)):
         draw_scene(ax, np.zeros((3, 5)), params)
-    with pytest.raises(ConfigError, match=re.escape("x_range_m must be two finite numbers (low, high) with high > low")):
+    with pytest.raises(
+        ConfigError, match=re.escape("x_range_m must be two finite numbers (low, high) with high > low")
+    ):
         draw_scene(ax, rows, params, x_range_m=(10.0, 10.0))
 
 
 def test_viz_imports_neither_pyplot_nor_torch():
     """viz draws on Agg canvases of matplotlib.figure.Figure (no pyplot global state) and never needs torch."""
-    code = ("import sys; from wmplan.viz.anim import render_to_file; import wmplan.viz, wmplan.sim.env; "
-            "from wmplan.sim.env import LaneEnv; e = LaneEnv('cut-in', render_mode='rgb_array'); e.reset(seed=0); "
-            "e.render(); bad = [m for m in ('matplotlib.pyplot', 'torch') if m in sys.modules]; print(bad)")
+    code = (
+        "import sys; from wmplan.viz.anim import render_to_file; import wmplan.viz, wmplan.sim.env; "
+        "from wmplan.sim.env import LaneEnv; e = LaneEnv('cut-in', render_mode='rgb_array'); e.reset(seed=0); "
+        "e.render(); bad = [m for m in ('matplotlib.pyplot', 'torch') if m in sys.modules]; print(bad)"
+    )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
 
@@ -269,13 +290,17 @@ def test_save_episode_animation_marks_the_collision(tmp_path):
 
 def test_unsupported_suffix_and_other_bad_requests(tmp_path, monkeypatch):
     """One-line errors naming the file, the value and the rule; nothing is written."""
-    msg = (f"{tmp_path / 'x.jpg'}: unsupported output suffix '.jpg'; use .png for one moment, .gif or .mp4 for the "
-           "whole episode")
+    msg = (
+        f"{tmp_path / 'x.jpg'}: unsupported output suffix '.jpg'; use .png for one moment, .gif or .mp4 for the "
+        "whole episode"
+    )
     with pytest.raises(ConfigError, match=re.escape(msg)) as err:
         render_to_file("open-road", tmp_path / "x.jpg")
     assert "\n" not in str(err.value)
     frames, oc = episode_frames(_params("open-road"), seed=0)
-    with pytest.raises(ConfigError, match=re.escape(f"step 999 is beyond this episode, which has steps 0..{oc.num_steps}")):
+    with pytest.raises(
+        ConfigError, match=re.escape(f"step 999 is beyond this episode, which has steps 0..{oc.num_steps}")
+    ):
         render_to_file("open-road", tmp_path / "x.png", step=999)
     monkeypatch.setattr("wmplan.viz.anim.shutil.which", lambda name: None)
     msg = f"{tmp_path / 'x.mp4'}: writing .mp4 needs the ffmpeg program on PATH, which was not found"

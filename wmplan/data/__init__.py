@@ -46,8 +46,10 @@ def check_dataset_size(scenario: Scenario, episodes: int, decision_every: int = 
     """
     steps = int(round(scenario.duration_s / scenario.dt_s))
     if decisions_per_episode(scenario, decision_every) < 1:
-        raise ConfigError(f"--decision-every {decision_every}: longer than an episode of {scenario.name} ({steps} "
-                          f"simulator steps); give at most {steps}")
+        raise ConfigError(
+            f"--decision-every {decision_every}: longer than an episode of {scenario.name} ({steps} "
+            f"simulator steps); give at most {steps}"
+        )
     size = dataset_bytes(scenario, episodes, decision_every)
     if size > MAX_DATASET_BYTES:
         most = MAX_DATASET_BYTES // dataset_bytes(scenario, 1, decision_every)
@@ -55,12 +57,21 @@ def check_dataset_size(scenario: Scenario, episodes: int, decision_every: int = 
         raise ConfigError(
             f"--episodes {episodes}: {episodes} episodes x {t} recorded steps x {scenario.traffic.max_vehicles} "
             f"vehicles need {size / 2**30:.1f} GiB of arrays, over the {MAX_DATASET_BYTES / 2**30:.0f} GiB limit; "
-            f"give at most {most} episodes (or a larger --decision-every)")
+            f"give at most {most} episodes (or a larger --decision-every)"
+        )
 
 
-def simulate_dataset(scenario: Scenario, out_dir: Path | str, *, episodes: int, seed: int = 0, batch_size: int = 256,
-                     policy_mix: float = 0.5, decision_every: int = 2,
-                     progress: Callable[[int], None] | None = None) -> Dataset:
+def simulate_dataset(
+    scenario: Scenario,
+    out_dir: Path | str,
+    *,
+    episodes: int,
+    seed: int = 0,
+    batch_size: int = 256,
+    policy_mix: float = 0.5,
+    decision_every: int = 2,
+    progress: Callable[[int], None] | None = None,
+) -> Dataset:
     """Simulate ``episodes`` episodes of a scenario in batches and write them as a dataset folder.
 
     Episode e gets scene seed ``episode_seeds(seed, episodes)[e]``, so the data do not depend on ``batch_size``.
@@ -77,8 +88,13 @@ def simulate_dataset(scenario: Scenario, out_dir: Path | str, *, episodes: int, 
     seeds = episode_seeds(seed, episodes)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):  # non-finite results are refused below
         parts = [
-            collect(params, seeds[i:i + batch_size], policy_mix=policy_mix, decision_every=decision_every,
-                    progress=progress)
+            collect(
+                params,
+                seeds[i : i + batch_size],
+                policy_mix=policy_mix,
+                decision_every=decision_every,
+                progress=progress,
+            )
             for i in range(0, episodes, batch_size)
         ]
     traj = Trajectories.concat(parts)
@@ -87,7 +103,8 @@ def simulate_dataset(scenario: Scenario, out_dir: Path | str, *, episodes: int, 
         raise DatasetError(
             f"{out_dir}: the simulation of {scenario.name} produced NaN or inf values in {int(bad.sum())} of "
             f"{episodes} episodes (first: episode {int(np.argmax(bad))}, scene seed {int(seeds[np.argmax(bad)])}); "
-            "nothing was written. The scenario's values drive the simulator outside its range")
+            "nothing was written. The scenario's values drive the simulator outside its range"
+        )
     write_dataset(Path(out_dir), scenario, traj, seed=seed, policy_mix=policy_mix, decision_every=decision_every)
     return load_dataset(out_dir)
 

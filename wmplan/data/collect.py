@@ -119,9 +119,15 @@ class BehaviourPolicy:
         return np.stack([accel, steer], axis=-1)
 
 
-def collect(params: SimParams, seeds: np.ndarray, *, policy_mix: float = 0.5, decision_every: int = 2,
-            progress: Callable[[int], None] | None = None,
-            on_decision: Callable[[int, TrafficState], None] | None = None) -> Trajectories:
+def collect(
+    params: SimParams,
+    seeds: np.ndarray,
+    *,
+    policy_mix: float = 0.5,
+    decision_every: int = 2,
+    progress: Callable[[int], None] | None = None,
+    on_decision: Callable[[int, TrafficState], None] | None = None,
+) -> Trajectories:
     """Run one batch of episodes (one per seed) with the mixed behaviour policy and record them.
 
     Args:
@@ -164,6 +170,14 @@ def collect(params: SimParams, seeds: np.ndarray, *, policy_mix: float = 0.5, de
         alive[:, t + 1] = ~(state.collided | state.offroad)
         if progress is not None:
             progress(1)
-    return Trajectories(vehicles=vehicles, vehicle_id=ids, actions=actions, alive=alive, collided=state.collided.copy(),
-                        offroad=state.offroad.copy(), reached_goal=state.reached_goal.copy(), policy=policy_idx,
-                        seeds=seeds)
+    return Trajectories(
+        vehicles=vehicles,
+        vehicle_id=ids,
+        actions=actions,
+        alive=alive,
+        collided=state.collided.copy(),
+        offroad=state.offroad.copy(),
+        reached_goal=state.reached_goal.copy(),
+        policy=policy_idx,
+        seeds=seeds,
+    )

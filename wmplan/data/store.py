@@ -53,6 +53,7 @@ class ArraySpec(_Frozen):
 
 class Outcomes(_Frozen):
     """How the episodes of a dataset ended: counts of collisions, leaving the road and reaching the goal."""
+
     collided: Count
     offroad: Count
     reached_goal: Count
@@ -91,16 +92,26 @@ class Manifest(_Frozen):
     @model_validator(mode="after")
     def _shapes_agree(self) -> Manifest:
         e, t, v = self.num_episodes, self.num_decisions, self.num_vehicles
-        want = {"vehicles": (e, t + 1, v, len(VEHICLE_FEATURES)), "vehicle_id": (e, t + 1, v), "actions": (e, t, 2),
-                "alive": (e, t + 1), "collided": (e,), "offroad": (e,), "reached_goal": (e,), "policy": (e,),
-                "seeds": (e,)}
+        want = {
+            "vehicles": (e, t + 1, v, len(VEHICLE_FEATURES)),
+            "vehicle_id": (e, t + 1, v),
+            "actions": (e, t, 2),
+            "alive": (e, t + 1),
+            "collided": (e,),
+            "offroad": (e,),
+            "reached_goal": (e,),
+            "policy": (e,),
+            "seeds": (e,),
+        }
         for name, shape in want.items():
             spec = self.arrays.get(name)
             if spec is None:
                 raise ValueError(f"arrays.{name} is missing")
             if tuple(spec.shape) != shape:
-                raise ValueError(f"arrays.{name}.shape must be {list(shape)} (from num_episodes, num_decisions, "
-                                 f"num_vehicles), got {list(spec.shape)}")
+                raise ValueError(
+                    f"arrays.{name}.shape must be {list(shape)} (from num_episodes, num_decisions, "
+                    f"num_vehicles), got {list(spec.shape)}"
+                )
         if len(self.episode_seeds) != e:
             raise ValueError(f"episode_seeds has {len(self.episode_seeds)} values for num_episodes = {e}")
         size = self.nbytes()
@@ -136,8 +147,9 @@ def _npz_bytes(arrays: dict[str, np.ndarray]) -> bytes:
     return buf.getvalue()
 
 
-def write_dataset(out_dir: Path, scenario: Scenario, traj: Trajectories, *, seed: int, policy_mix: float,
-                  decision_every: int) -> Path:
+def write_dataset(
+    out_dir: Path, scenario: Scenario, traj: Trajectories, *, seed: int, policy_mix: float, decision_every: int
+) -> Path:
     """Write arrays and manifest to ``out_dir`` (created if needed), atomically; returns the manifest path."""
     out_dir = Path(out_dir)
     arrays = traj.as_dict()
@@ -198,15 +210,18 @@ def _read_arrays(arr_path: Path, blob: bytes, man: Manifest) -> dict[str, np.nda
                     else:
                         raise DatasetError(f"{arr_path}: {name}: .npy format version {version} is not read here")
                     if tuple(shape) != tuple(spec.shape) or str(dtype) != spec.dtype or dtype.hasobject:
-                        raise DatasetError(f"{arr_path}: {name}: shape {list(shape)} dtype {dtype}, manifest says "
-                                           f"{list(spec.shape)} {spec.dtype}")
+                        raise DatasetError(
+                            f"{arr_path}: {name}: shape {list(shape)} dtype {dtype}, manifest says "
+                            f"{list(spec.shape)} {spec.dtype}"
+                        )
                 with zf.open(info) as fh:
                     arrays[name] = np.lib.format.read_array(fh, allow_pickle=False)
     except DatasetError:
         raise
     except (zipfile.BadZipFile, ValueError, OSError, EOFError) as err:
-        raise DatasetError(f"{arr_path}: cannot read the arrays ({err.__class__.__name__}); the file is truncated or "
-                           "corrupt") from None
+        raise DatasetError(
+            f"{arr_path}: cannot read the arrays ({err.__class__.__name__}); the file is truncated or corrupt"
+        ) from None
     return arrays
 
 
@@ -242,7 +257,9 @@ def load_dataset(path: Path | str, *, expect_scenario: Scenario | None = None, v
     except ScenarioError as err:
         raise DatasetError(str(err)) from None
     if scenario_hash(scenario) != man.scenario_hash:
-        raise DatasetError(f"{man_path}: scenario_hash: does not match the scenario stored beside it; the manifest was edited")
+        raise DatasetError(
+            f"{man_path}: scenario_hash: does not match the scenario stored beside it; the manifest was edited"
+        )
     if expect_scenario is not None and scenario_hash(expect_scenario) != man.scenario_hash:
         raise DatasetError(
             f"{man_path}: scenario: the data were made with scenario {man.scenario_name!r} "
@@ -250,15 +267,18 @@ def load_dataset(path: Path | str, *, expect_scenario: Scenario | None = None, v
             f"(hash {scenario_hash(expect_scenario)[:12]})"
         )
     if man.vehicle_features != list(VEHICLE_FEATURES):
-        raise DatasetError(f"{man_path}: vehicle_features: expected {list(VEHICLE_FEATURES)}, "
-                           f"got {man.vehicle_features[:12]}")
+        raise DatasetError(
+            f"{man_path}: vehicle_features: expected {list(VEHICLE_FEATURES)}, got {man.vehicle_features[:12]}"
+        )
     arr_path = folder / man.array_file
     if not arr_path.is_file():
         raise DatasetError(f"{arr_path}: missing array file named by the manifest")
     limit = int(man.nbytes() * 1.01) + 2**20  # compression never grows data by more than zip's small overhead
     if arr_path.stat().st_size > limit:
-        raise DatasetError(f"{arr_path}: {arr_path.stat().st_size} bytes, more than the arrays the manifest "
-                           f"describes can take ({limit}); the file does not belong to this manifest")
+        raise DatasetError(
+            f"{arr_path}: {arr_path.stat().st_size} bytes, more than the arrays the manifest "
+            f"describes can take ({limit}); the file does not belong to this manifest"
+        )
     blob = arr_path.read_bytes()
     if verify_hash and hashlib.sha256(blob).hexdigest() != man.array_sha256:
         raise DatasetError(f"{arr_path}: sha256 differs from the manifest's; the file is truncated or was changed")

@@ -69,7 +69,9 @@ def anchor_index(dataset: Dataset, spec: WindowSpec, episodes: np.ndarray | None
     eps = np.arange(e_n) if episodes is None else np.asarray(episodes)
     ts = np.arange(spec.history - 1, t1 - spec.horizon, stride)
     if ts.size == 0:
-        raise ValueError(f"episodes of {t1 - 1} decisions are too short for history {spec.history} + horizon {spec.horizon}")
+        raise ValueError(
+            f"episodes of {t1 - 1} decisions are too short for history {spec.history} + horizon {spec.horizon}"
+        )
     ee, tt = np.meshgrid(eps, ts, indexing="ij")
     ok = alive[ee, tt + spec.horizon]
     return np.stack([ee[ok], tt[ok]], axis=1).astype(np.int64)
@@ -129,7 +131,7 @@ class Windows:
         steer = np.where(t > 0, self._act[e, np.maximum(t - 1, 0), 1], 0.0)
         return WindowBatch(
             history=framed[:, : spec.history].astype(np.float32),
-            future=framed[:, spec.history:].astype(np.float32),
+            future=framed[:, spec.history :].astype(np.float32),
             road=road.astype(np.float32),
             actions=self._act[e[:, None], t[:, None] + np.arange(spec.horizon)].astype(np.float32),
             ego_speed_mps=speed.astype(np.float32),

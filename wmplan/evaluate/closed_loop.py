@@ -64,8 +64,13 @@ class EvalOutput:
 
 def episode_keys(seed: int, scene_seeds: np.ndarray) -> np.ndarray:
     """(S,) int64 keys of the planner's randomness, one per episode, from the run's seed and the scene seeds."""
-    return np.array([np.random.SeedSequence([int(seed), KEY_SALT, int(s)]).generate_state(1)[0]
-                     for s in np.asarray(scene_seeds).reshape(-1)], dtype=np.int64)
+    return np.array(
+        [
+            np.random.SeedSequence([int(seed), KEY_SALT, int(s)]).generate_state(1)[0]
+            for s in np.asarray(scene_seeds).reshape(-1)
+        ],
+        dtype=np.int64,
+    )
 
 
 def initial_history(state: TrafficState, history: int, dt_s: float) -> tuple[np.ndarray, np.ndarray]:
@@ -83,12 +88,15 @@ def initial_history(state: TrafficState, history: int, dt_s: float) -> tuple[np.
 def _checked(decision: object, name: str, b: int) -> tuple[np.ndarray, np.ndarray | None]:
     """The actions (B, 2) and P(collision) (B,) or None of a planner's decision, or a one-line ConfigError."""
     if not isinstance(decision, Decision):
-        raise ConfigError(f"planner {name!r}: decide() returned {type(decision).__name__}; return a "
-                          "wmplan.plan.base.Decision")
+        raise ConfigError(
+            f"planner {name!r}: decide() returned {type(decision).__name__}; return a wmplan.plan.base.Decision"
+        )
     actions = np.asarray(decision.actions, dtype=np.float64)
     if actions.shape != (b, 2) or not np.isfinite(actions).all():
-        raise ConfigError(f"planner {name!r}: decide() returned actions of shape {actions.shape} (finite: "
-                          f"{bool(np.isfinite(actions).all())}); expected finite (B, 2) = ({b}, 2)")
+        raise ConfigError(
+            f"planner {name!r}: decide() returned actions of shape {actions.shape} (finite: "
+            f"{bool(np.isfinite(actions).all())}); expected finite (B, 2) = ({b}, 2)"
+        )
     p = decision.p_collision
     if p is not None:
         p = np.asarray(p, dtype=np.float64)
@@ -97,9 +105,17 @@ def _checked(decision: object, name: str, b: int) -> tuple[np.ndarray, np.ndarra
     return actions, p
 
 
-def run_batch(params: SimParams, planner: Planner, seeds: np.ndarray, *, seed: int = 0, name: str = "",
-              progress: Callable[[int], None] | None = None, frames: list | None = None,
-              variants: VariantBatch | None = None) -> EvalOutput:
+def run_batch(
+    params: SimParams,
+    planner: Planner,
+    seeds: np.ndarray,
+    *,
+    seed: int = 0,
+    name: str = "",
+    progress: Callable[[int], None] | None = None,
+    frames: list | None = None,
+    variants: VariantBatch | None = None,
+) -> EvalOutput:
     """Run one batch of episodes (one per scene seed) with one planner; rows without ``episode``.
 
     Args:
@@ -119,8 +135,7 @@ def run_batch(params: SimParams, planner: Planner, seeds: np.ndarray, *, seed: i
     batch = variants if variants is not None else VariantBatch.single(params, len(seeds))
     state = batch.initial_state(seeds)
     e_n = state.num_scenes
-    hist, ids = initial_history(state, int(getattr(planner, "history_steps", HISTORY_STEPS)),
-                                planner.decision_dt_s)
+    hist, ids = initial_history(state, int(getattr(planner, "history_steps", HISTORY_STEPS)), planner.decision_dt_s)
     x0 = state.x_m[:, EGO].copy()
     speed_sum = np.zeros(e_n)
     steps = np.zeros(e_n, dtype=np.int64)
@@ -148,8 +163,14 @@ def run_batch(params: SimParams, planner: Planner, seeds: np.ndarray, *, seed: i
             break
         act_idx = np.nonzero(active)[0]
         t0 = time.perf_counter()
-        obs = Observation(params=params, state=state.take(act_idx), rows=act_idx, history=hist[act_idx],
-                          history_ids=ids[act_idx], time_s=t * planner.decision_dt_s)
+        obs = Observation(
+            params=params,
+            state=state.take(act_idx),
+            rows=act_idx,
+            history=hist[act_idx],
+            history_ids=ids[act_idx],
+            time_s=t * planner.decision_dt_s,
+        )
         act, p_coll = _checked(planner.decide(obs), name, len(act_idx))
         actions = np.zeros((e_n, 2))
         actions[act_idx] = act
@@ -236,9 +257,17 @@ def _as_seeds(seeds) -> np.ndarray:
     return np.asarray(seeds, dtype=np.int64).reshape(-1)
 
 
-def run_episodes(scenarios: Sequence[Scenario], seeds: Sequence[Sequence[int] | np.ndarray], planner: str, *,
-                 options: dict[str, Any] | None = None, seed: int = 0, batch_size: int = DEFAULT_BATCH,
-                 progress: Callable[[int], None] | None = None, tilt: EventTilt | None = None) -> list[EvalOutput]:
+def run_episodes(
+    scenarios: Sequence[Scenario],
+    seeds: Sequence[Sequence[int] | np.ndarray],
+    planner: str,
+    *,
+    options: dict[str, Any] | None = None,
+    seed: int = 0,
+    batch_size: int = DEFAULT_BATCH,
+    progress: Callable[[int], None] | None = None,
+    tilt: EventTilt | None = None,
+) -> list[EvalOutput]:
     """Closed-loop episodes of one planner in one or more scenario variants: ``seeds[g]`` in ``scenarios[g]``.
 
     Args:
@@ -291,25 +320,49 @@ def run_episodes(scenarios: Sequence[Scenario], seeds: Sequence[Sequence[int] | 
     return outs
 
 
-def evaluate_seeds(scenario: Scenario, planner: str, seeds: Sequence[int] | np.ndarray, *, seed: int = 0,
-                   options: dict[str, Any] | None = None, batch_size: int = DEFAULT_BATCH,
-                   progress: Callable[[int], None] | None = None, tilt: EventTilt | None = None) -> EvalOutput:
+def evaluate_seeds(
+    scenario: Scenario,
+    planner: str,
+    seeds: Sequence[int] | np.ndarray,
+    *,
+    seed: int = 0,
+    options: dict[str, Any] | None = None,
+    batch_size: int = DEFAULT_BATCH,
+    progress: Callable[[int], None] | None = None,
+    tilt: EventTilt | None = None,
+) -> EvalOutput:
     """Episodes of one planner in one scenario for the given scene seeds (:func:`run_episodes` of one variant)."""
-    return run_episodes([scenario], [seeds], planner, options=options, seed=seed, batch_size=batch_size,
-                        progress=progress, tilt=tilt)[0]
+    return run_episodes(
+        [scenario], [seeds], planner, options=options, seed=seed, batch_size=batch_size, progress=progress, tilt=tilt
+    )[0]
 
 
-def evaluate_planner(scenario: Scenario, planner: str, *, episodes: int, seed: int = 0,
-                     options: dict[str, Any] | None = None, batch_size: int = DEFAULT_BATCH,
-                     progress: Callable[[int], None] | None = None) -> EvalOutput:
+def evaluate_planner(
+    scenario: Scenario,
+    planner: str,
+    *,
+    episodes: int,
+    seed: int = 0,
+    options: dict[str, Any] | None = None,
+    batch_size: int = DEFAULT_BATCH,
+    progress: Callable[[int], None] | None = None,
+) -> EvalOutput:
     """All episodes of one planner; episode e uses scene seed ``episode_seeds(seed, episodes)[e]`` (the same for
     every planner: a paired comparison)."""
-    return evaluate_seeds(scenario, planner, episode_seeds(seed, episodes), seed=seed, options=options,
-                          batch_size=batch_size, progress=progress)
+    return evaluate_seeds(
+        scenario,
+        planner,
+        episode_seeds(seed, episodes),
+        seed=seed,
+        options=options,
+        batch_size=batch_size,
+        progress=progress,
+    )
 
 
-def record_episode(scenario: Scenario, planner: str, seed: int, *, options: dict[str, Any] | None = None,
-                   eval_seed: int = 0) -> tuple[np.ndarray, dict]:
+def record_episode(
+    scenario: Scenario, planner: str, seed: int, *, options: dict[str, Any] | None = None, eval_seed: int = 0
+) -> tuple[np.ndarray, dict]:
     """World rows (T, V, F) of one closed-loop episode (scene seed ``seed``) and its row.
 
     ``eval_seed`` is the run's ``seed`` (sweeps and stress tests run with 0): with the same value the recorded
@@ -328,10 +381,16 @@ def initial_state_rows(params: SimParams, seed: int) -> np.ndarray:
     return VariantBatch.single(params, 1).initial_state(np.array([seed])).vehicles()
 
 
-def evaluate_variants(scenarios: Sequence[Scenario], seeds: Sequence[Sequence[int] | np.ndarray], planner: str, *,
-                      seed: int = 0, options: dict[str, Any] | None = None, batch_size: int = DEFAULT_BATCH,
-                      progress: Callable[[int], None] | None = None) -> list[list[dict]]:
+def evaluate_variants(
+    scenarios: Sequence[Scenario],
+    seeds: Sequence[Sequence[int] | np.ndarray],
+    planner: str,
+    *,
+    seed: int = 0,
+    options: dict[str, Any] | None = None,
+    batch_size: int = DEFAULT_BATCH,
+    progress: Callable[[int], None] | None = None,
+) -> list[list[dict]]:
     """The rows of :func:`run_episodes` per variant (what stress tests need)."""
-    outs = run_episodes(scenarios, seeds, planner, options=options, seed=seed, batch_size=batch_size,
-                        progress=progress)
+    outs = run_episodes(scenarios, seeds, planner, options=options, seed=seed, batch_size=batch_size, progress=progress)
     return [o.rows for o in outs]

@@ -54,12 +54,21 @@ def _options_for(name: str, options: dict[str, Any]) -> dict[str, Any]:
     return dict(own) if isinstance(own, dict) else {}
 
 
-def compare_planners(scenario: Scenario, planners: Sequence[str], *, episodes: int, seed: int = 0,
-                     options: dict[str, Any] | None = None, episodes_by_planner: dict[str, int] | None = None,
-                     batch_size: int = 50, out_dir: Path | str | None = None,
-                     progress: ProgressFactory | None = None, reference: str | None = None,
-                     detect: dict[str, float] | None = None,
-                     log: Callable[[str], None] | None = None) -> tuple[dict, list[dict]]:
+def compare_planners(
+    scenario: Scenario,
+    planners: Sequence[str],
+    *,
+    episodes: int,
+    seed: int = 0,
+    options: dict[str, Any] | None = None,
+    episodes_by_planner: dict[str, int] | None = None,
+    batch_size: int = 50,
+    out_dir: Path | str | None = None,
+    progress: ProgressFactory | None = None,
+    reference: str | None = None,
+    detect: dict[str, float] | None = None,
+    log: Callable[[str], None] | None = None,
+) -> tuple[dict, list[dict]]:
     """Run ``planners`` on the same ``episodes`` scene seeds and summarise them.
 
     Args:
@@ -93,8 +102,15 @@ def compare_planners(scenario: Scenario, planners: Sequence[str], *, episodes: i
         advance, close = progress(f"evaluate {name}", n_dec * -(-n // batch_size)) if progress else (None, None)
         t0 = time.perf_counter()
         try:
-            out = evaluate_planner(scenario, name, episodes=n, seed=seed, options=_options_for(name, opts),
-                                   batch_size=batch_size, progress=advance)
+            out = evaluate_planner(
+                scenario,
+                name,
+                episodes=n,
+                seed=seed,
+                options=_options_for(name, opts),
+                batch_size=batch_size,
+                progress=advance,
+            )
         finally:
             if close is not None:
                 close()
@@ -103,8 +119,10 @@ def compare_planners(scenario: Scenario, planners: Sequence[str], *, episodes: i
         rows += out.rows
         if out.predicted:
             calib[name] = calibration(out.predicted, out.happened)
-            calib_rows += [{"planner": name, "predicted": p, "happened": int(h)}
-                           for p, h in zip(out.predicted, out.happened, strict=True)]
+            calib_rows += [
+                {"planner": name, "predicted": p, "happened": int(h)}
+                for p, h in zip(out.predicted, out.happened, strict=True)
+            ]
         if log is not None:
             log(f"{name}: {results[name]['seconds']} s")
     comparisons = {}
@@ -115,18 +133,32 @@ def compare_planners(scenario: Scenario, planners: Sequence[str], *, episodes: i
                 continue
             mine = [r for r in rows if r["planner"] == name]
             common = {r["seed"] for r in mine} & {r["seed"] for r in ref_rows}
-            comparisons[name] = paired_comparison([r for r in ref_rows if r["seed"] in common],
-                                                  [r for r in mine if r["seed"] in common], reference=reference,
-                                                  planner=name, detect=detect)
-    summary = {"scenario": scenario.name, "scenario_hash": scenario_hash(scenario),
-               "scenario_spec": scenario_to_dict(scenario),  # what `wmplan triage` rebuilds the scenario from
-               "episodes": episodes,
-               "episodes_by_planner": {p: int((episodes_by_planner or {}).get(p, episodes)) for p in planners},
-               "seed": seed, "planners": list(planners),
-               "options": {k: (str(v) if isinstance(v, Path) else v) for k, v in opts.items()
-                           if isinstance(v, (str, int, float, bool, Path, type(None)))},
-               "results": results, "reference": reference, "comparisons": comparisons, "calibration": calib,
-               "caution": CAUTION}
+            comparisons[name] = paired_comparison(
+                [r for r in ref_rows if r["seed"] in common],
+                [r for r in mine if r["seed"] in common],
+                reference=reference,
+                planner=name,
+                detect=detect,
+            )
+    summary = {
+        "scenario": scenario.name,
+        "scenario_hash": scenario_hash(scenario),
+        "scenario_spec": scenario_to_dict(scenario),  # what `wmplan triage` rebuilds the scenario from
+        "episodes": episodes,
+        "episodes_by_planner": {p: int((episodes_by_planner or {}).get(p, episodes)) for p in planners},
+        "seed": seed,
+        "planners": list(planners),
+        "options": {
+            k: (str(v) if isinstance(v, Path) else v)
+            for k, v in opts.items()
+            if isinstance(v, (str, int, float, bool, Path, type(None)))
+        },
+        "results": results,
+        "reference": reference,
+        "comparisons": comparisons,
+        "calibration": calib,
+        "caution": CAUTION,
+    }
     if out_dir is not None:
         write_outputs(Path(out_dir), summary, rows, calib_rows)
     return summary, rows

@@ -74,9 +74,7 @@ METHODS = {
 }
 """Names of the methods behind each statistic, for the JSON and the report."""
 
-_ROW_FIELDS = (
-    "seed, collision, success, mean_speed_mps, progress_m and near_miss (or min_ttc_s and max_brake_threat)"
-)
+_ROW_FIELDS = "seed, collision, success, mean_speed_mps, progress_m and near_miss (or min_ttc_s and max_brake_threat)"
 
 
 # --- one 2x2 table --------------------------------------------------------------------------------------------
@@ -151,9 +149,7 @@ def mcnemar_exact_p(planner_only: int, reference_only: int) -> float:
     """
     b, c = int(planner_only), int(reference_only)
     if b < 0 or c < 0 or b != planner_only or c != reference_only:
-        raise ConfigError(
-            f"mcnemar_exact_p: needs integer counts >= 0, got b={planner_only!r} c={reference_only!r}"
-        )
+        raise ConfigError(f"mcnemar_exact_p: needs integer counts >= 0, got b={planner_only!r} c={reference_only!r}")
     if b + c == 0:
         return 1.0
     return float(min(1.0, 2.0 * scipy.stats.binom.cdf(min(b, c), b + c, 0.5)))
@@ -164,9 +160,7 @@ def mcnemar_exact_p(planner_only: int, reference_only: int) -> float:
 
 def _check_design(p10: float, p01: float, alpha: float, power: float) -> None:
     if not (0 <= p10 <= 1 and 0 <= p01 <= 1 and p10 + p01 <= 1):
-        raise ConfigError(
-            f"discordant probabilities need 0 <= p10, p01 and p10 + p01 <= 1, got {p10!r}, {p01!r}"
-        )
+        raise ConfigError(f"discordant probabilities need 0 <= p10, p01 and p10 + p01 <= 1, got {p10!r}, {p01!r}")
     if not 0 < alpha < 1:
         raise ConfigError(f"alpha must lie in (0, 1), got {alpha!r}")
     if not 0 < power < 1:
@@ -239,9 +233,7 @@ def _by_seed(rows: Sequence[dict], name: str) -> dict[int, dict]:
     out: dict[int, dict] = {}
     for i, row in enumerate(rows):
         if not isinstance(row, Mapping) or "seed" not in row:
-            raise ConfigError(
-                f"paired comparison: row {i} of planner '{name}' has no 'seed'; rows need {_ROW_FIELDS}"
-            )
+            raise ConfigError(f"paired comparison: row {i} of planner '{name}' has no 'seed'; rows need {_ROW_FIELDS}")
         seed = int(row["seed"])
         if seed in out:
             raise ConfigError(
@@ -295,9 +287,7 @@ def _values(rows: list[dict], key: str, name: str) -> np.ndarray:
         ) from None
 
 
-def paired_mean_difference(
-    planner: object, reference: object, level: float = 0.95
-) -> tuple[float, list[float]]:
+def paired_mean_difference(planner: object, reference: object, level: float = 0.95) -> tuple[float, list[float]]:
     """Mean of the per-pair differences (planner minus reference) with its paired t interval.
 
     Pairs where either value is not finite are left out.
@@ -309,9 +299,7 @@ def paired_mean_difference(
     p = np.asarray(planner, dtype=np.float64).ravel()
     r = np.asarray(reference, dtype=np.float64).ravel()
     if p.shape != r.shape:
-        raise ConfigError(
-            f"paired_mean_difference: needs two arrays of one length, got {p.size} and {r.size}"
-        )
+        raise ConfigError(f"paired_mean_difference: needs two arrays of one length, got {p.size} and {r.size}")
     diff = (p - r)[np.isfinite(p) & np.isfinite(r)]
     if diff.size == 0:
         return math.nan, [math.nan, math.nan]
@@ -364,9 +352,7 @@ def no_power_statement(outcome: str, n: int, events: int, upper95: float) -> str
 # --- the comparison -------------------------------------------------------------------------------------------
 
 
-def _power_entry(
-    outcome: str, counts: PairedCounts, detect: float | None, alpha: float, power: float
-) -> dict:
+def _power_entry(outcome: str, counts: PairedCounts, detect: float | None, alpha: float, power: float) -> dict:
     n = counts.n
     b, c = counts.planner_only, counts.reference_only
     if outcome == "success":  # the event whose rate is bounded is the failure to succeed
@@ -530,9 +516,7 @@ def comparison_rows(comparisons: Mapping[str, dict]) -> tuple[list[list[str]], l
         for outcome in BINARY_OUTCOMES:
             key, entry = _DIFF_KEY[outcome], cmp[f"{outcome}_power"]
             if entry["no_power"]:
-                notes.append(
-                    f"{planner} vs {cmp['reference']}, {outcome.replace('_', ' ')}: {entry['statement']}"
-                )
+                notes.append(f"{planner} vs {cmp['reference']}, {outcome.replace('_', ' ')}: {entry['statement']}")
                 cells.append(f"no power [{len(notes)}]")
                 p_cell = "-"
             else:
@@ -559,9 +543,7 @@ def comparison_table(comparisons: Mapping[str, dict]) -> str:
     """
     rows, notes = comparison_rows(comparisons)
     widths = [max(len(r[i]) for r in [TABLE_HEADER, *rows]) for i in range(len(TABLE_HEADER))]
-    lines = [
-        "  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [TABLE_HEADER, *rows]
-    ]
+    lines = ["  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip() for r in [TABLE_HEADER, *rows]]
     lines.insert(1, "  ".join("-" * w for w in widths))
     lines.append(TABLE_METHODS)
     lines.extend(f"[{i}] {note}" for i, note in enumerate(notes, start=1))

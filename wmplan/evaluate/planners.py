@@ -46,12 +46,29 @@ from wmplan.sim.params import SimParams
 PlannerFactory = Callable[..., Planner]
 """``factory(params: SimParams, **options) -> Planner``."""
 
-MPC_OPTIONS = ("model", "deterministic", "sampler", "risk", "epsilon", "num_candidates", "num_futures", "threads",
-               "config")
+MPC_OPTIONS = (
+    "model",
+    "deterministic",
+    "sampler",
+    "risk",
+    "epsilon",
+    "num_candidates",
+    "num_futures",
+    "threads",
+    "config",
+)
 RUN_OPTIONS = ("batch_size",)
 BUILTIN_PREDICTORS = PREDICTOR_NAMES
-__all__ = ["HISTORY", "NUM_OBJECTS", "PlannerEntry", "make_planner", "planner_names", "register_planner",
-           "resolve_planner", "unregister_planner"]
+__all__ = [
+    "HISTORY",
+    "NUM_OBJECTS",
+    "PlannerEntry",
+    "make_planner",
+    "planner_names",
+    "register_planner",
+    "resolve_planner",
+    "unregister_planner",
+]
 
 
 @dataclass(frozen=True)
@@ -112,15 +129,23 @@ def make_mpc(predictor: str, params: SimParams, **options: Any) -> Planner:
     cfg = _planner_config(name, options)
     ego = EgoKinematics.from_scenario(params.scenario, cfg.plan_dt_s)
     if builtin:
-        pred = builtin_predictor(predictor, params, horizon=cfg.horizon, plan_dt_s=cfg.plan_dt_s,
-                                 model_dir=options.get("model"), deterministic_dir=options.get("deterministic"))
+        pred = builtin_predictor(
+            predictor,
+            params,
+            horizon=cfg.horizon,
+            plan_dt_s=cfg.plan_dt_s,
+            model_dir=options.get("model"),
+            deterministic_dir=options.get("deterministic"),
+        )
     else:
         factory = _import_object(name, predictor)
         extra = {k: v for k, v in options.items() if k not in MPC_OPTIONS}
         pred = _call_factory(name, factory, params, horizon=cfg.horizon, plan_dt_s=cfg.plan_dt_s, **extra)
         if not callable(getattr(pred, "predict", None)):
-            raise ConfigError(f"planner {name!r}: the factory returned {type(pred).__name__}, which has no "
-                              "predict(ctx, actions, num_futures, *, generator) method (wmplan.plan.predictors)")
+            raise ConfigError(
+                f"planner {name!r}: the factory returned {type(pred).__name__}, which has no "
+                "predict(ctx, actions, num_futures, *, generator) method (wmplan.plan.predictors)"
+            )
     return SamplingPlanner(cfg, params, pred, ego)
 
 
@@ -184,8 +209,9 @@ def _import_object(spec: str, path: str) -> Any:
     if not sep:
         module_name, _, attr = path.rpartition(".")
     if not module_name or not attr:
-        raise ConfigError(f"planner {spec!r}: not a known name ({', '.join(planner_names())}) nor an import path "
-                          "module:factory")
+        raise ConfigError(
+            f"planner {spec!r}: not a known name ({', '.join(planner_names())}) nor an import path module:factory"
+        )
     try:
         module = importlib.import_module(module_name)
     except ImportError as err:
@@ -228,8 +254,10 @@ def resolve_planner(spec: str) -> PlannerEntry:
 
         return PlannerEntry(make, None, f"sampling planner over the predictor {path}")
     if ":" not in spec and "." not in spec:
-        raise ConfigError(f"unknown planner {spec!r}; known: {', '.join(planner_names())}, or an import path "
-                          "module:factory (a plug-in)")
+        raise ConfigError(
+            f"unknown planner {spec!r}; known: {', '.join(planner_names())}, or an import path "
+            "module:factory (a plug-in)"
+        )
     obj = _import_object(spec, spec)
     if isinstance(obj, PlannerEntry):
         return obj
@@ -244,13 +272,17 @@ def make_planner(spec: str, params: SimParams, options: dict[str, Any] | None = 
     planner = _call_factory(spec, entry.make, params, **dict(options or {}))
     missing = missing_members(planner)
     if missing:
-        raise ConfigError(f"planner {spec!r}: the factory returned {type(planner).__name__}, which lacks "
-                          f"{', '.join(missing)} (see wmplan.plan.base.Planner)")
+        raise ConfigError(
+            f"planner {spec!r}: the factory returned {type(planner).__name__}, which lacks "
+            f"{', '.join(missing)} (see wmplan.plan.base.Planner)"
+        )
     dt = float(planner.decision_dt_s)
     ratio = dt / params.dt_s
     if not dt > 0 or abs(ratio - round(ratio)) > 1e-9:
-        raise ConfigError(f"planner {spec!r}: decision_dt_s = {dt!r} must be a positive multiple of the scenario's "
-                          f"time step {params.dt_s} s")
+        raise ConfigError(
+            f"planner {spec!r}: decision_dt_s = {dt!r} must be a positive multiple of the scenario's "
+            f"time step {params.dt_s} s"
+        )
     return planner
 
 

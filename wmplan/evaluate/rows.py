@@ -30,27 +30,51 @@ COLUMNS: tuple[tuple[str, str, str], ...] = (
     ("contact_side", "", "side of the ego touched in a collision (front, rear, left, right); empty without one"),
     ("offroad", "bool", "a corner of the ego left the lanes before the episode ended"),
     ("success", "bool", "the ego reached its goal (goal x in a goal lane) without a collision or leaving the road"),
-    ("outcome", "", "how the episode ended: collision, offroad, goal or timeout (a collision outranks leaving "
-     "the road in the same step)"),
+    (
+        "outcome",
+        "",
+        "how the episode ended: collision, offroad, goal or timeout (a collision outranks leaving "
+        "the road in the same step)",
+    ),
     ("final_lane", "", "the lane holding the ego's centre when the episode ended"),
     ("in_goal_lane", "bool", "whether that lane is one of the goal's lanes (a timeout outside them is a stall)"),
     ("progress_m", "m", "ego x at the end of the episode minus ego x at the start"),
     ("mean_speed_mps", "m/s", "mean ego speed over the simulator steps of the episode"),
-    ("min_clearance_m", "m", "smallest distance between the ego's and another vehicle's footprint taken as "
-     "axis-aligned boxes (negative: overlap depth); inf if no other vehicle was present"),
-    ("min_ttc_s", "s", "smallest time-to-collision to a vehicle ahead in the ego's path (lateral overlap of the "
-     "boxes): bumper gap over closing speed at constant speeds (docs/references.md#hayward-1972-ttc); inf if the "
-     "ego never closed in on anyone"),
-    ("max_brake_threat", "", "largest deceleration the ego needed to avoid the vehicle or lane end ahead, over its "
-     "braking limit (wmplan.sim.threat; >= 1: its brakes alone could not), capped at 10"),
+    (
+        "min_clearance_m",
+        "m",
+        "smallest distance between the ego's and another vehicle's footprint taken as "
+        "axis-aligned boxes (negative: overlap depth); inf if no other vehicle was present",
+    ),
+    (
+        "min_ttc_s",
+        "s",
+        "smallest time-to-collision to a vehicle ahead in the ego's path (lateral overlap of the "
+        "boxes): bumper gap over closing speed at constant speeds (docs/references.md#hayward-1972-ttc); inf if the "
+        "ego never closed in on anyone",
+    ),
+    (
+        "max_brake_threat",
+        "",
+        "largest deceleration the ego needed to avoid the vehicle or lane end ahead, over its "
+        "braking limit (wmplan.sim.threat; >= 1: its brakes alone could not), capped at 10",
+    ),
     ("near_miss", "bool", f"min_ttc_s < {NEAR_MISS_TTC_S} s or max_brake_threat > 1, without a collision"),
     ("rms_jerk_mps3", "m/s^3", "root mean square of the ego's longitudinal jerk over the steps of the episode"),
     ("decisions", "", "planner decisions made while the episode ran"),
     ("time_s", "s", "simulated time until the episode ended (steps x the scenario's time step)"),
-    ("decision_ms", "ms", "planner wall time per decision, shared equally among the episodes of the batch (a "
-     "timing: differs between runs)"),
-    ("log_weight", "", "only with an event tilt (importance sampling): log of nominal over tilted likelihood of "
-     "the episode's random draws (wmplan.sim.tilt)"),
+    (
+        "decision_ms",
+        "ms",
+        "planner wall time per decision, shared equally among the episodes of the batch (a "
+        "timing: differs between runs)",
+    ),
+    (
+        "log_weight",
+        "",
+        "only with an event tilt (importance sampling): log of nominal over tilted likelihood of "
+        "the episode's random draws (wmplan.sim.tilt)",
+    ),
 )
 COLUMN_NAMES = tuple(c[0] for c in COLUMNS)
 TIMING_COLUMNS = ("decision_ms",)
@@ -65,9 +89,13 @@ def columns_markdown() -> str:
     return "\n".join(lines) + "\n"
 
 
-def is_near_miss(min_ttc_s: np.ndarray | float, max_brake_threat: np.ndarray | float,
-                 collision: np.ndarray | bool, ttc_threshold_s: float = NEAR_MISS_TTC_S,
-                 brake_threat_threshold: float = NEAR_MISS_BRAKE_THREAT) -> np.ndarray:
+def is_near_miss(
+    min_ttc_s: np.ndarray | float,
+    max_brake_threat: np.ndarray | float,
+    collision: np.ndarray | bool,
+    ttc_threshold_s: float = NEAR_MISS_TTC_S,
+    brake_threat_threshold: float = NEAR_MISS_BRAKE_THREAT,
+) -> np.ndarray:
     """The ``near_miss`` column from its three inputs (arrays of one shape, or scalars): no collision, and the
     smallest TTC below ``ttc_threshold_s`` or the brake threat above ``brake_threat_threshold`` (NaN meets
     neither). The one definition: ``wmplan.evaluate.stats.is_near_miss`` applies it to a row."""

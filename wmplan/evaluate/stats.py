@@ -43,9 +43,7 @@ def _counts(fn: str, k: object, n: object) -> tuple[np.ndarray, np.ndarray]:
     try:
         k_arr, n_arr = np.broadcast_arrays(k_arr, n_arr)
     except ValueError:
-        raise ConfigError(
-            f"{fn}: k of shape {k_arr.shape} and n of shape {n_arr.shape} do not broadcast"
-        ) from None
+        raise ConfigError(f"{fn}: k of shape {k_arr.shape} and n of shape {n_arr.shape} do not broadcast") from None
     bad = ~np.isfinite(k_arr) | ~np.isfinite(n_arr) | (k_arr != np.round(k_arr)) | (n_arr != np.round(n_arr))
     bad |= (n_arr <= 0) | (k_arr < 0) | (k_arr > n_arr)
     if bad.any():
@@ -67,9 +65,7 @@ def _predictions(fn: str, p: object, y: object) -> tuple[np.ndarray, np.ndarray]
     p_arr = np.asarray(p, dtype=np.float64).ravel()
     y_arr = np.asarray(y, dtype=np.float64).ravel()
     if p_arr.shape != y_arr.shape:
-        raise ConfigError(
-            f"{fn}: p has {p_arr.size} values but y has {y_arr.size}; pass one outcome per prediction"
-        )
+        raise ConfigError(f"{fn}: p has {p_arr.size} values but y has {y_arr.size}; pass one outcome per prediction")
     if p_arr.size == 0:
         raise ConfigError(f"{fn}: p and y are empty; pass at least one prediction")
     if not np.all((p_arr >= 0) & (p_arr <= 1)):
@@ -229,7 +225,6 @@ def expected_calibration_error(p: object, y: object, num_bins: int = 10) -> floa
 # --- near misses ----------------------------------------------------------------------------------------------
 
 
-
 def _row_value(row: dict, key: str, where: str) -> object:
     try:
         return row[key]
@@ -284,7 +279,8 @@ def near_miss_flags(rows: list[dict], name: str = "planner", **thresholds: float
     """
     return np.array(
         [
-            bool(r["near_miss"]) if isinstance(r, dict) and "near_miss" in r
+            bool(r["near_miss"])
+            if isinstance(r, dict) and "near_miss" in r
             else is_near_miss(r, where=f"row {i} of planner '{name}'", **thresholds)
             for i, r in enumerate(rows)
         ],

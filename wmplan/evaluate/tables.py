@@ -69,17 +69,25 @@ def summarise_planner(rows: list[dict]) -> dict:
     sides = [r.get("contact_side", "") for r in rows if r["collision"]]
     return {
         "episodes": len(rows),
-        "collision_rate": coll_rate, "collision_ci95": coll_ci,
+        "collision_rate": coll_rate,
+        "collision_ci95": coll_ci,
         "collisions_by_contact_side": {k: sides.count(k) for k in CONTACT_SIDES if k in sides},
-        "offroad_rate": off_rate, "offroad_ci95": off_ci,
-        "success_rate": succ_rate, "success_ci95": succ_ci,
-        "timeout_rate": timeout_rate, "timeout_ci95": timeout_ci,
+        "offroad_rate": off_rate,
+        "offroad_ci95": off_ci,
+        "success_rate": succ_rate,
+        "success_ci95": succ_ci,
+        "timeout_rate": timeout_rate,
+        "timeout_ci95": timeout_ci,
         "timeouts_outside_goal_lanes": int(stalled.sum()),
-        "mean_speed_mps": speed, "mean_speed_ci95": speed_ci,
-        "progress_m": prog, "progress_ci95": prog_ci,
-        "rms_jerk_mps3": jerk, "rms_jerk_ci95": jerk_ci,
+        "mean_speed_mps": speed,
+        "mean_speed_ci95": speed_ci,
+        "progress_m": prog,
+        "progress_ci95": prog_ci,
+        "rms_jerk_mps3": jerk,
+        "rms_jerk_ci95": jerk_ci,
         "min_ttc_s_median": float(np.median(ttc)),
-        "near_miss_rate": near_rate, "near_miss_ci95": near_ci,
+        "near_miss_rate": near_rate,
+        "near_miss_ci95": near_ci,
         "decision_ms_median": float(np.median(dec)),
     }
 
@@ -101,11 +109,18 @@ def calibration(predicted: list[float], happened: list[int], num_bins: int = 10)
     # "positives": decisions followed by a collision within the horizon; with none or few, a small ECE only says
     # that the predictions were small, not that they were calibrated where it matters
     risky = p > RISKY_P
-    return {"decisions": int(len(p)), "positives": int(y.sum()),
-            "decisions_p_above_0_01": int(risky.sum()), "positives_p_above_0_01": int(y[risky].sum()),
-            "brier": float(brier_score(p, y)),
-            "ece": float(expected_calibration_error(p, y, num_bins)), "num_bins": num_bins,
-            "mean_predicted": float(p.mean()), "observed_rate": float(y.mean()), "bins": clean}
+    return {
+        "decisions": int(len(p)),
+        "positives": int(y.sum()),
+        "decisions_p_above_0_01": int(risky.sum()),
+        "positives_p_above_0_01": int(y[risky].sum()),
+        "brier": float(brier_score(p, y)),
+        "ece": float(expected_calibration_error(p, y, num_bins)),
+        "num_bins": num_bins,
+        "mean_predicted": float(p.mean()),
+        "observed_rate": float(y.mean()),
+        "bins": clean,
+    }
 
 
 def write_parquet(path: Path, rows: list[dict]) -> None:
@@ -132,8 +147,10 @@ def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None)
     """The terminal table: one row per planner, rates with their 95% intervals; with ``calib`` (planner ->
     :func:`calibration` output) also the ECE and, beside it, how many decisions were followed by a collision."""
     w = max([24, *(len(name) + 2 for name in results)])
-    head = (f"{'planner':<{w}}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}"
-            f"{'timeout':>9}{'speed m/s':>11}{'decision ms':>13}")
+    head = (
+        f"{'planner':<{w}}{'n':>5}  {'collision [95% CI]':<22}{'success [95% CI]':<22}{'off-road':>9}"
+        f"{'timeout':>9}{'speed m/s':>11}{'decision ms':>13}"
+    )
     if calib is not None:
         head += f"{'ECE (positives)':>18}"
     lines = [head, "-" * len(head)]
@@ -146,11 +163,15 @@ def format_table(results: dict[str, dict], calib: dict[str, dict] | None = None)
         )
         if calib is not None:
             cal = calib.get(name, {})
-            line += (f"{cal['ece']:>10.4f} ({cal.get('positives', '?')})".rjust(18) if cal.get("decisions")
-                     else f"{'-':>18}")
+            line += (
+                f"{cal['ece']:>10.4f} ({cal.get('positives', '?')})".rjust(18) if cal.get("decisions") else f"{'-':>18}"
+            )
         lines.append(line)
-    sides = [f"{name} {_sides_text(r['collisions_by_contact_side'])}" for name, r in results.items()
-             if r.get("collisions_by_contact_side")]
+    sides = [
+        f"{name} {_sides_text(r['collisions_by_contact_side'])}"
+        for name, r in results.items()
+        if r.get("collisions_by_contact_side")
+    ]
     if sides:
         lines.append("collisions by the side of the ego touched: " + "; ".join(sides))
     return "\n".join(lines)

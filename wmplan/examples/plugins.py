@@ -59,8 +59,7 @@ class BrakingPredictor(Predictor):
         self.decel = decel_mps2
         self.plan_dt_s = plan_dt_s
 
-    def predict(self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *,
-                generator) -> torch.Tensor:
+    def predict(self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *, generator) -> torch.Tensor:
         """Rows (B, C, K, H, N, F) of constant velocity, then each other vehicle slowed (never reversing)."""
         rows = self.base.predict(ctx, actions, num_futures, generator=generator).clone()
         h = rows.shape[3]
@@ -76,7 +75,8 @@ class BrakingPredictor(Predictor):
         return rows
 
 
-def make_braking_predictor(params: SimParams, horizon: int, plan_dt_s: float,
-                           decel_mps2: float = 1.5) -> BrakingPredictor:
+def make_braking_predictor(
+    params: SimParams, horizon: int, plan_dt_s: float, decel_mps2: float = 1.5
+) -> BrakingPredictor:
     """The predictor factory wmplan calls: ``factory(params, horizon=H, plan_dt_s=dt, **options) -> Predictor``."""
     return BrakingPredictor(params, horizon, plan_dt_s, decel_mps2)

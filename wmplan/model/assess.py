@@ -56,7 +56,9 @@ allocator serves from fresh pages (:mod:`wmplan._alloc`)."""
 PLAN_OFFSETS_MPS2 = (0.0, 1.0, -2.0)
 
 
-def ade_fde(pred: torch.Tensor, true: torch.Tensor, valid: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+def ade_fde(
+    pred: torch.Tensor, true: torch.Tensor, valid: torch.Tensor
+) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
     """Best-of-K errors per object.
 
     Args:
@@ -95,13 +97,24 @@ def model_collisions(rows: np.ndarray, ego_length_m: float, ego_width_m: float) 
     """(..., ) True where the ego (row 0) overlaps another valid row at any step; rows (..., H, N, F)."""
     ego = rows[..., :1, :]
     oth = rows[..., 1:, :]
-    hit = boxes_overlap(ego[..., F_X], ego[..., F_Y], ego_length_m, ego_width_m, ego[..., F_HEADING],
-                        oth[..., F_X], oth[..., F_Y], oth[..., F_LENGTH], oth[..., F_WIDTH], oth[..., F_HEADING])
+    hit = boxes_overlap(
+        ego[..., F_X],
+        ego[..., F_Y],
+        ego_length_m,
+        ego_width_m,
+        ego[..., F_HEADING],
+        oth[..., F_X],
+        oth[..., F_Y],
+        oth[..., F_LENGTH],
+        oth[..., F_WIDTH],
+        oth[..., F_HEADING],
+    )
     return (hit & (oth[..., F_VALID] > 0.5)).any(axis=(-1, -2))
 
 
-def heldout_metrics(pred, batch: dict, true: torch.Tensor, valid: torch.Tensor, seed: int,
-                    chunk: int = CHUNK_WINDOWS) -> dict:
+def heldout_metrics(
+    pred, batch: dict, true: torch.Tensor, valid: torch.Tensor, seed: int, chunk: int = CHUNK_WINDOWS
+) -> dict:
     """minADE / minFDE over K_BEST samples, the mixture NLL over K_DENSITY and the coverage of the central 90%
     interval over K_COVERAGE noisy samples, of predictor ``pred`` on the windows of ``batch`` (true futures ``true``
     (B, H, N, 2), ``valid`` (B, H, N)). The windows are taken ``chunk`` at a time, each kind of draw from its own
@@ -110,8 +123,8 @@ def heldout_metrics(pred, batch: dict, true: torch.Tensor, valid: torch.Tensor, 
     gens = [torch.Generator().manual_seed(seed + i) for i in (1, 2, 3)]
     parts: dict[str, list[torch.Tensor]] = {"ade": [], "fde": [], "full": [], "nll": [], "inside": []}
     for s in range(0, true.shape[0], chunk):
-        sub = {key: val[s:s + chunk] for key, val in batch.items()}
-        t, v = true[s:s + chunk], valid[s:s + chunk]
+        sub = {key: val[s : s + chunk] for key, val in batch.items()}
+        t, v = true[s : s + chunk], valid[s : s + chunk]
         acts = sub["actions"][:, None]
         s6 = pred.sample(sub, acts, K_BEST, generator=gens[0])
         ade, fde, full = ade_fde(s6["rows"][:, 0, ..., :2], t, v)
@@ -122,8 +135,13 @@ def heldout_metrics(pred, batch: dict, true: torch.Tensor, valid: torch.Tensor, 
         xs = sc["rows"][:, 0, ..., :2]  # (B, K, H, N, 2)
         lo, hi = torch.quantile(xs, torch.tensor([0.05, 0.95], dtype=xs.dtype), dim=1)  # one sort for both ends
         inside = ((t >= lo) & (t <= hi)).float()  # (B, H, N, 2)
-        for key, val in (("ade", ade[full]), ("fde", fde[full]), ("full", full), ("nll", nll[v.permute(0, 2, 1)]),
-                         ("inside", inside[v])):
+        for key, val in (
+            ("ade", ade[full]),
+            ("fde", fde[full]),
+            ("full", full),
+            ("nll", nll[v.permute(0, 2, 1)]),
+            ("inside", inside[v]),
+        ):
             parts[key].append(val)
     cat = {key: torch.cat(val) for key, val in parts.items()}
     return {
@@ -165,14 +183,24 @@ def _rule_plans(params: SimParams, states: TrafficState, horizon: int, decision_
     return plans
 
 
-def assess(model_dir: Path | str, scenario: Scenario, *, deterministic_dir: Path | str | None = None,
-           episodes: int = 96, oracle_states: int = 48, oracle_samples: int = 32, seed: int = 0,
-           progress: Callable[[str], None] | None = None) -> dict:
+def assess(
+    model_dir: Path | str,
+    scenario: Scenario,
+    *,
+    deterministic_dir: Path | str | None = None,
+    episodes: int = 96,
+    oracle_states: int = 48,
+    oracle_samples: int = 32,
+    seed: int = 0,
+    progress: Callable[[str], None] | None = None,
+) -> dict:
     """Compare the predictors on held-out episodes and oracle states; returns the JSON-ready results."""
     say = progress or (lambda msg: None)
     model, meta = load_model(model_dir)
     if meta.get("kind") != "latent":
-        raise ConfigError(f"{model_dir}: is a {meta.get('kind')} model; pass the latent model first and the other with --deterministic")
+        raise ConfigError(
+            f"{model_dir}: is a {meta.get('kind')} model; pass the latent model first and the other with --deterministic"
+        )
     predictors: dict[str, object] = {"latent": model}
     if deterministic_dir is not None:
         det, det_meta = load_model(deterministic_dir)
@@ -188,7 +216,7 @@ def assess(model_dir: Path | str, scenario: Scenario, *, deterministic_dir: Path
         train_ds = load_dataset(train_path, verify_hash=False)
         tw = Windows(train_ds, spec)
         ti = anchor_index(train_ds, spec, stride=7)[:20000]
-        cv.fit_variance(to_torch(tw.batch(ti[i:i + 2048])) for i in range(0, len(ti), 2048))
+        cv.fit_variance(to_torch(tw.batch(ti[i : i + 2048])) for i in range(0, len(ti), 2048))
         say(f"constant velocity: variance fitted on {len(ti)} windows of {train_path}")
     except Exception:  # noqa: BLE001 - the training data may have moved; fall back to a held-out half
         train_ds = None
@@ -196,7 +224,9 @@ def assess(model_dir: Path | str, scenario: Scenario, *, deterministic_dir: Path
 
     # --- held-out episodes with snapshots for the oracle ---
     n_dec = int(round(scenario.duration_s / scenario.dt_s)) // decision_every
-    snap_times = sorted({t for t in (cfg.history + 5, n_dec // 3, n_dec // 2) if cfg.history - 1 <= t < n_dec - cfg.horizon})
+    snap_times = sorted(
+        {t for t in (cfg.history + 5, n_dec // 3, n_dec // 2) if cfg.history - 1 <= t < n_dec - cfg.horizon}
+    )
     say(f"simulating {episodes} held-out episodes of {scenario.name}")
     params, ds, snaps = _heldout(scenario, episodes, seed, snap_times, decision_every)
     windows = Windows(ds, spec)
@@ -238,16 +268,27 @@ def assess(model_dir: Path | str, scenario: Scenario, *, deterministic_dir: Path
     for mode in ("known", "resampled"):
         xy_list, coll_list = [], []
         for i in range(s_n):
-            fut = oracle_futures(st_all, params, plans[i], oracle_samples, scene=i, mode=mode, plan_dt_s=cfg.plan_dt_s,
-                                 seed=seed + 100 + i)
+            fut = oracle_futures(
+                st_all,
+                params,
+                plans[i],
+                oracle_samples,
+                scene=i,
+                mode=mode,
+                plan_dt_s=cfg.plan_dt_s,
+                seed=seed + 100 + i,
+            )
             ego = st_all.vehicles()[i, EGO]
             slots = np.broadcast_to(wb.slots[i], fut.vehicles.shape[:3] + wb.slots.shape[1:])
             picked = gather_slots(fut.vehicles, slots)  # (C, K, H, N, F)
             ids = np.take_along_axis(fut.vehicle_id, np.where(slots >= 0, slots, 0), axis=-1)
             anchor_ids = np.take_along_axis(st_all.vehicle_id[i], np.where(wb.slots[i] >= 0, wb.slots[i], 0), axis=0)
             picked[..., F_VALID] *= (ids == anchor_ids) & (slots >= 0)
-            framed = to_frame(picked, np.broadcast_to(ego[[F_X, F_Y]], picked.shape[:3] + (2,)),
-                              np.full(picked.shape[:3], ego[F_HEADING]))
+            framed = to_frame(
+                picked,
+                np.broadcast_to(ego[[F_X, F_Y]], picked.shape[:3] + (2,)),
+                np.full(picked.shape[:3], ego[F_HEADING]),
+            )
             xy_list.append(framed)
             coll_list.append(fut.collided)
         truth[mode] = (np.stack(xy_list), np.stack(coll_list))  # (S, C, K, H, N, F), (S, C, K)
@@ -259,7 +300,9 @@ def assess(model_dir: Path | str, scenario: Scenario, *, deterministic_dir: Path
         p_model = model_collisions(rows, scenario.ego.length_m, scenario.ego.width_m).mean(-1)  # (S, C)
         for mode, suffix in (("known", ""), ("resampled", "_resampled")):
             o_rows, o_coll = truth[mode]
-            ok = (o_rows[..., F_VALID] > 0.5).all(axis=(2, 3)) & (rows[..., F_VALID] > 0.5).all(axis=(2, 3))  # (S, C, N)
+            ok = (o_rows[..., F_VALID] > 0.5).all(axis=(2, 3)) & (rows[..., F_VALID] > 0.5).all(
+                axis=(2, 3)
+            )  # (S, C, N)
             ok[..., 0] = False
             x = torch.from_numpy(rows[..., :2]).permute(0, 1, 4, 2, 3, 5).flatten(-2)  # (S, C, N, K, 2H)
             y = torch.from_numpy(o_rows[..., :2]).permute(0, 1, 4, 2, 3, 5).flatten(-2).float()

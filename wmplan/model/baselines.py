@@ -30,15 +30,23 @@ class ConstantVelocity:
         for batch in batches:
             hist, fut = batch["history"], batch["future"]
             r = fut[..., :2].permute(0, 2, 1, 3) - self._helper.cv_positions(hist)
-            m = ((fut[..., 7] > 0.5).permute(0, 2, 1) & (hist[:, -1, :, 7] > 0.5)[..., None])
+            m = (fut[..., 7] > 0.5).permute(0, 2, 1) & (hist[:, -1, :, 7] > 0.5)[..., None]
             m[:, 0] = False
             total += (r**2 * m[..., None]).sum((0, 1))
             count += m.sum((0, 1))[:, None]
         self.logvar = torch.log(total / count.clamp_min(1.0) + 1e-4)
 
     @torch.inference_mode()
-    def sample(self, batch: dict, actions: torch.Tensor, num_samples: int, *, generator: torch.Generator,
-               noise: bool = False, moments: bool = True) -> dict:
+    def sample(
+        self,
+        batch: dict,
+        actions: torch.Tensor,
+        num_samples: int,
+        *,
+        generator: torch.Generator,
+        noise: bool = False,
+        moments: bool = True,
+    ) -> dict:
         """K constant-velocity futures (identical unless ``noise``) in the rows layout of :meth:`WorldModel.sample`."""
         hist = batch["history"]
         b, c = actions.shape[:2]

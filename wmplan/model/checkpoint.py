@@ -108,6 +108,7 @@ class TrainFields(_Frozen):
 
 class Sha256Fields(_Frozen):
     """The SHA-256 digests of a checkpoint's files, by file name."""
+
     model_config = ConfigDict(frozen=True, extra="forbid", strict=True, populate_by_name=True)
 
     model: Sha256 = Field(alias="model.safetensors")
@@ -145,8 +146,15 @@ class TrainState(_Frozen):
     history: list[dict]
 
 
-def save_checkpoint(out_dir: Path, model: WorldModel, *, epoch: int, meta: dict, optimizer_state: dict[str, torch.Tensor],
-                    train_state: dict) -> Path:
+def save_checkpoint(
+    out_dir: Path,
+    model: WorldModel,
+    *,
+    epoch: int,
+    meta: dict,
+    optimizer_state: dict[str, torch.Tensor],
+    train_state: dict,
+) -> Path:
     """Write checkpoint ``epoch`` into ``out_dir`` and point ``latest`` at it; prune older folders."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -222,7 +230,9 @@ def read_config(folder: Path) -> dict:
         got = cfg.get("format") if isinstance(cfg, dict) else type(cfg).__name__
         raise CheckpointError(f"{path}: format: expected {FORMAT!r}, got {got!r}; not a wmplan model checkpoint")
     if cfg.get("schema_version") != SCHEMA_VERSION:
-        raise CheckpointError(f"{path}: schema_version: this wmplan reads {SCHEMA_VERSION}, got {cfg.get('schema_version')!r}")
+        raise CheckpointError(
+            f"{path}: schema_version: this wmplan reads {SCHEMA_VERSION}, got {cfg.get('schema_version')!r}"
+        )
     try:
         parsed = CheckpointConfig.model_validate(cfg)
     except ValidationError as err:
@@ -232,7 +242,9 @@ def read_config(folder: Path) -> dict:
     except ConfigError as err:
         raise CheckpointError(f"{path}: model: {err}") from None
     if (parsed.kind == "deterministic") != mcfg.deterministic:
-        raise CheckpointError(f"{path}: kind: {parsed.kind!r} disagrees with model.deterministic = {mcfg.deterministic}")
+        raise CheckpointError(
+            f"{path}: kind: {parsed.kind!r} disagrees with model.deterministic = {mcfg.deterministic}"
+        )
     return cfg
 
 
@@ -255,15 +267,18 @@ def _header(path: Path) -> dict[str, tuple[tuple[int, ...], str]]:
         raise CheckpointError(f"{path}: not a readable safetensors file ({str(err).splitlines()[0][:80]})") from None
 
 
-def _load_tensors(path: Path, expected_sha: str | None, *, max_bytes: int | None = None,
-                  check=None) -> dict[str, torch.Tensor]:
+def _load_tensors(
+    path: Path, expected_sha: str | None, *, max_bytes: int | None = None, check=None
+) -> dict[str, torch.Tensor]:
     """Read a safetensors file: its size bounded (``max_bytes``) before hashing, its sha256 compared, its header
     passed to ``check`` (names, shapes) before any tensor is allocated, and every float tensor checked finite."""
     if not path.is_file():
         raise CheckpointError(f"{path}: missing")
     if max_bytes is not None and path.stat().st_size > max_bytes:
-        raise CheckpointError(f"{path}: {path.stat().st_size} bytes, more than the stated model's tensors can take "
-                              f"({max_bytes}); the file does not belong to this config.json")
+        raise CheckpointError(
+            f"{path}: {path.stat().st_size} bytes, more than the stated model's tensors can take "
+            f"({max_bytes}); the file does not belong to this config.json"
+        )
     if expected_sha is not None and _sha256(path) != expected_sha:
         raise CheckpointError(f"{path}: sha256 differs from config.json; the file is truncated or was changed")
     header = _header(path)
@@ -294,12 +309,18 @@ def load_weights(folder: Path, cfg: dict) -> dict[str, torch.Tensor]:
         extra = sorted(set(header) - set(expected))
         wrong = [k for k in expected if k in header and header[k][0] != expected[k][0]]
         if missing or extra or wrong:
-            what = (f"missing {missing[0]}" if missing else f"unexpected {extra[0]}" if extra else
-                    f"{wrong[0]}: shape {list(header[wrong[0]][0])}, the model needs {list(expected[wrong[0]][0])}")
+            what = (
+                f"missing {missing[0]}"
+                if missing
+                else f"unexpected {extra[0]}"
+                if extra
+                else f"{wrong[0]}: shape {list(header[wrong[0]][0])}, the model needs {list(expected[wrong[0]][0])}"
+            )
             raise CheckpointError(f"{path}: weights do not fit the stated model ({what})")
 
-    return _load_tensors(path, cfg["sha256"]["model.safetensors"], max_bytes=2 * _state_bytes(expected) + 2**20,
-                         check=check)
+    return _load_tensors(
+        path, cfg["sha256"]["model.safetensors"], max_bytes=2 * _state_bytes(expected) + 2**20, check=check
+    )
 
 
 def load_model(model_dir: Path | str) -> tuple[WorldModel, dict]:
@@ -318,7 +339,9 @@ def load_model(model_dir: Path | str) -> tuple[WorldModel, dict]:
         model.load_state_dict(state, strict=True)
     except RuntimeError as err:
         first = str(err).splitlines()[0][:120]
-        raise CheckpointError(f"{folder / 'model.safetensors'}: weights do not fit the stated model ({first})") from None
+        raise CheckpointError(
+            f"{folder / 'model.safetensors'}: weights do not fit the stated model ({first})"
+        ) from None
     model.eval()
     return model, cfg
 
@@ -333,22 +356,28 @@ def load_training_state(model_dir: Path | str) -> tuple[dict, dict[str, torch.Te
     cfg = read_config(folder)
     expected = _expected_state(cfg)
     with torch.device("meta"):
-        params = [tuple(p.shape) for p in WorldModel(ModelConfig(**cfg["model"]),
-                                                     EgoKinematics(**cfg["ego"])).parameters()]
+        params = [
+            tuple(p.shape) for p in WorldModel(ModelConfig(**cfg["model"]), EgoKinematics(**cfg["ego"])).parameters()
+        ]
     opt_path = folder / "optimizer.safetensors"
 
     def check(header: dict[str, tuple[tuple[int, ...], str]]) -> None:
         for name, (shape, _) in header.items():
             pid, _, _key = name.partition(".")
             if not pid.isdigit() or int(pid) >= len(params) or shape not in ((), params[int(pid)]):
-                raise CheckpointError(f"{opt_path}: {name}: shape {list(shape)} does not fit the stated model's "
-                                      "parameters")
+                raise CheckpointError(
+                    f"{opt_path}: {name}: shape {list(shape)} does not fit the stated model's parameters"
+                )
 
-    opt = _load_tensors(opt_path, cfg["sha256"]["optimizer.safetensors"],
-                        max_bytes=3 * _state_bytes(expected) + 2**20, check=check)
+    opt = _load_tensors(
+        opt_path, cfg["sha256"]["optimizer.safetensors"], max_bytes=3 * _state_bytes(expected) + 2**20, check=check
+    )
     ts_path = folder / "train_state.json"
-    if not ts_path.is_file() or ts_path.stat().st_size > MAX_JSON_BYTES or \
-            _sha256(ts_path) != cfg["sha256"]["train_state.json"]:
+    if (
+        not ts_path.is_file()
+        or ts_path.stat().st_size > MAX_JSON_BYTES
+        or _sha256(ts_path) != cfg["sha256"]["train_state.json"]
+    ):
         raise CheckpointError(f"{ts_path}: missing or changed since the checkpoint was written")
     state = _read_json(ts_path)
     try:

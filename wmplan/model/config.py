@@ -38,7 +38,9 @@ class ModelConfig:
             if isinstance(val, int) and not isinstance(val, bool) and val < (0 if f.name == "latent_dim" else 1):
                 raise ConfigError(f"ModelConfig.{f.name} must be >= 1, got {val}")
         if self.d_model % self.num_heads:
-            raise ConfigError(f"ModelConfig.d_model ({self.d_model}) must be a multiple of num_heads ({self.num_heads})")
+            raise ConfigError(
+                f"ModelConfig.d_model ({self.d_model}) must be a multiple of num_heads ({self.num_heads})"
+            )
         if not self.deterministic and self.latent_dim < 1:
             raise ConfigError("ModelConfig.latent_dim must be >= 1 for the latent model (or set deterministic)")
 

@@ -32,8 +32,16 @@ class EgoKinematics:
     def from_scenario(cls, scn, plan_dt_s: float) -> EgoKinematics:
         """The ego of a scenario, stepped ``plan_dt_s / dt_s`` simulator steps per plan step."""
         sub = int(round(plan_dt_s / scn.dt_s))
-        return cls(scn.ego.wheelbase_m, scn.ego.l_r_m, scn.limits.max_accel_mps2, scn.limits.max_brake_mps2,
-                   scn.limits.max_steer_rad, scn.limits.max_steer_rate_radps, scn.dt_s, sub)
+        return cls(
+            scn.ego.wheelbase_m,
+            scn.ego.l_r_m,
+            scn.limits.max_accel_mps2,
+            scn.limits.max_brake_mps2,
+            scn.limits.max_steer_rad,
+            scn.limits.max_steer_rate_radps,
+            scn.dt_s,
+            sub,
+        )
 
     def clip_actions(self, actions: torch.Tensor, steer0_rad: torch.Tensor) -> torch.Tensor:
         """Actions (..., H, 2) as the simulator would apply them: clipped to the limits and, for steering, to the
@@ -91,8 +99,13 @@ class EgoKinematics:
         psi = psi + dist / self.l_r_m * torch.sin(beta)
         return x, y, psi, v_new.clamp_min(0.0), steer, beta
 
-    def rollout(self, speed0_mps: torch.Tensor, steer0_rad: torch.Tensor, actions: torch.Tensor,
-                heading0_rad: torch.Tensor | None = None) -> torch.Tensor:
+    def rollout(
+        self,
+        speed0_mps: torch.Tensor,
+        steer0_rad: torch.Tensor,
+        actions: torch.Tensor,
+        heading0_rad: torch.Tensor | None = None,
+    ) -> torch.Tensor:
         """Ego rows over a plan; the ego starts at the origin with heading ``heading0_rad`` (0: the anchor frame).
 
         The same simulator steps as :meth:`substep` repeated ``substeps`` times per plan step, computed for all
@@ -141,5 +154,6 @@ class EgoKinematics:
         psi_end = psi[..., 1:][..., end]
         v_end = v_new[..., end].clamp_min(0.0)
         course_end = psi_end + beta[..., end]
-        return torch.stack([x[..., end], y[..., end], v_end * torch.cos(course_end), v_end * torch.sin(course_end),
-                            psi_end], dim=-1)
+        return torch.stack(
+            [x[..., end], y[..., end], v_end * torch.cos(course_end), v_end * torch.sin(course_end), psi_end], dim=-1
+        )

@@ -125,16 +125,27 @@ def prepare(model) -> Prepared:
             heads = attn.num_heads
             q_scale = torch.ones(3 * d, dtype=w1.dtype)
             q_scale[:d] = 1.0 / math.sqrt(d // heads)
-            blocks.append(Block(
-                _ln(layer.norm1), _t(attn.in_proj_weight * q_scale[:, None]), attn.in_proj_bias.detach() * q_scale,
-                _t(attn.out_proj.weight), attn.out_proj.bias.detach(), _ln(layer.norm2),
-                _t(layer.linear1.weight), layer.linear1.bias.detach(), _t(layer.linear2.weight),
-                layer.linear2.bias.detach(), heads))
+            blocks.append(
+                Block(
+                    _ln(layer.norm1),
+                    _t(attn.in_proj_weight * q_scale[:, None]),
+                    attn.in_proj_bias.detach() * q_scale,
+                    _t(attn.out_proj.weight),
+                    attn.out_proj.bias.detach(),
+                    _ln(layer.norm2),
+                    _t(layer.linear1.weight),
+                    layer.linear1.bias.detach(),
+                    _t(layer.linear2.weight),
+                    layer.linear2.bias.detach(),
+                    heads,
+                )
+            )
         road = enc.road[0]
         plan1 = model.plan.net[0]
         hz = cfg.horizon
-        in_scale = torch.tensor((POS_SCALE_X_M, POS_SCALE_Y_M, VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS, *ACTION_SCALE),
-                                dtype=w1.dtype)
+        in_scale = torch.tensor(
+            (POS_SCALE_X_M, POS_SCALE_Y_M, VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS, *ACTION_SCALE), dtype=w1.dtype
+        )
         plan_w = plan1.weight / in_scale.repeat(hz)  # (D, 6 H)
         plan_obj = plan1.weight.unflatten(-1, (hz, 6))[..., :2].sum(-2) / in_scale[:2]  # (D, 2)
         zdim = model.zdim
@@ -142,8 +153,13 @@ def prepare(model) -> Prepared:
             pr1, pr2 = model.prior[0], model.prior[-1]
             half = torch.ones(2 * zdim, dtype=w1.dtype)
             half[zdim:] = 0.5
-            prior = (_t(pr1.weight[:, :d]), _t(pr1.weight[:, d:]), pr1.bias.detach(), _t(pr2.weight * half[:, None]),
-                     pr2.bias.detach() * half)
+            prior = (
+                _t(pr1.weight[:, :d]),
+                _t(pr1.weight[:, d:]),
+                pr1.bias.detach(),
+                _t(pr2.weight * half[:, None]),
+                pr2.bias.detach() * half,
+            )
         else:
             prior = (None,) * 5
         dec = model.decoder
@@ -152,17 +168,34 @@ def prepare(model) -> Prepared:
         mean_w = last.weight[: 2 * hz].unflatten(0, (hz, 2)).transpose(0, 1).reshape(2 * hz, -1) * RESIDUAL_SCALE_M
         middle = tuple((_t(m.weight), m.bias.detach()) for m in list(dec)[2:-1] if isinstance(m, torch.nn.Linear))
         return Prepared(
-            obj1_w=full.t().contiguous(), obj1_b=first.bias.detach().clone(), ego_w=w1[:, -1].clone(),
-            obj2_w=_t(enc.obj[2].weight), obj2_b=enc.obj[2].bias.detach(),
-            road_w=_t(road.weight / torch.tensor(ROAD_SCALE, dtype=w1.dtype)), road_b=road.bias.detach(),
-            blocks=tuple(blocks), norm=_ln(enc.norm),
-            plan1_w=_t(plan_w), plan1_b=plan1.bias.detach(), plan_obj_w=_t(plan_obj),
-            plan2_w=_t(model.plan.net[2].weight), plan2_b=model.plan.net[2].bias.detach(),
-            prior_h_w=prior[0], prior_p_w=prior[1], prior1_b=prior[2], prior2_w=prior[3], prior2_b=prior[4],
-            dec_h_w=_t(d0[:, :d]), dec_p_w=_t(d0[:, d:2 * d]), dec_z_w=_t(d0[:, 2 * d:]) if zdim else None,
-            dec1_b=dec[0].bias.detach(), dec_hidden=middle,
-            mean_w=_t(mean_w), mean_wxy=(_t(mean_w[:hz]), _t(mean_w[hz:])),
-            mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach())
+            obj1_w=full.t().contiguous(),
+            obj1_b=first.bias.detach().clone(),
+            ego_w=w1[:, -1].clone(),
+            obj2_w=_t(enc.obj[2].weight),
+            obj2_b=enc.obj[2].bias.detach(),
+            road_w=_t(road.weight / torch.tensor(ROAD_SCALE, dtype=w1.dtype)),
+            road_b=road.bias.detach(),
+            blocks=tuple(blocks),
+            norm=_ln(enc.norm),
+            plan1_w=_t(plan_w),
+            plan1_b=plan1.bias.detach(),
+            plan_obj_w=_t(plan_obj),
+            plan2_w=_t(model.plan.net[2].weight),
+            plan2_b=model.plan.net[2].bias.detach(),
+            prior_h_w=prior[0],
+            prior_p_w=prior[1],
+            prior1_b=prior[2],
+            prior2_w=prior[3],
+            prior2_b=prior[4],
+            dec_h_w=_t(d0[:, :d]),
+            dec_p_w=_t(d0[:, d : 2 * d]),
+            dec_z_w=_t(d0[:, 2 * d :]) if zdim else None,
+            dec1_b=dec[0].bias.detach(),
+            dec_hidden=middle,
+            mean_w=_t(mean_w),
+            mean_wxy=(_t(mean_w[:hz]), _t(mean_w[hz:])),
+            mean_b=(last.bias[: 2 * hz].view(hz, 2) * RESIDUAL_SCALE_M).detach(),
+        )
 
 
 def prepared(model) -> Prepared:
@@ -171,8 +204,7 @@ def prepared(model) -> Prepared:
     tensor registered (the tensors' identities are part of the key). Tensors made in inference mode keep no version
     counter: with such a model nothing is cached. :func:`forget_prepared` drops the cache explicitly."""
     tensors = (*model.parameters(), *model.buffers())
-    key = None if any(t.is_inference() for t in tensors) else tuple((id(t), t.data_ptr(), t._version)
-                                                                     for t in tensors)
+    key = None if any(t.is_inference() for t in tensors) else tuple((id(t), t.data_ptr(), t._version) for t in tensors)
     cache = model.__dict__.get("_prepared")
     if key is None or cache is None or cache[0] != key:
         cache = (key, tensors, prepare(model))  # holding the tensors keeps their ids from being reused
@@ -280,8 +312,9 @@ def residual_means(pw: Prepared, x: torch.Tensor) -> torch.Tensor:
     return _linear(x, pw.mean_w).unflatten(-1, (2, hz)).transpose(-1, -2)
 
 
-def write_positions(pw: Prepared, hp: torch.Tensor, z: torch.Tensor, pos: torch.Tensor, *,
-                    chunk_rows: int = CHUNK_ROWS) -> None:
+def write_positions(
+    pw: Prepared, hp: torch.Tensor, z: torch.Tensor, pos: torch.Tensor, *, chunk_rows: int = CHUNK_ROWS
+) -> None:
     """The decoder's residual means (without the last layer's bias) for hp (N, B, C, hidden) and z
     (N, B, C, K, Z), written into pos (2, N, B, C, K, H): the position planes of the rows (see
     ``WorldModel.assemble_rows``), each contiguous.
@@ -302,7 +335,7 @@ def write_positions(pw: Prepared, hp: torch.Tensor, z: torch.Tensor, pos: torch.
     planes = [pos[j].view(rows, k * hz) for j in range(2)]
     step = max(1, chunk_rows // k)
     for s in range(0, rows, step):
-        x = decoder_hidden(pw, hp_rows[s:s + step], z_rows[s:s + step])
+        x = decoder_hidden(pw, hp_rows[s : s + step], z_rows[s : s + step])
         x = x.view(-1, x.shape[-1])
         for j in range(2):
-            torch.mm(x, pw.mean_wxy[j], out=planes[j][s:s + step].view(-1, hz))
+            torch.mm(x, pw.mean_wxy[j], out=planes[j][s : s + step].view(-1, hz))

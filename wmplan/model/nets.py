@@ -49,8 +49,13 @@ def mlp(sizes: list[int], *, final_act: bool = False) -> nn.Sequential:
     return nn.Sequential(*layers)
 
 
-OBJECT_STEP_FEATURES = ((F_X, POS_SCALE_X_M), (F_Y, POS_SCALE_Y_M), (F_VX, VEL_SCALE_X_MPS), (F_VY, VEL_SCALE_Y_MPS),
-                        (F_VALID, 1.0))
+OBJECT_STEP_FEATURES = (
+    (F_X, POS_SCALE_X_M),
+    (F_Y, POS_SCALE_Y_M),
+    (F_VX, VEL_SCALE_X_MPS),
+    (F_VY, VEL_SCALE_Y_MPS),
+    (F_VALID, 1.0),
+)
 """The object encoder's inputs per history step: (feature column, scale it is divided by)."""
 OBJECT_STATIC_FEATURES = ((F_LENGTH, SIZE_SCALE_M), (F_WIDTH, 2.0))
 """Then the last step's size, (feature column, scale), and an is-ego flag."""
@@ -64,7 +69,7 @@ def object_features(history: torch.Tensor) -> torch.Tensor:
     last = history[:, -1]
     is_ego = torch.zeros(b, n, 1, dtype=history.dtype)
     is_ego[:, 0] = 1.0
-    static = [last[..., col:col + 1] / scale for col, scale in OBJECT_STATIC_FEATURES]
+    static = [last[..., col : col + 1] / scale for col, scale in OBJECT_STATIC_FEATURES]
     return torch.cat([steps, *static, is_ego], dim=-1)
 
 
@@ -75,8 +80,15 @@ class SceneEncoder(nn.Module):
         super().__init__()
         self.obj = mlp([5 * history + 3, d_model, d_model])
         self.road = mlp([6, d_model])
-        layer = nn.TransformerEncoderLayer(d_model, num_heads, dim_feedforward=2 * d_model, dropout=0.0,
-                                           activation="gelu", batch_first=True, norm_first=True)
+        layer = nn.TransformerEncoderLayer(
+            d_model,
+            num_heads,
+            dim_feedforward=2 * d_model,
+            dropout=0.0,
+            activation="gelu",
+            batch_first=True,
+            norm_first=True,
+        )
         # the module holds the layers' weights; forward() runs them with encoder_layer()
         self.blocks = nn.TransformerEncoder(layer, num_layers, enable_nested_tensor=False)
         self.norm = nn.LayerNorm(d_model)
@@ -101,7 +113,9 @@ def encoder_layer(layer: nn.TransformerEncoderLayer, x: torch.Tensor, attend: to
     b, n, d = x.shape
     heads = attn.num_heads
     y = layer.norm1(x)
-    q, k, v = F.linear(y, attn.in_proj_weight, attn.in_proj_bias).view(b, n, 3, heads, d // heads).permute(2, 0, 3, 1, 4)
+    q, k, v = (
+        F.linear(y, attn.in_proj_weight, attn.in_proj_bias).view(b, n, 3, heads, d // heads).permute(2, 0, 3, 1, 4)
+    )
     a = attention(q, k, v, attend).transpose(1, 2).reshape(b, n, d)
     x = x + attn.out_proj(a)
     return x + layer.linear2(F.gelu(layer.linear1(layer.norm2(x))))
@@ -127,8 +141,11 @@ class PlanEncoder(nn.Module):
         super().__init__()
         self.net = mlp([6 * horizon, d_model, d_model])
         self.register_buffer("action_scale", torch.tensor(ACTION_SCALE), persistent=False)
-        self.register_buffer("input_scale", torch.tensor((POS_SCALE_X_M, POS_SCALE_Y_M, VEL_SCALE_X_MPS,
-                                                          VEL_SCALE_Y_MPS, *ACTION_SCALE)), persistent=False)
+        self.register_buffer(
+            "input_scale",
+            torch.tensor((POS_SCALE_X_M, POS_SCALE_Y_M, VEL_SCALE_X_MPS, VEL_SCALE_Y_MPS, *ACTION_SCALE)),
+            persistent=False,
+        )
 
     def forward(self, obj_xy: torch.Tensor, ego_future: torch.Tensor, actions: torch.Tensor) -> torch.Tensor:
         """obj_xy (B, N, 2), ego_future (B, C, H, >=4), actions (B, C, H, 2) -> (B, C, N, D).
@@ -142,8 +159,10 @@ class PlanEncoder(nn.Module):
         first = self.net[0]
         per_plan = torch.cat([ego_future[..., :4], actions], dim=-1) / self.input_scale  # (B, C, H, 6)
         w_obj = first.weight.unflatten(-1, (per_plan.shape[-2], 6))[..., :2].sum(-2)  # (D, 2)
-        x = F.linear(per_plan.flatten(-2), first.weight, first.bias)[:, :, None] \
-            - F.linear(obj_xy / self.input_scale[:2], w_obj)[:, None]  # (B, C, N, D)
+        x = (
+            F.linear(per_plan.flatten(-2), first.weight, first.bias)[:, :, None]
+            - F.linear(obj_xy / self.input_scale[:2], w_obj)[:, None]
+        )  # (B, C, N, D)
         return run_layers(self.net[1:], x)
 
 

@@ -52,6 +52,7 @@ CACHE_LIMIT_BYTES = 2 * 1024**3
 @dataclass
 class TrainResult:
     """What :func:`train` returns: the trained model, one dict of metrics per epoch, the output folder and whether the time cap stopped it."""
+
     model: WorldModel
     history: list[dict]
     out_dir: Path
@@ -60,8 +61,9 @@ class TrainResult:
 
 def to_torch(batch) -> dict[str, torch.Tensor]:
     """A numpy :class:`WindowBatch` as a dict of tensors."""
-    return {k: torch.from_numpy(np.ascontiguousarray(getattr(batch, k))) for k in batch.__dataclass_fields__
-            if k != "slots"}
+    return {
+        k: torch.from_numpy(np.ascontiguousarray(getattr(batch, k))) for k in batch.__dataclass_fields__ if k != "slots"
+    }
 
 
 class WindowCache:
@@ -73,15 +75,19 @@ class WindowCache:
     """
 
     def __init__(self, windows: Windows, index: np.ndarray, chunk: int = 512):
-        parts = [to_torch(windows.batch(index[i:i + chunk])) for i in range(0, len(index), chunk)]
+        parts = [to_torch(windows.batch(index[i : i + chunk])) for i in range(0, len(index), chunk)]
         self.tensors = {k: torch.cat([p[k] for p in parts]) for k in parts[0]}
 
     @staticmethod
     def nbytes(spec: WindowSpec, count: int) -> int:
         """Memory the cache of ``count`` windows would take (float32: rows over history and future, road context,
         actions, speed and steering angle)."""
-        per_window = (spec.history + spec.horizon) * (spec.num_objects + 1) * NUM_VEHICLE_FEATURES \
-            + NUM_ROAD_FEATURES + spec.horizon * ACTION_DIM + 2
+        per_window = (
+            (spec.history + spec.horizon) * (spec.num_objects + 1) * NUM_VEHICLE_FEATURES
+            + NUM_ROAD_FEATURES
+            + spec.horizon * ACTION_DIM
+            + 2
+        )
         return 4 * per_window * count
 
     def batch(self, positions: np.ndarray) -> dict[str, torch.Tensor]:
@@ -115,14 +121,15 @@ def fit_residual_variance(model: WorldModel, windows: Windows, index: np.ndarray
     total = torch.zeros(model.cfg.horizon, 2)
     count = torch.zeros(model.cfg.horizon, 1)
     for i in range(0, len(index), batch_size):
-        r, m = model.residuals(to_torch(windows.batch(index[i:i + batch_size])))
+        r, m = model.residuals(to_torch(windows.batch(index[i : i + batch_size])))
         total += (r**2 * m[..., None]).sum((0, 1))
         count += m.sum((0, 1))[:, None]
     model.fitted_logvar.copy_(torch.log(total / count.clamp_min(1.0) + 1e-4))
 
 
-def calibrate_noise_scale(model: WorldModel, batch: dict, *, target: float = 0.90, samples: int = 64,
-                          seed: int = 0) -> float:
+def calibrate_noise_scale(
+    model: WorldModel, batch: dict, *, target: float = 0.90, samples: int = 64, seed: int = 0
+) -> float:
     """Set the decoder-noise scale so that central ``target`` intervals of the predictive cover ``target`` of the
     true future coordinates of ``batch`` (bisection on a log scale; coverage grows with the scale)."""
     true = batch["future"][..., :2]
@@ -165,9 +172,15 @@ def calibrate_noise_scale(model: WorldModel, batch: dict, *, target: float = 0.9
     return scale
 
 
-def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig = ModelConfig(),
-          train_cfg: TrainConfig = TrainConfig(), resume: bool = False,
-          progress: Callable[[int, dict], None] | None = None) -> TrainResult:
+def train(
+    data_dir: Path | str,
+    out_dir: Path | str,
+    *,
+    model_cfg: ModelConfig = ModelConfig(),
+    train_cfg: TrainConfig = TrainConfig(),
+    resume: bool = False,
+    progress: Callable[[int, dict], None] | None = None,
+) -> TrainResult:
     """Train a forward model on a dataset folder and write checkpoints to ``out_dir``.
 
     Args:
@@ -189,14 +202,20 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
         # checkpoints written before beta-NLL trained with the plain NLL: resume them so
         train_cfg = TrainConfig(**{"nll_beta": 0.0, **ckpt_cfg["train"]})
         stored = ckpt_cfg.get("dataset", {})
-        if stored.get("scenario_hash") != ds.manifest["scenario_hash"] or \
-                stored.get("array_sha256", ds.manifest["array_sha256"]) != ds.manifest["array_sha256"]:
-            raise CheckpointError(f"{out_dir}: was trained on another dataset (scenario or data differ); cannot resume on {data_dir}")
+        if (
+            stored.get("scenario_hash") != ds.manifest["scenario_hash"]
+            or stored.get("array_sha256", ds.manifest["array_sha256"]) != ds.manifest["array_sha256"]
+        ):
+            raise CheckpointError(
+                f"{out_dir}: was trained on another dataset (scenario or data differ); cannot resume on {data_dir}"
+            )
     elif (out_dir / "latest").exists():
         raise ConfigError(f"{out_dir}: already holds a model; pass --resume to continue it or choose another --out")
     torch.set_num_threads(train_cfg.threads)
     if abs(ds.decision_dt_s - model_cfg.plan_dt_s) > 1e-9:
-        raise ConfigError(f"model plan_dt_s {model_cfg.plan_dt_s} differs from the dataset's decision step {ds.decision_dt_s}")
+        raise ConfigError(
+            f"model plan_dt_s {model_cfg.plan_dt_s} differs from the dataset's decision step {ds.decision_dt_s}"
+        )
     spec = WindowSpec(model_cfg.history, model_cfg.horizon, model_cfg.num_objects)
     windows = Windows(ds, spec)
     tr_eps, va_eps = split_episodes(ds.traj.num_episodes, train_cfg.val_fraction, train_cfg.seed)
@@ -229,11 +248,18 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
         start_epoch, step, elapsed_before = state["epoch"] + 1, state["step"], state["elapsed_s"]
         history = state["history"]
 
-    meta = {"train": train_cfg.to_dict(), "dataset": {"path": str(Path(data_dir).resolve()),
-            "scenario_name": ds.scenario.name, "scenario_hash": ds.manifest["scenario_hash"],
+    meta = {
+        "train": train_cfg.to_dict(),
+        "dataset": {
+            "path": str(Path(data_dir).resolve()),
+            "scenario_name": ds.scenario.name,
+            "scenario_hash": ds.manifest["scenario_hash"],
             "array_sha256": ds.manifest["array_sha256"],
-            "num_episodes": ds.traj.num_episodes}, "num_parameters": model.num_parameters(),
-            "window": {"history": spec.history, "horizon": spec.horizon, "num_objects": spec.num_objects}}
+            "num_episodes": ds.traj.num_episodes,
+        },
+        "num_parameters": model.num_parameters(),
+        "window": {"history": spec.history, "horizon": spec.horizon, "num_objects": spec.num_objects},
+    }
     total_steps = train_cfg.max_epochs * train_cfg.steps_per_epoch
     t_start = time.perf_counter() - elapsed_before
     stopped_early = False
@@ -249,9 +275,14 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
                 g["lr"] = lr
             pos = data_rng.integers(0, len(tr_idx), train_cfg.batch_size)
             batch = cache.batch(pos) if cache is not None else to_torch(windows.batch(tr_idx[pos]))
-            loss, metrics = model.loss(batch, kl_weight=kl_weight, free_bits=train_cfg.free_bits,
-                                       nll_beta=train_cfg.nll_beta,
-                                       prior_weight=train_cfg.prior_weight, generator=gen_noise)
+            loss, metrics = model.loss(
+                batch,
+                kl_weight=kl_weight,
+                free_bits=train_cfg.free_bits,
+                nll_beta=train_cfg.nll_beta,
+                prior_weight=train_cfg.prior_weight,
+                generator=gen_noise,
+            )
             opt.zero_grad(set_to_none=True)
             loss.backward()
             torch.nn.utils.clip_grad_norm_(model.parameters(), train_cfg.grad_clip)
@@ -263,8 +294,10 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
                 progress(1, {k: v / max(1, step - epoch * train_cfg.steps_per_epoch) for k, v in sums.items()})
         secs = time.perf_counter() - t_epoch
         if not all(bool(torch.isfinite(p).all()) for p in model.parameters()):
-            raise ConfigError(f"{out_dir}: training diverged in epoch {epoch} (NaN or inf weights); nothing of this "
-                              "epoch was saved: the last complete checkpoint stays; try a smaller learning rate")
+            raise ConfigError(
+                f"{out_dir}: training diverged in epoch {epoch} (NaN or inf weights); nothing of this "
+                "epoch was saved: the last complete checkpoint stays; try a smaller learning rate"
+            )
         row = {"epoch": epoch, "step": step, "elapsed_s": round(time.perf_counter() - t_start, 2)}
         row.update({k: v / train_cfg.steps_per_epoch for k, v in sums.items()})
         row["sched/lr"] = lr
@@ -276,21 +309,35 @@ def train(data_dir: Path | str, out_dir: Path | str, *, model_cfg: ModelConfig =
         with torch.no_grad():
             _, vm = model.loss(val_batch, kl_weight=1.0, free_bits=0.0, generator=torch.Generator().manual_seed(1))
         row.update({k.replace("loss/", "val/"): v for k, v in vm.items()})
-        row["val/min_fde_k6_m"] = min_fde(model, val_batch, 6, torch.Generator().manual_seed(int(eval_ss.generate_state(1)[0])))
+        row["val/min_fde_k6_m"] = min_fde(
+            model, val_batch, 6, torch.Generator().manual_seed(int(eval_ss.generate_state(1)[0]))
+        )
         history.append(row)
         # --- checkpoint ---
         opt_tensors, opt_desc = optimizer_to_tensors(opt)
-        train_state = {"epoch": epoch, "step": step, "elapsed_s": time.perf_counter() - t_start,
-                       "data_rng": data_rng.bit_generator.state, "noise_gen": gen_noise.get_state().tolist(),
-                       "optimizer": opt_desc, "history": history}
+        train_state = {
+            "epoch": epoch,
+            "step": step,
+            "elapsed_s": time.perf_counter() - t_start,
+            "data_rng": data_rng.bit_generator.state,
+            "noise_gen": gen_noise.get_state().tolist(),
+            "optimizer": opt_desc,
+            "history": history,
+        }
         if model_cfg.deterministic:
             fit_residual_variance(model, windows, tr_idx[:: max(1, len(tr_idx) // 20000)], 1024)
         last_epoch = epoch + 1 >= train_cfg.max_epochs or time.perf_counter() - t_start > 60.0 * train_cfg.minutes
         if last_epoch and not model_cfg.deterministic:
             half = {k: v[: VAL_WINDOWS // 2] for k, v in val_batch.items()}
             row["calib/noise_scale"] = calibrate_noise_scale(model, half, seed=train_cfg.seed)
-        save_checkpoint(out_dir, model, epoch=epoch, meta={**meta, "metrics": row}, optimizer_state=opt_tensors,
-                        train_state=train_state)
+        save_checkpoint(
+            out_dir,
+            model,
+            epoch=epoch,
+            meta={**meta, "metrics": row},
+            optimizer_state=opt_tensors,
+            train_state=train_state,
+        )
         write_metrics_csv(out_dir / "metrics.csv", history)
         if time.perf_counter() - t_start > 60.0 * train_cfg.minutes and epoch + 1 < train_cfg.max_epochs:
             stopped_early = True

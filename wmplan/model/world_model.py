@@ -91,8 +91,8 @@ class WorldModel(nn.Module):
     def cv_positions(self, history: torch.Tensor) -> torch.Tensor:
         """Constant-velocity positions (B, N, H, 2) from the last history rows."""
         last = history[:, -1]
-        xy0 = last[..., F_X:F_Y + 1]  # (x, y) and (vx, vy) are adjacent columns (wmplan.sim.features)
-        v0 = last[..., F_VX:F_VY + 1]
+        xy0 = last[..., F_X : F_Y + 1]  # (x, y) and (vx, vy) are adjacent columns (wmplan.sim.features)
+        v0 = last[..., F_VX : F_VY + 1]
         return xy0[:, :, None, :] + v0[:, :, None, :] * self.times_s()[None, None, :, None]
 
     def ego_future(self, batch: dict, actions: torch.Tensor) -> torch.Tensor:
@@ -111,8 +111,9 @@ class WorldModel(nn.Module):
         if z is None:
             x = first(hp)
         else:
-            x = torch.nn.functional.linear(hp, first.weight[:, :d2], first.bias) + \
-                torch.nn.functional.linear(z, first.weight[:, d2:])
+            x = torch.nn.functional.linear(hp, first.weight[:, :d2], first.bias) + torch.nn.functional.linear(
+                z, first.weight[:, d2:]
+            )
         mean, logvar = gaussian_params(self.decoder[1:](x))
         hz = self.cfg.horizon
         mean = mean.reshape(*mean.shape[:-1], hz, 2) * RESIDUAL_SCALE_M
@@ -121,8 +122,16 @@ class WorldModel(nn.Module):
 
     # --- training ---------------------------------------------------------------------------------------------
 
-    def loss(self, batch: dict, *, kl_weight: float = 1.0, free_bits: float = 0.0, prior_weight: float = 0.0,
-             nll_beta: float = 0.0, generator: torch.Generator | None = None) -> tuple[torch.Tensor, dict]:
+    def loss(
+        self,
+        batch: dict,
+        *,
+        kl_weight: float = 1.0,
+        free_bits: float = 0.0,
+        prior_weight: float = 0.0,
+        nll_beta: float = 0.0,
+        generator: torch.Generator | None = None,
+    ) -> tuple[torch.Tensor, dict]:
         """Training loss of one batch of windows and its parts.
 
         The latent model's loss is the negative conditional ELBO (free bits on the KL) plus ``prior_weight`` times
@@ -170,14 +179,24 @@ class WorldModel(nn.Module):
             nll_p = (nll_p * m).sum() / n_obj
             loss = loss + prior_weight * nll_p
             metrics["loss/nll_prior"] = float(nll_p.detach())
-        metrics.update({"loss/nll": float(nll.detach()), "loss/kl": float(kl.detach()), "loss/total": float(loss.detach())})
+        metrics.update(
+            {"loss/nll": float(nll.detach()), "loss/kl": float(kl.detach()), "loss/total": float(loss.detach())}
+        )
         return loss, metrics
 
     # --- sampling ---------------------------------------------------------------------------------------------
 
     @torch.inference_mode()
-    def sample(self, batch: dict, actions: torch.Tensor, num_samples: int, *, generator: torch.Generator,
-               noise: bool = False, moments: bool = True) -> dict:
+    def sample(
+        self,
+        batch: dict,
+        actions: torch.Tensor,
+        num_samples: int,
+        *,
+        generator: torch.Generator,
+        noise: bool = False,
+        moments: bool = True,
+    ) -> dict:
         """Sample futures of every object under C plans.
 
         Args:
@@ -219,7 +238,7 @@ class WorldModel(nn.Module):
         cv = self.cv_positions(hist)  # (B, N, H, 2)
         if not (moments or noise):  # the rows alone: the decoder writes the residual means into the planes
             planes = self.empty_planes(b, c, k, n, dtype=hist.dtype)
-            pos = planes[F_X:F_Y + 1]  # (2, N, B, C, K, H)
+            pos = planes[F_X : F_Y + 1]  # (2, N, B, C, K, H)
             if z is None:
                 resid = inference.residual_means(pw, inference.decoder_hidden(pw, hp, None))  # (N, B, C, H, 2)
                 pos.copy_(resid.permute(4, 0, 1, 2, 3)[..., None, :].expand_as(pos))
@@ -257,8 +276,9 @@ class WorldModel(nn.Module):
         logvar.clamp_(LOGVAR_MIN, LOGVAR_MAX).add_(2.0 * math.log(RESIDUAL_SCALE_M) + 2.0 * torch.log(self.noise_scale))
         return mean, logvar
 
-    def assemble_rows(self, hist: torch.Tensor, xy: torch.Tensor | tuple[torch.Tensor, torch.Tensor],
-                      ego_f: torch.Tensor) -> torch.Tensor:
+    def assemble_rows(
+        self, hist: torch.Tensor, xy: torch.Tensor | tuple[torch.Tensor, torch.Tensor], ego_f: torch.Tensor
+    ) -> torch.Tensor:
         """Object rows (B, C, K, H, N, F) from predicted positions (B, C, K, N, H, 2) and the ego path (B, C, H, 5).
 
         ``xy`` is the positions, or a pair (base, residual) of tensors that broadcast to them and are summed here
@@ -278,7 +298,7 @@ class WorldModel(nn.Module):
         b, c, k, n = shape[:4]
         planes = self.empty_planes(b, c, k, n, dtype=base.dtype)
         order = (5, 3, 0, 1, 2, 4)  # (B, C, K, N, H, 2) -> (2, N, B, C, K, H)
-        pos = planes[F_X:F_Y + 1]
+        pos = planes[F_X : F_Y + 1]
         if resid is None:
             pos.copy_(base.expand(shape).permute(order))
         else:
@@ -297,16 +317,18 @@ class WorldModel(nn.Module):
         dtype = planes.dtype
         last = hist[:, -1]  # (B, N, F)
         valid = (last[..., F_VALID] > 0.5).to(dtype)  # (B, N)
-        pos = planes[F_X:F_Y + 1]
+        pos = planes[F_X : F_Y + 1]
         pos *= valid.t().reshape(1, n, b, 1, 1, 1)  # empty slots zeroed (their velocities and headings follow)
-        vel = planes[F_VX:F_VY + 1]
+        vel = planes[F_VX : F_VY + 1]
         torch.sub(pos[..., 1:], pos[..., :-1], out=vel[..., 1:])
-        prev = (last[..., F_X:F_Y + 1] * valid[..., None]).permute(2, 1, 0).reshape(2, n, b, 1, 1)
+        prev = (last[..., F_X : F_Y + 1] * valid[..., None]).permute(2, 1, 0).reshape(2, n, b, 1, 1)
         torch.sub(pos[..., 0], prev, out=vel[..., 0])
         vel /= dt
         torch.atan2(vel[1], vel[0].clamp_min(0.1), out=planes[F_HEADING])
         static = (last[..., F_LENGTH:] * valid[..., None]).permute(2, 1, 0)  # (3, N, B)
-        planes[F_LENGTH:].copy_(static.reshape(NUM_VEHICLE_FEATURES - F_LENGTH, n, b, 1, 1, 1).expand(-1, -1, -1, c, k, hz))
+        planes[F_LENGTH:].copy_(
+            static.reshape(NUM_VEHICLE_FEATURES - F_LENGTH, n, b, 1, 1, 1).expand(-1, -1, -1, c, k, hz)
+        )
         # the ego's own path, the same in every future
         ego = (ego_f * valid[:, :1].view(b, 1, 1, 1)).permute(3, 0, 1, 2)  # (5, B, C, H)
         planes[:F_LENGTH, 0].copy_(ego[:, :, :, None].expand(-1, -1, -1, k, -1))

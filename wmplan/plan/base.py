@@ -98,8 +98,11 @@ PROTOCOL_MEMBERS = ("decision_dt_s", "horizon_decisions", "reset", "decide")
 
 def missing_members(obj: object) -> list[str]:
     """The members of :class:`Planner` that ``obj`` lacks (empty: it satisfies the protocol's shape)."""
-    return [m for m in PROTOCOL_MEMBERS if not hasattr(obj, m)
-            or (m in ("reset", "decide") and not callable(getattr(obj, m)))]
+    return [
+        m
+        for m in PROTOCOL_MEMBERS
+        if not hasattr(obj, m) or (m in ("reset", "decide") and not callable(getattr(obj, m)))
+    ]
 
 
 class RulePlanner:

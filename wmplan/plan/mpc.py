@@ -145,8 +145,9 @@ class PlannerConfig:
         if self.num_candidates < NUM_FIXED:
             raise ConfigError(f"PlannerConfig.num_candidates must be >= {NUM_FIXED} (the fixed candidates)")
         if not 0.0 <= self.collision_margin_m <= self.safe_distance_m:
-            raise ConfigError(f"PlannerConfig.collision_margin_m must lie in [0, safe_distance_m], "
-                              f"got {self.collision_margin_m}")
+            raise ConfigError(
+                f"PlannerConfig.collision_margin_m must lie in [0, safe_distance_m], got {self.collision_margin_m}"
+            )
 
     def to_dict(self) -> dict:
         """The configuration as a JSON-ready dict."""
@@ -244,12 +245,19 @@ class SamplingPlanner:
         p = self.params
         x, y = ctx.ego_pose[:, 0], ctx.ego_pose[:, 1]
         lane = p.lane_of(y)
-        ok = np.stack([p.lane_exists(lane + d, x) & p.lane_exists(lane + d, x + 40.0) | (d == 0) for d in LANE_CHOICES],
-                      axis=1)
+        ok = np.stack(
+            [p.lane_exists(lane + d, x) & p.lane_exists(lane + d, x + 40.0) | (d == 0) for d in LANE_CHOICES], axis=1
+        )
         return torch.from_numpy(lane), torch.from_numpy(ok), torch.from_numpy(y)
 
-    def candidates(self, ctx: DecisionContext, mean: torch.Tensor, std: torch.Tensor, lane_p: torch.Tensor,
-                   generator: torch.Generator) -> tuple[torch.Tensor, torch.Tensor]:
+    def candidates(
+        self,
+        ctx: DecisionContext,
+        mean: torch.Tensor,
+        std: torch.Tensor,
+        lane_p: torch.Tensor,
+        generator: torch.Generator,
+    ) -> tuple[torch.Tensor, torch.Tensor]:
         """(B, C, H, 2) candidate plans and (B, C) their target-lane choice index into LANE_CHOICES, around the
         sampler state ``mean``, ``std`` (B, H) and ``lane_p`` (B, 3)."""
         cfg, p = self.cfg, self.params
@@ -260,8 +268,9 @@ class SamplingPlanner:
         if isinstance(generator, torch.Generator):
             choice = torch.multinomial(probs, c, replacement=True, generator=generator)  # (B, C)
         else:  # one generator per scene: a scene's candidates do not depend on the rest of the batch
-            choice = torch.stack([torch.multinomial(probs[i], c, replacement=True, generator=g)
-                                  for i, g in enumerate(generator)])
+            choice = torch.stack(
+                [torch.multinomial(probs[i], c, replacement=True, generator=g) for i, g in enumerate(generator)]
+            )
         noise = randn_rows((b, c, h), generator) @ self._filter.T  # smooth, unit marginal std
         accel = mean[:, None] + std[:, None] * noise
         # fixed candidates: the warm start on its best lane, keep speed, brake firmly, brake as hard as the limits
@@ -283,8 +292,9 @@ class SamplingPlanner:
         steer = self.track_lane(ctx, accel, y_target.float(), steer_noise)
         return torch.stack([accel, steer], dim=-1), choice
 
-    def track_lane(self, ctx: DecisionContext, accel: torch.Tensor, y_target_m: torch.Tensor,
-                   steer_noise: torch.Tensor) -> torch.Tensor:
+    def track_lane(
+        self, ctx: DecisionContext, accel: torch.Tensor, y_target_m: torch.Tensor, steer_noise: torch.Tensor
+    ) -> torch.Tensor:
         """Steering (B, C, H) that brings the ego to ``y_target_m`` (lateral offset from now, road frame) along
         its kinematic path under ``accel`` (B, C, H); a proportional law on lateral and heading error (the same
         law as the rule-based ego, common practice)."""
@@ -301,7 +311,9 @@ class SamplingPlanner:
         for k in range(h):
             err = y_target_m - y
             vv = v.clamp_min(1.0)
-            head_des = torch.atan(LATERAL_GAIN * err * 10.0 / vv.clamp_min(5.0)).clamp(-MAX_HEADING_RAD, MAX_HEADING_RAD)
+            head_des = torch.atan(LATERAL_GAIN * err * 10.0 / vv.clamp_min(5.0)).clamp(
+                -MAX_HEADING_RAD, MAX_HEADING_RAD
+            )
             cmd = torch.atan(e.wheelbase_m * HEADING_GAIN_PER_S * (head_des - psi) / vv) + steer_noise[..., k]
             cmd = cmd.clamp(-e.max_steer_rad, e.max_steer_rad)
             a = accel[..., k]
@@ -327,8 +339,12 @@ class SamplingPlanner:
         ego = rows[:, :, 0, :, 0, :]  # (B, C, H, F): the ego's path is the same in every future
         pose = torch.from_numpy(ctx.ego_pose.astype(np.float64))
         ch, sh = torch.cos(pose[:, 2]), torch.sin(pose[:, 2])
-        ex = pose[:, None, None, 0] + ch[:, None, None] * ego[..., 0].double() - sh[:, None, None] * ego[..., 1].double()
-        ey = pose[:, None, None, 1] + sh[:, None, None] * ego[..., 0].double() + ch[:, None, None] * ego[..., 1].double()
+        ex = (
+            pose[:, None, None, 0] + ch[:, None, None] * ego[..., 0].double() - sh[:, None, None] * ego[..., 1].double()
+        )
+        ey = (
+            pose[:, None, None, 1] + sh[:, None, None] * ego[..., 0].double() + ch[:, None, None] * ego[..., 1].double()
+        )
         heading = pose[:, None, None, 2] + ego[..., 4].double()
         speed = torch.hypot(ego[..., 2], ego[..., 3]).double()
         v_lim = p.speed_limit_mps
@@ -340,7 +356,9 @@ class SamplingPlanner:
         prev_a = torch.cat([accel[..., :1], accel[..., :-1]], dim=-1)
         jerk = (accel - prev_a) / dt
         steer = plans[..., 1].double()
-        steer_prev = torch.cat([ctx.ego_steer_rad.double()[:, None, None].expand(-1, steer.shape[1], 1), steer[..., :-1]], -1)
+        steer_prev = torch.cat(
+            [ctx.ego_steer_rad.double()[:, None, None].expand(-1, steer.shape[1], 1), steer[..., :-1]], -1
+        )
         steer_rate = (steer - steer_prev) / dt
         comfort = w.accel * (accel**2).mean(-1) + w.jerk * (jerk**2).mean(-1) + w.steer_rate * (steer_rate**2).mean(-1)
         lane_now = torch.from_numpy(p.lane_of(ctx.ego_pose[:, 1]))
@@ -354,22 +372,35 @@ class SamplingPlanner:
         li = lane_idx.clamp(0, p.num_lanes - 1)
         ends = torch.from_numpy(p.lane_ends_on_road)[li]
         d_end = torch.where(ends, end[li] - ex, torch.full_like(ex, math.inf))
-        merge_cost = torch.where(d_end < p.merge_zone_m, 1.0 - d_end.clamp(0, p.merge_zone_m) / p.merge_zone_m,
-                                 torch.zeros_like(ex)).sum(-1)
+        merge_cost = torch.where(
+            d_end < p.merge_zone_m, 1.0 - d_end.clamp(0, p.merge_zone_m) / p.merge_zone_m, torch.zeros_like(ex)
+        ).sum(-1)
         off = self._offroad(ex, ey, heading, start, end)
         offroad_cost = off.double().sum(-1)
         # risk from the K futures
-        risk = summarise_risk(rows, cvar_alpha=cfg.cvar_alpha, safe_distance_m=self.shortfall_threshold_m(),
-                              margin_m=cfg.collision_margin_m)
+        risk = summarise_risk(
+            rows,
+            cvar_alpha=cfg.cvar_alpha,
+            safe_distance_m=self.shortfall_threshold_m(),
+            margin_m=cfg.collision_margin_m,
+        )
         p_coll = risk.p_near.double()  # contact within the margin: what the cost and the constraint see
         ttc_short = (cfg.ttc_threshold_s - risk.min_ttc_s.double().clamp(max=cfg.ttc_threshold_s)) ** 2
         gap = risk.leader_gap_m  # (B, C, K, H)
         ego_v = torch.hypot(rows[..., 0, 2], rows[..., 0, 3]).clamp_min(1.0)
         thw = gap.double() / ego_v.double()
         headway_short = ((cfg.headway_s - thw.clamp(max=cfg.headway_s)) ** 2).mean((-1, -2))
-        total = (-w.progress * progress + w.speed * speed_cost + comfort + w.lane * lane_cost + w.merge * merge_cost
-                 + w.offroad * offroad_cost + w.cvar * risk.cvar_shortfall_m.double() + w.ttc * ttc_short
-                 + w.headway * headway_short)
+        total = (
+            -w.progress * progress
+            + w.speed * speed_cost
+            + comfort
+            + w.lane * lane_cost
+            + w.merge * merge_cost
+            + w.offroad * offroad_cost
+            + w.cvar * risk.cvar_shortfall_m.double()
+            + w.ttc * ttc_short
+            + w.headway * headway_short
+        )
         if cfg.risk_mode == "penalty":
             behind = risk.p_near_from_behind.double()
             total = total + w.collision * (p_coll - (1.0 - w.from_behind) * behind)
@@ -398,8 +429,9 @@ class SamplingPlanner:
     # --- one decision -----------------------------------------------------------------------------------------
 
     @torch.inference_mode()
-    def plan(self, ctx: DecisionContext, *, generator: torch.Generator, rows: np.ndarray | None = None,
-             keep: bool = False) -> PlanResult:
+    def plan(
+        self, ctx: DecisionContext, *, generator: torch.Generator, rows: np.ndarray | None = None, keep: bool = False
+    ) -> PlanResult:
         """Choose the action of every scene of ``ctx``.
 
         Args:
@@ -451,13 +483,18 @@ class SamplingPlanner:
         res = PlanResult(
             action=action.double().numpy(),
             p_collision=risk.p_collision[bi, best].double().numpy(),
-            p_collision_ci=torch.stack([risk.p_collision_low[bi, best], risk.p_collision_high[bi, best]], -1).double().numpy(),
+            p_collision_ci=torch.stack([risk.p_collision_low[bi, best], risk.p_collision_high[bi, best]], -1)
+            .double()
+            .numpy(),
             min_ttc_s=risk.min_ttc_s[bi, best].double().numpy(),
             cost=total[bi, best].double().numpy(),
             chosen=best.numpy(),
         )
         if keep:
             res.plans, res.costs, res.futures = plans, total, futures
-            res.risk = {"p_collision": risk.p_collision, "cvar_shortfall_m": risk.cvar_shortfall_m,
-                        "min_ttc_s": risk.min_ttc_s}
+            res.risk = {
+                "p_collision": risk.p_collision,
+                "cvar_shortfall_m": risk.cvar_shortfall_m,
+                "min_ttc_s": risk.min_ttc_s,
+            }
         return res

@@ -60,12 +60,22 @@ class DecisionContext:
 
     def model_batch(self) -> dict:
         """The inputs a forward model's ``sample`` takes."""
-        return {"history": self.history, "road": self.road, "ego_speed_mps": self.ego_speed_mps,
-                "ego_steer_rad": self.ego_steer_rad}
+        return {
+            "history": self.history,
+            "road": self.road,
+            "ego_speed_mps": self.ego_speed_mps,
+            "ego_steer_rad": self.ego_steer_rad,
+        }
 
 
-def make_context(params: SimParams, state: TrafficState, rows_hist: np.ndarray, ids_hist: np.ndarray,
-                 num_objects: int, scenes: np.ndarray | None = None) -> DecisionContext:
+def make_context(
+    params: SimParams,
+    state: TrafficState,
+    rows_hist: np.ndarray,
+    ids_hist: np.ndarray,
+    num_objects: int,
+    scenes: np.ndarray | None = None,
+) -> DecisionContext:
     """Build the decision context from a history buffer of world rows (B, W, V, F) and identities (B, W, V)."""
     scenes = np.arange(state.num_scenes) if scenes is None else np.asarray(scenes)
     w = rows_hist.shape[1]
@@ -89,8 +99,9 @@ class Predictor:
 
     name = "base"
 
-    def predict(self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *,
-                generator: torch.Generator) -> torch.Tensor:
+    def predict(
+        self, ctx: DecisionContext, actions: torch.Tensor, num_futures: int, *, generator: torch.Generator
+    ) -> torch.Tensor:
         """Rows (B, C, K, H, N, F) of K futures under each of the C plans ``actions`` (B, C, H, 2)."""
         raise NotImplementedError
 
@@ -128,12 +139,22 @@ class OraclePredictor(Predictor):
         """Rows (B, C, K, H, N, F) of K futures under each of the C plans ``actions`` (B, C, H, 2)."""
         gens = [generator] * len(ctx.scenes) if isinstance(generator, torch.Generator) else generator
         seed = np.array([int(torch.randint(0, 2**31 - 1, (1,), generator=g)) for g in gens])
-        fut = oracle_futures_batch(ctx.state, self.params, ctx.scenes, actions.double().numpy(), num_futures,
-                                   mode=self.mode, plan_dt_s=self.plan_dt_s, seed=seed)
+        fut = oracle_futures_batch(
+            ctx.state,
+            self.params,
+            ctx.scenes,
+            actions.double().numpy(),
+            num_futures,
+            mode=self.mode,
+            plan_dt_s=self.plan_dt_s,
+            seed=seed,
+        )
         b, c, k, h = fut.vehicles.shape[:4]
         slots = np.broadcast_to(ctx.slots[:, None, None, None, :], (b, c, k, h, ctx.slots.shape[1]))
         picked = gather_slots(fut.vehicles, slots)  # (B, C, K, H, N, F)
-        anchor_ids = np.take_along_axis(ctx.state.vehicle_id[ctx.scenes], np.where(ctx.slots >= 0, ctx.slots, 0), axis=1)
+        anchor_ids = np.take_along_axis(
+            ctx.state.vehicle_id[ctx.scenes], np.where(ctx.slots >= 0, ctx.slots, 0), axis=1
+        )
         ids = np.take_along_axis(fut.vehicle_id, np.where(slots >= 0, slots, 0), axis=-1)
         picked[..., F_VALID] *= (ids == anchor_ids[:, None, None, None, :]) & (slots >= 0)
         pose = ctx.ego_pose
@@ -143,8 +164,9 @@ class OraclePredictor(Predictor):
         return torch.from_numpy(framed.astype(np.float32))
 
 
-def builtin_predictor(kind: str, params: SimParams, *, horizon: int, plan_dt_s: float, model_dir=None,
-                      deterministic_dir=None) -> Predictor:
+def builtin_predictor(
+    kind: str, params: SimParams, *, horizon: int, plan_dt_s: float, model_dir=None, deterministic_dir=None
+) -> Predictor:
     """A built-in predictor by name (one of PREDICTOR_NAMES) for a scenario.
 
     ``model_dir`` is required for 'latent' (and sets the constant-velocity predictor's layout when given);
@@ -166,7 +188,9 @@ def builtin_predictor(kind: str, params: SimParams, *, horizon: int, plan_dt_s: 
         return ModelPredictor(load_model(model_dir)[0], "latent")
     if kind == "deterministic":
         if not deterministic_dir:
-            raise ConfigError("planner mpc+deterministic needs --deterministic DIR (from `wmplan train --deterministic`)")
+            raise ConfigError(
+                "planner mpc+deterministic needs --deterministic DIR (from `wmplan train --deterministic`)"
+            )
         return ModelPredictor(load_model(deterministic_dir)[0], "deterministic")
     if kind != "constant-velocity":
         raise ConfigError(f"unknown predictor {kind!r}; choose from {', '.join(PREDICTOR_NAMES)}")

@@ -353,8 +353,16 @@ def _clearances(r: _Relative, exact_below_m: float | None = None) -> Tensor:
     the exact computation for the many far-away pairs."""
     if r.ahead_m.shape[0] == 0:
         return torch.full((1, *r.ahead_m.shape[1:]), torch.inf, dtype=r.ahead_m.dtype)
-    args = (r.ahead_m, r.lateral_m, r.cos_rel, r.sin_rel, r.ego_half_length_m, r.ego_half_width_m,
-            r.half_length_m, r.half_width_m)
+    args = (
+        r.ahead_m,
+        r.lateral_m,
+        r.cos_rel,
+        r.sin_rel,
+        r.ego_half_length_m,
+        r.ego_half_width_m,
+        r.half_length_m,
+        r.half_width_m,
+    )
     if exact_below_m is None:
         dist = _signed_distance(*args)  # (V-1, B*, H)
     else:
@@ -520,9 +528,7 @@ def summarise_risk(
     """
     rows = _futures(futures)
     if rows.ndim < 4:
-        raise ConfigError(
-            f"futures has shape {tuple(rows.shape)}; expected (B*, K, H, V, F) with a futures axis"
-        )
+        raise ConfigError(f"futures has shape {tuple(rows.shape)}; expected (B*, K, H, V, F) with a futures axis")
     if not lateral_margin_m >= 0:
         raise ConfigError(f"lateral_margin_m must be >= 0, got {lateral_margin_m!r}")
     if not 0 <= margin_m <= safe_distance_m + 1.0:

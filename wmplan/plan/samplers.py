@@ -46,9 +46,7 @@ def _tensor(name: str, value: object) -> Tensor:
     try:
         out = torch.as_tensor(value, dtype=DTYPE)
     except (TypeError, ValueError, RuntimeError) as exc:
-        raise ConfigError(
-            f"{name}: cannot convert {type(value).__name__} to a float tensor ({exc})"
-        ) from None
+        raise ConfigError(f"{name}: cannot convert {type(value).__name__} to a float tensor ({exc})") from None
     return out
 
 
@@ -102,9 +100,7 @@ def ar1_filter_matrix(horizon: int, smoothing: float) -> Tensor:
     _check_unit_interval("smoothing", float(smoothing), closed_right=False)
     t = torch.arange(horizon, dtype=torch.float64)
     lag = t[:, None] - t[None, :]  # (H, H)
-    power = torch.where(
-        lag >= 0, torch.tensor(float(smoothing), dtype=torch.float64) ** lag.clamp(min=0), 0.0
-    )
+    power = torch.where(lag >= 0, torch.tensor(float(smoothing), dtype=torch.float64) ** lag.clamp(min=0), 0.0)
     scale = torch.full((horizon,), (1.0 - float(smoothing) ** 2) ** 0.5, dtype=torch.float64)
     scale[0] = 1.0  # the first step starts from the stationary distribution
     return (power * scale[None, :]).to(DTYPE)
@@ -272,5 +268,3 @@ def mppi_update(mean: Tensor, samples: Tensor, costs: Tensor, lam: float) -> Ten
     weights = mppi_weights(_costs("costs", costs, samples), lam)  # (B*, C)
     eps = samples - mean.unsqueeze(-3)  # (B*, C, H, A)
     return mean + torch.einsum("...c,...cha->...ha", weights, eps)
-
-

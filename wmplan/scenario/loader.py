@@ -32,8 +32,9 @@ def parse_scenario(data: object, source: str = "<scenario>") -> Scenario:
     try:
         return Scenario.model_validate(data)
     except ValidationError as err:
-        raise ScenarioError(format_validation_error(source, err, unknown_key=UNKNOWN_KEY_RULE,
-                                                    model_hints=_HINTS)) from None
+        raise ScenarioError(
+            format_validation_error(source, err, unknown_key=UNKNOWN_KEY_RULE, model_hints=_HINTS)
+        ) from None
 
 
 def load_scenario(name_or_path: str | Path) -> Scenario:

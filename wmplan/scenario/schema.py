@@ -96,8 +96,10 @@ def _within(name: str, dist: Dist, low: float, high: float, unit: str, *, low_op
     lo, hi = (dist.mean, dist.mean) if dist.std == 0 else (dist.lo, dist.hi)
     if not ((low < lo) if low_open else (low <= lo)) or not hi <= high:
         interval = f"{'(' if low_open else '['}{low:g}, {high:g}] {unit}"
-        raise ValueError(f"{name} must lie in {interval}: give a mean in it and, with std > 0, low and high in it; "
-                         f"got mean={dist.mean:g}, std={dist.std:g}, low={dist.low}, high={dist.high}")
+        raise ValueError(
+            f"{name} must lie in {interval}: give a mean in it and, with std > 0, low and high in it; "
+            f"got mean={dist.mean:g}, std={dist.std:g}, low={dist.low}, high={dist.high}"
+        )
     return dist
 
 

@@ -38,8 +38,9 @@ def idm_accel_fast(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, 
     return max_accel_mps2 * (1.0 - r * r - inter * inter)  # (v/v0)^delta with delta = 4
 
 
-def idm_accel(speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_gap_m, max_accel_mps2,
-              comfort_decel_mps2):
+def idm_accel(
+    speed_mps, desired_speed_mps, gap_m, dv_mps, time_headway_s, min_gap_m, max_accel_mps2, comfort_decel_mps2
+):
     """IDM acceleration (m/s^2), elementwise. ``gap_m = inf`` means a free road.
 
     Args:
@@ -61,8 +62,15 @@ def idm_equilibrium_gap(speed_mps, desired_speed_mps, time_headway_s, min_gap_m)
     return (min_gap_m + speed_mps * time_headway_s) / np.sqrt(1.0 - (speed_mps / desired_speed_mps) ** IDM_DELTA)
 
 
-def mobil_incentive(acc_self_now, acc_self_after, acc_new_follower_now, acc_new_follower_after,
-                    acc_old_follower_now, acc_old_follower_after, politeness):
+def mobil_incentive(
+    acc_self_now,
+    acc_self_after,
+    acc_new_follower_now,
+    acc_new_follower_after,
+    acc_old_follower_now,
+    acc_old_follower_after,
+    politeness,
+):
     """MOBIL incentive (symmetric rule): own gain plus politeness times the followers' gains."""
     return (acc_self_after - acc_self_now) + politeness * (
         (acc_new_follower_after - acc_new_follower_now) + (acc_old_follower_after - acc_old_follower_now)

@@ -21,7 +21,9 @@ def distance_and_speed(speed_mps, accel_mps2, dt_s):
     if not np.any(stops):  # nobody comes to a stop within dt: the constant-acceleration distance everywhere
         return speed_mps * dt_s + 0.5 * accel_mps2 * dt_s**2, np.maximum(new_speed, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        stop_dist = np.where(accel_mps2 < 0.0, -speed_mps**2 / (2.0 * np.where(accel_mps2 < 0, accel_mps2, -1.0)), 0.0)
+        stop_dist = np.where(
+            accel_mps2 < 0.0, -(speed_mps**2) / (2.0 * np.where(accel_mps2 < 0, accel_mps2, -1.0)), 0.0
+        )
     dist = np.where(stops, stop_dist, speed_mps * dt_s + 0.5 * accel_mps2 * dt_s**2)
     return dist, np.maximum(new_speed, 0.0)
 

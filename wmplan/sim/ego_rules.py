@@ -37,8 +37,16 @@ MAX_HEADING_RAD = 0.12
 
 def _ego_idm(params: SimParams, v, gap, v_lead):
     t = EGO_RULE_TRAITS
-    return idm_accel(v, params.speed_limit_mps, gap, v - v_lead, t["time_headway_s"], t["min_gap_m"],
-                     t["max_accel_mps2"], t["comfort_decel_mps2"])
+    return idm_accel(
+        v,
+        params.speed_limit_mps,
+        gap,
+        v - v_lead,
+        t["time_headway_s"],
+        t["min_gap_m"],
+        t["max_accel_mps2"],
+        t["comfort_decel_mps2"],
+    )
 
 
 def _leaders_followers(state: TrafficState, params: SimParams):
@@ -59,8 +67,15 @@ def ego_lane_end_gap(state: TrafficState, params: SimParams) -> np.ndarray:
     Every lane the body still touches counts, not only the lane of its centre: half-way through a merge the rear
     corner may still be over the ending lane."""
     s_n = state.num_scenes
-    body = lane_occupancy(params, state.y_m[:, :1], state.width_m[:, :1], np.ones((s_n, 1), dtype=bool), None,
-                          state.heading_rad[:, :1], state.length_m[:, :1])[:, 0]  # (S, L)
+    body = lane_occupancy(
+        params,
+        state.y_m[:, :1],
+        state.width_m[:, :1],
+        np.ones((s_n, 1), dtype=bool),
+        None,
+        state.heading_rad[:, :1],
+        state.length_m[:, :1],
+    )[:, 0]  # (S, L)
     body[np.arange(s_n), params.lane_of(state.y_m[:, EGO])] = True
     lanes = np.broadcast_to(np.arange(params.num_lanes), body.shape)
     d_lanes = params.distance_to_lane_end(lanes, state.x_m[:, :1])  # (S, L)
@@ -91,8 +106,9 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         tr = state.traits[rows, f]
         vf = vx[rows, f]
         gl, vl = lead(li)
-        now = idm_accel(vf, tr[:, T_V0], gl + g + state.length_m[:, EGO], vf - vl, tr[:, T_T], tr[:, T_S0],
-                        tr[:, T_A], tr[:, T_B])
+        now = idm_accel(
+            vf, tr[:, T_V0], gl + g + state.length_m[:, EGO], vf - vl, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B]
+        )
         after = idm_accel(vf, tr[:, T_V0], g, vf - v, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B])
         return np.where(has, now, 0.0), np.where(has, after, 0.0), has, g
 
@@ -115,8 +131,12 @@ def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
         n_now, n_after, has_n, g_n = follower_acc(tl)
         # MOBIL's safety criterion for the new follower, and the same bound on the ego's own braking toward the
         # new leader (a merge into a short gap behind a slower car is not taken; the ego falls in behind instead)
-        safe = ((mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n) & (g_t > 2.0) & (g_n > 2.0)
-                & mobil_safe(a_after, SAFE_DECEL_MPS2))
+        safe = (
+            (mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n)
+            & (g_t > 2.0)
+            & (g_n > 2.0)
+            & mobil_safe(a_after, SAFE_DECEL_MPS2)
+        )
         inc = mobil_incentive(a_now, a_after, n_now, n_after, 0.0, 0.0, POLITENESS)
         forced = must_merge & (merge_to == tl)
         inc = np.where(forced, np.inf, inc)

@@ -67,9 +67,15 @@ def _lateral_half_extent(width_m: np.ndarray, length_m: np.ndarray, heading_rad:
     return hw
 
 
-def lane_occupancy_lm(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
-                      lane: np.ndarray | None = None, heading_rad: np.ndarray | None = None,
-                      length_m: np.ndarray | None = None) -> np.ndarray:
+def lane_occupancy_lm(
+    params: SimParams,
+    y_m: np.ndarray,
+    width_m: np.ndarray,
+    valid: np.ndarray,
+    lane: np.ndarray | None = None,
+    heading_rad: np.ndarray | None = None,
+    length_m: np.ndarray | None = None,
+) -> np.ndarray:
     """Lane-major (L, S, V) form of :func:`lane_occupancy` (contiguous per lane; what the engine uses)."""
     hw = 0.5 * width_m if heading_rad is None else _lateral_half_extent(width_m, length_m, heading_rad)
     top, bottom = y_m + hw, y_m - hw
@@ -85,9 +91,15 @@ def lane_occupancy_lm(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, v
     return occ
 
 
-def lane_occupancy(params: SimParams, y_m: np.ndarray, width_m: np.ndarray, valid: np.ndarray,
-                   lane: np.ndarray | None = None, heading_rad: np.ndarray | None = None,
-                   length_m: np.ndarray | None = None) -> np.ndarray:
+def lane_occupancy(
+    params: SimParams,
+    y_m: np.ndarray,
+    width_m: np.ndarray,
+    valid: np.ndarray,
+    lane: np.ndarray | None = None,
+    heading_rad: np.ndarray | None = None,
+    length_m: np.ndarray | None = None,
+) -> np.ndarray:
     """(S, V, L) True where a vehicle's body reaches into lane l, or (given ``lane``) l is the lane it is in or
     moving to: a driver who has begun a lane change is visible in the target lane at once, as an indicator is."""
     return np.moveaxis(lane_occupancy_lm(params, y_m, width_m, valid, lane, heading_rad, length_m), 0, -1)
@@ -120,8 +132,9 @@ def _check_action(action, num_scenes: int) -> np.ndarray:
     return np.ascontiguousarray(action)
 
 
-def step(state: TrafficState, action: np.ndarray, params: SimParams,
-         threads: int | None = None) -> tuple[TrafficState, StepInfo]:
+def step(
+    state: TrafficState, action: np.ndarray, params: SimParams, threads: int | None = None
+) -> tuple[TrafficState, StepInfo]:
     """Advance every scene by one step.
 
     Args:
@@ -156,8 +169,9 @@ def _zeros(num_scenes: int) -> np.ndarray:
     return z
 
 
-def step_groups(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray,
-                threads: int | None = None) -> tuple[TrafficState, StepInfo]:
+def step_groups(
+    state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray, threads: int | None = None
+) -> tuple[TrafficState, StepInfo]:
     """:func:`step` with per-scene parameters: scene s uses row ``group[s]`` of ``table`` (a
     :class:`~wmplan.sim.kernel.ParamTable` of several parameter sets, e.g. the variants of a stress task).
 
@@ -168,8 +182,9 @@ def step_groups(state: TrafficState, action: np.ndarray, table: ParamTable, grou
     group = np.ascontiguousarray(group, dtype=np.int64)
     g_n = table.scalars.shape[0]
     if group.shape != (state.num_scenes,) or (group.size and (group.min() < 0 or group.max() >= g_n)):
-        raise ValueError(f"group must have shape ({state.num_scenes},) with values in [0, {g_n}), got shape "
-                         f"{group.shape}")
+        raise ValueError(
+            f"group must have shape ({state.num_scenes},) with values in [0, {g_n}), got shape {group.shape}"
+        )
     return _run(state, action, table, group, threads)
 
 
@@ -185,8 +200,9 @@ def _same(a: np.ndarray, _dtype) -> np.ndarray:
     return a
 
 
-def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray,
-         threads: int | None) -> tuple[TrafficState, StepInfo]:
+def _run(
+    state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray, threads: int | None
+) -> tuple[TrafficState, StepInfo]:
     f8, i8, b1 = np.float64, np.int64, np.bool_
     s_n, v_n = state.x_m.shape
     c = _same if state.__dict__.get("_kernel_made", False) else _c  # the kernel's own output needs no checks
@@ -199,7 +215,9 @@ def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.n
     collided, offroad, reached = c(state.collided, b1), c(state.offroad, b1), c(state.reached_goal, b1)
     # a vehicle may enter only on steps that are multiples of SPAWN_PERIOD_STEPS: otherwise the new state shares
     # the arrays that only an entry changes (states are never written in place)
-    may_enter = bool(np.any((stp + 1) % SPAWN_PERIOD_STEPS == 0)) if s_n > 1 else (int(stp[0]) + 1) % SPAWN_PERIOD_STEPS == 0
+    may_enter = (
+        bool(np.any((stp + 1) % SPAWN_PERIOD_STEPS == 0)) if s_n > 1 else (int(stp[0]) + 1) % SPAWN_PERIOD_STEPS == 0
+    )
     if may_enter:
         o_len, o_wid, o_vid, o_traits = length.copy(), width.copy(), vid.copy(), traits.copy()
     else:
@@ -207,24 +225,100 @@ def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.n
     e2 = lambda dtype: np.empty((s_n, v_n), dtype=dtype)  # noqa: E731
     e1 = lambda dtype: np.empty(s_n, dtype=dtype)  # noqa: E731
     out = dict(
-        key=key, step=stp + 1, next_id=e1(i8), x_m=e2(f8), y_m=e2(f8), vx_mps=e2(f8), vy_mps=e2(f8),
-        heading_rad=e2(f8), length_m=o_len, width_m=o_wid, valid=e2(b1), vehicle_id=o_vid, lane=e2(i8),
-        traits=o_traits, yield_state=e2(np.int8), brake_timer_s=e2(f8), brake_decel_mps2=e2(f8), cooldown_s=e2(f8),
-        ego_speed_mps=e1(f8), ego_steer_rad=e1(f8), collided=e1(b1), offroad=e1(b1), reached_goal=e1(b1),
+        key=key,
+        step=stp + 1,
+        next_id=e1(i8),
+        x_m=e2(f8),
+        y_m=e2(f8),
+        vx_mps=e2(f8),
+        vy_mps=e2(f8),
+        heading_rad=e2(f8),
+        length_m=o_len,
+        width_m=o_wid,
+        valid=e2(b1),
+        vehicle_id=o_vid,
+        lane=e2(i8),
+        traits=o_traits,
+        yield_state=e2(np.int8),
+        brake_timer_s=e2(f8),
+        brake_decel_mps2=e2(f8),
+        cooldown_s=e2(f8),
+        ego_speed_mps=e1(f8),
+        ego_steer_rad=e1(f8),
+        collided=e1(b1),
+        offroad=e1(b1),
+        reached_goal=e1(b1),
     )
-    info = dict(collision=e1(b1), offroad=e1(b1), goal=e1(b1), accel_mps2=e2(f8), steer_rad=out["ego_steer_rad"],
-                log_weight=e1(f8))
+    info = dict(
+        collision=e1(b1),
+        offroad=e1(b1),
+        goal=e1(b1),
+        accel_mps2=e2(f8),
+        steer_rad=out["ego_steer_rad"],
+        log_weight=e1(f8),
+    )
 
     def run(a: int, b: int) -> None:
         kernel.step_range(
-            a, b, group, table.scalars, table.lanes, table.traits, key, stp, next_id, x, y, vx, heading, length,
-            width, valid, vid, lane, traits, ys, timer, decel, cd, ego_speed, ego_steer, collided, offroad, reached,
-            action, out["next_id"], out["x_m"], out["y_m"], out["vx_mps"], out["vy_mps"], out["heading_rad"], o_len,
-            o_wid, out["valid"], o_vid, out["lane"], o_traits, out["yield_state"], out["brake_timer_s"],
-            out["brake_decel_mps2"], out["cooldown_s"], out["ego_speed_mps"], out["ego_steer_rad"], out["collided"],
-            out["offroad"], out["reached_goal"], info["collision"], info["offroad"], info["goal"],
-            info["accel_mps2"], info["log_weight"], np.empty((7, v_n), dtype=i8), np.empty((2, v_n)),
-            np.empty((2, v_n), dtype=b1))
+            a,
+            b,
+            group,
+            table.scalars,
+            table.lanes,
+            table.traits,
+            key,
+            stp,
+            next_id,
+            x,
+            y,
+            vx,
+            heading,
+            length,
+            width,
+            valid,
+            vid,
+            lane,
+            traits,
+            ys,
+            timer,
+            decel,
+            cd,
+            ego_speed,
+            ego_steer,
+            collided,
+            offroad,
+            reached,
+            action,
+            out["next_id"],
+            out["x_m"],
+            out["y_m"],
+            out["vx_mps"],
+            out["vy_mps"],
+            out["heading_rad"],
+            o_len,
+            o_wid,
+            out["valid"],
+            o_vid,
+            out["lane"],
+            o_traits,
+            out["yield_state"],
+            out["brake_timer_s"],
+            out["brake_decel_mps2"],
+            out["cooldown_s"],
+            out["ego_speed_mps"],
+            out["ego_steer_rad"],
+            out["collided"],
+            out["offroad"],
+            out["reached_goal"],
+            info["collision"],
+            info["offroad"],
+            info["goal"],
+            info["accel_mps2"],
+            info["log_weight"],
+            np.empty((7, v_n), dtype=i8),
+            np.empty((2, v_n)),
+            np.empty((2, v_n), dtype=b1),
+        )
 
     map_chunks(run, s_n, threads)
     out["_kernel_made"] = True
@@ -242,8 +336,9 @@ def ego_collisions(arrays: dict) -> np.ndarray:
     ``y_m``, ``length_m``, ``width_m``, ``heading_rad``, ``valid`` of a state). The step's own check, compiled: a
     separating-axis test on the pairs that are close enough along the road to overlap."""
     f8 = np.float64
-    x, y, ln, wd, hd = (np.ascontiguousarray(arrays[k], dtype=f8)
-                        for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
+    x, y, ln, wd, hd = (
+        np.ascontiguousarray(arrays[k], dtype=f8) for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad")
+    )
     hit = np.empty(x.shape[0], dtype=bool)
     _ego_collisions(x, y, ln, wd, hd, np.ascontiguousarray(arrays["valid"], dtype=np.bool_), hit)
     return hit
@@ -252,8 +347,15 @@ def ego_collisions(arrays: dict) -> np.ndarray:
 CONTACT_SIDES = ("front", "rear", "left", "right")
 
 
-def _in_ego_frame(state: TrafficState, scenes: np.ndarray, ce: np.ndarray, se: np.ndarray, ox: np.ndarray,
-                  oy: np.ndarray, oh: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _in_ego_frame(
+    state: TrafficState,
+    scenes: np.ndarray,
+    ce: np.ndarray,
+    se: np.ndarray,
+    ox: np.ndarray,
+    oy: np.ndarray,
+    oh: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Centres (n, V) of the given scenes' vehicles in a frame at (ox, oy) turned by oh (n, 1), and headings."""
     dx, dy = state.x_m[scenes] - ox, state.y_m[scenes] - oy
     return ce * dx + se * dy, -se * dx + ce * dy, state.heading_rad[scenes] - oh
@@ -306,8 +408,18 @@ def contact_sides(state: TrafficState, scenes: np.ndarray, before: TrafficState 
 def traffic_collisions(state: TrafficState) -> np.ndarray:
     """(S,) number of overlapping pairs among traffic vehicles (the ego excluded); for invariant checks."""
     x, y, ln, wd, hd = state.x_m, state.y_m, state.length_m, state.width_m, state.heading_rad
-    hit = boxes_overlap(x[:, :, None], y[:, :, None], ln[:, :, None], wd[:, :, None], hd[:, :, None],
-                        x[:, None, :], y[:, None, :], ln[:, None, :], wd[:, None, :], hd[:, None, :])
+    hit = boxes_overlap(
+        x[:, :, None],
+        y[:, :, None],
+        ln[:, :, None],
+        wd[:, :, None],
+        hd[:, :, None],
+        x[:, None, :],
+        y[:, None, :],
+        ln[:, None, :],
+        wd[:, None, :],
+        hd[:, None, :],
+    )
     traffic = state.valid.copy()
     traffic[:, EGO] = False
     pair = traffic[:, :, None] & traffic[:, None, :]

@@ -101,14 +101,21 @@ class RewardConfig:
             raise ConfigError(f"RewardConfig.comfort_accel_mps2 must be > 0 m/s^2, got {self.comfort_accel_mps2!r}")
 
 
-def step_reward(params: SimParams, cfg: RewardConfig, before: TrafficState, after: TrafficState,
-                info: StepInfo) -> np.ndarray:
+def step_reward(
+    params: SimParams, cfg: RewardConfig, before: TrafficState, after: TrafficState, info: StepInfo
+) -> np.ndarray:
     """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it."""
     v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
     dx = after.x_m[:, EGO] - before.x_m[:, EGO]
     progress = cfg.progress_weight * np.minimum(dx, v_lim * dt) / (v_lim * dur)
-    comfort = (cfg.accel_weight * (info.accel_mps2[:, EGO] / cfg.comfort_accel_mps2) ** 2
-               + cfg.steer_weight * (info.steer_rad / params.max_steer_rad) ** 2) * dt / dur
+    comfort = (
+        (
+            cfg.accel_weight * (info.accel_mps2[:, EGO] / cfg.comfort_accel_mps2) ** 2
+            + cfg.steer_weight * (info.steer_rad / params.max_steer_rad) ** 2
+        )
+        * dt
+        / dur
+    )
     crashed = (after.collided | after.offroad) & ~(before.collided | before.offroad)
     arrived = after.reached_goal & ~before.reached_goal
     return progress - comfort - cfg.crash_penalty * crashed + cfg.goal_bonus * arrived
@@ -123,7 +130,9 @@ def _dist_cap(spec: tuple[float, float, float, float]) -> float:
     return float(min(hi, mean + _MAX_ABS_NORMAL * std))
 
 
-def observation_bounds(params: SimParams, num_objects: int = DEFAULT_NUM_OBJECTS) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+def observation_bounds(
+    params: SimParams, num_objects: int = DEFAULT_NUM_OBJECTS
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """Finite (low, high) of every observation entry, derived from the scenario (see :class:`LaneEnv`).
 
     * Positions: every valid vehicle lies within ``max(window_behind_m, window_ahead_m, |placed offsets|) + 10 m``
@@ -139,8 +148,10 @@ def observation_bounds(params: SimParams, num_objects: int = DEFAULT_NUM_OBJECTS
         ``{"objects": (low, high) each (1 + M, 8), "road": (low, high) each (6,)}``, float32.
     """
     scn = params.scenario
-    reach_x = max(params.window_behind_m, params.window_ahead_m,
-                  *(abs(pv.offset_m) for pv in scn.traffic.placed)) + _REMOVAL_MARGIN_M
+    reach_x = (
+        max(params.window_behind_m, params.window_ahead_m, *(abs(pv.offset_m) for pv in scn.traffic.placed))
+        + _REMOVAL_MARGIN_M
+    )
     v_ego = scn.ego.speed_mps + params.max_accel_mps2 * params.num_steps * params.dt_s
     excursion = v_ego * params.dt_s + 1.0
     reach = float(np.hypot(reach_x, params.road_width_m + excursion)) + 1.0
@@ -179,8 +190,11 @@ def action_space(params: SimParams, normalized_actions: bool = False) -> spaces.
     """Box of one scene's action (accel_mps2, steer_rad), float32; [-1, 1]^2 if ``normalized_actions``."""
     if normalized_actions:
         return spaces.Box(low=-1.0, high=1.0, shape=(2,), dtype=np.float32)
-    return spaces.Box(low=np.array([-params.max_brake_mps2, -params.max_steer_rad], dtype=np.float32),
-                      high=np.array([params.max_accel_mps2, params.max_steer_rad], dtype=np.float32), dtype=np.float32)
+    return spaces.Box(
+        low=np.array([-params.max_brake_mps2, -params.max_steer_rad], dtype=np.float32),
+        high=np.array([params.max_accel_mps2, params.max_steer_rad], dtype=np.float32),
+        dtype=np.float32,
+    )
 
 
 def to_physical(actions: np.ndarray, params: SimParams) -> np.ndarray:
@@ -229,11 +243,20 @@ def _check_actions(actions: Any, shape: tuple[int, ...], where: str) -> np.ndarr
 
 
 def _frame_title(params: SimParams, state: TrafficState, idx: int) -> str:
-    events = [w for flag, w in ((state.collided, "collision"), (state.offroad, "off the road"),
-                                (state.reached_goal, "goal reached")) if flag[idx]]
+    events = [
+        w
+        for flag, w in (
+            (state.collided, "collision"),
+            (state.offroad, "off the road"),
+            (state.reached_goal, "goal reached"),
+        )
+        if flag[idx]
+    ]
     tail = ("   — " + ", ".join(events)) if events else ""
-    return (f"{params.scenario.name}   t = {state.step[idx] * params.dt_s:4.1f} s   "
-            f"ego {state.ego_speed_mps[idx]:4.1f} m/s{tail}")
+    return (
+        f"{params.scenario.name}   t = {state.step[idx] * params.dt_s:4.1f} s   "
+        f"ego {state.ego_speed_mps[idx]:4.1f} m/s{tail}"
+    )
 
 
 def _make_renderer(params: SimParams):
@@ -345,9 +368,15 @@ class LaneEnv(gym.Env):
 
     metadata: dict[str, Any] = {"render_modes": ["rgb_array"], "render_fps": 10}
 
-    def __init__(self, scenario: str | Path | Scenario, *, num_objects: int = DEFAULT_NUM_OBJECTS,
-                 render_mode: str | None = None, reward: RewardConfig | None = None,
-                 normalized_actions: bool = False):
+    def __init__(
+        self,
+        scenario: str | Path | Scenario,
+        *,
+        num_objects: int = DEFAULT_NUM_OBJECTS,
+        render_mode: str | None = None,
+        reward: RewardConfig | None = None,
+        normalized_actions: bool = False,
+    ):
         self.scenario = _resolve_scenario(scenario)
         self.params = SimParams.from_scenario(self.scenario)
         self.num_objects = _check_num_objects(num_objects)
@@ -367,8 +396,9 @@ class LaneEnv(gym.Env):
         """The current one-scene :class:`TrafficState` (None before the first reset); immutable."""
         return self._state
 
-    def reset(self, *, seed: int | None = None,
-              options: dict[str, Any] | None = None) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    def reset(
+        self, *, seed: int | None = None, options: dict[str, Any] | None = None
+    ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         super().reset(seed=seed)
         opts = dict(options or {})
         unknown = sorted(set(opts) - {"scene_seed"})
@@ -392,9 +422,15 @@ class LaneEnv(gym.Env):
     def _info(self, accel_mps2: float, steer_rad: float) -> dict[str, Any]:
         st = self._state
         return {
-            "collision": bool(st.collided[0]), "offroad": bool(st.offroad[0]), "goal": bool(st.reached_goal[0]),
-            "scene_seed": self._scene_seed, "step": int(st.step[0]), "time_s": float(st.step[0] * self.params.dt_s),
-            "ego_speed_mps": float(st.ego_speed_mps[0]), "accel_mps2": float(accel_mps2), "steer_rad": float(steer_rad),
+            "collision": bool(st.collided[0]),
+            "offroad": bool(st.offroad[0]),
+            "goal": bool(st.reached_goal[0]),
+            "scene_seed": self._scene_seed,
+            "step": int(st.step[0]),
+            "time_s": float(st.step[0] * self.params.dt_s),
+            "ego_speed_mps": float(st.ego_speed_mps[0]),
+            "accel_mps2": float(accel_mps2),
+            "steer_rad": float(steer_rad),
         }
 
     def step(self, action: Any) -> tuple[dict[str, np.ndarray], float, bool, bool, dict[str, Any]]:
@@ -422,8 +458,11 @@ class LaneEnv(gym.Env):
             raise ResetNeeded("LaneEnv.render: call reset() before rendering")
         if self._renderer is None:
             self._renderer = _make_renderer(self.params)
-        return self._renderer.render(self._state.vehicles()[0], title=_frame_title(self.params, self._state, 0),
-                                     collided=bool(self._state.collided[0]))
+        return self._renderer.render(
+            self._state.vehicles()[0],
+            title=_frame_title(self.params, self._state, 0),
+            collided=bool(self._state.collided[0]),
+        )
 
     def close(self) -> None:
         if self._renderer is not None:
@@ -460,12 +499,22 @@ class LaneVectorEnv(VectorEnv):
             image per scene.
     """
 
-    metadata: dict[str, Any] = {"render_modes": ["rgb_array"], "render_fps": 10,
-                                "autoreset_mode": AutoresetMode.NEXT_STEP}
+    metadata: dict[str, Any] = {
+        "render_modes": ["rgb_array"],
+        "render_fps": 10,
+        "autoreset_mode": AutoresetMode.NEXT_STEP,
+    }
 
-    def __init__(self, scenario: str | Path | Scenario, num_envs: int = 1, *,
-                 num_objects: int = DEFAULT_NUM_OBJECTS, render_mode: str | None = None,
-                 reward: RewardConfig | None = None, normalized_actions: bool = False):
+    def __init__(
+        self,
+        scenario: str | Path | Scenario,
+        num_envs: int = 1,
+        *,
+        num_objects: int = DEFAULT_NUM_OBJECTS,
+        render_mode: str | None = None,
+        reward: RewardConfig | None = None,
+        normalized_actions: bool = False,
+    ):
         if isinstance(num_envs, bool) or not isinstance(num_envs, (int, np.integer)) or num_envs < 1:
             raise ConfigError(f"num_envs must be an integer >= 1, got {num_envs!r}")
         self.scenario = _resolve_scenario(scenario)
@@ -493,8 +542,9 @@ class LaneVectorEnv(VectorEnv):
     def _draw_seeds(self, n: int) -> np.ndarray:
         return self.np_random.integers(0, SCENE_SEED_HIGH, size=n).astype(np.int64)
 
-    def reset(self, *, seed: int | None = None,
-              options: dict[str, Any] | None = None) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    def reset(
+        self, *, seed: int | None = None, options: dict[str, Any] | None = None
+    ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
         super().reset(seed=seed)
         opts = dict(options or {})
         unknown = sorted(set(opts) - {"scene_seeds"})
@@ -503,8 +553,10 @@ class LaneVectorEnv(VectorEnv):
         if "scene_seeds" in opts:
             seeds = np.asarray(opts["scene_seeds"])
             if seeds.shape != (self.num_envs,) or not np.issubdtype(seeds.dtype, np.integer) or (seeds < 0).any():
-                raise ConfigError(f"LaneVectorEnv.reset: options['scene_seeds'] must be {self.num_envs} integers >= 0, "
-                                  f"got {opts['scene_seeds']!r}")
+                raise ConfigError(
+                    f"LaneVectorEnv.reset: options['scene_seeds'] must be {self.num_envs} integers >= 0, "
+                    f"got {opts['scene_seeds']!r}"
+                )
             seeds = seeds.astype(np.int64)
         else:
             seeds = self._draw_seeds(self.num_envs)
@@ -517,9 +569,13 @@ class LaneVectorEnv(VectorEnv):
     def _info(self, accel_mps2: np.ndarray, steer_rad: np.ndarray) -> dict[str, Any]:
         st = self._state
         values = {
-            "collision": st.collided.copy(), "offroad": st.offroad.copy(), "goal": st.reached_goal.copy(),
-            "scene_seed": self._scene_seeds.copy(), "step": st.step.astype(np.int64),
-            "time_s": st.step * self.params.dt_s, "ego_speed_mps": st.ego_speed_mps.copy(),
+            "collision": st.collided.copy(),
+            "offroad": st.offroad.copy(),
+            "goal": st.reached_goal.copy(),
+            "scene_seed": self._scene_seeds.copy(),
+            "step": st.step.astype(np.int64),
+            "time_s": st.step * self.params.dt_s,
+            "ego_speed_mps": st.ego_speed_mps.copy(),
             "accel_mps2": np.asarray(accel_mps2, dtype=np.float64).copy(),
             "steer_rad": np.asarray(steer_rad, dtype=np.float64).copy(),
         }
@@ -565,8 +621,12 @@ class LaneVectorEnv(VectorEnv):
         if self._renderer is None:
             self._renderer = _make_renderer(self.params)
         rows = self._state.vehicles()
-        return tuple(self._renderer.render(rows[i], title=_frame_title(self.params, self._state, i),
-                                           collided=bool(self._state.collided[i])) for i in range(self.num_envs))
+        return tuple(
+            self._renderer.render(
+                rows[i], title=_frame_title(self.params, self._state, i), collided=bool(self._state.collided[i])
+            )
+            for i in range(self.num_envs)
+        )
 
     def close_extras(self, **kwargs: Any) -> None:
         if self._renderer is not None:
@@ -609,9 +669,13 @@ def register_envs() -> list[str]:
     for name in builtin_names():
         eid = env_id(name)
         if eid not in gym.registry:
-            gym.register(id=eid, entry_point="wmplan.sim.env:LaneEnv",
-                         vector_entry_point="wmplan.sim.env:LaneVectorEnv", kwargs={"scenario": name, "normalized_actions": True},
-                         nondeterministic=False)
+            gym.register(
+                id=eid,
+                entry_point="wmplan.sim.env:LaneEnv",
+                vector_entry_point="wmplan.sim.env:LaneVectorEnv",
+                kwargs={"scenario": name, "normalized_actions": True},
+                nondeterministic=False,
+            )
         ids.append(eid)
     return ids
 

@@ -80,11 +80,48 @@ EGO = 0
 
 # --- parameter tables -------------------------------------------------------------------------------------------------
 # Scalars of one parameter set, by column of ParamTable.scalars:
-(P_DT, P_LANE_W, P_ROAD_LEN, P_SPEED_LIMIT, P_BEHIND, P_AHEAD, P_BRAKE_PROB, P_BD_MEAN, P_BD_STD, P_BD_LO, P_BD_HI,
- P_BT_MEAN, P_BT_STD, P_BT_LO, P_BT_HI, P_LEN_MEAN, P_LEN_STD, P_LEN_LO, P_LEN_HI, P_WID_MEAN, P_WID_STD, P_WID_LO,
- P_WID_HI, P_LC_SPEED, P_MERGE_ZONE, P_YIELD_WINDOW, P_INIT_FRAC, P_WHEELBASE, P_L_R, P_MAX_ACCEL, P_MAX_BRAKE,
- P_MAX_STEER, P_MAX_STEER_RATE, P_GOAL_X, P_NUM_LANES, P_ANY_END, P_MAX_DENSITY, P_TILT_BRAKE, P_TILT_YIELD,
- P_TILT_RADIUS) = range(40)
+(
+    P_DT,
+    P_LANE_W,
+    P_ROAD_LEN,
+    P_SPEED_LIMIT,
+    P_BEHIND,
+    P_AHEAD,
+    P_BRAKE_PROB,
+    P_BD_MEAN,
+    P_BD_STD,
+    P_BD_LO,
+    P_BD_HI,
+    P_BT_MEAN,
+    P_BT_STD,
+    P_BT_LO,
+    P_BT_HI,
+    P_LEN_MEAN,
+    P_LEN_STD,
+    P_LEN_LO,
+    P_LEN_HI,
+    P_WID_MEAN,
+    P_WID_STD,
+    P_WID_LO,
+    P_WID_HI,
+    P_LC_SPEED,
+    P_MERGE_ZONE,
+    P_YIELD_WINDOW,
+    P_INIT_FRAC,
+    P_WHEELBASE,
+    P_L_R,
+    P_MAX_ACCEL,
+    P_MAX_BRAKE,
+    P_MAX_STEER,
+    P_MAX_STEER_RATE,
+    P_GOAL_X,
+    P_NUM_LANES,
+    P_ANY_END,
+    P_MAX_DENSITY,
+    P_TILT_BRAKE,
+    P_TILT_YIELD,
+    P_TILT_RADIUS,
+) = range(40)
 NUM_SCALARS = 40
 # Per-lane rows of ParamTable.lanes:
 L_START, L_END, L_ENDS, L_MERGE_TO, L_DENSITY, L_GOAL = range(6)
@@ -114,15 +151,18 @@ class ParamTable:
     def _fill(self, g: int, p: SimParams) -> None:
         tilt = p.tilt if p.tilt is not None and p.tilt.active else None
         sc = self.scalars[g]
-        sc[P_DT], sc[P_LANE_W], sc[P_ROAD_LEN], sc[P_SPEED_LIMIT] = p.dt_s, p.lane_width_m, p.road_length_m, \
-            p.speed_limit_mps
+        sc[P_DT], sc[P_LANE_W], sc[P_ROAD_LEN], sc[P_SPEED_LIMIT] = (
+            p.dt_s,
+            p.lane_width_m,
+            p.road_length_m,
+            p.speed_limit_mps,
+        )
         sc[P_BEHIND], sc[P_AHEAD], sc[P_BRAKE_PROB] = p.window_behind_m, p.window_ahead_m, p.brake_prob_per_step
-        sc[P_BD_MEAN:P_BD_HI + 1] = p.brake_decel
-        sc[P_BT_MEAN:P_BT_HI + 1] = p.brake_duration
-        sc[P_LEN_MEAN:P_LEN_HI + 1] = p.length_dist
-        sc[P_WID_MEAN:P_WID_HI + 1] = p.width_dist
-        sc[P_LC_SPEED], sc[P_MERGE_ZONE], sc[P_YIELD_WINDOW] = p.lane_change_speed_mps, p.merge_zone_m, \
-            p.yield_window_m
+        sc[P_BD_MEAN : P_BD_HI + 1] = p.brake_decel
+        sc[P_BT_MEAN : P_BT_HI + 1] = p.brake_duration
+        sc[P_LEN_MEAN : P_LEN_HI + 1] = p.length_dist
+        sc[P_WID_MEAN : P_WID_HI + 1] = p.width_dist
+        sc[P_LC_SPEED], sc[P_MERGE_ZONE], sc[P_YIELD_WINDOW] = p.lane_change_speed_mps, p.merge_zone_m, p.yield_window_m
         sc[P_INIT_FRAC], sc[P_WHEELBASE], sc[P_L_R] = p.initial_speed_fraction, p.wheelbase_m, p.l_r_m
         sc[P_MAX_ACCEL], sc[P_MAX_BRAKE], sc[P_MAX_STEER] = p.max_accel_mps2, p.max_brake_mps2, p.max_steer_rad
         sc[P_MAX_STEER_RATE], sc[P_GOAL_X], sc[P_NUM_LANES] = p.max_steer_rate_radps, p.goal_x_m, p.num_lanes
@@ -133,8 +173,7 @@ class ParamTable:
         sc[P_TILT_RADIUS] = 0.0 if tilt is None else tilt.radius_m
         ln, n = self.lanes[g], p.num_lanes
         ln[L_START, :n], ln[L_END, :n], ln[L_ENDS, :n] = p.lane_start_m, p.lane_end_m, p.lane_ends_on_road
-        ln[L_MERGE_TO, :n], ln[L_DENSITY, :n], ln[L_GOAL, :n] = p.merge_target, p.density_veh_per_m, \
-            p.goal_lane_mask
+        ln[L_MERGE_TO, :n], ln[L_DENSITY, :n], ln[L_GOAL, :n] = p.merge_target, p.density_veh_per_m, p.goal_lane_mask
         tr = self.traits[g]
         tr[D_MEAN], tr[D_STD], tr[D_LO], tr[D_HI] = p.trait_mean, p.trait_std, p.trait_lo, p.trait_hi
 
@@ -216,8 +255,9 @@ def _c(traits, j):
 @jit
 def _follow(vx, traits, j, gap, v_lead):
     """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead``."""
-    return _idm(vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A],
-                _c(traits, j))
+    return _idm(
+        vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A], _c(traits, j)
+    )
 
 
 @jit
@@ -335,8 +375,9 @@ def _mergers(sc, ln, x, y, valid, lane, merger, merge_to):
 
 
 @jit
-def _leaders(x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit,
-             lead, lead_gap, v_lead):
+def _leaders(
+    x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit, lead, lead_gap, v_lead
+):
     """Leader of every traffic vehicle: the nearest vehicle ahead sharing one of its lanes. A driver who decided
     not to yield to a merging vehicle counts a merging vehicle only once its centre is in one of its lanes."""
     for i in range(x.shape[0]):
@@ -368,8 +409,12 @@ def _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lea
 def _bold(sc, ln, x, vx, length, lane, traits, i, gap, v_lead):
     """Acceleration of a driver who does not yield: IDM with a higher desired speed and a shorter headway."""
     c = _c(traits, i)
-    v0, t, s0, a_max = traits[i, T_V0] * NON_YIELD_SPEEDUP, traits[i, T_T] * NON_YIELD_HEADWAY_FACTOR, \
-        traits[i, T_S0], traits[i, T_A]
+    v0, t, s0, a_max = (
+        traits[i, T_V0] * NON_YIELD_SPEEDUP,
+        traits[i, T_T] * NON_YIELD_HEADWAY_FACTOR,
+        traits[i, T_S0],
+        traits[i, T_A],
+    )
     a = _idm(vx[i], v0, gap, vx[i] - v_lead, t, s0, a_max, c)
     if sc[P_ANY_END] != 0.0:
         a = min(a, _idm(vx[i], v0, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], vx[i], t, s0, a_max, c))
@@ -377,8 +422,30 @@ def _bold(sc, ln, x, vx, length, lane, traits, i, gap, v_lead):
 
 
 @jit
-def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_old, order, rank, n, any_merger,
-              merger, merge_to, lead_gap, v_lead, acc, ys):
+def _yielding(
+    sc,
+    ln,
+    key,
+    stp,
+    x,
+    vx,
+    length,
+    lane,
+    vid,
+    traits,
+    traffic,
+    ys_old,
+    order,
+    rank,
+    n,
+    any_merger,
+    merger,
+    merge_to,
+    lead_gap,
+    v_lead,
+    acc,
+    ys,
+):
     """Drivers with a merging vehicle just ahead whose target is their lane decide (once, at random) whether to
     let it in; sets ``ys`` (0 no partner, 1 yields, 2 does not) and adjusts ``acc``. Returns the log-likelihood
     ratio of the tilted decisions (0 without a tilt)."""
@@ -443,16 +510,19 @@ def _braking(sc, key, stp, x, vx, vid, traffic, timer_in, decel_in, acc, timer, 
                 near = abs(dx_ego) <= sc[P_TILT_RADIUS] and dx_ego > -5.0
                 starts = u < (q_brake if near else p_brake)
                 if near:
-                    log_w += (math.log(p_brake) - math.log(q_brake) if starts
-                              else math.log1p(-p_brake) - math.log1p(-q_brake))
+                    log_w += (
+                        math.log(p_brake) - math.log(q_brake) if starts else math.log1p(-p_brake) - math.log1p(-q_brake)
+                    )
             else:
                 starts = u < p_brake
             if starts:
                 size_key = combine4(key, stp, STREAM_BRAKE_SIZE, vid[i])
-                decel[i] = truncated_normal(sc[P_BD_MEAN], sc[P_BD_STD], sc[P_BD_LO], sc[P_BD_HI],
-                                            to_unit(combine2(size_key, 0)))
-                timer[i] = truncated_normal(sc[P_BT_MEAN], sc[P_BT_STD], sc[P_BT_LO], sc[P_BT_HI],
-                                            to_unit(combine2(size_key, 1)))
+                decel[i] = truncated_normal(
+                    sc[P_BD_MEAN], sc[P_BD_STD], sc[P_BD_LO], sc[P_BD_HI], to_unit(combine2(size_key, 0))
+                )
+                timer[i] = truncated_normal(
+                    sc[P_BT_MEAN], sc[P_BT_STD], sc[P_BT_LO], sc[P_BT_HI], to_unit(combine2(size_key, 1))
+                )
         if timer[i] > 0.0:
             acc[i] = min(acc[i], -decel[i])
         acc[i] = max(acc[i], -MAX_PHYSICAL_DECEL_MPS2)
@@ -494,8 +564,29 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
 
 
 @jit
-def _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, traffic, cd_in, order, rank, n, bits, lead,
-                  lead_gap, v_lead, acc, new_lane, cooldown):
+def _lane_changes(
+    sc,
+    ln,
+    stp,
+    x,
+    y,
+    vx,
+    length,
+    lane,
+    traits,
+    traffic,
+    cd_in,
+    order,
+    rank,
+    n,
+    bits,
+    lead,
+    lead_gap,
+    v_lead,
+    acc,
+    new_lane,
+    cooldown,
+):
     """MOBIL on decision steps: right (-1) at phase 0 of the decision period, left (+1) at half the period."""
     dt = sc[P_DT]
     phase = stp % LANE_DECISION_PERIOD_STEPS
@@ -565,8 +656,9 @@ def _leave(sc, valid, o_x, o_valid):
 
 @jit
 def _draw_trait(pt, key, new_id, t):
-    return truncated_normal(pt[D_MEAN, t], pt[D_STD, t], pt[D_LO, t], pt[D_HI, t],
-                            to_unit(combine5(key, STREAM_TRAITS, new_id, t, 0)))
+    return truncated_normal(
+        pt[D_MEAN, t], pt[D_STD, t], pt[D_LO, t], pt[D_HI, t], to_unit(combine5(key, STREAM_TRAITS, new_id, t, 0))
+    )
 
 
 @jit
@@ -590,8 +682,29 @@ def _spawn_lane(sc, ln, key, stp, lo_x, hi_x, o_valid, o_lane):
 
 
 @jit
-def _spawn(sc, ln, pt, key, stp, new_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane,
-           o_traits, o_ys, o_timer, o_decel, o_cd):
+def _spawn(
+    sc,
+    ln,
+    pt,
+    key,
+    stp,
+    new_id,
+    o_x,
+    o_y,
+    o_vx,
+    o_vy,
+    o_h,
+    o_len,
+    o_wid,
+    o_valid,
+    o_vid,
+    o_lane,
+    o_traits,
+    o_ys,
+    o_timer,
+    o_decel,
+    o_cd,
+):
     """On entry steps, at most one vehicle enters the lane most short of its density: at the back end of the
     simulated stretch if its driver is faster than the ego (by more than 1 m/s), else at the front, where the
     lane runs on for at least the merge zone and the gaps allow it. Returns 1 if a vehicle entered, else 0."""
@@ -609,11 +722,25 @@ def _spawn(sc, ln, pt, key, stp, new_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid
     lane = _spawn_lane(sc, ln, key, stp, lo_x, hi_x, o_valid, o_lane)
     if lane < 0:
         return 0
-    v0, s0, t = _draw_trait(pt, key, new_id, T_V0), _draw_trait(pt, key, new_id, T_S0), _draw_trait(pt, key, new_id, T_T)
-    length = truncated_normal(sc[P_LEN_MEAN], sc[P_LEN_STD], sc[P_LEN_LO], sc[P_LEN_HI],
-                              to_unit(combine4(key, STREAM_TRAITS, new_id, SIZE_SALTS[0])))
-    width = truncated_normal(sc[P_WID_MEAN], sc[P_WID_STD], sc[P_WID_LO], sc[P_WID_HI],
-                             to_unit(combine4(key, STREAM_TRAITS, new_id, SIZE_SALTS[1])))
+    v0, s0, t = (
+        _draw_trait(pt, key, new_id, T_V0),
+        _draw_trait(pt, key, new_id, T_S0),
+        _draw_trait(pt, key, new_id, T_T),
+    )
+    length = truncated_normal(
+        sc[P_LEN_MEAN],
+        sc[P_LEN_STD],
+        sc[P_LEN_LO],
+        sc[P_LEN_HI],
+        to_unit(combine4(key, STREAM_TRAITS, new_id, SIZE_SALTS[0])),
+    )
+    width = truncated_normal(
+        sc[P_WID_MEAN],
+        sc[P_WID_STD],
+        sc[P_WID_LO],
+        sc[P_WID_HI],
+        to_unit(combine4(key, STREAM_TRAITS, new_id, SIZE_SALTS[1])),
+    )
     xs = lo_x if v0 > o_vx[EGO] + 1.0 else hi_x
     if not (_exists(sc, ln, lane, xs) and _to_end(sc, ln, lane, xs) >= sc[P_MERGE_ZONE]):
         return 0  # nobody appears just before a lane end
@@ -675,8 +802,9 @@ def _ego_collides(o_x, o_y, o_len, o_wid, o_h, o_valid):
     for j in range(1, o_x.shape[0]):
         if not o_valid[j] or abs(o_x[j] - o_x[EGO]) > reach_e + 0.5 * (o_len[j] + o_wid[j]):
             continue
-        if boxes_overlap(o_x[EGO], o_y[EGO], o_len[EGO], o_wid[EGO], o_h[EGO], o_x[j], o_y[j], o_len[j], o_wid[j],
-                         o_h[j]):
+        if boxes_overlap(
+            o_x[EGO], o_y[EGO], o_len[EGO], o_wid[EGO], o_h[EGO], o_x[j], o_y[j], o_len[j], o_wid[j], o_h[j]
+        ):
             return True
     return False
 
@@ -696,8 +824,26 @@ def _ego_offroad(sc, ln, x, y, length, width, heading):
 
 
 @jit
-def _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h, o_valid, o_collided, o_offroad,
-             o_reached, i_collision, i_offroad, i_goal):
+def _outcome(
+    sc,
+    ln,
+    s,
+    collided,
+    offroad,
+    reached,
+    o_x,
+    o_y,
+    o_len,
+    o_wid,
+    o_h,
+    o_valid,
+    o_collided,
+    o_offroad,
+    o_reached,
+    i_collision,
+    i_offroad,
+    i_goal,
+):
     """The ego's collision, off-road and goal checks of scene s after its step; the outcome flags are sticky."""
     col = _ego_collides(o_x[s], o_y[s], o_len[s], o_wid[s], o_h[s], o_valid[s])
     ex, ey = o_x[s, EGO], o_y[s, EGO]
@@ -713,10 +859,59 @@ def _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h,
 
 
 @jit
-def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, valid, vid, lane, traits, ys_old,
-                timer_in, decel_in, cd_in, ego_speed, ego_steer, a_cmd, steer_cmd,
-                o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys, o_timer, o_decel,
-                o_cd, acc, order, rank, bits, centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger):
+def _step_scene(
+    sc,
+    ln,
+    pt,
+    key,
+    stp,
+    new_id,
+    x,
+    y,
+    vx,
+    heading,
+    length,
+    width,
+    valid,
+    vid,
+    lane,
+    traits,
+    ys_old,
+    timer_in,
+    decel_in,
+    cd_in,
+    ego_speed,
+    ego_steer,
+    a_cmd,
+    steer_cmd,
+    o_x,
+    o_y,
+    o_vx,
+    o_vy,
+    o_h,
+    o_len,
+    o_wid,
+    o_valid,
+    o_vid,
+    o_lane,
+    o_traits,
+    o_ys,
+    o_timer,
+    o_decel,
+    o_cd,
+    acc,
+    order,
+    rank,
+    bits,
+    centre_bit,
+    lead,
+    merge_to,
+    new_lane,
+    lead_gap,
+    v_lead,
+    traffic,
+    merger,
+):
     """Advance one scene by one step (module docstring). Writes the scene's new rows into the ``o_*`` arrays
     (``o_len``, ``o_wid``, ``o_vid``, ``o_traits`` already hold the old rows) and the applied accelerations into
     ``acc``. Returns (log-weight, ego steering, ego speed, vehicles entered)."""
@@ -728,22 +923,65 @@ def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, 
     _occupancy(sc, x, y, length, width, heading, valid, lane, bits, centre_bit)
     n = _sort(x, valid, order, rank)
     any_merger = _mergers(sc, ln, x, y, valid, lane, merger, merge_to)
-    _leaders(x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit, lead, lead_gap,
-             v_lead)
+    _leaders(
+        x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit, lead, lead_gap, v_lead
+    )
     # 2. car following
     _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lead, acc)
     # 3. yielding to merging vehicles
-    log_w = _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_old, order, rank, n,
-                      any_merger, merger, merge_to, lead_gap, v_lead, acc, o_ys)
+    log_w = _yielding(
+        sc,
+        ln,
+        key,
+        stp,
+        x,
+        vx,
+        length,
+        lane,
+        vid,
+        traits,
+        traffic,
+        ys_old,
+        order,
+        rank,
+        n,
+        any_merger,
+        merger,
+        merge_to,
+        lead_gap,
+        v_lead,
+        acc,
+        o_ys,
+    )
     # 4. hard braking
     log_w += _braking(sc, key, stp, x, vx, vid, traffic, timer_in, decel_in, acc, o_timer, o_decel)
     # 5. lane changes
-    _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, traffic, cd_in, order, rank, n, bits, lead, lead_gap,
-                  v_lead, acc, new_lane, o_cd)
+    _lane_changes(
+        sc,
+        ln,
+        stp,
+        x,
+        y,
+        vx,
+        length,
+        lane,
+        traits,
+        traffic,
+        cd_in,
+        order,
+        rank,
+        n,
+        bits,
+        lead,
+        lead_gap,
+        v_lead,
+        acc,
+        new_lane,
+        o_cd,
+    )
     # 6. motion
     _traffic_motion(sc, x, y, vx, traffic, acc, new_lane, o_x, o_y, o_vx, o_vy, o_h)
-    a_ego, steer, ev = _ego_motion(sc, x, y, heading, ego_speed, ego_steer, a_cmd, steer_cmd, o_x, o_y, o_vx, o_vy,
-                                   o_h)
+    a_ego, steer, ev = _ego_motion(sc, x, y, heading, ego_speed, ego_steer, a_cmd, steer_cmd, o_x, o_y, o_vx, o_vy, o_h)
     acc[EGO] = a_ego
     for i in range(v_n):
         o_lane[i] = new_lane[i] if valid[i] else lane[i]
@@ -753,17 +991,93 @@ def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, 
     for i in range(v_n):
         if not o_valid[i]:
             o_ys[i], o_timer[i] = 0, 0.0
-    entered = _spawn(sc, ln, pt, key, stp + 1, new_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane,
-                     o_traits, o_ys, o_timer, o_decel, o_cd)
+    entered = _spawn(
+        sc,
+        ln,
+        pt,
+        key,
+        stp + 1,
+        new_id,
+        o_x,
+        o_y,
+        o_vx,
+        o_vy,
+        o_h,
+        o_len,
+        o_wid,
+        o_valid,
+        o_vid,
+        o_lane,
+        o_traits,
+        o_ys,
+        o_timer,
+        o_decel,
+        o_cd,
+    )
     return log_w, steer, ev, entered
 
 
 @jit
-def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, stp, next_id, x, y, vx, heading, length, width,
-               valid, vid, lane, traits, ys, timer, decel, cd, ego_speed, ego_steer, collided, offroad, reached,
-               action, o_next_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys,
-               o_timer, o_decel, o_cd, o_ego_speed, o_ego_steer, o_collided, o_offroad, o_reached, i_collision,
-               i_offroad, i_goal, i_acc, i_log_w, scratch_i, scratch_f, scratch_b):
+def step_range(
+    a,
+    b,
+    group,
+    p_scalars,
+    p_lanes,
+    p_traits,
+    key,
+    stp,
+    next_id,
+    x,
+    y,
+    vx,
+    heading,
+    length,
+    width,
+    valid,
+    vid,
+    lane,
+    traits,
+    ys,
+    timer,
+    decel,
+    cd,
+    ego_speed,
+    ego_steer,
+    collided,
+    offroad,
+    reached,
+    action,
+    o_next_id,
+    o_x,
+    o_y,
+    o_vx,
+    o_vy,
+    o_h,
+    o_len,
+    o_wid,
+    o_valid,
+    o_vid,
+    o_lane,
+    o_traits,
+    o_ys,
+    o_timer,
+    o_decel,
+    o_cd,
+    o_ego_speed,
+    o_ego_steer,
+    o_collided,
+    o_offroad,
+    o_reached,
+    i_collision,
+    i_offroad,
+    i_goal,
+    i_acc,
+    i_log_w,
+    scratch_i,
+    scratch_f,
+    scratch_b,
+):
     """Advance scenes [a, b) by one step: the state's arrays in, the new state's and the step's outcome arrays out
     (``o_*``, ``i_*``; shapes as :class:`~wmplan.sim.state.TrafficState` and :class:`~wmplan.sim.engine.StepInfo`).
     Scene s uses parameter row ``group[s]``. Touches only rows [a, b). ``scratch_*``: work space of this call
@@ -777,12 +1091,77 @@ def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, stp, next_id, x, 
         sc, ln, pt = p_scalars[g], p_lanes[g], p_traits[g]
         new_id = next_id[s]
         log_w, steer, ev, entered = _step_scene(
-            sc, ln, pt, key[s], stp[s], new_id, x[s], y[s], vx[s], heading[s], length[s], width[s], valid[s], vid[s],
-            lane[s], traits[s], ys[s], timer[s], decel[s], cd[s], ego_speed[s], ego_steer[s], action[s, 0],
-            action[s, 1], o_x[s], o_y[s], o_vx[s], o_vy[s], o_h[s], o_len[s], o_wid[s], o_valid[s], o_vid[s],
-            o_lane[s], o_traits[s], o_ys[s], o_timer[s], o_decel[s], o_cd[s], i_acc[s], order, rank, bits,
-            centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger)
+            sc,
+            ln,
+            pt,
+            key[s],
+            stp[s],
+            new_id,
+            x[s],
+            y[s],
+            vx[s],
+            heading[s],
+            length[s],
+            width[s],
+            valid[s],
+            vid[s],
+            lane[s],
+            traits[s],
+            ys[s],
+            timer[s],
+            decel[s],
+            cd[s],
+            ego_speed[s],
+            ego_steer[s],
+            action[s, 0],
+            action[s, 1],
+            o_x[s],
+            o_y[s],
+            o_vx[s],
+            o_vy[s],
+            o_h[s],
+            o_len[s],
+            o_wid[s],
+            o_valid[s],
+            o_vid[s],
+            o_lane[s],
+            o_traits[s],
+            o_ys[s],
+            o_timer[s],
+            o_decel[s],
+            o_cd[s],
+            i_acc[s],
+            order,
+            rank,
+            bits,
+            centre_bit,
+            lead,
+            merge_to,
+            new_lane,
+            lead_gap,
+            v_lead,
+            traffic,
+            merger,
+        )
         o_next_id[s] = new_id + entered
         o_ego_speed[s], o_ego_steer[s], i_log_w[s] = ev, steer, log_w
-        _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h, o_valid, o_collided, o_offroad,
-                 o_reached, i_collision, i_offroad, i_goal)
+        _outcome(
+            sc,
+            ln,
+            s,
+            collided,
+            offroad,
+            reached,
+            o_x,
+            o_y,
+            o_len,
+            o_wid,
+            o_h,
+            o_valid,
+            o_collided,
+            o_offroad,
+            o_reached,
+            i_collision,
+            i_offroad,
+            i_goal,
+        )

@@ -263,7 +263,7 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
 
     def ahead_of(i: int, wanted) -> int:
         """Slot of the nearest vehicle after i in position order satisfying ``wanted(j)``, or -1."""
-        for j in order[rank[i] + 1:]:
+        for j in order[rank[i] + 1 :]:
             if wanted(j):
                 return j
         return -1
@@ -328,11 +328,30 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
         elif ys[i] == 2:  # not yielding: close up on the leader, with a higher desired speed, shorter headway
             t = tr[i]
             j = lead[i]
-            bold = idm(vx[i], t[T_V0] * NON_YIELD_SPEEDUP, gap_ahead(i, j), vx[i] - (vx[j] if j >= 0 else 0.0),
-                       t[T_T] * NON_YIELD_HEADWAY_FACTOR, t[T_S0], t[T_A], c[i])
+            bold = idm(
+                vx[i],
+                t[T_V0] * NON_YIELD_SPEEDUP,
+                gap_ahead(i, j),
+                vx[i] - (vx[j] if j >= 0 else 0.0),
+                t[T_T] * NON_YIELD_HEADWAY_FACTOR,
+                t[T_S0],
+                t[T_A],
+                c[i],
+            )
             if rd.any_end:
-                bold = min(bold, idm(vx[i], t[T_V0] * NON_YIELD_SPEEDUP, rd.to_end(lane[i], x[i]) - 0.5 * length[i],
-                                     vx[i], t[T_T] * NON_YIELD_HEADWAY_FACTOR, t[T_S0], t[T_A], c[i]))
+                bold = min(
+                    bold,
+                    idm(
+                        vx[i],
+                        t[T_V0] * NON_YIELD_SPEEDUP,
+                        rd.to_end(lane[i], x[i]) - 0.5 * length[i],
+                        vx[i],
+                        t[T_T] * NON_YIELD_HEADWAY_FACTOR,
+                        t[T_S0],
+                        t[T_A],
+                        c[i],
+                    ),
+                )
             acc[i] = bold
 
     # --- 4. hard-braking events ---
@@ -342,8 +361,7 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
     for i in range(v_n):
         if not traffic[i]:
             continue
-        if (rd.brake_prob > 0.0 and timer[i] <= 0.0 and vx[i] > 5.0
-                and uniform(ev_key, vid[i]) < rd.brake_prob):
+        if rd.brake_prob > 0.0 and timer[i] <= 0.0 and vx[i] > 5.0 and uniform(ev_key, vid[i]) < rd.brake_prob:
             size_key = combine(key, stp, _STREAM_BRAKE_SIZE, vid[i])
             decel[i] = truncated_normal(*rd.brake_decel, size_key, 0)
             timer[i] = truncated_normal(*rd.brake_duration, size_key, 1)
@@ -390,8 +408,7 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
                 urgency = clip(1.0 - d_end_own / rd.merge_zone, 0.0, 1.0)
                 inc = inc + (MANDATORY_BIAS_MPS2 * urgency + tr[i][T_TH])
             b_safe = tr[i][T_BSAFE]
-            safe = ((nf < 0 or a_n_after >= -b_safe) and nl_gap > 1.0 and nf_gap > 1.0
-                    and a_self_after >= -b_safe)
+            safe = (nf < 0 or a_n_after >= -b_safe) and nl_gap > 1.0 and nf_gap > 1.0 and a_self_after >= -b_safe
             if safe and inc > tr[i][T_TH] and inc > best_inc:
                 best_inc, best_dir = inc, d
         if best_dir != 0:
@@ -434,11 +451,26 @@ def _scene_step(sc: dict, a_cmd: float, steer_cmd: float, rd: Road) -> tuple[dic
     valid_new = [valid[i] and lo_x - 10.0 < x_new[i] < hi_x + 10.0 and x_new[i] < rd.road_len for i in range(v_n)]
     valid_new[EGO] = True
     out = dict(
-        key=key, step=stp + 1, next_id=sc["next_id"], x_m=x_new, y_m=y_new, vx_mps=vx_new, vy_mps=vy_new,
-        heading_rad=head_new, length_m=list(length), width_m=list(width), valid=valid_new, vehicle_id=list(vid),
-        lane=lane_out, traits=[list(t) for t in tr], yield_state=[ys[i] if valid_new[i] else 0 for i in range(v_n)],
-        brake_timer_s=[timer[i] if valid_new[i] else 0.0 for i in range(v_n)], brake_decel_mps2=decel,
-        cooldown_s=cooldown, ego_speed_mps=ev, ego_steer_rad=steer,
+        key=key,
+        step=stp + 1,
+        next_id=sc["next_id"],
+        x_m=x_new,
+        y_m=y_new,
+        vx_mps=vx_new,
+        vy_mps=vy_new,
+        heading_rad=head_new,
+        length_m=list(length),
+        width_m=list(width),
+        valid=valid_new,
+        vehicle_id=list(vid),
+        lane=lane_out,
+        traits=[list(t) for t in tr],
+        yield_state=[ys[i] if valid_new[i] else 0 for i in range(v_n)],
+        brake_timer_s=[timer[i] if valid_new[i] else 0.0 for i in range(v_n)],
+        brake_decel_mps2=decel,
+        cooldown_s=cooldown,
+        ego_speed_mps=ev,
+        ego_steer_rad=steer,
     )
     _spawn_scene(out, rd)
 
@@ -477,8 +509,10 @@ def _spawn_scene(out: dict, rd: Road) -> None:
     if best_lane < 0:
         return
     ln = best_lane
-    traits = [truncated_normal(rd.t_mean[t], rd.t_std[t], rd.t_lo[t], rd.t_hi[t], key, _STREAM_TRAITS, new_id, t, 0)
-              for t in range(NUM_TRAITS)]
+    traits = [
+        truncated_normal(rd.t_mean[t], rd.t_std[t], rd.t_lo[t], rd.t_hi[t], key, _STREAM_TRAITS, new_id, t, 0)
+        for t in range(NUM_TRAITS)
+    ]
     length = truncated_normal(*rd.length_dist, key, _STREAM_TRAITS, new_id, 101)
     width = truncated_normal(*rd.width_dist, key, _STREAM_TRAITS, new_id, 102)
     v0 = traits[T_V0]
@@ -506,10 +540,23 @@ def _spawn_scene(out: dict, rd: Road) -> None:
     if not gb >= 2.0 + 1.2 * v_foll + closing * closing / 6.0 + MIN_SPAWN_GAP_M:
         return
     slot = valid.index(False)
-    for name, value in (("valid", True), ("x_m", xs), ("y_m", rd.centre(ln)), ("vx_mps", speed), ("vy_mps", 0.0),
-                        ("heading_rad", 0.0), ("length_m", length), ("width_m", width), ("vehicle_id", new_id),
-                        ("lane", ln), ("traits", traits), ("yield_state", 0), ("brake_timer_s", 0.0),
-                        ("brake_decel_mps2", 0.0), ("cooldown_s", 0.0)):
+    for name, value in (
+        ("valid", True),
+        ("x_m", xs),
+        ("y_m", rd.centre(ln)),
+        ("vx_mps", speed),
+        ("vy_mps", 0.0),
+        ("heading_rad", 0.0),
+        ("length_m", length),
+        ("width_m", width),
+        ("vehicle_id", new_id),
+        ("lane", ln),
+        ("traits", traits),
+        ("yield_state", 0),
+        ("brake_timer_s", 0.0),
+        ("brake_decel_mps2", 0.0),
+        ("cooldown_s", 0.0),
+    ):
         out[name][slot] = value
     out["next_id"] = new_id + 1
 
@@ -542,11 +589,36 @@ def _ego_offroad(rd: Road, x: float, y: float, length: float, width: float, head
 
 # --- the batch, scene by scene ----------------------------------------------------------------------------------------
 
-_PER_VEHICLE = ("x_m", "y_m", "vx_mps", "vy_mps", "heading_rad", "length_m", "width_m", "valid", "vehicle_id",
-                "lane", "traits", "yield_state", "brake_timer_s", "brake_decel_mps2", "cooldown_s")
+_PER_VEHICLE = (
+    "x_m",
+    "y_m",
+    "vx_mps",
+    "vy_mps",
+    "heading_rad",
+    "length_m",
+    "width_m",
+    "valid",
+    "vehicle_id",
+    "lane",
+    "traits",
+    "yield_state",
+    "brake_timer_s",
+    "brake_decel_mps2",
+    "cooldown_s",
+)
 _PER_SCENE = ("step", "next_id", "ego_speed_mps", "ego_steer_rad", "collided", "offroad", "reached_goal")
-_DTYPES = {"key": np.uint64, "step": np.int64, "next_id": np.int64, "valid": bool, "vehicle_id": np.int64,
-           "lane": np.int64, "yield_state": np.int8, "collided": bool, "offroad": bool, "reached_goal": bool}
+_DTYPES = {
+    "key": np.uint64,
+    "step": np.int64,
+    "next_id": np.int64,
+    "valid": bool,
+    "vehicle_id": np.int64,
+    "lane": np.int64,
+    "yield_state": np.int8,
+    "collided": bool,
+    "offroad": bool,
+    "reached_goal": bool,
+}
 
 
 def step_loop(state: TrafficState, action: np.ndarray, params: SimParams) -> tuple[TrafficState, StepInfo]:
@@ -578,6 +650,10 @@ def step_loop(state: TrafficState, action: np.ndarray, params: SimParams) -> tup
     arrays = {"key": np.array(keys, dtype=np.uint64)}
     for name in _PER_VEHICLE + _PER_SCENE:
         arrays[name] = np.array([o[name] for o in outs], dtype=_DTYPES.get(name, np.float64))
-    info = StepInfo(**{k: np.array([i[k] for i in infos], dtype=bool if k in ("collision", "offroad", "goal")
-                                   else np.float64) for k in infos[0]})
+    info = StepInfo(
+        **{
+            k: np.array([i[k] for i in infos], dtype=bool if k in ("collision", "offroad", "goal") else np.float64)
+            for k in infos[0]
+        }
+    )
     return TrafficState(**arrays), info

@@ -51,7 +51,7 @@ def to_frame(rows: np.ndarray, origin_xy: np.ndarray, origin_heading: np.ndarray
     out[..., F_VX] = c * rows[..., F_VX] + s * rows[..., F_VY]
     out[..., F_VY] = -s * rows[..., F_VX] + c * rows[..., F_VY]
     out[..., F_HEADING] = wrap_angle(rows[..., F_HEADING] - origin_heading[..., None])
-    return out * (rows[..., F_VALID:F_VALID + 1] > 0.5)
+    return out * (rows[..., F_VALID : F_VALID + 1] > 0.5)
 
 
 def nearest_slots(rows: np.ndarray, num_objects: int = DEFAULT_NUM_OBJECTS) -> np.ndarray:
@@ -117,8 +117,10 @@ def road_features(params: SimParams, ego_x_m: np.ndarray, ego_y_m: np.ndarray) -
         d = np.minimum(params.distance_to_lane_end(li, ego_x_m), LANE_END_CAP_M)
         return np.where(ok, np.clip(d, 0.0, LANE_END_CAP_M), 0.0)
 
-    out = np.stack([offset, end_of(lane), left.astype(np.float64), right.astype(np.float64), end_of(lane - 1),
-                    end_of(lane + 1)], axis=-1)
+    out = np.stack(
+        [offset, end_of(lane), left.astype(np.float64), right.astype(np.float64), end_of(lane - 1), end_of(lane + 1)],
+        axis=-1,
+    )
     assert out.shape[-1] == NUM_ROAD_FEATURES
     return out
 

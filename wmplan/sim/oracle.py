@@ -62,8 +62,15 @@ def substeps_per_plan_step(params: SimParams, plan_dt_s: float) -> int:
     return int(round(n))
 
 
-def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_branches: int, *, mode: OracleMode,
-           seed: int | np.ndarray) -> TrafficState:
+def branch(
+    state: TrafficState,
+    params: SimParams,
+    scene: int | np.ndarray,
+    num_branches: int,
+    *,
+    mode: OracleMode,
+    seed: int | np.ndarray,
+) -> TrafficState:
     """``num_branches`` copies of each given scene (scene-major), each with its own random key (and, if
     resampled, new traits). Branch k of a scene gets the same key derivation whatever the other scenes are."""
     if mode not in ("known", "resampled"):
@@ -73,8 +80,12 @@ def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_
     k_idx = np.tile(np.arange(num_branches), len(scenes))
     seeds = np.broadcast_to(np.asarray(seed, dtype=np.int64), scenes.shape)  # one seed, or one per scene
     keys = rng.combine(base.key, np.repeat(seeds, num_branches), rng.STREAM_ORACLE, k_idx)
-    new = base.replace(key=keys, collided=np.zeros_like(base.collided), offroad=np.zeros_like(base.offroad),
-                       reached_goal=np.zeros_like(base.reached_goal))
+    new = base.replace(
+        key=keys,
+        collided=np.zeros_like(base.collided),
+        offroad=np.zeros_like(base.offroad),
+        reached_goal=np.zeros_like(base.reached_goal),
+    )
     if mode == "resampled":
         traffic = base.valid.copy()
         traffic[:, EGO] = False
@@ -83,8 +94,17 @@ def branch(state: TrafficState, params: SimParams, scene: int | np.ndarray, num_
     return new
 
 
-def oracle_futures(state: TrafficState, params: SimParams, plans: np.ndarray, num_futures: int, *,
-                   scene: int = 0, mode: OracleMode = "known", plan_dt_s: float = 0.2, seed: int = 0) -> OracleFutures:
+def oracle_futures(
+    state: TrafficState,
+    params: SimParams,
+    plans: np.ndarray,
+    num_futures: int,
+    *,
+    scene: int = 0,
+    mode: OracleMode = "known",
+    plan_dt_s: float = 0.2,
+    seed: int = 0,
+) -> OracleFutures:
     """Roll out ``num_futures`` true futures of one scene under each of C ego plans, batched.
 
     Args:
@@ -103,15 +123,26 @@ def oracle_futures(state: TrafficState, params: SimParams, plans: np.ndarray, nu
     plans = np.asarray(plans, dtype=np.float64)
     if plans.ndim != 3 or plans.shape[-1] != ACTION_DIM:
         raise ValueError(f"plans must have shape (C, H, {ACTION_DIM}), got {plans.shape}")
-    out = oracle_futures_batch(state, params, np.array([scene]), plans[None], num_futures, mode=mode,
-                               plan_dt_s=plan_dt_s, seed=seed)
-    return OracleFutures(*(getattr(out, f)[0] for f in ("vehicles", "vehicle_id", "collided", "offroad",
-                                                        "first_collision_step")))
+    out = oracle_futures_batch(
+        state, params, np.array([scene]), plans[None], num_futures, mode=mode, plan_dt_s=plan_dt_s, seed=seed
+    )
+    return OracleFutures(
+        *(getattr(out, f)[0] for f in ("vehicles", "vehicle_id", "collided", "offroad", "first_collision_step"))
+    )
 
 
-def oracle_futures_batch(state: TrafficState, params: SimParams, scenes: np.ndarray, plans: np.ndarray,
-                         num_futures: int, *, mode: OracleMode = "known", plan_dt_s: float = 0.2,
-                         seed: int | np.ndarray = 0, threads: int | None = None) -> OracleFutures:
+def oracle_futures_batch(
+    state: TrafficState,
+    params: SimParams,
+    scenes: np.ndarray,
+    plans: np.ndarray,
+    num_futures: int,
+    *,
+    mode: OracleMode = "known",
+    plan_dt_s: float = 0.2,
+    seed: int | np.ndarray = 0,
+    threads: int | None = None,
+) -> OracleFutures:
     """:func:`oracle_futures` for several scenes at once: plans (S, C, H, 2) -> leading axes (S, C, K).
 
     All S x C x K futures run as one batch of the engine. The K futures of a scene are shared by its C plans

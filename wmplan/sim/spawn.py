@@ -14,25 +14,42 @@ from wmplan.sim.params import NUM_TRAITS, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
 
 
-def draw_traits(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0,
-                which: np.ndarray | None = None) -> np.ndarray:
+def draw_traits(
+    params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0, which: np.ndarray | None = None
+) -> np.ndarray:
     """Hidden traits for vehicles with the given identities, (..., NT); ``key`` broadcasts against ``vehicle_id``.
 
     Each trait follows the scenario's normal distribution truncated to [low, high]. ``which`` (trait indices)
     draws only those traits, (..., len(which)), with the same values as the full draw has in those columns.
     """
     idx = np.arange(NUM_TRAITS) if which is None else np.asarray(which)
-    return rng.truncated_normal(params.trait_mean[idx], params.trait_std[idx], params.trait_lo[idx],
-                                params.trait_hi[idx], key[..., None], rng.STREAM_TRAITS, vehicle_id[..., None],
-                                idx, salt)
+    return rng.truncated_normal(
+        params.trait_mean[idx],
+        params.trait_std[idx],
+        params.trait_lo[idx],
+        params.trait_hi[idx],
+        key[..., None],
+        rng.STREAM_TRAITS,
+        vehicle_id[..., None],
+        idx,
+        salt,
+    )
 
 
 def draw_size(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Length and width of vehicles with the given identities (truncated normals)."""
     # one call for both (elementwise the same draws as two calls with the last counter 101 and 102)
     dist = np.array([params.length_dist, params.width_dist])  # (2, 4): mean, std, low, high
-    both = rng.truncated_normal(dist[:, 0], dist[:, 1], dist[:, 2], dist[:, 3], np.asarray(key)[..., None],
-                                rng.STREAM_TRAITS, np.asarray(vehicle_id)[..., None], np.array([101, 102]))
+    both = rng.truncated_normal(
+        dist[:, 0],
+        dist[:, 1],
+        dist[:, 2],
+        dist[:, 3],
+        np.asarray(key)[..., None],
+        rng.STREAM_TRAITS,
+        np.asarray(vehicle_id)[..., None],
+        np.array([101, 102]),
+    )
     return both[..., 0], both[..., 1]
 
 
@@ -61,14 +78,26 @@ def empty_state(params: SimParams, keys: np.ndarray) -> TrafficState:
         key=np.asarray(keys, dtype=np.uint64).copy(),
         step=np.zeros(s, dtype=np.int64),
         next_id=np.ones(s, dtype=np.int64),
-        x_m=x, y_m=y, vx_mps=vx, vy_mps=z.copy(), heading_rad=z.copy(),
-        length_m=length, width_m=width, valid=valid, vehicle_id=vid, lane=lane,
+        x_m=x,
+        y_m=y,
+        vx_mps=vx,
+        vy_mps=z.copy(),
+        heading_rad=z.copy(),
+        length_m=length,
+        width_m=width,
+        valid=valid,
+        vehicle_id=vid,
+        lane=lane,
         traits=np.broadcast_to(params.trait_mean, (s, v, NUM_TRAITS)).copy(),
         yield_state=np.zeros((s, v), dtype=np.int8),
-        brake_timer_s=z.copy(), brake_decel_mps2=z.copy(), cooldown_s=z.copy(),
+        brake_timer_s=z.copy(),
+        brake_decel_mps2=z.copy(),
+        cooldown_s=z.copy(),
         ego_speed_mps=np.full(s, float(scn.ego.speed_mps)),
         ego_steer_rad=np.zeros(s),
-        collided=np.zeros(s, dtype=bool), offroad=np.zeros(s, dtype=bool), reached_goal=np.zeros(s, dtype=bool),
+        collided=np.zeros(s, dtype=bool),
+        offroad=np.zeros(s, dtype=bool),
+        reached_goal=np.zeros(s, dtype=bool),
     )
 
 
@@ -118,8 +147,12 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
         sel = c_placed == i
         c_len = np.where(sel, pv.length_m, c_len)
         c_wid = np.where(sel, pv.width_m, c_wid)
-        for name, tidx in (("desired_speed_mps", T_V0), ("time_headway_s", T_T), ("politeness", 5),
-                           ("change_threshold_mps2", 6)):
+        for name, tidx in (
+            ("desired_speed_mps", T_V0),
+            ("time_headway_s", T_T),
+            ("politeness", 5),
+            ("change_threshold_mps2", 6),
+        ):
             val = getattr(pv, name)
             if val is not None:
                 c_traits[..., tidx] = np.where(sel, val, c_traits[..., tidx])
@@ -147,8 +180,9 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
         ln = np.clip(lane, 0, params.num_lanes - 1)
         gap = last_x[rows, ln] - last_len[rows, ln] / 2 - c_x[rows, ci] - c_len[rows, ci] / 2
         v_f = c_speed[rows, ci]
-        need = idm_equilibrium_gap(np.minimum(v_f, 0.97 * c_traits[rows, ci, T_V0]), c_traits[rows, ci, T_V0],
-                                   c_traits[rows, ci, T_T], 2.0)
+        need = idm_equilibrium_gap(
+            np.minimum(v_f, 0.97 * c_traits[rows, ci, T_V0]), c_traits[rows, ci, T_V0], c_traits[rows, ci, T_T], 2.0
+        )
         fits = (gap >= need) | (c_placed[rows, ci] >= 0)
         # Too close but not overlapping: slow down to the leader's speed instead of dropping, if that fits.
         alive = alive & (fits | (gap > 8.0))
@@ -174,7 +208,8 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
     arrays["length_m"][:, sl] = np.where(picked_ok, take(c_len), 4.7)
     arrays["width_m"][:, sl] = np.where(picked_ok, take(c_wid), 1.85)
     arrays["vehicle_id"][:, sl] = np.where(picked_ok, take(c_id), -1)
-    arrays["traits"][:, sl] = np.where(picked_ok[..., None], np.take_along_axis(c_traits, pick[..., None], axis=1),
-                                      params.trait_mean)
+    arrays["traits"][:, sl] = np.where(
+        picked_ok[..., None], np.take_along_axis(c_traits, pick[..., None], axis=1), params.trait_mean
+    )
     arrays["next_id"][:] = num_c + 1
     return TrafficState.from_arrays(arrays)

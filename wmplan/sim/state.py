@@ -101,8 +101,16 @@ class TrafficState:
 
     def vehicles(self) -> np.ndarray:
         """World-frame vehicle rows (S, V, F) in the order of ``features.VEHICLE_FEATURES``."""
-        cols = [self.x_m, self.y_m, self.vx_mps, self.vy_mps, self.heading_rad, self.length_m, self.width_m,
-                self.valid.astype(np.float64)]
+        cols = [
+            self.x_m,
+            self.y_m,
+            self.vx_mps,
+            self.vy_mps,
+            self.heading_rad,
+            self.length_m,
+            self.width_m,
+            self.valid.astype(np.float64),
+        ]
         assert len(cols) == len(VEHICLE_FEATURES)
         return np.stack(cols, axis=-1)
 

@@ -67,8 +67,9 @@ def _pool(threads: int) -> ThreadPoolExecutor:
     with _pool_lock:
         pool = _pools.get(threads)
         if pool is None:
-            pool = _pools[threads] = ThreadPoolExecutor(threads, thread_name_prefix="wmplan-sim",
-                                                        initializer=_mark_worker)
+            pool = _pools[threads] = ThreadPoolExecutor(
+                threads, thread_name_prefix="wmplan-sim", initializer=_mark_worker
+            )
         return pool
 
 

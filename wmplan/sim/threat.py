@@ -30,8 +30,7 @@ def brake_threat(state: TrafficState, params: SimParams) -> np.ndarray:
     heading = state.heading_rad[:, EGO]
     v_ego = state.ego_speed_mps * np.cos(heading)
     dx = x - x[:, :1]
-    in_path = (state.valid & (dx > 0)
-               & (np.abs(y - y[:, :1]) <= 0.5 * (state.width_m + state.width_m[:, :1])))
+    in_path = state.valid & (dx > 0) & (np.abs(y - y[:, :1]) <= 0.5 * (state.width_m + state.width_m[:, :1]))
     in_path[:, EGO] = False
     gap = dx - 0.5 * (state.length_m + state.length_m[:, :1])
     closing = v_ego[:, None] - state.vx_mps

@@ -49,8 +49,10 @@ class EventTilt:
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or not lo <= v <= hi:
                 raise ValueError(f"EventTilt.{name} must be a number in [{lo:g}, {hi:g}], got {v!r}")
         if self.yield_factor <= 0.0:
-            raise ValueError("EventTilt.yield_factor must be > 0 (a zero would make yielding impossible, and the "
-                             "weights of episodes in which a driver yields undefined)")
+            raise ValueError(
+                "EventTilt.yield_factor must be > 0 (a zero would make yielding impossible, and the "
+                "weights of episodes in which a driver yields undefined)"
+            )
 
     @property
     def active(self) -> bool:

@@ -98,8 +98,10 @@ class VariantBatch:
         p0 = self.params[0]
         for p in self.params[1:]:
             if (p.dt_s, p.num_steps, p.num_vehicles, p.tilt) != (p0.dt_s, p0.num_steps, p0.num_vehicles, p0.tilt):
-                raise ConfigError("the variants of one batch must share the time step, the duration, the number of "
-                                  "vehicle slots and the tilt")
+                raise ConfigError(
+                    "the variants of one batch must share the time step, the duration, the number of "
+                    "vehicle slots and the tilt"
+                )
 
     @staticmethod
     def single(params: SimParams, num_scenes: int) -> VariantBatch:

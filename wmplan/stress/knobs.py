@@ -106,8 +106,9 @@ def check_knobs(base: Scenario, knobs: Sequence[Knob]) -> None:
             value = get_path(data, knob.path)
         except PathError as err:
             raise ConfigError(f"knob {knob.name}: path {knob.path!r} {err}") from None
-        ok = isinstance(value, (int, float)) or (isinstance(value, list) and all(isinstance(v, (int, float))
-                                                                                   for v in value))
+        ok = isinstance(value, (int, float)) or (
+            isinstance(value, list) and all(isinstance(v, (int, float)) for v in value)
+        )
         if isinstance(value, bool) or not ok:
             raise ConfigError(f"knob {knob.name}: {knob.path} must hold a number or a list of numbers, got {value!r}")
         if knob.mode not in ("scale", "shift") or not knob.sigma > 0:
@@ -157,6 +158,14 @@ def variant(base: Scenario, knobs: Sequence[Knob], z: np.ndarray) -> Scenario:
 
 def describe_knobs(knobs: Sequence[Knob]) -> list[dict]:
     """The knobs as JSON-ready dicts (infinite bounds as None)."""
-    return [{"name": k.name, "path": k.path, "mode": k.mode, "sigma": k.sigma,
-             "low": None if math.isinf(k.low) else k.low, "high": None if math.isinf(k.high) else k.high}
-            for k in knobs]
+    return [
+        {
+            "name": k.name,
+            "path": k.path,
+            "mode": k.mode,
+            "sigma": k.sigma,
+            "low": None if math.isinf(k.low) else k.low,
+            "high": None if math.isinf(k.high) else k.high,
+        }
+        for k in knobs
+    ]

@@ -104,8 +104,7 @@ class GaussianFamily:
 
     def blend(self, other: GaussianFamily, alpha: float) -> GaussianFamily:
         """``alpha * other + (1 - alpha) * self`` in (mean, std): the smoothed update."""
-        return GaussianFamily(alpha * other.mean + (1 - alpha) * self.mean,
-                              alpha * other.std + (1 - alpha) * self.std)
+        return GaussianFamily(alpha * other.mean + (1 - alpha) * self.mean, alpha * other.std + (1 - alpha) * self.std)
 
     def describe(self) -> dict:
         """The distribution as a JSON-ready dict."""
@@ -164,8 +163,9 @@ class DefensiveMixture:
 
     def log_pdf(self, x: np.ndarray) -> np.ndarray:
         """Log density at ``x`` (N, D) -> (N,)."""
-        return np.logaddexp(math.log(self.alpha) + self.nominal.log_pdf(x),
-                            math.log1p(-self.alpha) + self.proposal.log_pdf(x))
+        return np.logaddexp(
+            math.log(self.alpha) + self.nominal.log_pdf(x), math.log1p(-self.alpha) + self.proposal.log_pdf(x)
+        )
 
     def describe(self) -> dict:
         """The distribution as a JSON-ready dict."""
@@ -236,11 +236,18 @@ class ISResult:
         """The result as a JSON-ready dict."""
         hi = self.ci95[1]
         return {
-            "estimate": self.estimate, "ci95": [self.ci95[0], hi if math.isfinite(hi) else None],
-            "std_error": self.std_error, "relative_error": self.relative_error if self.estimate > 0 else None,
-            "ess": self.ess, "failures": self.failures, "n_final": self.n_final,
-            "num_evaluations": self.num_evaluations, "reached": self.reached,
-            "levels": [{"gamma": lv.gamma, "n": lv.n, "elite": lv.elite, "proposal": lv.proposal} for lv in self.levels],
+            "estimate": self.estimate,
+            "ci95": [self.ci95[0], hi if math.isfinite(hi) else None],
+            "std_error": self.std_error,
+            "relative_error": self.relative_error if self.estimate > 0 else None,
+            "ess": self.ess,
+            "failures": self.failures,
+            "n_final": self.n_final,
+            "num_evaluations": self.num_evaluations,
+            "reached": self.reached,
+            "levels": [
+                {"gamma": lv.gamma, "n": lv.n, "elite": lv.elite, "proposal": lv.proposal} for lv in self.levels
+            ],
             "proposal": None if self.proposal is None else self.proposal.describe(),
         }
 
@@ -257,8 +264,9 @@ def evaluate(score: ScoreFn, x: np.ndarray, gamma: float) -> tuple[np.ndarray, n
     return s, (s >= gamma).astype(np.float64)
 
 
-def plain_monte_carlo(score: ScoreFn, nominal: Family, gamma: float, n: int, *,
-                      rng: np.random.Generator) -> PlainMCResult:
+def plain_monte_carlo(
+    score: ScoreFn, nominal: Family, gamma: float, n: int, *, rng: np.random.Generator
+) -> PlainMCResult:
     """Estimate P(S(X) >= gamma), X ~ nominal, by counting failures among ``n`` samples."""
     x = nominal.sample(n, rng)
     s, _ = evaluate(score, x, gamma)
@@ -283,11 +291,19 @@ def is_estimate(values: np.ndarray, log_w: np.ndarray) -> tuple[float, float, fl
     return est, se, ess
 
 
-def cross_entropy_levels(score: ScoreFn, nominal: Family, gamma: float, *, n_per_level: int, rho: float = 0.1,
-                         max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 1.0,
-                         rng: np.random.Generator,
-                         on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
-                         ) -> tuple[Family, tuple[CELevel, ...], bool, int]:
+def cross_entropy_levels(
+    score: ScoreFn,
+    nominal: Family,
+    gamma: float,
+    *,
+    n_per_level: int,
+    rho: float = 0.1,
+    max_levels: int = 20,
+    smoothing: float = 1.0,
+    std_floor: float = 1.0,
+    rng: np.random.Generator,
+    on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
+) -> tuple[Family, tuple[CELevel, ...], bool, int]:
     """The multilevel cross-entropy method: move the proposal toward {S >= gamma}.
 
     Args:
@@ -334,27 +350,67 @@ def cross_entropy_levels(score: ScoreFn, nominal: Family, gamma: float, *, n_per
     return proposal, tuple(levels), reached, evaluations
 
 
-def cross_entropy_is(score: ScoreFn, nominal: Family, gamma: float, *, n_per_level: int, n_final: int,
-                     rho: float = 0.1, max_levels: int = 20, smoothing: float = 1.0, std_floor: float = 1.0,
-                     defensive: float = 0.0, rng: np.random.Generator,
-                     on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None) -> ISResult:
+def cross_entropy_is(
+    score: ScoreFn,
+    nominal: Family,
+    gamma: float,
+    *,
+    n_per_level: int,
+    n_final: int,
+    rho: float = 0.1,
+    max_levels: int = 20,
+    smoothing: float = 1.0,
+    std_floor: float = 1.0,
+    defensive: float = 0.0,
+    rng: np.random.Generator,
+    on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
+) -> ISResult:
     """P(S(X) >= gamma), X ~ nominal, by cross-entropy levels then a final importance-sampling stage.
 
     Arguments as :func:`cross_entropy_levels`; ``n_final`` samples for the final stage (``on_samples`` sees them
     with level index -1); ``defensive``: the nominal's share alpha of the final stage's mixture (0: none).
     """
     proposal, levels, reached, evaluations = cross_entropy_levels(
-        score, nominal, gamma, n_per_level=n_per_level, rho=rho, max_levels=max_levels, smoothing=smoothing,
-        std_floor=std_floor, rng=rng, on_samples=on_samples)
-    return importance_sample(score, nominal, proposal, gamma, n_final, rng=rng, levels=levels, reached=reached,
-                             prior_evaluations=evaluations, on_samples=on_samples, defensive=defensive)
+        score,
+        nominal,
+        gamma,
+        n_per_level=n_per_level,
+        rho=rho,
+        max_levels=max_levels,
+        smoothing=smoothing,
+        std_floor=std_floor,
+        rng=rng,
+        on_samples=on_samples,
+    )
+    return importance_sample(
+        score,
+        nominal,
+        proposal,
+        gamma,
+        n_final,
+        rng=rng,
+        levels=levels,
+        reached=reached,
+        prior_evaluations=evaluations,
+        on_samples=on_samples,
+        defensive=defensive,
+    )
 
 
-def importance_sample(score: ScoreFn, nominal: Family, proposal: Family, gamma: float, n: int, *,
-                      rng: np.random.Generator, levels: tuple[CELevel, ...] = (), reached: bool = True,
-                      prior_evaluations: int = 0,
-                      on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
-                      defensive: float = 0.0) -> ISResult:
+def importance_sample(
+    score: ScoreFn,
+    nominal: Family,
+    proposal: Family,
+    gamma: float,
+    n: int,
+    *,
+    rng: np.random.Generator,
+    levels: tuple[CELevel, ...] = (),
+    reached: bool = True,
+    prior_evaluations: int = 0,
+    on_samples: Callable[[np.ndarray, np.ndarray, int], None] | None = None,
+    defensive: float = 0.0,
+) -> ISResult:
     """The final stage: ``n`` samples from ``proposal`` (mixed with a share ``defensive`` of the nominal),
     weighted toward ``nominal``."""
     if not 0.0 <= defensive < 1.0:
@@ -368,6 +424,15 @@ def importance_sample(score: ScoreFn, nominal: Family, proposal: Family, gamma: 
     est, se, ess = is_estimate(h, log_weights(x, nominal, proposal))
     k = int(np.count_nonzero(h > 0))
     ci = (max(0.0, est - Z95 * se), est + Z95 * se) if k > 0 else (0.0, math.inf)
-    return ISResult(estimate=est, ci95=ci, std_error=se, ess=ess, failures=k, n_final=n,
-                    num_evaluations=prior_evaluations + n, reached=reached, levels=levels, proposal=proposal)
-
+    return ISResult(
+        estimate=est,
+        ci95=ci,
+        std_error=se,
+        ess=ess,
+        failures=k,
+        n_final=n,
+        num_evaluations=prior_evaluations + n,
+        reached=reached,
+        levels=levels,
+        proposal=proposal,
+    )

@@ -67,12 +67,26 @@ def _progress(progress: bool | Callable[[int, int], None] | None, total: int):
     return bar.update, bar.close
 
 
-def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_dir: str | Path, seed: int, *,
-               workers: int = 1, scheduler: str | None = None, knobs: Sequence[Knob] | None = None,
-               z_step: float = DEFAULT_Z_STEP, rho: float = 0.1, ce_fraction: float = 0.6, max_saved: int = 10,
-               seeds_per_sample: int = 4, defensive: float = 0.2,
-               planner_options: dict[str, Any] | None = None, animate: Animate | None = None,
-               progress: bool | Callable[[int, int], None] | None = None) -> dict:
+def run_stress(
+    scenario: Scenario | str | Path,
+    planner: str,
+    budget: int,
+    out_dir: str | Path,
+    seed: int,
+    *,
+    workers: int = 1,
+    scheduler: str | None = None,
+    knobs: Sequence[Knob] | None = None,
+    z_step: float = DEFAULT_Z_STEP,
+    rho: float = 0.1,
+    ce_fraction: float = 0.6,
+    max_saved: int = 10,
+    seeds_per_sample: int = 4,
+    defensive: float = 0.2,
+    planner_options: dict[str, Any] | None = None,
+    animate: Animate | None = None,
+    progress: bool | Callable[[int, int], None] | None = None,
+) -> dict:
     """Search for failures and estimate the failure probability under the nominal knob distribution.
 
     Args:
@@ -106,8 +120,10 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
         raise ConfigError(f"seeds_per_sample must be an integer in [1, 64], got {seeds_per_sample!r}")
     least = MIN_KNOB_SAMPLES * seeds_per_sample
     if isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < least:
-        raise ConfigError(f"budget must be an integer >= {least} episodes ({MIN_KNOB_SAMPLES} knob samples x "
-                          f"{seeds_per_sample} seeds per sample), got {budget!r}")
+        raise ConfigError(
+            f"budget must be an integer >= {least} episodes ({MIN_KNOB_SAMPLES} knob samples x "
+            f"{seeds_per_sample} seeds per sample), got {budget!r}"
+        )
     if not 0.0 <= defensive < 1.0:
         raise ConfigError(f"defensive must lie in [0, 1), got {defensive!r}")
     if not 0.0 < ce_fraction < 1.0:
@@ -128,11 +144,21 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
     update, close = _progress(progress, 2 * budget)
     try:
         with make_executor(workers, scheduler) as (executor, _window):
-            ev = StressEvaluator(base, planner, knobs, z_step, np.random.default_rng(ss_seeds), executor,
-                                 dict(planner_options or {}), seeds_per_sample=seeds_per_sample, on_simulated=update)
+            ev = StressEvaluator(
+                base,
+                planner,
+                knobs,
+                z_step,
+                np.random.default_rng(ss_seeds),
+                executor,
+                dict(planner_options or {}),
+                seeds_per_sample=seeds_per_sample,
+                on_simulated=update,
+            )
             stage = ["ce level 0"]
-            is_res = _cross_entropy_within_budget(ev, stage, nominal, n_level, max_levels, budget_z, rho, ss_ce,
-                                                  defensive)
+            is_res = _cross_entropy_within_budget(
+                ev, stage, nominal, n_level, max_levels, budget_z, rho, ss_ce, defensive
+            )
             stage[0] = "plain mc"
             ev.seeds_per_sample = 1
             mc = plain_monte_carlo(ev.scorer(lambda: stage[0]), nominal, 0.0, budget, rng=np.random.default_rng(ss_mc))
@@ -144,9 +170,17 @@ def run_stress(scenario: Scenario | str | Path, planner: str, budget: int, out_d
     return report
 
 
-def _cross_entropy_within_budget(ev: StressEvaluator, stage: list[str], nominal: GaussianFamily, n_level: int,
-                                 max_levels: int, budget_z: int, rho: float, ss: np.random.SeedSequence,
-                                 defensive: float = 0.0) -> ISResult:
+def _cross_entropy_within_budget(
+    ev: StressEvaluator,
+    stage: list[str],
+    nominal: GaussianFamily,
+    n_level: int,
+    max_levels: int,
+    budget_z: int,
+    rho: float,
+    ss: np.random.SeedSequence,
+    defensive: float = 0.0,
+) -> ISResult:
     """Cross-entropy levels, then importance sampling with exactly the knob samples the levels left over."""
     rng = np.random.default_rng(ss)
 
@@ -154,26 +188,59 @@ def _cross_entropy_within_budget(ev: StressEvaluator, stage: list[str], nominal:
         stage[0] = f"ce level {t + 1}"
 
     proposal, levels, reached, used = cross_entropy_levels(
-        ev.scorer(lambda: stage[0]), nominal, 0.0, n_per_level=n_level, rho=rho, max_levels=max_levels, rng=rng,
-        on_samples=label)
+        ev.scorer(lambda: stage[0]),
+        nominal,
+        0.0,
+        n_per_level=n_level,
+        rho=rho,
+        max_levels=max_levels,
+        rng=rng,
+        on_samples=label,
+    )
     stage[0] = "importance sampling"
-    return importance_sample(ev.scorer(lambda: stage[0]), nominal, proposal, 0.0, budget_z - used, rng=rng,
-                             levels=levels, reached=reached, prior_evaluations=used, defensive=defensive)
+    return importance_sample(
+        ev.scorer(lambda: stage[0]),
+        nominal,
+        proposal,
+        0.0,
+        budget_z - used,
+        rng=rng,
+        levels=levels,
+        reached=reached,
+        prior_evaluations=used,
+        defensive=defensive,
+    )
 
 
-def _report(base: Scenario, planner: str, budget: int, seed: int, knobs: Sequence[Knob], z_step: float, m: int,
-            ev: StressEvaluator, is_res: ISResult, mc: PlainMCResult, saved: list[Path]) -> dict:
+def _report(
+    base: Scenario,
+    planner: str,
+    budget: int,
+    seed: int,
+    knobs: Sequence[Knob],
+    z_step: float,
+    m: int,
+    ev: StressEvaluator,
+    is_res: ISResult,
+    mc: PlainMCResult,
+    saved: list[Path],
+) -> dict:
     p = is_res.estimate
-    is_var_per_episode = m * is_res.n_final * is_res.std_error ** 2 if is_res.failures > 1 else None
+    is_var_per_episode = m * is_res.n_final * is_res.std_error**2 if is_res.failures > 1 else None
     mc_var_per_episode = p * (1 - p) if p > 0 else None
     ce_episodes = m * (is_res.num_evaluations - is_res.n_final)
     need_is = (ce_episodes + is_var_per_episode / (0.1 * p) ** 2) if is_var_per_episode else None
     need_mc = mc_var_per_episode / (0.1 * p) ** 2 if mc_var_per_episode else None
     ratio = mc_var_per_episode / is_var_per_episode if mc_var_per_episode and is_var_per_episode else None
     return {
-        "scenario": base.name, "planner": planner, "seed": seed, "budget": budget,
-        "simulations": len(ev.samples), "failure_definition": FAILURE_DEFINITION,
-        "failures_found": len(ev.failures()), "failures_saved": [path.name for path in saved],
+        "scenario": base.name,
+        "planner": planner,
+        "seed": seed,
+        "budget": budget,
+        "simulations": len(ev.samples),
+        "failure_definition": FAILURE_DEFINITION,
+        "failures_found": len(ev.failures()),
+        "failures_saved": [path.name for path in saved],
         "failure_prob": {**is_res.as_dict(), "seeds_per_sample": m, "simulations": m * is_res.num_evaluations},
         "plain_mc": {**mc.as_dict(), "simulations": mc.n},
         "comparison": {
@@ -181,16 +248,27 @@ def _report(base: Scenario, planner: str, budget: int, seed: int, knobs: Sequenc
             "variance_ratio_plain_mc_over_is": ratio,
             "episodes_for_10pct_rel_error": {"importance_sampling": need_is, "plain_mc": need_mc},
         },
-        "knobs": describe_knobs(knobs), "z_step": z_step, "nominal": "independent standard normal knobs",
+        "knobs": describe_knobs(knobs),
+        "z_step": z_step,
+        "nominal": "independent standard normal knobs",
         "caution": CAUTION,
     }
 
 
-def nominal_reference(scenario: Scenario | str | Path, planner: str, num_knob_samples: int, seeds_per_sample: int,
-                      seed: int, *, workers: int = 1, scheduler: str | None = None,
-                      knobs: Sequence[Knob] | None = None, z_step: float = DEFAULT_Z_STEP,
-                      planner_options: dict[str, Any] | None = None,
-                      progress: bool | Callable[[int, int], None] | None = None) -> dict:
+def nominal_reference(
+    scenario: Scenario | str | Path,
+    planner: str,
+    num_knob_samples: int,
+    seeds_per_sample: int,
+    seed: int,
+    *,
+    workers: int = 1,
+    scheduler: str | None = None,
+    knobs: Sequence[Knob] | None = None,
+    z_step: float = DEFAULT_Z_STEP,
+    planner_options: dict[str, Any] | None = None,
+    progress: bool | Callable[[int, int], None] | None = None,
+) -> dict:
     """A reference value of the nominal failure probability, to check the estimators against.
 
     Plain Monte Carlo over the knobs with many scene seeds per knob sample (conditional Monte Carlo): knob samples
@@ -212,30 +290,69 @@ def nominal_reference(scenario: Scenario | str | Path, planner: str, num_knob_sa
     update, close = _progress(progress, num_knob_samples * seeds_per_sample)
     try:
         with make_executor(workers, scheduler) as (executor, _window):
-            ev = StressEvaluator(base, planner, knobs, z_step, np.random.default_rng(ss_seeds), executor,
-                                 dict(planner_options or {}), seeds_per_sample=seeds_per_sample, on_simulated=update)
-            res = importance_sample(ev.scorer(lambda: "reference"), nominal, nominal, 0.0, num_knob_samples,
-                                    rng=np.random.default_rng(ss_z))
+            ev = StressEvaluator(
+                base,
+                planner,
+                knobs,
+                z_step,
+                np.random.default_rng(ss_seeds),
+                executor,
+                dict(planner_options or {}),
+                seeds_per_sample=seeds_per_sample,
+                on_simulated=update,
+            )
+            res = importance_sample(
+                ev.scorer(lambda: "reference"), nominal, nominal, 0.0, num_knob_samples, rng=np.random.default_rng(ss_z)
+            )
     finally:
         close()
     failures = sum(bool(s.row["collision"]) or bool(s.row["offroad"]) for s in ev.samples)
-    return {"estimate": res.estimate, "ci95": [res.ci95[0], res.ci95[1] if res.failures else None],
-            "std_error": res.std_error, "knob_samples": num_knob_samples, "seeds_per_sample": seeds_per_sample,
-            "simulations": len(ev.samples), "failed_episodes": failures, "scenario": base.name, "planner": planner,
-            "seed": int(seed), "knobs": describe_knobs(knobs), "z_step": z_step}
+    return {
+        "estimate": res.estimate,
+        "ci95": [res.ci95[0], res.ci95[1] if res.failures else None],
+        "std_error": res.std_error,
+        "knob_samples": num_knob_samples,
+        "seeds_per_sample": seeds_per_sample,
+        "simulations": len(ev.samples),
+        "failed_episodes": failures,
+        "scenario": base.name,
+        "planner": planner,
+        "seed": int(seed),
+        "knobs": describe_knobs(knobs),
+        "z_step": z_step,
+    }
 
 
-def cli_stress(scenario: str | Path, planner: str, budget: int, out: str | Path, *, seed: int = 0,
-               json_file: str | Path | None = None, workers: int = 1, scheduler: str | None = None,
-               planner_options: dict[str, Any] | None = None, animate: Animate | None = None) -> dict:
+def cli_stress(
+    scenario: str | Path,
+    planner: str,
+    budget: int,
+    out: str | Path,
+    *,
+    seed: int = 0,
+    json_file: str | Path | None = None,
+    workers: int = 1,
+    scheduler: str | None = None,
+    planner_options: dict[str, Any] | None = None,
+    animate: Animate | None = None,
+) -> dict:
     """What ``wmplan stress SCENARIO --planner P --budget N --out DIR [--json FILE]`` calls; returns the report.
 
     ``json_file``: also write the report there (atomically). ``animate``: the CLI passes a function built on
     ``wmplan.viz.anim`` to draw each saved failure.
     """
-    report = run_stress(scenario, planner, budget, out, seed, workers=workers, scheduler=scheduler,
-                        planner_options=planner_options, animate=animate, progress=None)
+    report = run_stress(
+        scenario,
+        planner,
+        budget,
+        out,
+        seed,
+        workers=workers,
+        scheduler=scheduler,
+        planner_options=planner_options,
+        animate=animate,
+        progress=None,
+    )
     if json_file is not None:
         atomic_write_json(Path(json_file), report)
     return report
-

@@ -176,19 +176,26 @@ class StressEvaluator:
                 size = 0
             tasks[-1].append(vid)
             size += len(idx) * m
-        futures = [self.executor.submit(_variant_rows, self.planner, [scenarios[v] for v in task],
-                                        [[int(s) for i in groups[v] for s in seeds[i]] for v in task],
-                                        self.planner_options)
-                   for task in tasks]
+        futures = [
+            self.executor.submit(
+                _variant_rows,
+                self.planner,
+                [scenarios[v] for v in task],
+                [[int(s) for i in groups[v] for s in seeds[i]] for v in task],
+                self.planner_options,
+            )
+            for task in tasks
+        ]
         rows: list[list[dict]] = [[] for _ in range(len(zq))]
         for task, fut in zip(tasks, futures, strict=True):
             for vid, flat in zip(task, fut.result(), strict=True):
                 idx = groups[vid]
                 for j, i in enumerate(idx):
-                    rows[i] = flat[j * m:(j + 1) * m]
+                    rows[i] = flat[j * m : (j + 1) * m]
                     for r in rows[i]:
-                        self.samples.append(Sample(z=zq[i].copy(), seed=int(r["seed"]), variant_id=vid, row=r,
-                                                   stage=stage))
+                        self.samples.append(
+                            Sample(z=zq[i].copy(), seed=int(r["seed"]), variant_id=vid, row=r, stage=stage)
+                        )
             if self.on_simulated is not None:
                 self.on_simulated(sum(len(groups[v]) for v in task) * m)
         return rows
@@ -216,8 +223,14 @@ def _json_row(row: dict) -> dict:
     return {k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in row.items()}
 
 
-def save_failures(evaluator: StressEvaluator, out_dir: Path, *, max_saved: int = 10, stress_seed: int | None = None,
-                  animate: Animate | None = None) -> list[Path]:
+def save_failures(
+    evaluator: StressEvaluator,
+    out_dir: Path,
+    *,
+    max_saved: int = 10,
+    stress_seed: int | None = None,
+    animate: Animate | None = None,
+) -> list[Path]:
     """Write up to ``max_saved`` distinct failures (most plausible first) as ``out/failures/<name>.yaml`` + ``.json``.
 
     Returns:
@@ -229,21 +242,34 @@ def save_failures(evaluator: StressEvaluator, out_dir: Path, *, max_saved: int =
         stem = f"failure-{k:02d}-{s.variant_id[:8]}-seed{s.seed}"
         scn = variant(evaluator.base, evaluator.knobs, s.z)
         yaml_path = folder / f"{stem}.yaml"
-        header = (f"# A failure of planner {evaluator.planner} found by `wmplan stress` ({FAILURE_DEFINITION}).\n"
-                  f"# Replay: scene seed {s.seed}; see {stem}.json. {CAUTION}\n")
+        header = (
+            f"# A failure of planner {evaluator.planner} found by `wmplan stress` ({FAILURE_DEFINITION}).\n"
+            f"# Replay: scene seed {s.seed}; see {stem}.json. {CAUTION}\n"
+        )
         atomic_write_text(yaml_path, header + scenario_to_yaml(scn))
         anim = None
         if animate is not None:
             anim = Path(animate(yaml_path, s.seed, evaluator.planner, folder / f"{stem}.gif")).name
         info = {
-            "scenario_file": yaml_path.name, "scenario_hash": scenario_hash(scn), "base_scenario": evaluator.base.name,
-            "planner": evaluator.planner, "planner_options": evaluator.planner_options, "seed": s.seed,
-            "failure": FAILURE_DEFINITION, "stage": s.stage, "stress_seed": stress_seed,
-            "knobs": {kn.name: {"z": float(z), "value": v}
-                      for kn, z, v in zip(evaluator.knobs, s.z, knob_values(evaluator.base, evaluator.knobs,
-                                                                            s.z).values(), strict=True)},
+            "scenario_file": yaml_path.name,
+            "scenario_hash": scenario_hash(scn),
+            "base_scenario": evaluator.base.name,
+            "planner": evaluator.planner,
+            "planner_options": evaluator.planner_options,
+            "seed": s.seed,
+            "failure": FAILURE_DEFINITION,
+            "stage": s.stage,
+            "stress_seed": stress_seed,
+            "knobs": {
+                kn.name: {"z": float(z), "value": v}
+                for kn, z, v in zip(
+                    evaluator.knobs, s.z, knob_values(evaluator.base, evaluator.knobs, s.z).values(), strict=True
+                )
+            },
             "nominal_log_density": float(GaussianFamily.standard(len(s.z)).log_pdf(s.z[None, :])[0]),
-            "outcome": _json_row(s.row), "animation": anim, "caution": CAUTION,
+            "outcome": _json_row(s.row),
+            "animation": anim,
+            "caution": CAUTION,
         }
         json_path = folder / f"{stem}.json"
         atomic_write_json(json_path, info)
@@ -279,12 +305,24 @@ def replay_episode(failure_file: str | Path, planner_options: dict[str, Any] | N
     return info, row
 
 
-def search_failures(scenario: Scenario | str | Path, planner: str, budget: int, out_dir: str | Path, seed: int, *,
-                    knobs: Sequence[Knob] | None = None, z_step: float | None = None, rho: float = 0.1,
-                    n_per_level: int | None = None, std_floor: float = 0.3, max_saved: int = 10,
-                    seeds_per_sample: int = 4,
-                    planner_options: dict[str, Any] | None = None, executor: Executor | None = None,
-                    animate: Animate | None = None) -> dict:
+def search_failures(
+    scenario: Scenario | str | Path,
+    planner: str,
+    budget: int,
+    out_dir: str | Path,
+    seed: int,
+    *,
+    knobs: Sequence[Knob] | None = None,
+    z_step: float | None = None,
+    rho: float = 0.1,
+    n_per_level: int | None = None,
+    std_floor: float = 0.3,
+    max_saved: int = 10,
+    seeds_per_sample: int = 4,
+    planner_options: dict[str, Any] | None = None,
+    executor: Executor | None = None,
+    animate: Animate | None = None,
+) -> dict:
     """CEM search for failures alone: cross-entropy levels over the knobs, then sampling from the last proposal,
     about ``budget`` episodes in all (``seeds_per_sample`` per knob sample).
 
@@ -296,20 +334,37 @@ def search_failures(scenario: Scenario | str | Path, planner: str, budget: int, 
     knobs = tuple(DEFAULT_KNOBS if knobs is None else knobs)
     check_knobs(base, knobs)
     ss_search, ss_seeds = np.random.SeedSequence(seed).spawn(2)
-    ev = StressEvaluator(base, planner, knobs, DEFAULT_Z_STEP if z_step is None else z_step,
-                         np.random.default_rng(ss_seeds), executor or InlineExecutor(), dict(planner_options or {}),
-                         seeds_per_sample=seeds_per_sample)
+    ev = StressEvaluator(
+        base,
+        planner,
+        knobs,
+        DEFAULT_Z_STEP if z_step is None else z_step,
+        np.random.default_rng(ss_seeds),
+        executor or InlineExecutor(),
+        dict(planner_options or {}),
+        seeds_per_sample=seeds_per_sample,
+    )
     budget_z = max(1, budget // seeds_per_sample)
     n = n_per_level or max(20, budget_z // 6)
     level = [0]
     rng = np.random.default_rng(ss_search)
     proposal, levels, _, used = cross_entropy_levels(
-        ev.scorer(lambda: f"search level {level[0]}"), GaussianFamily.standard(len(knobs)), 0.0, n_per_level=n,
-        rho=rho, max_levels=max(1, budget_z // n), std_floor=std_floor, rng=rng,
-        on_samples=lambda x, s, t: level.__setitem__(0, t + 1))
+        ev.scorer(lambda: f"search level {level[0]}"),
+        GaussianFamily.standard(len(knobs)),
+        0.0,
+        n_per_level=n,
+        rho=rho,
+        max_levels=max(1, budget_z // n),
+        std_floor=std_floor,
+        rng=rng,
+        on_samples=lambda x, s, t: level.__setitem__(0, t + 1),
+    )
     if budget_z > used:  # the failure region is reached: spend the rest sampling it
         ev.simulate(proposal.sample(budget_z - used, rng), "search final")
     saved = save_failures(ev, Path(out_dir), max_saved=max_saved, stress_seed=seed, animate=animate)
-    return {"failures_found": len(ev.failures()), "failures_saved": [p.name for p in saved],
-            "simulations": len(ev.samples),
-            "levels": [{"gamma": lv.gamma, "n": lv.n, "elite": lv.elite} for lv in levels]}
+    return {
+        "failures_found": len(ev.failures()),
+        "failures_saved": [p.name for p in saved],
+        "simulations": len(ev.samples),
+        "levels": [{"gamma": lv.gamma, "n": lv.n, "elite": lv.elite} for lv in levels],
+    }

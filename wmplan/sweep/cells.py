@@ -96,9 +96,7 @@ def check_paths(sweep: Sweep, base: dict) -> None:
         except PathError as err:
             near = close_matches(path, base)
             hint = f"; close matches: {', '.join(near)}" if near else "; no close match"
-            raise SweepError(
-                f"{sweep.source}: vary[{path!r}]: {err} (base scenario {base['name']}){hint}"
-            ) from None
+            raise SweepError(f"{sweep.source}: vary[{path!r}]: {err} (base scenario {base['name']}){hint}") from None
 
 
 def variants(sweep: Sweep) -> list[tuple[tuple[tuple[str, Any], ...], Scenario]]:
@@ -134,15 +132,30 @@ def expand_cells(sweep: Sweep) -> list[Cell]:
         seeds = episode_seeds(spec.seed, vhash, spec.episodes_per_cell)
         for planner in spec.planners:
             options = dict(spec.planner_options.get(planner, {}))
-            cid = content_hash({
-                "rows_version": ROWS_VERSION, "scenario": vhash, "planner": planner, "options": options,
-                "sweep_seed": spec.seed, "episodes": spec.episodes_per_cell,
-            })[:ID_LENGTH]
-            cell = Cell(cell_id=cid, variant_id=vhash[:ID_LENGTH], planner=planner, planner_options=options,
-                        params=params, scenario=scn_dict, seeds=seeds)
+            cid = content_hash(
+                {
+                    "rows_version": ROWS_VERSION,
+                    "scenario": vhash,
+                    "planner": planner,
+                    "options": options,
+                    "sweep_seed": spec.seed,
+                    "episodes": spec.episodes_per_cell,
+                }
+            )[:ID_LENGTH]
+            cell = Cell(
+                cell_id=cid,
+                variant_id=vhash[:ID_LENGTH],
+                planner=planner,
+                planner_options=options,
+                params=params,
+                scenario=scn_dict,
+                seeds=seeds,
+            )
             if cid in seen:
-                raise SweepError(f"{sweep.source}: vary: the cells ({seen[cid].describe()}) and ({cell.describe()}) "
-                                 "make the same scenario; remove one of the values")
+                raise SweepError(
+                    f"{sweep.source}: vary: the cells ({seen[cid].describe()}) and ({cell.describe()}) "
+                    "make the same scenario; remove one of the values"
+                )
             seen[cid] = cell
             cells.append(cell)
     return cells

@@ -35,8 +35,15 @@ TEXT_COLOUR = "#222222"
 
 # Unit of a field from the suffix of its name (longest suffix first).
 _UNITS = (
-    ("_veh_per_km", "veh/km"), ("_per_min", "1/min"), ("_mps2", "m/s²"), ("_mps", "m/s"), ("_radps", "rad/s"),
-    ("_rad", "rad"), ("_prob", "probability"), ("_m", "m"), ("_s", "s"),
+    ("_veh_per_km", "veh/km"),
+    ("_per_min", "1/min"),
+    ("_mps2", "m/s²"),
+    ("_mps", "m/s"),
+    ("_radps", "rad/s"),
+    ("_rad", "rad"),
+    ("_prob", "probability"),
+    ("_m", "m"),
+    ("_s", "s"),
 )
 
 
@@ -89,8 +96,9 @@ def lines_figure(cells: list[dict], path_x: str, planners: list[str], title: str
         rate = np.array([counts[(planner, x)][0] / counts[(planner, x)][1] for x in xs])
         ci = np.array([wilson_interval(*counts[(planner, x)]) for x in xs])
         colour = PLANNER_COLOURS[i % len(PLANNER_COLOURS)]
-        ax.errorbar(xs, rate, yerr=[rate - ci[:, 0], ci[:, 1] - rate], color=colour, marker="o", capsize=3,
-                    label=planner)
+        ax.errorbar(
+            xs, rate, yerr=[rate - ci[:, 0], ci[:, 1] - rate], color=colour, marker="o", capsize=3, label=planner
+        )
     xs_all = [k[1] for k in counts]
     if min(xs_all) > 0 and max(xs_all) >= 20 * min(xs_all):  # values over decades (e.g. loguniform draws)
         ax.set_xscale("log")
@@ -121,8 +129,15 @@ def heatmap_figure(cells: list[dict], path_x: str, path_y: str, planners: list[s
                 grid[ys.index(y), xs.index(x)] = k / n
                 lo, hi = wilson_interval(k, n)
                 rate = k / n
-                ax.text(xs.index(x), ys.index(y), f"{rate:.2f}\n[{lo:.2f}, {hi:.2f}]\nn = {n}", ha="center",
-                        va="center", fontsize=8, color="white" if rate > 0.55 * vmax else TEXT_COLOUR)
+                ax.text(
+                    xs.index(x),
+                    ys.index(y),
+                    f"{rate:.2f}\n[{lo:.2f}, {hi:.2f}]\nn = {n}",
+                    ha="center",
+                    va="center",
+                    fontsize=8,
+                    color="white" if rate > 0.55 * vmax else TEXT_COLOUR,
+                )
         image = ax.imshow(grid, origin="lower", cmap=RATE_CMAP, vmin=0.0, vmax=vmax, aspect="auto")
         ax.set_xticks(range(len(xs)), [f"{x:.3g}" for x in xs])
         ax.set_yticks(range(len(ys)), [f"{y:.3g}" for y in ys])
@@ -144,8 +159,14 @@ def points_figure(cells: list[dict], planners: list[str], title: str) -> Figure:
     for i, planner in enumerate(planners):
         k, n = counts[(planner,)]
         lo, hi = wilson_interval(k, n)
-        ax.errorbar([i], [k / n], yerr=[[k / n - lo], [hi - k / n]], color=PLANNER_COLOURS[i % len(PLANNER_COLOURS)],
-                    marker="o", capsize=4)
+        ax.errorbar(
+            [i],
+            [k / n],
+            yerr=[[k / n - lo], [hi - k / n]],
+            color=PLANNER_COLOURS[i % len(PLANNER_COLOURS)],
+            marker="o",
+            capsize=4,
+        )
     ax.set_xticks(range(len(planners)), planners)
     ax.set_xlabel("planner")
     ax.set_ylabel("collision rate (Wilson 95% interval)")

@@ -67,8 +67,9 @@ Progress = bool | Callable[[int, int], None] | None
 def _cell_rows(cell: Cell, kinds: dict[str, str]) -> list[dict]:
     """The table rows of one cell: its episodes' rows (:mod:`wmplan.evaluate.rows`, run by the one closed loop
     with the run seed 0) with the cell's id and swept values in front."""
-    rows = run_episodes([cell.load_scenario()], [np.asarray(cell.seeds)], cell.planner,
-                        options=cell.planner_options, seed=0)[0].rows
+    rows = run_episodes(
+        [cell.load_scenario()], [np.asarray(cell.seeds)], cell.planner, options=cell.planner_options, seed=0
+    )[0].rows
     out = []
     for row in rows:
         r: dict[str, Any] = {"cell_id": cell.cell_id, "variant_id": cell.variant_id}
@@ -128,8 +129,10 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
         try:
             import distributed
         except ImportError:
-            raise ConfigError("a Dask scheduler was given but the Dask distributed client is not installed; "
-                              "install it with: pip install 'wmplan[cluster]'") from None
+            raise ConfigError(
+                "a Dask scheduler was given but the Dask distributed client is not installed; "
+                "install it with: pip install 'wmplan[cluster]'"
+            ) from None
         try:
             client = distributed.Client(scheduler, timeout=f"{SCHEDULER_TIMEOUT_S}s", set_as_default=False)
         except (OSError, TimeoutError, ValueError) as err:
@@ -143,8 +146,12 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
     elif workers == 1:
         yield InlineExecutor(), 1
     else:
-        pool = ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=_init_worker, initargs=(os.getpid(),))
+        pool = ProcessPoolExecutor(
+            max_workers=workers,
+            mp_context=multiprocessing.get_context("spawn"),
+            initializer=_init_worker,
+            initargs=(os.getpid(),),
+        )
         try:
             yield pool, 2 * workers
         except BaseException:  # interrupted: do not wait for the cells still running, their results are lost anyway
@@ -153,9 +160,14 @@ def make_executor(workers: int = 1, scheduler: str | None = None) -> Iterator[tu
         pool.shutdown(wait=True)
 
 
-def execute_cells(cells: list[Cell], task: Callable[..., Any], args_of: Callable[[Cell], tuple],
-                  executor: Executor, window: int,
-                  on_done: Callable[[Cell, Any], None]) -> list[tuple[Cell, BaseException | None]]:
+def execute_cells(
+    cells: list[Cell],
+    task: Callable[..., Any],
+    args_of: Callable[[Cell], tuple],
+    executor: Executor,
+    window: int,
+    on_done: Callable[[Cell, Any], None],
+) -> list[tuple[Cell, BaseException | None]]:
     """Run ``task(*args_of(cell))`` for every cell, at most ``window`` at a time, calling ``on_done`` as each
     finishes (in completion order). Returns the cells that did not finish, with their error (None: never started
     because the executor broke)."""
@@ -208,8 +220,12 @@ def cell_path(out_dir: Path, cell_id: str) -> Path:
 def write_cell(out_dir: Path, cell: Cell, rows: list[dict]) -> Path:
     """Write one finished cell's rows atomically."""
     table = rows_table(rows)
-    meta = {"cell_id": cell.cell_id, "rows_version": ROWS_VERSION, "planner": cell.planner,
-            "params": [[p, v] for p, v in cell.params]}
+    meta = {
+        "cell_id": cell.cell_id,
+        "rows_version": ROWS_VERSION,
+        "planner": cell.planner,
+        "params": [[p, v] for p, v in cell.params],
+    }
     table = table.replace_schema_metadata({**table.schema.metadata, b"wmplan_cell": json.dumps(meta).encode()})
     path = cell_path(out_dir, cell.cell_id)
     atomic_write_bytes(path, _table_bytes(table))
@@ -225,14 +241,19 @@ def read_cell(out_dir: Path, cell_id: str) -> pa.Table:
     except (OSError, ValueError, pa.ArrowException) as err:
         raise SweepError(f"{path}: unreadable cell file ({type(err).__name__}); delete it and rerun") from None
     if meta.get("cell_id") != cell_id or meta.get("rows_version") != ROWS_VERSION:
-        raise SweepError(f"{path}: the file belongs to cell {meta.get('cell_id')!r}, not {cell_id!r}; delete it and rerun")
+        raise SweepError(
+            f"{path}: the file belongs to cell {meta.get('cell_id')!r}, not {cell_id!r}; delete it and rerun"
+        )
     return table
 
 
 def results_table(out_dir: Path, cells: list[Cell], kinds: dict[str, str]) -> pa.Table | None:
     """All rows of the finished cells among ``cells``: sorted by cell id then seed, fixed leading columns."""
-    tables = [read_cell(out_dir, c.cell_id) for c in sorted(cells, key=lambda c: c.cell_id)
-              if cell_path(out_dir, c.cell_id).is_file()]
+    tables = [
+        read_cell(out_dir, c.cell_id)
+        for c in sorted(cells, key=lambda c: c.cell_id)
+        if cell_path(out_dir, c.cell_id).is_file()
+    ]
     if not tables:
         return None
     table = pa.concat_tables([t.replace_schema_metadata(None) for t in tables], promote_options="permissive")
@@ -249,12 +270,18 @@ def _cell_summary(cell: Cell, table: pa.Table) -> dict:
     s = sum(bool(v) for v in cols["success"])
     off = sum(bool(v) for v in cols["offroad"])
     return {
-        "cell_id": cell.cell_id, "variant_id": cell.variant_id, "planner": cell.planner,
-        "params": {p: v for p, v in cell.params}, "n": n,
-        "collisions": k, "collision_rate": k / n, "collision_ci95": list(wilson_interval(k, n)),
+        "cell_id": cell.cell_id,
+        "variant_id": cell.variant_id,
+        "planner": cell.planner,
+        "params": {p: v for p, v in cell.params},
+        "n": n,
+        "collisions": k,
+        "collision_rate": k / n,
+        "collision_ci95": list(wilson_interval(k, n)),
         "offroad_rate": off / n,
         "near_miss_rate": sum(bool(v) for v in cols["near_miss"]) / n,
-        "success_rate": s / n, "success_ci95": list(wilson_interval(s, n)),
+        "success_rate": s / n,
+        "success_ci95": list(wilson_interval(s, n)),
         "mean_speed_mps": sum(cols["mean_speed_mps"]) / n,
         "mean_progress_m": sum(cols["progress_m"]) / n,
     }
@@ -277,11 +304,20 @@ def rebuild_outputs(sweep: Sweep, cells: list[Cell], out_dir: Path, *, plots: bo
     missing = sorted(c.cell_id for c in cells if c.cell_id not in done_ids)
     spec = sweep.spec
     summary = {
-        "sweep": spec.name, "source": sweep.source, "seed": spec.seed, "episodes_per_cell": spec.episodes_per_cell,
-        "parameters": list(spec.vary), "planners": list(spec.planners),
-        "num_cells": len(cells), "cells_done": len(done), "complete": not missing, "missing_cells": missing,
+        "sweep": spec.name,
+        "source": sweep.source,
+        "seed": spec.seed,
+        "episodes_per_cell": spec.episodes_per_cell,
+        "parameters": list(spec.vary),
+        "planners": list(spec.planners),
+        "num_cells": len(cells),
+        "cells_done": len(done),
+        "complete": not missing,
+        "missing_cells": missing,
         "num_episodes": 0 if table is None else table.num_rows,
-        "caution": CAUTION, "cells": per_cell, "plots": [],
+        "caution": CAUTION,
+        "cells": per_cell,
+        "plots": [],
     }
     if plots and per_cell:
         from wmplan.sweep.plots import write_summary_plots
@@ -310,23 +346,35 @@ def check_workers_can_resolve(name: str) -> None:
     """Worker processes resolve a planner spec again by importing it: refuse a planner that only this process
     knows (added with ``register_planner``, or an import path into ``__main__``)."""
     if name in planner_names() and name not in BUILTIN_PLANNERS:
-        raise ConfigError(f"planner {name!r} was registered in this process only, so worker processes cannot find "
-                          "it; name it by import path (module:factory) or run with one worker")
+        raise ConfigError(
+            f"planner {name!r} was registered in this process only, so worker processes cannot find "
+            "it; name it by import path (module:factory) or run with one worker"
+        )
     if name.split("+", 1)[-1].startswith("__main__"):
-        raise ConfigError(f"planner {name!r} lives in __main__, which worker processes cannot import; move it to a "
-                          "module, or run with one worker")
+        raise ConfigError(
+            f"planner {name!r} lives in __main__, which worker processes cannot import; move it to a "
+            "module, or run with one worker"
+        )
 
 
 def _progress_bar(progress: Progress, total: int, initial: int):
     from tqdm import tqdm
 
     show = sys.stderr.isatty() if progress is None else progress is True
-    return tqdm(total=total, initial=initial, desc="cells", unit="cell", file=sys.stderr, disable=not show,
-                dynamic_ncols=True)
+    return tqdm(
+        total=total, initial=initial, desc="cells", unit="cell", file=sys.stderr, disable=not show, dynamic_ncols=True
+    )
 
 
-def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 1, scheduler: str | None = None,
-              progress: Progress = None, plots: bool = True) -> dict:
+def run_sweep(
+    sweep: Sweep | str | Path,
+    out_dir: str | Path,
+    *,
+    workers: int = 1,
+    scheduler: str | None = None,
+    progress: Progress = None,
+    plots: bool = True,
+) -> dict:
     """Run every cell of a sweep that has no file yet, then rebuild the tables and plots.
 
     Args:
@@ -353,14 +401,28 @@ def run_sweep(sweep: Sweep | str | Path, out_dir: str | Path, *, workers: int = 
             check_workers_can_resolve(name)
     cells = expand_cells(sweep)
     kinds = param_column_kinds(sweep)
-    atomic_write_json(out_dir / "sweep.json", {
-        "spec": sweep.spec.model_dump(mode="json"), "source": sweep.source,
-        "cells": [{"cell_id": c.cell_id, "variant_id": c.variant_id, "planner": c.planner,
-                   "params": {p: v for p, v in c.params}} for c in cells],
-    })
+    atomic_write_json(
+        out_dir / "sweep.json",
+        {
+            "spec": sweep.spec.model_dump(mode="json"),
+            "source": sweep.source,
+            "cells": [
+                {
+                    "cell_id": c.cell_id,
+                    "variant_id": c.variant_id,
+                    "planner": c.planner,
+                    "params": {p: v for p, v in c.params},
+                }
+                for c in cells
+            ],
+        },
+    )
     todo = [c for c in cells if not cell_path(out_dir, c.cell_id).is_file()]
-    bar = None if callable(progress) and not isinstance(progress, bool) else _progress_bar(
-        progress, len(cells), len(cells) - len(todo))
+    bar = (
+        None
+        if callable(progress) and not isinstance(progress, bool)
+        else _progress_bar(progress, len(cells), len(cells) - len(todo))
+    )
     count = [len(cells) - len(todo)]
 
     def on_done(cell: Cell, rows: list[dict]) -> None:
@@ -398,9 +460,11 @@ def format_summary(summary: dict, out_dir: Path, max_cells: int = 40) -> str:
     for c in cells[:max_cells]:
         ci = c.get("collision_ci95", [float("nan")] * 2)
         params = ", ".join(f"{k}={v}" for k, v in c.get("params", {}).items())
-        lines.append(f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
-                     f"[{ci[0]:.3f}, {ci[1]:.3f}] near miss {c.get('near_miss_rate', float('nan')):.3f} "
-                     f"n={c.get('n', '')}")
+        lines.append(
+            f"  {c.get('planner', ''):<22} {params:<60} collision {c.get('collision_rate', float('nan')):.3f} "
+            f"[{ci[0]:.3f}, {ci[1]:.3f}] near miss {c.get('near_miss_rate', float('nan')):.3f} "
+            f"n={c.get('n', '')}"
+        )
     if len(cells) > max_cells:
         lines.append(f"  ... {len(cells) - max_cells} more cells in summary.json")
     return "\n".join(lines)
@@ -412,4 +476,3 @@ def read_results(out_dir: str | Path) -> pa.Table:
     if not path.is_file():
         raise SweepError(f"{path}: no results yet; run the sweep first")
     return pq.read_table(path)
-

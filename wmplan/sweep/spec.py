@@ -130,9 +130,12 @@ def _vary_kind(value: object) -> str | None:
 GridValues = Annotated[tuple[Any, ...], AfterValidator(_check_grid)]
 VaryEntry = Annotated[
     Annotated[GridValues, Tag("grid")] | Annotated[RandomRange, Tag("random")],
-    Discriminator(_vary_kind, custom_error_type="vary_entry",
-                  custom_error_message="must be a list of values (a grid) or a mapping {low, high, dist, samples} "
-                                       "(random values)"),
+    Discriminator(
+        _vary_kind,
+        custom_error_type="vary_entry",
+        custom_error_message="must be a list of values (a grid) or a mapping {low, high, dist, samples} "
+        "(random values)",
+    ),
 ]
 
 

@@ -41,9 +41,17 @@ def _outcome(row: dict) -> str:
     return "collision" if row["collision"] else "offroad" if row["offroad"] else str(row.get("outcome", "goal"))
 
 
-def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict[str, Any] | None = None,
-                   eval_seed: int = 0, budget: SearchBudget | None = None, triage_seed: int = 0,
-                   progress: Callable[[str], None] | None = None) -> dict:
+def triage_failure(
+    scenario: Scenario,
+    planner: str,
+    seed: int,
+    *,
+    options: dict[str, Any] | None = None,
+    eval_seed: int = 0,
+    budget: SearchBudget | None = None,
+    triage_seed: int = 0,
+    progress: Callable[[str], None] | None = None,
+) -> dict:
     """Triage one failed episode (module docstring).
 
     Args:
@@ -70,12 +78,23 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     params = SimParams.from_scenario(scenario)
     say(STAGES[0])
     original = record_failure(params, planner, opts, seed, eval_seed)
-    out: dict[str, Any] = {"planner": planner, "seed": int(seed), "eval_seed": int(eval_seed),
-                           "outcome": _outcome(original.row), "contact_side": original.row.get("contact_side", ""),
-                           "contact_s": float(original.row["time_s"]), "caution": CAUTION}
+    out: dict[str, Any] = {
+        "planner": planner,
+        "seed": int(seed),
+        "eval_seed": int(eval_seed),
+        "outcome": _outcome(original.row),
+        "contact_side": original.row.get("contact_side", ""),
+        "contact_s": float(original.row["time_s"]),
+        "caution": CAUTION,
+    }
     if not original.failed:
-        out.update(cause="not reproduced", replays={"original": _outcome(original.row)}, point_of_no_return=None,
-                   decisions=[], seconds=round(time.perf_counter() - t_start, 2))
+        out.update(
+            cause="not reproduced",
+            replays={"original": _outcome(original.row)},
+            point_of_no_return=None,
+            decisions=[],
+            seconds=round(time.perf_counter() - t_start, 2),
+        )
         return out
     replays = {"original": {"outcome": _outcome(original.row), "time_s": original.row["time_s"]}}
     # the counterfactual episodes end where the search's window ends: after_s past the original contact
@@ -84,8 +103,13 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     for stage, mode in ((STAGES[1], "known"), (STAGES[2], "resampled")):
         say(stage)
         rep, label = counterfactual(cut, planner, opts, seed, eval_seed, mode)
-        replays[f"oracle_{mode}"] = {"planner": label, "outcome": _outcome(rep.row) if rep.failed else "avoided",
-                                     "avoided": not rep.failed, "time_s": rep.row["time_s"], "until_s": until}
+        replays[f"oracle_{mode}"] = {
+            "planner": label,
+            "outcome": _outcome(rep.row) if rep.failed else "avoided",
+            "avoided": not rep.failed,
+            "time_s": rep.row["time_s"],
+            "until_s": until,
+        }
     out["replays"] = replays
 
     say(STAGES[3])
@@ -93,13 +117,25 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     dec_dt = records[1].time_s - records[0].time_s if len(records) > 1 else params.dt_s * 2
     sub = max(1, int(round(dec_dt / params.dt_s)))
     horizon = max((r.plan.shape[0] for r in records if r.plan is not None), default=15)
-    true_p = oracle_risk(params, records, horizon, dec_dt, budget.oracle_futures,
-                         seed=int(np.random.SeedSequence([triage_seed, SALT, seed]).generate_state(1)[0] >> 1))
+    true_p = oracle_risk(
+        params,
+        records,
+        horizon,
+        dec_dt,
+        budget.oracle_futures,
+        seed=int(np.random.SeedSequence([triage_seed, SALT, seed]).generate_state(1)[0] >> 1),
+    )
     errors = prediction_errors(records)
-    out["decisions"] = [{"time_s": round(r.time_s, 6), "believed_p": r.believed_p, "oracle_p": float(p),
-                         "prediction_error_m": None if e is None else e["mean_m"],
-                         "best_prediction_error_m": None if e is None else e["best_m"]}
-                        for r, p, e in zip(records, true_p, errors, strict=True)]
+    out["decisions"] = [
+        {
+            "time_s": round(r.time_s, 6),
+            "believed_p": r.believed_p,
+            "oracle_p": float(p),
+            "prediction_error_m": None if e is None else e["mean_m"],
+            "best_prediction_error_m": None if e is None else e["best_m"],
+        }
+        for r, p, e in zip(records, true_p, errors, strict=True)
+    ]
 
     # --- searches over the ego's actions: the cause, then the point of no return ---
     last = len(records) - 1  # the decision during which the contact happened
@@ -116,9 +152,13 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     say(STAGES[4])
     d0 = max(0, last - int(round(budget.lookback_s / dec_dt)))
     first = search(d0)
-    out["search"] = {"from_s": records[d0].time_s, "before_contact_s": out["contact_s"] - records[d0].time_s,
-                     "avoided": first.avoided, "sequences": first.sequences,
-                     "best_survival_s": round(first.best_survival_s, 3)}
+    out["search"] = {
+        "from_s": records[d0].time_s,
+        "before_contact_s": out["contact_s"] - records[d0].time_s,
+        "avoided": first.avoided,
+        "sequences": first.sequences,
+        "best_survival_s": round(first.best_survival_s, 3),
+    }
     predicted = any(r.get("avoided") for k, r in replays.items() if k.startswith("oracle_"))
     out["cause"] = "prediction" if predicted else "planning" if first.avoided else "past saving"
 
@@ -129,13 +169,21 @@ def triage_failure(scenario: Scenario, planner: str, seed: int, *, options: dict
     elif d0 > 0 and search(0).avoided:
         lo, hi = 0, d0
     if lo is None:
-        pnr = {"status": "before start", "time_s": None, "before_contact_s": None,
-               "at_least_before_contact_s": out["contact_s"]}
+        pnr = {
+            "status": "before start",
+            "time_s": None,
+            "before_contact_s": None,
+            "at_least_before_contact_s": out["contact_s"],
+        }
     else:
         d_star = bisect_last_true(lambda d: search(d).avoided, lo, hi)
         t_star = records[d_star].time_s
-        pnr = {"status": "found", "decision": d_star, "time_s": round(t_star, 6),
-               "before_contact_s": round(out["contact_s"] - t_star, 6)}
+        pnr = {
+            "status": "found",
+            "decision": d_star,
+            "time_s": round(t_star, 6),
+            "before_contact_s": round(out["contact_s"] - t_star, 6),
+        }
     pnr["searches"] = {str(round(records[d].time_s, 6)): bool(r.avoided) for d, r in sorted(cache.items())}
     pnr["sequences"] = int(sum(r.sequences for r in cache.values()))
     out["point_of_no_return"] = pnr

@@ -43,10 +43,22 @@ def triage_figure(result: dict) -> Figure:
     top, bottom = fig.subplots(2, 1, sharex=True, gridspec_kw={"height_ratios": [3, 2]})
     believed = _series(decisions, "believed_p")
     if np.isfinite(believed).any():
-        top.step(t, believed, where="post", color=BELIEVED_COLOUR, lw=1.6,
-                 label="believed: planner's P(collision) of its plan")
-    top.step(t, _series(decisions, "oracle_p"), where="post", color=ORACLE_COLOUR, lw=1.6,
-             label="true: oracle's P(collision) of the same plan")
+        top.step(
+            t,
+            believed,
+            where="post",
+            color=BELIEVED_COLOUR,
+            lw=1.6,
+            label="believed: planner's P(collision) of its plan",
+        )
+    top.step(
+        t,
+        _series(decisions, "oracle_p"),
+        where="post",
+        color=ORACLE_COLOUR,
+        lw=1.6,
+        label="true: oracle's P(collision) of the same plan",
+    )
     contact = float(result.get("contact_s", np.nan))
     pnr = result.get("point_of_no_return") or {}
     for ax in (top, bottom):
@@ -59,11 +71,21 @@ def triage_figure(result: dict) -> Figure:
         ax.grid(alpha=0.3, lw=0.6)
         for spine in ("top", "right"):
             ax.spines[spine].set_visible(False)
-    top.plot([contact], [1.0], marker="x", ms=11, mew=2.5, color=CONTACT_COLOUR, ls="none",
-             label=f"{result.get('outcome', 'failure')} at {contact:.1f} s", clip_on=False)
+    top.plot(
+        [contact],
+        [1.0],
+        marker="x",
+        ms=11,
+        mew=2.5,
+        color=CONTACT_COLOUR,
+        ls="none",
+        label=f"{result.get('outcome', 'failure')} at {contact:.1f} s",
+        clip_on=False,
+    )
     if pnr.get("status") == "found":
-        top.plot([], [], color=NO_RETURN_COLOUR, ls="--",
-                 label=f"point of no return, {pnr['before_contact_s']:.1f} s before")
+        top.plot(
+            [], [], color=NO_RETURN_COLOUR, ls="--", label=f"point of no return, {pnr['before_contact_s']:.1f} s before"
+        )
     elif pnr.get("status") == "before start":
         top.plot([], [], color=NO_RETURN_COLOUR, lw=6, alpha=0.3, label="no way out from the start")
     top.set_ylim(-0.03, 1.05)
@@ -76,14 +98,26 @@ def triage_figure(result: dict) -> Figure:
         bottom.step(t, best, where="post", color=BELIEVED_COLOUR, lw=1.0, ls="--", label="closest future")
         bottom.legend(fontsize=7, loc="upper left", frameon=False)
     else:
-        bottom.text(0.5, 0.5, "this planner gives no predicted futures", ha="center", va="center",
-                    transform=bottom.transAxes, fontsize=8, color=TEXT_COLOUR)
+        bottom.text(
+            0.5,
+            0.5,
+            "this planner gives no predicted futures",
+            ha="center",
+            va="center",
+            transform=bottom.transAxes,
+            fontsize=8,
+            color=TEXT_COLOUR,
+        )
     bottom.set_ylabel("prediction error [m]", fontsize=8)
     bottom.set_xlabel("time since the episode started [s]", fontsize=8)
     for ax in (top, bottom):
         ax.tick_params(labelsize=7)
-    fig.suptitle(f"{result.get('name', '')}: {result.get('planner', '')}, scene seed {result.get('seed')} — "
-                 f"cause: {result.get('cause')}", fontsize=9, color=TEXT_COLOUR)
+    fig.suptitle(
+        f"{result.get('name', '')}: {result.get('planner', '')}, scene seed {result.get('seed')} — "
+        f"cause: {result.get('cause')}",
+        fontsize=9,
+        color=TEXT_COLOUR,
+    )
     fig.subplots_adjust(bottom=0.14, top=0.92, hspace=0.12)
     caution_footer(fig)
     return fig

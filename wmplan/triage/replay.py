@@ -100,8 +100,13 @@ class Recorder:
         self._kept.clear()
         dec = self.inner.decide(obs)
         p = None if dec.p_collision is None else float(np.asarray(dec.p_collision).reshape(-1)[0])
-        rec = DecisionRecord(index=len(self.records), time_s=float(obs.time_s), state=obs.state,
-                             action=np.asarray(dec.actions, dtype=np.float64).reshape(-1, 2)[0].copy(), believed_p=p)
+        rec = DecisionRecord(
+            index=len(self.records),
+            time_s=float(obs.time_s),
+            state=obs.state,
+            action=np.asarray(dec.actions, dtype=np.float64).reshape(-1, 2)[0].copy(),
+            believed_p=p,
+        )
         if self._kept:
             ctx, res = self._kept[-1]
             c = int(res.chosen[0])
@@ -150,16 +155,18 @@ def oracle_planner(params: SimParams, planner: str, options: dict[str, Any], mod
     return built, label
 
 
-def counterfactual(params: SimParams, planner: str, options: dict[str, Any], seed: int, eval_seed: int,
-                   mode: str) -> tuple[Replay, str]:
+def counterfactual(
+    params: SimParams, planner: str, options: dict[str, Any], seed: int, eval_seed: int, mode: str
+) -> tuple[Replay, str]:
     """The episode replayed with the oracle predictor in ``mode`` (:func:`oracle_planner`) and its label."""
     built, label = oracle_planner(params, planner, options, mode)
     row = run_batch(params, built, np.array([seed]), seed=eval_seed, name=planner).rows[0]
     return Replay(row=row), label
 
 
-def oracle_risk(params: SimParams, records: list[DecisionRecord], horizon: int, plan_dt_s: float,
-                num_futures: int, seed: int) -> np.ndarray:
+def oracle_risk(
+    params: SimParams, records: list[DecisionRecord], horizon: int, plan_dt_s: float, num_futures: int, seed: int
+) -> np.ndarray:
     """(D,) the oracle's P(collision) (contact, drivers' traits known, events re-drawn) of each decision's chosen
     plan over ``horizon`` plan steps; where a planner gives no plan, of the actions it then applied (the last
     one held past the end). All decisions run as one batch of the engine."""
@@ -175,8 +182,9 @@ def oracle_risk(params: SimParams, records: list[DecisionRecord], horizon: int, 
             idx = np.minimum(np.arange(i, i + horizon), d_n - 1)
             plans[i, 0] = executed[idx]
     state = TrafficState.concat([r.state for r in records])
-    fut = oracle_futures_batch(state, params, np.arange(d_n), plans, num_futures, mode="known",
-                               plan_dt_s=plan_dt_s, seed=seed)
+    fut = oracle_futures_batch(
+        state, params, np.arange(d_n), plans, num_futures, mode="known", plan_dt_s=plan_dt_s, seed=seed
+    )
     return fut.collided[:, 0].mean(axis=-1)
 
 
@@ -194,7 +202,7 @@ def prediction_errors(records: list[DecisionRecord]) -> list[dict | None]:
             out.append(None)
             continue
         k_n, h_n, n_n, _ = r.predicted.shape
-        later = records[i + 1: i + 1 + h_n]
+        later = records[i + 1 : i + 1 + h_n]
         truth = np.full((len(later), n_n, 2), np.nan)
         for h, nxt in enumerate(later):
             st = nxt.state
@@ -207,8 +215,9 @@ def prediction_errors(records: list[DecisionRecord]) -> list[dict | None]:
         rows = np.zeros((len(later), n_n, r.predicted.shape[-1]))
         rows[..., F_X], rows[..., F_Y] = np.nan_to_num(truth[..., 0]), np.nan_to_num(truth[..., 1])
         rows[..., F_VALID] = 1.0
-        framed = to_frame(rows, np.broadcast_to(r.anchor_pose[:2], (len(later), 2)),
-                          np.broadcast_to(r.anchor_pose[2], (len(later),)))
+        framed = to_frame(
+            rows, np.broadcast_to(r.anchor_pose[:2], (len(later), 2)), np.broadcast_to(r.anchor_pose[2], (len(later),))
+        )
         pred = r.predicted[:, : len(later)]
         ok = np.isfinite(truth[..., 0]) & (pred[..., F_VALID] > 0.5).all(axis=0)
         ok[:, EGO] = False
@@ -217,6 +226,12 @@ def prediction_errors(records: list[DecisionRecord]) -> list[dict | None]:
             continue
         dist = np.hypot(pred[..., F_X] - framed[None, ..., F_X], pred[..., F_Y] - framed[None, ..., F_Y])
         per_future = np.where(ok[None], dist, 0.0).sum(axis=(1, 2)) / ok.sum()
-        out.append({"mean_m": float(per_future.mean()), "best_m": float(per_future.min()),
-                    "objects": int(ok.any(axis=0).sum()), "steps": len(later)})
+        out.append(
+            {
+                "mean_m": float(per_future.mean()),
+                "best_m": float(per_future.min()),
+                "objects": int(ok.any(axis=0).sum()),
+                "steps": len(later),
+            }
+        )
     return out

@@ -34,8 +34,6 @@ TRIAGE_FILE = "triage.json"
 FIGURE_DIR = "triage"
 
 
-
-
 def _evaluate_scenario(run_dir: Path, summary: dict) -> Scenario:
     """The scenario of an evaluate folder: ``scenario_spec``, or a built-in of the recorded name and hash."""
     spec = summary.get("scenario_spec")
@@ -46,8 +44,10 @@ def _evaluate_scenario(run_dir: Path, summary: dict) -> Scenario:
         scn = load_scenario(name)
         if digest is None or scenario_hash(scn) == digest:
             return scn
-    raise ConfigError(f"{run_dir / 'summary.json'}: scenario_spec: missing, and the scenario {name!r} is not a "
-                      "built-in of the same content; run `wmplan evaluate --out` again (it records the scenario)")
+    raise ConfigError(
+        f"{run_dir / 'summary.json'}: scenario_spec: missing, and the scenario {name!r} is not a "
+        "built-in of the same content; run `wmplan evaluate --out` again (it records the scenario)"
+    )
 
 
 def evaluate_failures(run_dir: Path, overrides: dict[str, Any]) -> tuple[Scenario | None, list[dict]]:
@@ -60,8 +60,9 @@ def evaluate_failures(run_dir: Path, overrides: dict[str, Any]) -> tuple[Scenari
     try:
         rows = pq.read_table(path, columns=["planner", "seed", "collision", "offroad"]).to_pylist()
     except (OSError, ValueError, KeyError) as err:
-        raise ConfigError(f"{path}: not an episodes table with planner, seed, collision, offroad "
-                          f"({type(err).__name__}: {err})") from None
+        raise ConfigError(
+            f"{path}: not an episodes table with planner, seed, collision, offroad ({type(err).__name__}: {err})"
+        ) from None
     failed = [r for r in rows if r["collision"] or r["offroad"]]
     if not failed:
         return None, []
@@ -71,9 +72,17 @@ def evaluate_failures(run_dir: Path, overrides: dict[str, Any]) -> tuple[Scenari
     seed = summary.get("seed", 0)
     if isinstance(seed, bool) or not isinstance(seed, int):
         raise ConfigError(f"{run_dir / 'summary.json'}: seed: must be an integer, got {seed!r}")
-    return scn, [{"scenario": scn, "planner": str(r["planner"]), "options": _options_for(str(r["planner"]), opts),
-                  "seed": int(r["seed"]), "eval_seed": seed, "name": f"{r['planner']}-seed{int(r['seed'])}"}
-                 for r in failed]
+    return scn, [
+        {
+            "scenario": scn,
+            "planner": str(r["planner"]),
+            "options": _options_for(str(r["planner"]), opts),
+            "seed": int(r["seed"]),
+            "eval_seed": seed,
+            "name": f"{r['planner']}-seed{int(r['seed'])}",
+        }
+        for r in failed
+    ]
 
 
 def stress_failures(run_dir: Path, overrides: dict[str, Any]) -> list[dict]:
@@ -88,8 +97,9 @@ def stress_failures(run_dir: Path, overrides: dict[str, Any]) -> list[dict]:
         except (KeyError, TypeError, ValueError) as err:
             raise ConfigError(f"{path}: not a failure record ({type(err).__name__}: {err})") from None
         options.update(overrides)
-        out.append({"scenario": scn, "planner": planner, "options": options, "seed": seed, "eval_seed": 0,
-                    "name": path.stem})
+        out.append(
+            {"scenario": scn, "planner": planner, "options": options, "seed": seed, "eval_seed": 0, "name": path.stem}
+        )
     return out
 
 
@@ -115,9 +125,16 @@ def _progress(progress: bool | Callable[[int, int, str], None] | None, total: in
     return advance, bar.close
 
 
-def triage_run(run_dir: str | Path, *, planner_options: dict[str, Any] | None = None,
-               budget: SearchBudget | None = None, seed: int = 0, max_failures: int | None = None,
-               figures: bool = True, progress: bool | Callable[[int, int, str], None] | None = None) -> dict:
+def triage_run(
+    run_dir: str | Path,
+    *,
+    planner_options: dict[str, Any] | None = None,
+    budget: SearchBudget | None = None,
+    seed: int = 0,
+    max_failures: int | None = None,
+    figures: bool = True,
+    progress: bool | Callable[[int, int, str], None] | None = None,
+) -> dict:
     """Triage every failure of an evaluate or stress output folder; write ``triage.json`` and the figures there.
 
     Args:
@@ -144,8 +161,9 @@ def triage_run(run_dir: str | Path, *, planner_options: dict[str, Any] | None = 
         raise ConfigError(f"{run_dir}: no such run folder" if not run_dir.exists() else f"{run_dir}: is not a folder")
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ConfigError(f"seed must be an integer >= 0, got {seed!r}")
-    if max_failures is not None and (isinstance(max_failures, bool) or not isinstance(max_failures, int)
-                                     or max_failures < 1):
+    if max_failures is not None and (
+        isinstance(max_failures, bool) or not isinstance(max_failures, int) or max_failures < 1
+    ):
         raise ConfigError(f"max_failures must be an integer >= 1, got {max_failures!r}")
     budget = budget or SearchBudget()
     overrides = dict(planner_options or {})
@@ -156,8 +174,10 @@ def triage_run(run_dir: str | Path, *, planner_options: dict[str, Any] | None = 
         source = "stress"
         items = stress_failures(run_dir, overrides)
     else:
-        raise ConfigError(f"{run_dir}: not an evaluate or stress output folder; expected summary.json and "
-                          "episodes.parquet (wmplan evaluate --out) or failures/*.json (wmplan stress --out)")
+        raise ConfigError(
+            f"{run_dir}: not an evaluate or stress output folder; expected summary.json and "
+            "episodes.parquet (wmplan evaluate --out) or failures/*.json (wmplan stress --out)"
+        )
     found = len(items)
     if max_failures is not None:
         items = items[:max_failures]
@@ -173,8 +193,16 @@ def triage_run(run_dir: str | Path, *, planner_options: dict[str, Any] | None = 
                 advance(f"failure {k + 1}/{len(items)}: {label}")
 
             try:
-                res = triage_failure(item["scenario"], item["planner"], item["seed"], options=item["options"],
-                                     eval_seed=item["eval_seed"], budget=budget, triage_seed=seed, progress=stage)
+                res = triage_failure(
+                    item["scenario"],
+                    item["planner"],
+                    item["seed"],
+                    options=item["options"],
+                    eval_seed=item["eval_seed"],
+                    budget=budget,
+                    triage_seed=seed,
+                    progress=stage,
+                )
             except WmplanError as err:
                 raise ConfigError(f"{run_dir}: failure {item['name']}: {err}") from None
             for _ in range(len(STAGES) - seen[0]):  # stages a non-reproduced failure skipped
@@ -193,26 +221,37 @@ def triage_run(run_dir: str | Path, *, planner_options: dict[str, Any] | None = 
     for r in results:
         per = counts.setdefault(r["planner"], dict.fromkeys(CAUSES, 0))
         per[r["cause"]] += 1
-    report = {"source": source, "run_dir": run_dir.name, "failures_found": found, "failures_triaged": len(results),
-              "counts": counts, "failures": results, "budget": budget.to_dict(), "seed": seed,
-              "seconds": round(time.perf_counter() - t0, 1),
-              "definitions": {
-                  "prediction": "the same planner over the oracle's futures (traits known or re-drawn) avoided it",
-                  "planning": "no oracle replay avoided it, but a search over the ego's action sequences against "
-                              "the true simulator (drivers' events fixed) did",
-                  "past saving": f"no sequence found from {budget.lookback_s:g} s before the contact avoided it",
-                  "not reproduced": "the replay of the recorded episode did not fail",
-                  "point_of_no_return": "the latest decision from which some action sequence still avoids the "
-                                        "failure (bisection over decision times), in seconds before the contact"},
-              "caution": CAUTION}
+    report = {
+        "source": source,
+        "run_dir": run_dir.name,
+        "failures_found": found,
+        "failures_triaged": len(results),
+        "counts": counts,
+        "failures": results,
+        "budget": budget.to_dict(),
+        "seed": seed,
+        "seconds": round(time.perf_counter() - t0, 1),
+        "definitions": {
+            "prediction": "the same planner over the oracle's futures (traits known or re-drawn) avoided it",
+            "planning": "no oracle replay avoided it, but a search over the ego's action sequences against "
+            "the true simulator (drivers' events fixed) did",
+            "past saving": f"no sequence found from {budget.lookback_s:g} s before the contact avoided it",
+            "not reproduced": "the replay of the recorded episode did not fail",
+            "point_of_no_return": "the latest decision from which some action sequence still avoids the "
+            "failure (bisection over decision times), in seconds before the contact",
+        },
+        "caution": CAUTION,
+    }
     atomic_write_json(run_dir / TRIAGE_FILE, report)
     return report
 
 
 def format_triage(report: dict) -> str:
     """Terminal lines: the causes per planner, then one line per failure."""
-    lines = [f"triage of {report['failures_triaged']} of {report['failures_found']} failure(s) "
-             f"({report['source']} folder, {report['seconds']} s)"]
+    lines = [
+        f"triage of {report['failures_triaged']} of {report['failures_found']} failure(s) "
+        f"({report['source']} folder, {report['seconds']} s)"
+    ]
     for planner, per in report["counts"].items():
         lines.append(f"  {planner}: " + ", ".join(f"{cause} {n}" for cause, n in per.items() if n))
     for f in report["failures"]:
@@ -223,6 +262,7 @@ def format_triage(report: dict) -> str:
             when = "no way out from the episode's start"
         else:
             when = "no point of no return"
-        lines.append(f"  {f['name']}: {f['outcome']} at {f['contact_s']:.1f} s -> {f['cause']}; {when} "
-                     f"({f['seconds']:.0f} s)")
+        lines.append(
+            f"  {f['name']}: {f['outcome']} at {f['contact_s']:.1f} s -> {f['cause']}; {when} ({f['seconds']:.0f} s)"
+        )
     return "\n".join(lines)

@@ -106,8 +106,13 @@ class SearchResult:
     best_survival_s: float
 
 
-def rollout(state: TrafficState, params: SimParams, accel: np.ndarray, lane_target: np.ndarray, substeps: int,
-            ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def rollout(
+    state: TrafficState,
+    params: SimParams,
+    accel: np.ndarray,
+    lane_target: np.ndarray,
+    substeps: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Simulate C sequences from the one scene of ``state``.
 
     Args:
@@ -125,8 +130,9 @@ def rollout(state: TrafficState, params: SimParams, accel: np.ndarray, lane_targ
     """
     c_n, h_n = accel.shape
     st = state.take(np.zeros(c_n, dtype=np.int64))
-    st = st.replace(collided=np.zeros(c_n, dtype=bool), offroad=np.zeros(c_n, dtype=bool),
-                    reached_goal=np.zeros(c_n, dtype=bool))
+    st = st.replace(
+        collided=np.zeros(c_n, dtype=bool), offroad=np.zeros(c_n, dtype=bool), reached_goal=np.zeros(c_n, dtype=bool)
+    )
     failed = np.zeros(c_n, dtype=bool)
     finished = np.zeros(c_n, dtype=bool)
     survived = np.zeros(c_n, dtype=np.int64)
@@ -150,8 +156,14 @@ def rollout(state: TrafficState, params: SimParams, accel: np.ndarray, lane_targ
     return failed, survived, clearance, commands
 
 
-def search_avoidance(state: TrafficState, params: SimParams, decisions: int, substeps: int, budget: SearchBudget,
-                     rng: np.random.Generator) -> SearchResult:
+def search_avoidance(
+    state: TrafficState,
+    params: SimParams,
+    decisions: int,
+    substeps: int,
+    budget: SearchBudget,
+    rng: np.random.Generator,
+) -> SearchResult:
     """CEM over the ego's sequences from the one scene of ``state`` over ``decisions`` decisions (module docstring).
 
     Args:
@@ -191,9 +203,15 @@ def search_avoidance(state: TrafficState, params: SimParams, decisions: int, sub
             return SearchResult(True, total, commands[i], float(h_n * substeps * params.dt_s))
         # cost: a later failure is better; between equal times, more clearance on the way
         cost = -survived.astype(np.float64) - 0.1 * np.clip(clearance, 0.0, 5.0)
-        m, s = cem_update(torch.from_numpy(cand[None]), torch.from_numpy(cost[None]), int(budget.elites),
-                          torch.from_numpy(mean[None]), torch.from_numpy(std[None]), alpha=0.8,
-                          min_std=torch.tensor([0.3, 0.1]))
+        m, s = cem_update(
+            torch.from_numpy(cand[None]),
+            torch.from_numpy(cost[None]),
+            int(budget.elites),
+            torch.from_numpy(mean[None]),
+            torch.from_numpy(std[None]),
+            alpha=0.8,
+            min_std=torch.tensor([0.3, 0.1]),
+        )
         mean, std = m[0].double().numpy(), s[0].double().numpy()
     return SearchResult(False, total, None, best * params.dt_s)
 

@@ -64,8 +64,9 @@ def _resolve_policy(policy: str | Policy, params: SimParams) -> Policy:
     raise ConfigError(f"policy must be 'rules' or a callable (state, params) -> actions (S, 2), got {policy!r}")
 
 
-def episode_frames(params: SimParams, seed: int, policy: str | Policy = "rules",
-                   num_steps: int | None = None) -> tuple[np.ndarray, EpisodeOutcome]:
+def episode_frames(
+    params: SimParams, seed: int, policy: str | Policy = "rules", num_steps: int | None = None
+) -> tuple[np.ndarray, EpisodeOutcome]:
     """Run one episode and keep every moment.
 
     The episode stops when the ego collides, leaves the road or reaches its goal, or after ``num_steps``
@@ -98,8 +99,12 @@ def episode_frames(params: SimParams, seed: int, policy: str | Policy = "rules",
             if first[name] is None and bool(getattr(state, name)[0]):
                 first[name] = len(frames) - 1
     outcome = EpisodeOutcome(
-        num_steps=len(frames) - 1, collided=bool(state.collided[0]), offroad=bool(state.offroad[0]),
-        reached_goal=bool(state.reached_goal[0]), collided_at=first["collided"], offroad_at=first["offroad"],
+        num_steps=len(frames) - 1,
+        collided=bool(state.collided[0]),
+        offroad=bool(state.offroad[0]),
+        reached_goal=bool(state.reached_goal[0]),
+        collided_at=first["collided"],
+        offroad_at=first["offroad"],
         goal_at=first["reached_goal"],
     )
     return np.stack(frames), outcome
@@ -122,15 +127,27 @@ def _frame_title(prefix: str | None, t: int, params: SimParams, ego_row: np.ndar
 
 
 def _events_text(t: int, collided_at: int | None, offroad_at: int | None, goal_at: int | None) -> str:
-    words = [w for at, w in ((collided_at, "collision"), (offroad_at, "off the road"), (goal_at, "goal reached"))
-             if at is not None and t >= at]
+    words = [
+        w
+        for at, w in ((collided_at, "collision"), (offroad_at, "off the road"), (goal_at, "goal reached"))
+        if at is not None and t >= at
+    ]
     return ("   — " + ", ".join(words)) if words else ""
 
 
-def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Path, *, fps: float = 10.0,
-                           collided_at: int | None = None, offroad_at: int | None = None,
-                           goal_at: int | None = None, title: str | None = None, width_px: int = 1000,
-                           frame_steps: np.ndarray | None = None) -> Path:
+def save_episode_animation(
+    frames: np.ndarray,
+    params: SimParams,
+    path: str | Path,
+    *,
+    fps: float = 10.0,
+    collided_at: int | None = None,
+    offroad_at: int | None = None,
+    goal_at: int | None = None,
+    title: str | None = None,
+    width_px: int = 1000,
+    frame_steps: np.ndarray | None = None,
+) -> Path:
     """Write an animation of an episode: a GIF (through pillow), or an MP4 if ``path`` ends in ``.mp4`` and the
     ``ffmpeg`` program is on PATH.
 
@@ -157,8 +174,10 @@ def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Pa
         raise ConfigError(f"fps must be a positive number of frames per second, got {fps!r}")
     ffmpeg = shutil.which("ffmpeg") if suffix == ".mp4" else None
     if suffix == ".mp4" and ffmpeg is None:
-        raise ConfigError(f"{path}: writing .mp4 needs the ffmpeg program on PATH, which was not found; "
-                          "install ffmpeg or write a .gif")
+        raise ConfigError(
+            f"{path}: writing .mp4 needs the ffmpeg program on PATH, which was not found; "
+            "install ffmpeg or write a .gif"
+        )
     frames = _check_frames(frames)
     steps = np.arange(len(frames)) if frame_steps is None else np.asarray(frame_steps, dtype=np.int64)
     if steps.shape != (len(frames),):
@@ -177,13 +196,16 @@ def save_episode_animation(frames: np.ndarray, params: SimParams, path: str | Pa
 def _gif_bytes(images: list[np.ndarray], fps: float) -> bytes:
     from PIL import Image
 
-    pics = [Image.fromarray(im).quantize(colors=96, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
-            for im in images]
+    pics = [
+        Image.fromarray(im).quantize(colors=96, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+        for im in images
+    ]
     frame_ms = max(int(round(1000.0 / fps)), 10)  # GIF delays count in hundredths of a second
     durations = [frame_ms] * (len(pics) - 1) + [max(frame_ms, GIF_END_PAUSE_MS)]
     buf = io.BytesIO()
-    pics[0].save(buf, format="GIF", save_all=True, append_images=pics[1:], duration=durations, loop=0,
-                 optimize=False, disposal=1)
+    pics[0].save(
+        buf, format="GIF", save_all=True, append_images=pics[1:], duration=durations, loop=0, optimize=False, disposal=1
+    )
     return buf.getvalue()
 
 
@@ -191,8 +213,29 @@ def _mp4_bytes(images: list[np.ndarray], fps: float, ffmpeg: str, path: Path) ->
     h, w, _ = images[0].shape
     with tempfile.TemporaryDirectory(prefix="wmplan-mp4-") as work:
         tmp = Path(work) / "episode.mp4"
-        cmd = [ffmpeg, "-y", "-loglevel", "error", "-f", "rawvideo", "-pix_fmt", "rgb24", "-s", f"{w}x{h}",
-               "-r", f"{fps:g}", "-i", "-", "-c:v", "libx264", "-pix_fmt", "yuv420p", "-f", "mp4", str(tmp)]
+        cmd = [
+            ffmpeg,
+            "-y",
+            "-loglevel",
+            "error",
+            "-f",
+            "rawvideo",
+            "-pix_fmt",
+            "rgb24",
+            "-s",
+            f"{w}x{h}",
+            "-r",
+            f"{fps:g}",
+            "-i",
+            "-",
+            "-c:v",
+            "libx264",
+            "-pix_fmt",
+            "yuv420p",
+            "-f",
+            "mp4",
+            str(tmp),
+        ]
         proc = subprocess.run(cmd, input=b"".join(im.tobytes() for im in images), capture_output=True, check=False)
         if proc.returncode != 0:
             last = (proc.stderr.decode(errors="replace").strip().splitlines() or ["no message"])[-1]
@@ -200,8 +243,9 @@ def _mp4_bytes(images: list[np.ndarray], fps: float, ffmpeg: str, path: Path) ->
         return tmp.read_bytes()
 
 
-def render_to_file(scenario_name_or_path: str | Path, out_path: str | Path, *, seed: int = 0,
-                   step: int | None = None) -> Path:
+def render_to_file(
+    scenario_name_or_path: str | Path, out_path: str | Path, *, seed: int = 0, step: int | None = None
+) -> Path:
     """Draw one episode of a scenario, driven by the rule-based ego, into a file chosen by its suffix.
 
     * ``.png``: one moment, simulator step ``step`` (default: the middle of the episode).
@@ -223,8 +267,10 @@ def render_to_file(scenario_name_or_path: str | Path, out_path: str | Path, *, s
     out = Path(out_path)
     suffix = out.suffix.lower()
     if suffix not in PICTURE_SUFFIXES + ANIMATION_SUFFIXES:
-        raise ConfigError(f"{out}: unsupported output suffix {suffix or '(none)'!r}; use .png for one moment, "
-                          ".gif or .mp4 for the whole episode")
+        raise ConfigError(
+            f"{out}: unsupported output suffix {suffix or '(none)'!r}; use .png for one moment, "
+            ".gif or .mp4 for the whole episode"
+        )
     if step is not None and (isinstance(step, bool) or not isinstance(step, (int, np.integer)) or step < 0):
         raise ConfigError(f"step must be an integer >= 0, got {step!r}")
     scn = load_scenario(scenario_name_or_path)
@@ -232,15 +278,29 @@ def render_to_file(scenario_name_or_path: str | Path, out_path: str | Path, *, s
     frames, oc = episode_frames(params, seed)
     last = len(frames) - 1
     if step is not None and step > last:
-        why = "its duration" if last == params.num_steps else "its end (the ego " + (
-            "collided" if oc.collided else "left the road" if oc.offroad else "reached its goal") + ")"
-        raise ConfigError(f"step {step} is beyond this episode, which has steps 0..{last} ({why}); "
-                          f"choose a step <= {last}")
+        why = (
+            "its duration"
+            if last == params.num_steps
+            else "its end (the ego "
+            + ("collided" if oc.collided else "left the road" if oc.offroad else "reached its goal")
+            + ")"
+        )
+        raise ConfigError(
+            f"step {step} is beyond this episode, which has steps 0..{last} ({why}); choose a step <= {last}"
+        )
     label = f"{scn.name}   seed {seed}"
     if suffix in ANIMATION_SUFFIXES:
         end = last if step is None else int(step)
-        return save_episode_animation(frames[: end + 1], params, out, fps=1.0 / params.dt_s, collided_at=oc.collided_at,
-                                      offroad_at=oc.offroad_at, goal_at=oc.goal_at, title=label)
+        return save_episode_animation(
+            frames[: end + 1],
+            params,
+            out,
+            fps=1.0 / params.dt_s,
+            collided_at=oc.collided_at,
+            offroad_at=oc.offroad_at,
+            goal_at=oc.goal_at,
+            title=label,
+        )
     t = last // 2 if step is None else int(step)
     text = _frame_title(label, t, params, frames[t, EGO], _events_text(t, oc.collided_at, oc.offroad_at, oc.goal_at))
     fig = scene_figure(frames[t], params, title=text, collided=oc.collided_at is not None and t >= oc.collided_at)
@@ -250,8 +310,9 @@ def render_to_file(scenario_name_or_path: str | Path, out_path: str | Path, *, s
     return out
 
 
-def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path, *,
-                    options: dict | None = None) -> Path:
+def animate_failure(
+    scenario_file: Path, seed: int, planner: str, out_file: Path, *, options: dict | None = None
+) -> Path:
     """Replay one episode (a saved failure) with its planner through the closed loop and draw it as an animation.
 
     Args:
@@ -268,6 +329,13 @@ def animate_failure(scenario_file: Path, seed: int, planner: str, out_file: Path
     params = SimParams.from_scenario(scn)
     keep = np.unique(np.r_[np.arange(0, len(frames), 2), len(frames) - 1])  # every other step, and the last one
     last = len(keep) - 1
-    return save_episode_animation(frames[keep], params, out_file, fps=5.0, frame_steps=keep,
-                                  collided_at=last if row["collision"] else None,
-                                  offroad_at=last if row["offroad"] else None, title=f"{planner}, seed {seed}")
+    return save_episode_animation(
+        frames[keep],
+        params,
+        out_file,
+        fps=5.0,
+        frame_steps=keep,
+        collided_at=last if row["collision"] else None,
+        offroad_at=last if row["offroad"] else None,
+        title=f"{planner}, seed {seed}",
+    )

@@ -52,8 +52,9 @@ def _rows(arr: object, name: str, ndim: int, what: str) -> np.ndarray:
     """``arr`` as float64 with ``ndim`` axes and 8 features last, or a one-line ConfigError."""
     a = np.asarray(arr, dtype=np.float64)
     if a.ndim != ndim or a.shape[-1] != NUM_VEHICLE_FEATURES or 0 in a.shape:
-        raise ConfigError(f"{name} must have shape {what} with F = {NUM_VEHICLE_FEATURES} features and no empty axis, "
-                          f"got {a.shape}")
+        raise ConfigError(
+            f"{name} must have shape {what} with F = {NUM_VEHICLE_FEATURES} features and no empty axis, got {a.shape}"
+        )
     return a
 
 
@@ -65,8 +66,10 @@ def _valid(rows: np.ndarray) -> np.ndarray:
 def _pose(anchor_pose: object) -> tuple[float, float, float]:
     p = np.asarray(anchor_pose, dtype=np.float64).ravel()
     if p.shape != (3,) or not np.isfinite(p).all():
-        raise ConfigError(f"anchor_pose must be three finite numbers (x_m, y_m, heading_rad) of the ego in the world "
-                          f"at the decision, got {np.asarray(anchor_pose).tolist()!r}")
+        raise ConfigError(
+            f"anchor_pose must be three finite numbers (x_m, y_m, heading_rad) of the ego in the world "
+            f"at the decision, got {np.asarray(anchor_pose).tolist()!r}"
+        )
     return float(p[0]), float(p[1]), float(p[2])
 
 
@@ -99,23 +102,42 @@ def draw_road_anchor(ax: Axes, params: SimParams, anchor_pose: object, x_range_m
         if b > a:
             quads.append([[a, i * w], [b, i * w], [b, (i + 1) * w], [a, (i + 1) * w]])
     if quads:
-        ax.add_collection(PolyCollection(_to_anchor(np.asarray(quads), pose), facecolors=style.ROAD_COLOUR,
-                                         edgecolors="none", zorder=0.5))
+        ax.add_collection(
+            PolyCollection(
+                _to_anchor(np.asarray(quads), pose), facecolors=style.ROAD_COLOUR, edgecolors="none", zorder=0.5
+            )
+        )
     dashed, solid = road_markings(params)
     if solid.size:
         seg = _to_anchor(solid, pose)
-        ax.add_collection(LineCollection(seg, colors=style.ROAD_OUTLINE_COLOUR, linewidths=style.EDGE_WIDTH_PT + 1.4,
-                                         capstyle="butt", zorder=1.0))
-        ax.add_collection(LineCollection(seg, colors=style.MARKING_COLOUR, linewidths=style.EDGE_WIDTH_PT,
-                                         capstyle="butt", zorder=1.1))
+        ax.add_collection(
+            LineCollection(
+                seg, colors=style.ROAD_OUTLINE_COLOUR, linewidths=style.EDGE_WIDTH_PT + 1.4, capstyle="butt", zorder=1.0
+            )
+        )
+        ax.add_collection(
+            LineCollection(
+                seg, colors=style.MARKING_COLOUR, linewidths=style.EDGE_WIDTH_PT, capstyle="butt", zorder=1.1
+            )
+        )
     dashes = dash_segments(dashed, lo, hi)
     if dashes.size:
-        ax.add_collection(LineCollection(_to_anchor(dashes, pose), colors=style.MARKING_COLOUR,
-                                         linewidths=style.MARKING_WIDTH_PT, capstyle="butt", zorder=1.2))
+        ax.add_collection(
+            LineCollection(
+                _to_anchor(dashes, pose),
+                colors=style.MARKING_COLOUR,
+                linewidths=style.MARKING_WIDTH_PT,
+                capstyle="butt",
+                zorder=1.2,
+            )
+        )
     goal = goal_segments(params)
     if goal.size:
-        ax.add_collection(LineCollection(_to_anchor(goal, pose), colors=style.GOAL_COLOUR, linewidths=1.2,
-                                         linestyles=(0, (2.0, 1.5)), zorder=1.3))
+        ax.add_collection(
+            LineCollection(
+                _to_anchor(goal, pose), colors=style.GOAL_COLOUR, linewidths=1.2, linestyles=(0, (2.0, 1.5)), zorder=1.3
+            )
+        )
 
 
 def draw_vehicles(ax: Axes, rows: np.ndarray, *, zorder: float = 4.0) -> None:
@@ -126,13 +148,29 @@ def draw_vehicles(ax: Axes, rows: np.ndarray, *, zorder: float = 4.0) -> None:
         return
     polys, marks = vehicle_polygons(rows[idx])
     ego = idx == 0
-    for sel, face, edge in ((~ego, style.TRAFFIC_COLOUR, style.TRAFFIC_EDGE_COLOUR),
-                            (ego, style.EGO_COLOUR, style.EGO_EDGE_COLOUR)):
+    for sel, face, edge in (
+        (~ego, style.TRAFFIC_COLOUR, style.TRAFFIC_EDGE_COLOUR),
+        (ego, style.EGO_COLOUR, style.EGO_EDGE_COLOUR),
+    ):
         if sel.any():
-            ax.add_collection(PolyCollection(polys[sel], facecolors=face, edgecolors=edge, linewidths=0.7,
-                                             zorder=zorder + (0.2 if face == style.EGO_COLOUR else 0.0)))
-            ax.add_collection(PolyCollection(marks[sel], facecolors=style.HEADING_MARK_COLOUR, edgecolors="none",
-                                             alpha=style.HEADING_MARK_ALPHA, zorder=zorder + 0.3))
+            ax.add_collection(
+                PolyCollection(
+                    polys[sel],
+                    facecolors=face,
+                    edgecolors=edge,
+                    linewidths=0.7,
+                    zorder=zorder + (0.2 if face == style.EGO_COLOUR else 0.0),
+                )
+            )
+            ax.add_collection(
+                PolyCollection(
+                    marks[sel],
+                    facecolors=style.HEADING_MARK_COLOUR,
+                    edgecolors="none",
+                    alpha=style.HEADING_MARK_ALPHA,
+                    zorder=zorder + 0.3,
+                )
+            )
 
 
 def _tracks(start: np.ndarray, rows: np.ndarray) -> np.ndarray:
@@ -147,8 +185,16 @@ def _tracks(start: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return lines[:, :, 1:].transpose(0, 2, 1, 3).reshape(k * (n - 1), h + 1, 2)
 
 
-def _add_fan(ax: Axes, start: np.ndarray, rows: np.ndarray, colour: str, alpha: float, zorder: float,
-             width: float = FUTURE_LINE_PT, linestyle: object = "solid") -> int:
+def _add_fan(
+    ax: Axes,
+    start: np.ndarray,
+    rows: np.ndarray,
+    colour: str,
+    alpha: float,
+    zorder: float,
+    width: float = FUTURE_LINE_PT,
+    linestyle: object = "solid",
+) -> int:
     """Draw K futures of objects 1..N-1 as lines from their current position, and their end points; returns the
     number of lines drawn."""
     if rows.shape[2] < 2:
@@ -158,12 +204,30 @@ def _add_fan(ax: Axes, start: np.ndarray, rows: np.ndarray, colour: str, alpha: 
     lines = lines[keep]
     if len(lines) == 0:
         return 0
-    ax.add_collection(LineCollection(list(lines), colors=colour, alpha=alpha, linewidths=width, zorder=zorder,
-                                     linestyles=linestyle, capstyle="round", joinstyle="round"))
+    ax.add_collection(
+        LineCollection(
+            list(lines),
+            colors=colour,
+            alpha=alpha,
+            linewidths=width,
+            zorder=zorder,
+            linestyles=linestyle,
+            capstyle="round",
+            joinstyle="round",
+        )
+    )
     ends = rows[:, -1, 1:][_valid(rows[:, -1, 1:])]
     if len(ends):
-        ax.plot(ends[:, F_X], ends[:, F_Y], linestyle="none", marker="o", markersize=2.2, color=colour,
-                alpha=min(1.0, 2.0 * alpha), zorder=zorder + 0.05)
+        ax.plot(
+            ends[:, F_X],
+            ends[:, F_Y],
+            linestyle="none",
+            marker="o",
+            markersize=2.2,
+            color=colour,
+            alpha=min(1.0, 2.0 * alpha),
+            zorder=zorder + 0.05,
+        )
     return len(lines)
 
 
@@ -179,8 +243,18 @@ def future_collisions(rows: np.ndarray, ego_length_m: float, ego_width_m: float)
         future with a collision (separating-axis overlap test of :func:`wmplan.sim.collision.boxes_overlap`).
     """
     ego, oth = rows[:, :, :1], rows[:, :, 1:]
-    hit = boxes_overlap(ego[..., F_X], ego[..., F_Y], ego_length_m, ego_width_m, ego[..., F_HEADING],
-                        oth[..., F_X], oth[..., F_Y], oth[..., F_LENGTH], oth[..., F_WIDTH], oth[..., F_HEADING])
+    hit = boxes_overlap(
+        ego[..., F_X],
+        ego[..., F_Y],
+        ego_length_m,
+        ego_width_m,
+        ego[..., F_HEADING],
+        oth[..., F_X],
+        oth[..., F_Y],
+        oth[..., F_LENGTH],
+        oth[..., F_WIDTH],
+        oth[..., F_HEADING],
+    )
     hit &= _valid(oth) & _valid(ego)  # (K, H, N-1)
     any_step = hit.any(axis=2)  # (K, H)
     k_idx = np.nonzero(any_step.any(axis=1))[0]
@@ -195,10 +269,17 @@ def future_collisions(rows: np.ndarray, ego_length_m: float, ego_width_m: float)
 
 def _mark_collisions(ax: Axes, points: np.ndarray) -> None:
     if len(points):
-        ax.plot(points[:, 0], points[:, 1], linestyle="none", marker="x", color=style.COLLISION_COLOUR,
-                markersize=0.6 * style.COLLISION_MARKER_SIZE_PT, markeredgewidth=0.7 * style.COLLISION_MARKER_WIDTH_PT,
-                zorder=6.0, path_effects=[withStroke(linewidth=style.COLLISION_MARKER_WIDTH_PT + 1.5,
-                                                     foreground="white")])
+        ax.plot(
+            points[:, 0],
+            points[:, 1],
+            linestyle="none",
+            marker="x",
+            color=style.COLLISION_COLOUR,
+            markersize=0.6 * style.COLLISION_MARKER_SIZE_PT,
+            markeredgewidth=0.7 * style.COLLISION_MARKER_WIDTH_PT,
+            zorder=6.0,
+            path_effects=[withStroke(linewidth=style.COLLISION_MARKER_WIDTH_PT + 1.5, foreground="white")],
+        )
 
 
 def _extent(*arrays: np.ndarray | None) -> tuple[float, float, float, float]:
@@ -217,8 +298,13 @@ def _extent(*arrays: np.ndarray | None) -> tuple[float, float, float, float]:
     return float(x.min()), float(x.max()), float(y.min()), float(y.max())
 
 
-def _view(extent: tuple[float, float, float, float], ego_end_x_m: float, params: SimParams | None,
-          anchor_pose: object | None, x_range_m: tuple[float, float] | None) -> tuple[float, float, float, float]:
+def _view(
+    extent: tuple[float, float, float, float],
+    ego_end_x_m: float,
+    params: SimParams | None,
+    anchor_pose: object | None,
+    x_range_m: tuple[float, float] | None,
+) -> tuple[float, float, float, float]:
     """(x_lo, x_hi, y_lo, y_hi) to show, anchor frame.
 
     Default x range: everything drawn plus a margin, but no more than ``VIEW_BEHIND_M`` behind the ego and
@@ -235,16 +321,23 @@ def _view(extent: tuple[float, float, float, float], ego_end_x_m: float, params:
     y_lo, y_hi = y_lo - 2.5, y_hi + 2.5
     if params is not None:
         if anchor_pose is None:
-            raise ConfigError("params was given without anchor_pose; pass the ego's world (x_m, y_m, heading_rad) at "
-                              "the decision to draw the road in the anchor frame, or leave params out")
+            raise ConfigError(
+                "params was given without anchor_pose; pass the ego's world (x_m, y_m, heading_rad) at "
+                "the decision to draw the road in the anchor frame, or leave params out"
+            )
         pose = _pose(anchor_pose)
         road_y = _to_anchor(np.array([[pose[0], 0.0], [pose[0], params.road_width_m]]), pose)[:, 1]
         y_lo, y_hi = float(road_y.min()) - 1.5, float(road_y.max()) + 1.5
     return x_lo, x_hi, y_lo, y_hi
 
 
-def _frame_axes(ax: Axes, view: tuple[float, float, float, float], params: SimParams | None,
-                anchor_pose: object | None, box_ratio: float) -> None:
+def _frame_axes(
+    ax: Axes,
+    view: tuple[float, float, float, float],
+    params: SimParams | None,
+    anchor_pose: object | None,
+    box_ratio: float,
+) -> None:
     """Limits, road, labels and equal aspect of an anchor-frame plot.
 
     ``box_ratio`` is the axes' height over its width; the shorter side of ``view`` grows about its centre so that
@@ -281,11 +374,20 @@ def _map_height_in(view: tuple[float, float, float, float], axes_w_in: float) ->
 # --- fans of futures ----------------------------------------------------------------------------------------------
 
 
-def futures_figure(history: np.ndarray, model_rows: np.ndarray, oracle_rows: np.ndarray | None = None,
-                   params: SimParams | None = None, *, deterministic_rows: np.ndarray | None = None,
-                   anchor_pose: object | None = None, x_range_m: tuple[float, float] | None = None,
-                   title: str | None = None, model_label: str = "learned model", width_in: float = 11.0,
-                   dpi: float = 110.0) -> Figure:
+def futures_figure(
+    history: np.ndarray,
+    model_rows: np.ndarray,
+    oracle_rows: np.ndarray | None = None,
+    params: SimParams | None = None,
+    *,
+    deterministic_rows: np.ndarray | None = None,
+    anchor_pose: object | None = None,
+    x_range_m: tuple[float, float] | None = None,
+    title: str | None = None,
+    model_label: str = "learned model",
+    width_in: float = 11.0,
+    dpi: float = 110.0,
+) -> Figure:
     """Fans of the futures a learned model samples, against the oracle's and the least-squares prediction.
 
     Args:
@@ -310,8 +412,10 @@ def futures_figure(history: np.ndarray, model_rows: np.ndarray, oracle_rows: np.
     model = _rows(model_rows, "model_rows", 4, "(K, H, N, 8)")
     n = hist.shape[1]
     if model.shape[2] != n:
-        raise ConfigError(f"model_rows has {model.shape[2]} object rows but history has {n}; both must hold the same "
-                          "objects (row 0 the ego)")
+        raise ConfigError(
+            f"model_rows has {model.shape[2]} object rows but history has {n}; both must hold the same "
+            "objects (row 0 the ego)"
+        )
     oracle = None if oracle_rows is None else _rows(oracle_rows, "oracle_rows", 4, "(K, H, N, 8)")
     det = None if deterministic_rows is None else _rows(deterministic_rows, "deterministic_rows", 3, "(H, N, 8)")
     for name, arr in (("oracle_rows", oracle), ("deterministic_rows", det)):
@@ -326,52 +430,108 @@ def futures_figure(history: np.ndarray, model_rows: np.ndarray, oracle_rows: np.
     height_in = _TOP_IN + axes_h + _XLABEL_IN + legend_in
     fig = Figure(figsize=(width_in, height_in), dpi=dpi, facecolor="white")
     FigureCanvasAgg(fig)
-    ax = fig.add_axes((_LEFT_IN / width_in, (_XLABEL_IN + legend_in) / height_in, axes_w / width_in,
-                       axes_h / height_in))
+    ax = fig.add_axes(
+        (_LEFT_IN / width_in, (_XLABEL_IN + legend_in) / height_in, axes_w / width_in, axes_h / height_in)
+    )
     _frame_axes(ax, view, params, anchor_pose, axes_h / axes_w)
 
     # past tracks of everyone, thin
     past = np.where(_valid(hist)[..., None], hist[..., [F_X, F_Y]], np.nan).transpose(1, 0, 2)  # (N, W, 2)
-    ax.add_collection(LineCollection(list(past[1:]), colors=style.TRAFFIC_COLOUR, linewidths=0.8, alpha=0.7,
-                                     zorder=2.0))
+    ax.add_collection(
+        LineCollection(list(past[1:]), colors=style.TRAFFIC_COLOUR, linewidths=0.8, alpha=0.7, zorder=2.0)
+    )
     ax.add_collection(LineCollection([past[0]], colors=style.EGO_COLOUR, linewidths=0.8, alpha=0.8, zorder=2.0))
 
     handles = []
     count = _add_fan(ax, now, model, style.SAMPLED_FUTURE_COLOUR, style.SAMPLED_FUTURE_ALPHA, 3.0)
-    handles.append(Line2D([], [], color=style.SAMPLED_FUTURE_COLOUR, alpha=0.7, lw=1.6,
-                          label=f"{model_label}: {model.shape[0]} sampled futures"))
+    handles.append(
+        Line2D(
+            [],
+            [],
+            color=style.SAMPLED_FUTURE_COLOUR,
+            alpha=0.7,
+            lw=1.6,
+            label=f"{model_label}: {model.shape[0]} sampled futures",
+        )
+    )
     if oracle is not None:
         _add_fan(ax, now, oracle, style.ORACLE_FUTURE_COLOUR, style.ORACLE_FUTURE_ALPHA, 3.1)
-        handles.append(Line2D([], [], color=style.ORACLE_FUTURE_COLOUR, alpha=0.8, lw=1.6,
-                              label=f"oracle (true simulator): {oracle.shape[0]} futures"))
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color=style.ORACLE_FUTURE_COLOUR,
+                alpha=0.8,
+                lw=1.6,
+                label=f"oracle (true simulator): {oracle.shape[0]} futures",
+            )
+        )
     if det is not None:
         _add_fan(ax, now, det[None], style.DETERMINISTIC_COLOUR, 0.95, 3.4, width=1.3, linestyle=(0, (4.0, 2.0)))
-        handles.append(Line2D([], [], color=style.DETERMINISTIC_COLOUR, lw=1.3, linestyle=(0, (4.0, 2.0)),
-                              label="least-squares model (one blurred prediction)"))
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color=style.DETERMINISTIC_COLOUR,
+                lw=1.3,
+                linestyle=(0, (4.0, 2.0)),
+                label="least-squares model (one blurred prediction)",
+            )
+        )
     # the ego's own path over the horizon (the same in every future of one plan)
     ego_path = np.concatenate([now[:1, [F_X, F_Y]], model[0, :, 0][:, [F_X, F_Y]]])  # (1 + H, 2)
     if _valid(model[0, :, 0]).all():
-        ax.plot(ego_path[:, 0], ego_path[:, 1], color=style.EGO_PLAN_COLOUR, lw=1.6, linestyle=(0, (3.0, 1.5)),
-                zorder=3.5, path_effects=[withStroke(linewidth=3.0, foreground="white")])
-        handles.append(Line2D([], [], color=style.EGO_PLAN_COLOUR, lw=1.6, linestyle=(0, (3.0, 1.5)),
-                              label="ego: planned path"))
+        ax.plot(
+            ego_path[:, 0],
+            ego_path[:, 1],
+            color=style.EGO_PLAN_COLOUR,
+            lw=1.6,
+            linestyle=(0, (3.0, 1.5)),
+            zorder=3.5,
+            path_effects=[withStroke(linewidth=3.0, foreground="white")],
+        )
+        handles.append(
+            Line2D([], [], color=style.EGO_PLAN_COLOUR, lw=1.6, linestyle=(0, (3.0, 1.5)), label="ego: planned path")
+        )
     draw_vehicles(ax, now)
     ego_len, ego_wid = float(now[0, F_LENGTH]), float(now[0, F_WIDTH])
     hits = [future_collisions(a, ego_len, ego_wid) for a in (model, oracle) if a is not None]
     points = np.concatenate(hits) if hits else np.zeros((0, 2))
     _mark_collisions(ax, points)
     handles.append(Patch(facecolor=style.EGO_COLOUR, edgecolor=style.EGO_EDGE_COLOUR, label="ego now"))
-    handles.append(Patch(facecolor=style.TRAFFIC_COLOUR, edgecolor=style.TRAFFIC_EDGE_COLOUR,
-                         label="other vehicles now"))
+    handles.append(
+        Patch(facecolor=style.TRAFFIC_COLOUR, edgecolor=style.TRAFFIC_EDGE_COLOUR, label="other vehicles now")
+    )
     if len(points):
-        handles.append(Line2D([], [], color=style.COLLISION_COLOUR, marker="x", linestyle="none", markersize=7,
-                              markeredgewidth=2.0, label="contact in a future"))
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color=style.COLLISION_COLOUR,
+                marker="x",
+                linestyle="none",
+                markersize=7,
+                markeredgewidth=2.0,
+                label="contact in a future",
+            )
+        )
     horizon_steps = model.shape[1]
-    ax.set_title(title or f"Futures over the next {horizon_steps} steps: {count} sampled tracks of "
-                          f"{int(_valid(now[1:]).sum())} vehicles", fontsize=style.FONT_SIZE_PT + 1,
-                 color=style.TEXT_COLOUR, loc="left")
-    fig.legend(handles=handles, loc="lower center", bbox_to_anchor=(0.5, 0.0), ncol=(len(handles) + 1) // 2,
-               fontsize=style.FONT_SIZE_PT - 0.5, frameon=False)
+    ax.set_title(
+        title
+        or f"Futures over the next {horizon_steps} steps: {count} sampled tracks of "
+        f"{int(_valid(now[1:]).sum())} vehicles",
+        fontsize=style.FONT_SIZE_PT + 1,
+        color=style.TEXT_COLOUR,
+        loc="left",
+    )
+    fig.legend(
+        handles=handles,
+        loc="lower center",
+        bbox_to_anchor=(0.5, 0.0),
+        ncol=(len(handles) + 1) // 2,
+        fontsize=style.FONT_SIZE_PT - 0.5,
+        frameon=False,
+    )
     return fig
 
 
@@ -381,16 +541,27 @@ def futures_figure(history: np.ndarray, model_rows: np.ndarray, oracle_rows: np.
 def _paths(ego_paths: object) -> np.ndarray:
     a = np.asarray(ego_paths, dtype=np.float64)
     if a.ndim != 3 or a.shape[-1] < 2 or 0 in a.shape:
-        raise ConfigError(f"ego_paths must have shape (C, H, D) with D >= 2 (columns x_m, y_m first, anchor frame), "
-                          f"got {a.shape}")
+        raise ConfigError(
+            f"ego_paths must have shape (C, H, D) with D >= 2 (columns x_m, y_m first, anchor frame), got {a.shape}"
+        )
     return a
 
 
-def candidates_figure(ego_paths: object, costs: object, p_collision: object, chosen: int,
-                      futures: np.ndarray | None = None, *, current: np.ndarray | None = None,
-                      params: SimParams | None = None, anchor_pose: object | None = None,
-                      x_range_m: tuple[float, float] | None = None, title: str | None = None,
-                      width_in: float = 11.0, dpi: float = 110.0) -> Figure:
+def candidates_figure(
+    ego_paths: object,
+    costs: object,
+    p_collision: object,
+    chosen: int,
+    futures: np.ndarray | None = None,
+    *,
+    current: np.ndarray | None = None,
+    params: SimParams | None = None,
+    anchor_pose: object | None = None,
+    x_range_m: tuple[float, float] | None = None,
+    title: str | None = None,
+    width_in: float = 11.0,
+    dpi: float = 110.0,
+) -> Figure:
     """The candidate plans of one decision, coloured by their predicted collision probability.
 
     Args:
@@ -417,8 +588,9 @@ def candidates_figure(ego_paths: object, costs: object, p_collision: object, cho
     cost = np.asarray(costs, dtype=np.float64).ravel()
     risk = np.asarray(p_collision, dtype=np.float64).ravel()
     if cost.shape != (c,) or risk.shape != (c,):
-        raise ConfigError(f"costs and p_collision must hold one value per candidate ({c}), got {cost.shape} and "
-                          f"{risk.shape}")
+        raise ConfigError(
+            f"costs and p_collision must hold one value per candidate ({c}), got {cost.shape} and {risk.shape}"
+        )
     if not (np.isfinite(risk).all() and (risk >= 0).all() and (risk <= 1).all()):
         raise ConfigError("p_collision must lie in [0, 1] for every candidate (no NaN)")
     if not np.isfinite(cost).all() or not np.isfinite(paths[..., :2]).all():
@@ -448,10 +620,17 @@ def candidates_figure(ego_paths: object, costs: object, p_collision: object, cho
     height_in = _TOP_IN + map_h + gap_in + cost_h + _XLABEL_IN
     fig = Figure(figsize=(width_in, height_in), dpi=dpi, facecolor="white")
     FigureCanvasAgg(fig)
-    ax_map = fig.add_axes((_LEFT_IN / width_in, (_XLABEL_IN + cost_h + gap_in) / height_in, axes_w / width_in,
-                           map_h / height_in))
-    ax_bar = fig.add_axes(((_LEFT_IN + axes_w + 0.15) / width_in, (_XLABEL_IN + cost_h + gap_in) / height_in,
-                           0.14 / width_in, map_h / height_in))
+    ax_map = fig.add_axes(
+        (_LEFT_IN / width_in, (_XLABEL_IN + cost_h + gap_in) / height_in, axes_w / width_in, map_h / height_in)
+    )
+    ax_bar = fig.add_axes(
+        (
+            (_LEFT_IN + axes_w + 0.15) / width_in,
+            (_XLABEL_IN + cost_h + gap_in) / height_in,
+            0.14 / width_in,
+            map_h / height_in,
+        )
+    )
     ax_cost = fig.add_axes((_LEFT_IN / width_in, _XLABEL_IN / height_in, axes_w / width_in, cost_h / height_in))
     _frame_axes(ax_map, view, params, anchor_pose, map_h / axes_w)
     norm = Normalize(0.0, 1.0)
@@ -459,23 +638,47 @@ def candidates_figure(ego_paths: object, costs: object, p_collision: object, cho
     start = np.zeros((c, 1, 2))
     lines = np.concatenate([start, xy], axis=1)  # every path starts at the ego's position now
     order = np.argsort(risk, kind="stable")  # riskiest drawn last, on top
-    path_lines = LineCollection(list(lines[order]), cmap=RISK_CMAP, norm=norm, array=risk[order], linewidths=1.1,
-                                alpha=0.85, zorder=3.0)
+    path_lines = LineCollection(
+        list(lines[order]), cmap=RISK_CMAP, norm=norm, array=risk[order], linewidths=1.1, alpha=0.85, zorder=3.0
+    )
     ax_map.add_collection(path_lines)
     handles = []
     if fut is not None:
         start_rows = now if now is not None else fut[0, 0]
         _add_fan(ax_map, start_rows, fut, style.SAMPLED_FUTURE_COLOUR, style.SAMPLED_FUTURE_ALPHA, 2.8)
-        handles.append(Line2D([], [], color=style.SAMPLED_FUTURE_COLOUR, alpha=0.7, lw=1.6,
-                              label=f"{fut.shape[0]} predicted futures under the chosen plan"))
+        handles.append(
+            Line2D(
+                [],
+                [],
+                color=style.SAMPLED_FUTURE_COLOUR,
+                alpha=0.7,
+                lw=1.6,
+                label=f"{fut.shape[0]} predicted futures under the chosen plan",
+            )
+        )
         ego_dims = (now if now is not None else fut[0, 0])[0]
         _mark_collisions(ax_map, future_collisions(fut, float(ego_dims[F_LENGTH]), float(ego_dims[F_WIDTH])))
     best = lines[chosen]
     outline = [Stroke(linewidth=3.6, foreground="black"), Normal()]
-    ax_map.plot(best[:, 0], best[:, 1], color=RISK_CMAP(norm(risk[chosen])), lw=1.8, zorder=3.5,
-                path_effects=outline, gid="chosen-plan")
-    handles.append(Line2D([], [], color=RISK_CMAP(norm(risk[chosen])), lw=1.8, path_effects=outline,
-                          label=f"chosen plan (P(collision) {risk[chosen]:.2f}, cost {cost[chosen]:.3g})"))
+    ax_map.plot(
+        best[:, 0],
+        best[:, 1],
+        color=RISK_CMAP(norm(risk[chosen])),
+        lw=1.8,
+        zorder=3.5,
+        path_effects=outline,
+        gid="chosen-plan",
+    )
+    handles.append(
+        Line2D(
+            [],
+            [],
+            color=RISK_CMAP(norm(risk[chosen])),
+            lw=1.8,
+            path_effects=outline,
+            label=f"chosen plan (P(collision) {risk[chosen]:.2f}, cost {cost[chosen]:.3g})",
+        )
+    )
     if now is not None:
         draw_vehicles(ax_map, now)
     else:
@@ -483,17 +686,35 @@ def candidates_figure(ego_paths: object, costs: object, p_collision: object, cho
     bar = fig.colorbar(path_lines, cax=ax_bar)
     bar.set_label("P(collision)", fontsize=style.FONT_SIZE_PT)
     bar.ax.tick_params(labelsize=style.FONT_SIZE_PT - 1)
-    fig.legend(handles=handles, loc="upper center", ncol=len(handles), fontsize=style.FONT_SIZE_PT - 0.5,
-               frameon=False, bbox_to_anchor=((_LEFT_IN + 0.5 * axes_w) / width_in,
-                                              (_XLABEL_IN + cost_h + gap_in - 0.42) / height_in))
-    ax_map.set_title(title or f"{c} candidate plans of the ego, coloured by predicted collision probability",
-                     fontsize=style.FONT_SIZE_PT + 1, color=style.TEXT_COLOUR, loc="left")
+    fig.legend(
+        handles=handles,
+        loc="upper center",
+        ncol=len(handles),
+        fontsize=style.FONT_SIZE_PT - 0.5,
+        frameon=False,
+        bbox_to_anchor=((_LEFT_IN + 0.5 * axes_w) / width_in, (_XLABEL_IN + cost_h + gap_in - 0.42) / height_in),
+    )
+    ax_map.set_title(
+        title or f"{c} candidate plans of the ego, coloured by predicted collision probability",
+        fontsize=style.FONT_SIZE_PT + 1,
+        color=style.TEXT_COLOUR,
+        loc="left",
+    )
 
     # cost against risk
-    ax_cost.scatter(risk, cost, c=risk, cmap=RISK_CMAP, norm=norm, s=22, edgecolors="white", linewidths=0.4,
-                    alpha=0.9, zorder=3.0)
-    ax_cost.scatter([risk[chosen]], [cost[chosen]], s=120, facecolors="none", edgecolors="black", linewidths=1.8,
-                    zorder=4.0, label="chosen plan")
+    ax_cost.scatter(
+        risk, cost, c=risk, cmap=RISK_CMAP, norm=norm, s=22, edgecolors="white", linewidths=0.4, alpha=0.9, zorder=3.0
+    )
+    ax_cost.scatter(
+        [risk[chosen]],
+        [cost[chosen]],
+        s=120,
+        facecolors="none",
+        edgecolors="black",
+        linewidths=1.8,
+        zorder=4.0,
+        label="chosen plan",
+    )
     if np.ptp(cost) > 0 and cost.max() > 1e3 and cost.min() < 1e2:  # chance-constraint penalties of infeasible plans
         ax_cost.set_yscale("symlog", linthresh=10.0)
     top = float(min(1.0, max(0.1, np.ceil(11.0 * risk.max()) / 10.0)))  # zoom on the risks that occur
@@ -503,8 +724,12 @@ def candidates_figure(ego_paths: object, costs: object, p_collision: object, cho
     ax_cost.tick_params(labelsize=style.FONT_SIZE_PT - 1)
     ax_cost.grid(alpha=0.3)
     ax_cost.legend(loc="best", fontsize=style.FONT_SIZE_PT - 1)
-    ax_cost.set_title("Cost against predicted collision probability, one point per candidate",
-                      fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, loc="left")
+    ax_cost.set_title(
+        "Cost against predicted collision probability, one point per candidate",
+        fontsize=style.FONT_SIZE_PT,
+        color=style.TEXT_COLOUR,
+        loc="left",
+    )
     return fig
 
 

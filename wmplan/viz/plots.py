@@ -69,32 +69,48 @@ def _colour(i: int) -> str:
 
 def _calibration_sets(bins: object) -> dict[str, dict]:
     """Normalise the accepted inputs to ``{name: {"bins": [...], "brier": float|None, "ece": float|None}}``."""
+
     def one(entry: object, name: str) -> dict:
         if isinstance(entry, Mapping) and "bins" in entry:
-            return {"bins": list(entry["bins"]), "brier": entry.get("brier"), "ece": entry.get("ece"),
-                    "decisions": entry.get("decisions")}
+            return {
+                "bins": list(entry["bins"]),
+                "brier": entry.get("brier"),
+                "ece": entry.get("ece"),
+                "decisions": entry.get("decisions"),
+            }
         if isinstance(entry, Sequence) and not isinstance(entry, (str, bytes)):
             return {"bins": list(entry), "brier": None, "ece": None, "decisions": None}
-        raise ConfigError(f"reliability_figure: {name} must be a list of bins (reliability_bins) or a dict with "
-                          f"'bins' (report.calibration), got {type(entry).__name__}")
+        raise ConfigError(
+            f"reliability_figure: {name} must be a list of bins (reliability_bins) or a dict with "
+            f"'bins' (report.calibration), got {type(entry).__name__}"
+        )
 
     if isinstance(bins, Mapping) and "bins" not in bins:
-        sets = {str(k): one(v, f"bins[{k!r}]") for k, v in bins.items()
-                if not (isinstance(v, Mapping) and "bins" not in v)}  # entries without bins: no decisions
+        sets = {
+            str(k): one(v, f"bins[{k!r}]") for k, v in bins.items() if not (isinstance(v, Mapping) and "bins" not in v)
+        }  # entries without bins: no decisions
     else:
         sets = {"": one(bins, "bins")}
     for name, entry in sets.items():
         for i, b in enumerate(entry["bins"]):
             if not isinstance(b, Mapping) or not {"low", "high", "count"} <= set(b):
-                raise ConfigError(f"reliability_figure: bin {i} of {name or 'bins'} must be a dict with low, high, "
-                                  f"count, mean_pred and freq (as wmplan.evaluate.stats.reliability_bins gives)")
+                raise ConfigError(
+                    f"reliability_figure: bin {i} of {name or 'bins'} must be a dict with low, high, "
+                    f"count, mean_pred and freq (as wmplan.evaluate.stats.reliability_bins gives)"
+                )
     if not sets or not any(e["bins"] for e in sets.values()):
         raise ConfigError("reliability_figure: no bins to draw; pass reliability_bins(...) or a calibration dict")
     return sets
 
 
-def reliability_figure(bins: object, *, title: str | None = None, brier: float | None = None,
-                       ece: float | None = None, width_in: float = 6.4) -> Figure:
+def reliability_figure(
+    bins: object,
+    *,
+    title: str | None = None,
+    brier: float | None = None,
+    ece: float | None = None,
+    width_in: float = 6.4,
+) -> Figure:
     """Reliability diagram of predicted collision probabilities.
 
     Args:
@@ -122,8 +138,15 @@ def reliability_figure(bins: object, *, title: str | None = None, brier: float |
     fig = Figure(figsize=(width_in, width_in * 1.22), layout="constrained", facecolor="white")
     FigureCanvasAgg(fig)
     ax, ax_n = fig.subplots(2, 1, sharex=True, height_ratios=[3.0, 1.1])
-    ax.plot([0, 1], [0, 1], color=style.DIAGONAL_COLOUR, linestyle="--", linewidth=1.0, label="perfectly calibrated",
-            zorder=1.0)
+    ax.plot(
+        [0, 1],
+        [0, 1],
+        color=style.DIAGONAL_COLOUR,
+        linestyle="--",
+        linewidth=1.0,
+        label="perfectly calibrated",
+        zorder=1.0,
+    )
     num_sets = len(sets)
     all_counts = []
     entry_scores: list[str] = []
@@ -148,8 +171,19 @@ def reliability_figure(bins: object, *, title: str | None = None, brier: float |
             k = np.round(freq[ok] * count[ok])
             lo, hi = wilson_interval(k, count[ok])
             yerr = np.vstack([np.maximum(freq[ok] - lo, 0.0), np.maximum(hi - freq[ok], 0.0)])
-            ax.errorbar(pred[ok], freq[ok], yerr=yerr, color=colour, marker="o", markersize=5, linewidth=1.4,
-                        capsize=3, elinewidth=1.0, label=label, zorder=3.0 + 0.1 * i)
+            ax.errorbar(
+                pred[ok],
+                freq[ok],
+                yerr=yerr,
+                color=colour,
+                marker="o",
+                markersize=5,
+                linewidth=1.4,
+                capsize=3,
+                elinewidth=1.0,
+                label=label,
+                zorder=3.0 + 0.1 * i,
+            )
         width = (high - low) / (num_sets + 0.5)
         left = low + (i + 0.25) * width
         ax_n.bar(left, count, width=width, align="edge", color=colour, alpha=0.75, label=label)
@@ -160,8 +194,14 @@ def reliability_figure(bins: object, *, title: str | None = None, brier: float |
     ax.set_ylim(-0.02, 1.02)
     ax.set_ylabel("observed collision frequency [1]", fontsize=style.FONT_SIZE_PT)
     handles, labels = ax.get_legend_handles_labels()
-    fig.legend(handles, labels, loc="outside lower center", ncol=1 if num_sets > 1 else 2,
-               fontsize=style.FONT_SIZE_PT - 0.5, frameon=False)
+    fig.legend(
+        handles,
+        labels,
+        loc="outside lower center",
+        ncol=1 if num_sets > 1 else 2,
+        fontsize=style.FONT_SIZE_PT - 0.5,
+        frameon=False,
+    )
     _style_axes(ax)
     counts = np.concatenate(all_counts)
     positive = counts[counts > 0]
@@ -214,12 +254,16 @@ def _runs(history: object) -> dict[str, list[dict]]:
     if isinstance(history, (str, Path)):
         return {"": read_metrics_csv(history)}
     if isinstance(history, Mapping):
-        return {str(k): (read_metrics_csv(v) if isinstance(v, (str, Path)) else [dict(r) for r in v])
-                for k, v in history.items()}
+        return {
+            str(k): (read_metrics_csv(v) if isinstance(v, (str, Path)) else [dict(r) for r in v])
+            for k, v in history.items()
+        }
     if isinstance(history, Sequence):
         return {"": [dict(r) for r in history]}
-    raise ConfigError(f"training_figure: history must be rows (list of dicts), a metrics.csv path or a dict of "
-                      f"those, got {type(history).__name__}")
+    raise ConfigError(
+        f"training_figure: history must be rows (list of dicts), a metrics.csv path or a dict of "
+        f"those, got {type(history).__name__}"
+    )
 
 
 def training_figure(history: object, *, title: str | None = None, width_in: float = 10.0) -> Figure:
@@ -239,8 +283,11 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
     runs = _runs(history)
     if not runs or not any(runs.values()):
         raise ConfigError("training_figure: no epochs to draw")
-    panels = [p for p in TRAINING_PANELS
-              if any(any(math.isfinite(_number(r.get(p[0]))) for r in rows) for rows in runs.values())]
+    panels = [
+        p
+        for p in TRAINING_PANELS
+        if any(any(math.isfinite(_number(r.get(p[0]))) for r in rows) for rows in runs.values())
+    ]
     if not panels:
         raise ConfigError(f"training_figure: none of the keys {[p[0] for p in TRAINING_PANELS]} was logged")
     ncol = 2 if len(panels) > 1 else 1
@@ -248,7 +295,7 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
     fig = Figure(figsize=(width_in, 0.6 + 2.5 * nrow), layout="constrained", facecolor="white")
     FigureCanvasAgg(fig)
     axes = fig.subplots(nrow, ncol, squeeze=False).ravel()
-    for ax in axes[len(panels):]:
+    for ax in axes[len(panels) :]:
         ax.set_visible(False)
     for ax, (key, val_key, heading, ylabel) in zip(axes, panels, strict=False):
         last_epoch = 1.0
@@ -263,8 +310,17 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
                 if not ok.any():
                     continue
                 label = " ".join(w for w in (name, suffix if val_key else "") if w) or None
-                ax.plot(epoch[ok], y[ok], dash, color=colour, marker=marker if ok.sum() < 12 else None, markersize=4,
-                        markerfacecolor=colour if marker == "o" else "white", linewidth=1.4, label=label)
+                ax.plot(
+                    epoch[ok],
+                    y[ok],
+                    dash,
+                    color=colour,
+                    marker=marker if ok.sum() < 12 else None,
+                    markersize=4,
+                    markerfacecolor=colour if marker == "o" else "white",
+                    linewidth=1.4,
+                    label=label,
+                )
                 last_epoch = max(last_epoch, float(np.nanmax(epoch[ok])))
         ax.set_title(heading, fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, loc="left")
         ax.set_xlabel("epoch [count]", fontsize=style.FONT_SIZE_PT)
@@ -274,8 +330,9 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
         _style_axes(ax)
         if ax.get_legend_handles_labels()[1]:
             ax.legend(fontsize=style.FONT_SIZE_PT - 1.5)
-    fig.suptitle(title or "Training curves", fontsize=style.FONT_SIZE_PT + 1, color=style.TEXT_COLOUR, x=0.01,
-                 ha="left")
+    fig.suptitle(
+        title or "Training curves", fontsize=style.FONT_SIZE_PT + 1, color=style.TEXT_COLOUR, x=0.01, ha="left"
+    )
     return fig
 
 
@@ -310,28 +367,33 @@ def closed_loop_figure(results: Mapping, *, title: str | None = None, width_in: 
     names = list(results)
     for name in names:
         if not isinstance(results[name], Mapping) or "collision_rate" not in results[name]:
-            raise ConfigError(f"closed_loop_figure: results[{name!r}] has no collision_rate; pass the evaluation's "
-                              "per-planner summaries")
+            raise ConfigError(
+                f"closed_loop_figure: results[{name!r}] has no collision_rate; pass the evaluation's "
+                "per-planner summaries"
+            )
     fig = Figure(figsize=(width_in, 1.3 + 0.48 * len(names)), layout="constrained", facecolor="white")
     FigureCanvasAgg(fig)
     axes = fig.subplots(1, 2, sharey=True)
     ypos = np.arange(len(names))[::-1]
     colours = [_colour(i) for i in range(len(names))]
-    for ax, key, heading in ((axes[0], "collision", "collision rate (lower is better)"),
-                             (axes[1], "success", "success rate (higher is better)")):
+    for ax, key, heading in (
+        (axes[0], "collision", "collision rate (lower is better)"),
+        (axes[1], "success", "success rate (higher is better)"),
+    ):
         vals = np.array([_interval(results[n], key) for n in names])  # (P, 3)
         rate, lo, hi = vals[:, 0], vals[:, 1], vals[:, 2]
         has_ci = np.isfinite(lo) & np.isfinite(hi)
         shown = np.nan_to_num(rate)
         ax.barh(ypos, shown, color=colours, alpha=0.8, height=0.6)
-        err = np.vstack([np.where(has_ci, np.maximum(shown - lo, 0), 0), np.where(has_ci, np.maximum(hi - shown, 0), 0)])
+        err = np.vstack(
+            [np.where(has_ci, np.maximum(shown - lo, 0), 0), np.where(has_ci, np.maximum(hi - shown, 0), 0)]
+        )
         ax.errorbar(shown, ypos, xerr=err, fmt="none", ecolor=style.TEXT_COLOUR, capsize=4, elinewidth=1.1)
         top = float(np.nanmax(np.concatenate([hi[has_ci], shown, [0.05]])))
         for y, r, low, high, ok in zip(ypos, rate, lo, hi, has_ci, strict=True):
             text = "n/a" if not math.isfinite(r) else (f"{r:.3f} [{low:.3f}, {high:.3f}]" if ok else f"{r:.3f}")
             end = high if ok else (max(r, 0.0) if math.isfinite(r) else 0.0)
-            ax.text(end + 0.02 * top, y, text, va="center",
-                    fontsize=style.FONT_SIZE_PT - 1, color=style.TEXT_COLOUR)
+            ax.text(end + 0.02 * top, y, text, va="center", fontsize=style.FONT_SIZE_PT - 1, color=style.TEXT_COLOUR)
         top = min(top, 1.0)
         ax.set_xlim(0.0, 1.5 * top)  # room for the labels right of the bars
         ticks = ax.get_xticks()
@@ -344,6 +406,11 @@ def closed_loop_figure(results: Mapping, *, title: str | None = None, width_in: 
     labels = [f"{n}\n(n = {e})" if isinstance(e, int) else n for n, e in zip(names, episodes, strict=True)]
     axes[0].set_yticks(ypos, labels, fontsize=style.FONT_SIZE_PT - 0.5)
     axes[0].set_ylabel("planner", fontsize=style.FONT_SIZE_PT)
-    fig.suptitle(title or "Closed loop in the true simulator: rates with 95% intervals", fontsize=style.FONT_SIZE_PT + 1,
-                 color=style.TEXT_COLOUR, x=0.01, ha="left")
+    fig.suptitle(
+        title or "Closed loop in the true simulator: rates with 95% intervals",
+        fontsize=style.FONT_SIZE_PT + 1,
+        color=style.TEXT_COLOUR,
+        x=0.01,
+        ha="left",
+    )
     return fig

@@ -217,8 +217,14 @@ class SceneArtists:
     cross: Line2D
     _x_range: tuple[float, float] | None = field(default=None, repr=False)
 
-    def update(self, vehicles: np.ndarray, *, x_range_m: tuple[float, float] | None = None,
-               title: str | None = None, collided: bool = False) -> None:
+    def update(
+        self,
+        vehicles: np.ndarray,
+        *,
+        x_range_m: tuple[float, float] | None = None,
+        title: str | None = None,
+        collided: bool = False,
+    ) -> None:
         """Show another moment: vehicles (V, 8) world rows; the view, title and collision cross as in
         :func:`draw_scene`."""
         vehicles = check_vehicles(vehicles)
@@ -248,8 +254,15 @@ class SceneArtists:
         self.ax.set_title(title or "", fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, loc="left", pad=4.0)
 
 
-def draw_scene(ax: Axes, vehicles: np.ndarray, params: SimParams, *, x_range_m: tuple[float, float] | None = None,
-               title: str | None = None, collided: bool = False) -> SceneArtists:
+def draw_scene(
+    ax: Axes,
+    vehicles: np.ndarray,
+    params: SimParams,
+    *,
+    x_range_m: tuple[float, float] | None = None,
+    title: str | None = None,
+    collided: bool = False,
+) -> SceneArtists:
     """Draw one moment of a scene onto ``ax``.
 
     Args:
@@ -267,37 +280,65 @@ def draw_scene(ax: Axes, vehicles: np.ndarray, params: SimParams, *, x_range_m: 
     vehicles = check_vehicles(vehicles)
     dashed, solid = road_markings(params)
     ax.set_facecolor(style.VERGE_COLOUR)
-    lanes = [Rectangle((s, i * params.lane_width_m), e - s, params.lane_width_m)
-             for i, (s, e) in enumerate(_lane_intervals(params))]
+    lanes = [
+        Rectangle((s, i * params.lane_width_m), e - s, params.lane_width_m)
+        for i, (s, e) in enumerate(_lane_intervals(params))
+    ]
     ax.add_collection(PatchCollection(lanes, facecolor=style.ROAD_COLOUR, edgecolor="none", zorder=0.5))
-    ax.add_collection(LineCollection(solid, colors=style.ROAD_OUTLINE_COLOUR, linewidths=style.EDGE_WIDTH_PT + 1.4,
-                                     capstyle="butt", zorder=1.0))
-    ax.add_collection(LineCollection(solid, colors=style.MARKING_COLOUR, linewidths=style.EDGE_WIDTH_PT,
-                                     capstyle="butt", zorder=1.1))
-    dashes = LineCollection(np.zeros((0, 2, 2)), colors=style.MARKING_COLOUR, linewidths=style.MARKING_WIDTH_PT,
-                            capstyle="butt", zorder=1.2)
+    ax.add_collection(
+        LineCollection(
+            solid, colors=style.ROAD_OUTLINE_COLOUR, linewidths=style.EDGE_WIDTH_PT + 1.4, capstyle="butt", zorder=1.0
+        )
+    )
+    ax.add_collection(
+        LineCollection(solid, colors=style.MARKING_COLOUR, linewidths=style.EDGE_WIDTH_PT, capstyle="butt", zorder=1.1)
+    )
+    dashes = LineCollection(
+        np.zeros((0, 2, 2)), colors=style.MARKING_COLOUR, linewidths=style.MARKING_WIDTH_PT, capstyle="butt", zorder=1.2
+    )
     ax.add_collection(dashes)
     goal = goal_segments(params)
     if goal.size:
-        ax.add_collection(LineCollection(goal, colors=style.GOAL_COLOUR, linewidths=1.2, linestyles=(0, (2.0, 1.5)),
-                                         zorder=1.3))
-        ax.text(params.goal_x_m, params.road_width_m + 0.3, " goal", color=style.GOAL_COLOUR,
-                fontsize=style.FONT_SIZE_PT - 1, va="bottom", ha="left", clip_on=True, zorder=1.3)
+        ax.add_collection(
+            LineCollection(goal, colors=style.GOAL_COLOUR, linewidths=1.2, linestyles=(0, (2.0, 1.5)), zorder=1.3)
+        )
+        ax.text(
+            params.goal_x_m,
+            params.road_width_m + 0.3,
+            " goal",
+            color=style.GOAL_COLOUR,
+            fontsize=style.FONT_SIZE_PT - 1,
+            va="bottom",
+            ha="left",
+            clip_on=True,
+            zorder=1.3,
+        )
     empty = np.zeros((0, 4, 2))
-    traffic = PolyCollection(empty, facecolors=style.TRAFFIC_COLOUR, edgecolors=style.TRAFFIC_EDGE_COLOUR,
-                             linewidths=0.6, zorder=3.0)
-    traffic_marks = PolyCollection(empty, facecolors=style.HEADING_MARK_COLOUR, edgecolors="none",
-                                   alpha=style.HEADING_MARK_ALPHA, zorder=3.1)
-    ego = PolyCollection(empty, facecolors=style.EGO_COLOUR, edgecolors=style.EGO_EDGE_COLOUR, linewidths=0.7,
-                         zorder=3.2)
-    ego_mark = PolyCollection(empty, facecolors=style.HEADING_MARK_COLOUR, edgecolors="none",
-                              alpha=style.HEADING_MARK_ALPHA, zorder=3.3)
+    traffic = PolyCollection(
+        empty, facecolors=style.TRAFFIC_COLOUR, edgecolors=style.TRAFFIC_EDGE_COLOUR, linewidths=0.6, zorder=3.0
+    )
+    traffic_marks = PolyCollection(
+        empty, facecolors=style.HEADING_MARK_COLOUR, edgecolors="none", alpha=style.HEADING_MARK_ALPHA, zorder=3.1
+    )
+    ego = PolyCollection(
+        empty, facecolors=style.EGO_COLOUR, edgecolors=style.EGO_EDGE_COLOUR, linewidths=0.7, zorder=3.2
+    )
+    ego_mark = PolyCollection(
+        empty, facecolors=style.HEADING_MARK_COLOUR, edgecolors="none", alpha=style.HEADING_MARK_ALPHA, zorder=3.3
+    )
     for coll in (traffic, traffic_marks, ego, ego_mark):
         ax.add_collection(coll)
-    (cross,) = ax.plot([], [], linestyle="none", marker="x", color=style.COLLISION_COLOUR,
-                       markersize=style.COLLISION_MARKER_SIZE_PT, markeredgewidth=style.COLLISION_MARKER_WIDTH_PT,
-                       zorder=5.0, path_effects=[withStroke(linewidth=style.COLLISION_MARKER_WIDTH_PT + 2.5,
-                                                            foreground="white")])
+    (cross,) = ax.plot(
+        [],
+        [],
+        linestyle="none",
+        marker="x",
+        color=style.COLLISION_COLOUR,
+        markersize=style.COLLISION_MARKER_SIZE_PT,
+        markeredgewidth=style.COLLISION_MARKER_WIDTH_PT,
+        zorder=5.0,
+        path_effects=[withStroke(linewidth=style.COLLISION_MARKER_WIDTH_PT + 2.5, foreground="white")],
+    )
     ax.set_aspect("equal", adjustable="box")
     ax.set_xlabel("x along the road [m]", fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, labelpad=2.0)
     ax.set_ylabel("y [m]", fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, labelpad=2.0)
@@ -307,14 +348,24 @@ def draw_scene(ax: Axes, vehicles: np.ndarray, params: SimParams, *, x_range_m: 
     for spine in ax.spines.values():
         spine.set_linewidth(0.6)
         spine.set_color(style.ROAD_OUTLINE_COLOUR)
-    artists = SceneArtists(ax=ax, params=params, dashed=dashed, dashes=dashes, traffic=traffic,
-                           traffic_marks=traffic_marks, ego=ego, ego_mark=ego_mark, cross=cross)
+    artists = SceneArtists(
+        ax=ax,
+        params=params,
+        dashed=dashed,
+        dashes=dashes,
+        traffic=traffic,
+        traffic_marks=traffic_marks,
+        ego=ego,
+        ego_mark=ego_mark,
+        cross=cross,
+    )
     artists.update(vehicles, x_range_m=x_range_m, title=title, collided=collided)
     return artists
 
 
-def _new_figure(params: SimParams, x_span_m: float, width_in: float, dpi: float,
-                even_pixels: bool = False) -> tuple[Figure, Axes]:
+def _new_figure(
+    params: SimParams, x_span_m: float, width_in: float, dpi: float, even_pixels: bool = False
+) -> tuple[Figure, Axes]:
     """A Figure on its own Agg canvas with one axes that fits the road at equal aspect; margins fixed in inches
     (tick labels, axis labels, title) so that frames line up."""
     y_span_m = params.road_width_m + 2.0 * Y_MARGIN_M
@@ -330,9 +381,16 @@ def _new_figure(params: SimParams, x_span_m: float, width_in: float, dpi: float,
     return fig, ax
 
 
-def scene_figure(vehicles: np.ndarray, params: SimParams, *, x_range_m: tuple[float, float] | None = None,
-                 title: str | None = None, collided: bool = False, width_in: float = 10.0,
-                 dpi: float = 150.0) -> Figure:
+def scene_figure(
+    vehicles: np.ndarray,
+    params: SimParams,
+    *,
+    x_range_m: tuple[float, float] | None = None,
+    title: str | None = None,
+    collided: bool = False,
+    width_in: float = 10.0,
+    dpi: float = 150.0,
+) -> Figure:
     """A new Figure (on its own Agg canvas, no pyplot) showing one moment; arguments as :func:`draw_scene`.
 
     The figure is ``width_in`` wide and as tall as the road needs at equal aspect; save it with
@@ -357,8 +415,14 @@ class SceneRenderer:
         x_span_m: length of road shown in a frame whose ``x_range_m`` is left to the default.
     """
 
-    def __init__(self, params: SimParams, *, width_px: int = 1000, dpi: float = 100.0,
-                 x_span_m: float = VIEW_BEHIND_M + VIEW_AHEAD_M):
+    def __init__(
+        self,
+        params: SimParams,
+        *,
+        width_px: int = 1000,
+        dpi: float = 100.0,
+        x_span_m: float = VIEW_BEHIND_M + VIEW_AHEAD_M,
+    ):
         if width_px < 200:
             raise ConfigError(f"SceneRenderer width_px must be >= 200 pixels, got {width_px}")
         self.params = params
@@ -373,8 +437,14 @@ class SceneRenderer:
         """The axes drawn into."""
         return self.artists.ax
 
-    def render(self, vehicles: np.ndarray, *, x_range_m: tuple[float, float] | None = None,
-               title: str | None = None, collided: bool = False) -> np.ndarray:
+    def render(
+        self,
+        vehicles: np.ndarray,
+        *,
+        x_range_m: tuple[float, float] | None = None,
+        title: str | None = None,
+        collided: bool = False,
+    ) -> np.ndarray:
         """(H, W, 3) uint8 image of one moment; arguments as :func:`draw_scene`."""
         self.artists.update(vehicles, x_range_m=x_range_m, title=title, collided=collided)
         self._canvas.draw()
@@ -391,12 +461,21 @@ class SceneRenderer:
         self.figure.clear()
 
 
-def render_rgb(vehicles: np.ndarray, params: SimParams, *, x_range_m: tuple[float, float] | None = None,
-               title: str | None = None, collided: bool = False, renderer: SceneRenderer | None = None) -> np.ndarray:
+def render_rgb(
+    vehicles: np.ndarray,
+    params: SimParams,
+    *,
+    x_range_m: tuple[float, float] | None = None,
+    title: str | None = None,
+    collided: bool = False,
+    renderer: SceneRenderer | None = None,
+) -> np.ndarray:
     """(H, W, 3) uint8 image of one moment; pass a :class:`SceneRenderer` of the same params to reuse its figure
     (much faster over many frames), otherwise a 1000 px wide one is made for this call."""
     if renderer is None:
         renderer = SceneRenderer(params)
     elif renderer.params is not params:
-        raise ConfigError("render_rgb: the renderer was made for another SimParams; make one SceneRenderer per scenario")
+        raise ConfigError(
+            "render_rgb: the renderer was made for another SimParams; make one SceneRenderer per scenario"
+        )
     return renderer.render(vehicles, x_range_m=x_range_m, title=title, collided=collided)
