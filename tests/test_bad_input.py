@@ -111,7 +111,8 @@ def assert_one_line_refusal(run: Run, *needles: str) -> str:
     for needle in needles:
         assert needle in lines[0], lines[0]
     assert run.cpu_s < CPU_LIMIT_S, f"{run.cpu_s:.1f} s of CPU time"
-    assert run.max_rss < MEMORY_LIMIT, f"{run.max_rss / 2**20:.0f} MiB resident"
+    # memory: the child runs under an address-space limit of MEMORY_LIMIT (_limit_memory), so a run that needed more
+    # fails above; its ru_maxrss is not checked, because Linux counts the forked copy of a large test process in it
     return lines[0]
 
 
