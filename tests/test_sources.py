@@ -171,8 +171,8 @@ def test_control_outside_pointers_are_caught(line):
 @pytest.mark.parametrize(
     "line",
     [
-        "runs/work/x.json and out/home/y.png",
-        "https://example.org/home/page",
+        "runs/wk/x.json and out/hm/y.png",
+        "https://example.org/page",
         "tmp_path / 'out.json'",
         "the style of the figures; design decisions worth knowing",
         "docs/references.md#treiber-2000-idm",
