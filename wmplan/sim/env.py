@@ -30,6 +30,7 @@ from gymnasium.vector.utils import batch_space
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, builtin_names, load_scenario
+from wmplan.sim._jit import jit
 from wmplan.sim.engine import StepInfo
 from wmplan.sim.engine import step as engine_step
 from wmplan.sim.features import (
@@ -101,17 +102,43 @@ class RewardConfig:
             raise ConfigError(f"RewardConfig.comfort_accel_mps2 must be > 0 m/s^2, got {self.comfort_accel_mps2!r}")
 
 
+def _reward_constants(params: SimParams, cfg: RewardConfig) -> np.ndarray:
+    """The numbers :func:`_rewards` reads, in its order (kept on the config per parameter set)."""
+    v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
+    return np.array([cfg.progress_weight, v_lim * dt, v_lim * dur, cfg.accel_weight, cfg.comfort_accel_mps2,
+                     cfg.steer_weight, params.max_steer_rad, dt, dur, cfg.crash_penalty, cfg.goal_bonus])
+
+
+@jit
+def _rewards(k, x0, x1, accel, steer, ended0, flags1, out):
+    """:class:`RewardConfig`'s reward of each scene: ego positions x0, x1 (S,) before and after, applied
+    acceleration and steering (S,), ``ended0`` (3, S) and ``flags1`` (3, S) the collided, off-road and goal flags
+    before and after; ``k`` from :func:`_reward_constants`."""
+    for s in range(x0.shape[0]):
+        dx = x1[s] - x0[s]
+        progress = k[0] * (dx if not dx > k[1] else k[1]) / k[2]
+        a, d = accel[s] / k[4], steer[s] / k[6]
+        comfort = (k[3] * (a * a) + k[5] * (d * d)) * k[7] / k[8]
+        crashed = (flags1[0, s] or flags1[1, s]) and not (ended0[0, s] or ended0[1, s])
+        arrived = flags1[2, s] and not ended0[2, s]
+        out[s] = progress - comfort - k[9] * (1.0 if crashed else 0.0) + k[10] * (1.0 if arrived else 0.0)
+
+
 def step_reward(params: SimParams, cfg: RewardConfig, before: TrafficState, after: TrafficState,
                 info: StepInfo) -> np.ndarray:
-    """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it."""
-    v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
-    dx = after.x_m[:, EGO] - before.x_m[:, EGO]
-    progress = cfg.progress_weight * np.minimum(dx, v_lim * dt) / (v_lim * dur)
-    comfort = (cfg.accel_weight * (info.accel_mps2[:, EGO] / cfg.comfort_accel_mps2) ** 2
-               + cfg.steer_weight * (info.steer_rad / params.max_steer_rad) ** 2) * dt / dur
-    crashed = (after.collided | after.offroad) & ~(before.collided | before.offroad)
-    arrived = after.reached_goal & ~before.reached_goal
-    return progress - comfort - cfg.crash_penalty * crashed + cfg.goal_bonus * arrived
+    """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it (compiled)."""
+    consts = cfg.__dict__.get("_consts")
+    if consts is None or consts[0] is not params:
+        consts = (params, _reward_constants(params, cfg))
+        object.__setattr__(cfg, "_consts", consts)
+    f8, b1 = np.float64, np.bool_
+    out = np.empty(before.num_scenes)
+    _rewards(consts[1], np.ascontiguousarray(before.x_m[:, EGO], dtype=f8),
+             np.ascontiguousarray(after.x_m[:, EGO], dtype=f8),
+             np.ascontiguousarray(info.accel_mps2[:, EGO], dtype=f8), np.ascontiguousarray(info.steer_rad, dtype=f8),
+             np.stack([before.collided, before.offroad, before.reached_goal]).astype(b1, copy=False),
+             np.stack([after.collided, after.offroad, after.reached_goal]).astype(b1, copy=False), out)
+    return out
 
 
 # --- spaces ---------------------------------------------------------------------------------------------------------
@@ -215,8 +242,8 @@ def _check_render_mode(render_mode: str | None, modes: list[str]) -> str | None:
 
 
 def _observation(state: TrafficState, params: SimParams, num_objects: int) -> dict[str, np.ndarray]:
-    objects, road, _ = observe(state, params, num_objects)
-    return {"objects": objects.astype(np.float32), "road": road.astype(np.float32)}
+    objects, road, _ = observe(state, params, num_objects, dtype=np.float32)
+    return {"objects": objects, "road": road}
 
 
 def _check_actions(actions: Any, shape: tuple[int, ...], where: str) -> np.ndarray:
