@@ -31,7 +31,7 @@ from gymnasium.vector.utils import batch_space
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, builtin_names, load_scenario
 from wmplan.sim._jit import jit
-from wmplan.sim.engine import StepInfo
+from wmplan.sim.engine import Packed, StepInfo, param_table
 from wmplan.sim.engine import step as engine_step
 from wmplan.sim.features import (
     DEFAULT_NUM_OBJECTS,
@@ -47,7 +47,15 @@ from wmplan.sim.features import (
     NUM_ROAD_FEATURES,
     NUM_VEHICLE_FEATURES,
 )
-from wmplan.sim.observe import observe
+from wmplan.sim.kernel import E_COLLIDED, E_OFFROAD, E_REACHED, S_STEP
+from wmplan.sim.kernel import F_H as K_H
+from wmplan.sim.kernel import F_LEN as K_LEN
+from wmplan.sim.kernel import F_VX as K_VX
+from wmplan.sim.kernel import F_VY as K_VY
+from wmplan.sim.kernel import F_WID as K_WID
+from wmplan.sim.kernel import F_X as K_X
+from wmplan.sim.kernel import F_Y as K_Y
+from wmplan.sim.observe import _nearest, _object_rows, _road_row, observe
 from wmplan.sim.params import T_V0, SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
@@ -110,34 +118,54 @@ def _reward_constants(params: SimParams, cfg: RewardConfig) -> np.ndarray:
 
 
 @jit
-def _rewards(k, x0, x1, accel, steer, ended0, flags1, out):
-    """:class:`RewardConfig`'s reward of each scene: ego positions x0, x1 (S,) before and after, applied
-    acceleration and steering (S,), ``ended0`` (3, S) and ``flags1`` (3, S) the collided, off-road and goal flags
-    before and after; ``k`` from :func:`_reward_constants`."""
-    for s in range(x0.shape[0]):
-        dx = x1[s] - x0[s]
-        progress = k[0] * (dx if not dx > k[1] else k[1]) / k[2]
-        a, d = accel[s] / k[4], steer[s] / k[6]
-        comfort = (k[3] * (a * a) + k[5] * (d * d)) * k[7] / k[8]
-        crashed = (flags1[0, s] or flags1[1, s]) and not (ended0[0, s] or ended0[1, s])
-        arrived = flags1[2, s] and not ended0[2, s]
-        out[s] = progress - comfort - k[9] * (1.0 if crashed else 0.0) + k[10] * (1.0 if arrived else 0.0)
+def _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer):
+    """:class:`RewardConfig`'s reward of scene s: packed float fields and outcome flags before (``vf0``,
+    ``ended0``) and after (``vf1``, ``ended1``) the step (:class:`~wmplan.sim.engine.Packed` layout), applied
+    accelerations (S, V) and steering (S,); ``k`` from :func:`_reward_constants`."""
+    dx = vf1[K_X, s, EGO] - vf0[K_X, s, EGO]
+    progress = k[0] * (dx if not dx > k[1] else k[1]) / k[2]
+    a, d = acc[s, EGO] / k[4], steer[s] / k[6]
+    comfort = (k[3] * (a * a) + k[5] * (d * d)) * k[7] / k[8]
+    crashed = (ended1[E_COLLIDED, s] or ended1[E_OFFROAD, s]) and not (ended0[E_COLLIDED, s] or ended0[E_OFFROAD, s])
+    arrived = ended1[E_REACHED, s] and not ended0[E_REACHED, s]
+    return progress - comfort - k[9] * (1.0 if crashed else 0.0) + k[10] * (1.0 if arrived else 0.0)
+
+
+@jit
+def _rewards(k, vf0, ended0, vf1, ended1, acc, steer, out):
+    for s in range(out.shape[0]):
+        out[s] = _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer)
+
+
+@jit
+def _env_outputs(sc, ln, k, vf0, ended0, vf1, valid1, ended1, acc, steer, objects, road, slots, reward):
+    """Observation (float32 ``objects``, ``road``; :func:`~wmplan.sim.observe.observe`) and reward of every scene
+    after a step, in one call (the single environment's hot path)."""
+    for s in range(valid1.shape[0]):
+        x, y = vf1[K_X, s], vf1[K_Y, s]
+        _nearest(x, y, valid1[s], slots[s])
+        _object_rows(x, y, vf1[K_VX, s], vf1[K_VY, s], vf1[K_H, s], vf1[K_LEN, s], vf1[K_WID, s], slots[s],
+                     objects[s])
+        _road_row(sc, ln, x[EGO], y[EGO], road[s])
+        reward[s] = _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer)
+
+
+def _constants(params: SimParams, cfg: RewardConfig) -> np.ndarray:
+    consts = cfg.__dict__.get("_consts")
+    if consts is None or consts[0] is not params:
+        consts = (params, _reward_constants(params, cfg))
+        object.__setattr__(cfg, "_consts", consts)
+    return consts[1]
 
 
 def step_reward(params: SimParams, cfg: RewardConfig, before: TrafficState, after: TrafficState,
                 info: StepInfo) -> np.ndarray:
     """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it (compiled)."""
-    consts = cfg.__dict__.get("_consts")
-    if consts is None or consts[0] is not params:
-        consts = (params, _reward_constants(params, cfg))
-        object.__setattr__(cfg, "_consts", consts)
-    f8, b1 = np.float64, np.bool_
+    pb, pa = Packed.of(before), Packed.of(after)
     out = np.empty(before.num_scenes)
-    _rewards(consts[1], np.ascontiguousarray(before.x_m[:, EGO], dtype=f8),
-             np.ascontiguousarray(after.x_m[:, EGO], dtype=f8),
-             np.ascontiguousarray(info.accel_mps2[:, EGO], dtype=f8), np.ascontiguousarray(info.steer_rad, dtype=f8),
-             np.stack([before.collided, before.offroad, before.reached_goal]).astype(b1, copy=False),
-             np.stack([after.collided, after.offroad, after.reached_goal]).astype(b1, copy=False), out)
+    _rewards(_constants(params, cfg), pb.vf, pb.ended, pa.vf, pa.ended,
+             np.ascontiguousarray(info.accel_mps2, dtype=np.float64),
+             np.ascontiguousarray(info.steer_rad, dtype=np.float64), out)
     return out
 
 
@@ -388,6 +416,8 @@ class LaneEnv(gym.Env):
         self._scene_seed = -1
         self._ended = False
         self._renderer = None
+        self._slots = np.empty((1, 1 + self.num_objects), dtype=np.int64)  # work space of step()
+        self._reward = np.empty(1)
 
     @property
     def state(self) -> TrafficState | None:
@@ -434,12 +464,19 @@ class LaneEnv(gym.Env):
             act = to_physical(act, self.params)
         before = self._state
         self._state, sinfo = engine_step(before, act[None, :], self.params)
-        reward = float(step_reward(self.params, self.reward_config, before, self._state, sinfo)[0])
-        terminated = bool(self._state.done[0])
-        truncated = (not terminated) and int(self._state.step[0]) >= self.params.num_steps
+        pb, pa = Packed.of(before), Packed.of(self._state)
+        m = self.num_objects
+        objects, road = np.empty((1, 1 + m, NUM_VEHICLE_FEATURES), np.float32), np.empty((1, NUM_ROAD_FEATURES), np.float32)
+        table = param_table(self.params)
+        _env_outputs(table.scalars[0], table.lanes[0], _constants(self.params, self.reward_config), pb.vf, pb.ended,
+                     pa.vf, pa.valid, pa.ended, sinfo.accel_mps2, sinfo.steer_rad, objects, road, self._slots,
+                     self._reward)
+        terminated = bool(pa.ended[0, 0] or pa.ended[1, 0] or pa.ended[2, 0])
+        step_now = int(pa.si[S_STEP, 0])
+        truncated = (not terminated) and step_now >= self.params.num_steps
         self._ended = terminated or truncated
-        info = self._info(sinfo.accel_mps2[0, EGO], sinfo.steer_rad[0])
-        return self._obs(), reward, terminated, truncated, info
+        info = self._info(float(sinfo.accel_mps2[0, EGO]), float(sinfo.steer_rad[0]))
+        return {"objects": objects[0], "road": road[0]}, float(self._reward[0]), terminated, truncated, info
 
     def render(self) -> np.ndarray | None:
         """An (H, W, 3) uint8 picture of the road around the ego if ``render_mode == "rgb_array"``, else None."""

@@ -78,6 +78,20 @@ SIZE_SALTS = (101, 102)  # last counter of the length and width draws (wmplan.si
 
 EGO = 0
 
+# --- the state's packed layout (what step_range reads and writes) ------------------------------------------------------
+# (S, V) float64 fields of a TrafficState, stacked as the rows of one (NVF, S, V) array, and so on for the others.
+VF_FIELDS = ("x_m", "y_m", "vx_mps", "vy_mps", "heading_rad", "length_m", "width_m", "brake_timer_s",
+             "brake_decel_mps2", "cooldown_s")
+F_X, F_Y, F_VX, F_VY, F_H, F_LEN, F_WID, F_TIMER, F_DECEL, F_CD = range(len(VF_FIELDS))
+VI_FIELDS = ("vehicle_id", "lane")  # (NVI, S, V) int64
+I_VID, I_LANE = range(len(VI_FIELDS))
+SF_FIELDS = ("ego_speed_mps", "ego_steer_rad")  # (NSF, S) float64
+S_EGO_SPEED, S_EGO_STEER = range(len(SF_FIELDS))
+SI_FIELDS = ("step", "next_id")  # (NSI, S) int64
+S_STEP, S_NEXT_ID = range(len(SI_FIELDS))
+ENDED_FIELDS = ("collided", "offroad", "reached_goal")  # (NE, S) bool
+E_COLLIDED, E_OFFROAD, E_REACHED = range(len(ENDED_FIELDS))
+
 # --- parameter tables -------------------------------------------------------------------------------------------------
 # Scalars of one parameter set, by column of ParamTable.scalars:
 (P_DT, P_LANE_W, P_ROAD_LEN, P_SPEED_LIMIT, P_BEHIND, P_AHEAD, P_BRAKE_PROB, P_BD_MEAN, P_BD_STD, P_BD_LO, P_BD_HI,
@@ -696,17 +710,17 @@ def _ego_offroad(sc, ln, x, y, length, width, heading):
 
 
 @jit
-def _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h, o_valid, o_collided, o_offroad,
-             o_reached, i_collision, i_offroad, i_goal):
-    """The ego's collision, off-road and goal checks of scene s after its step; the outcome flags are sticky."""
-    col = _ego_collides(o_x[s], o_y[s], o_len[s], o_wid[s], o_h[s], o_valid[s])
-    ex, ey = o_x[s, EGO], o_y[s, EGO]
-    off = _ego_offroad(sc, ln, ex, ey, o_len[s, EGO], o_wid[s, EGO], o_h[s, EGO])
+def _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid, ended, s, o_ended, info):
+    """The ego's collision, off-road and goal checks of scene s after its step into ``info[:, s]``; the outcome
+    flags ``ended[:, s]`` (collided, off-road, reached) are sticky (``o_ended``: the new ones)."""
+    col = _ego_collides(o_x, o_y, o_len, o_wid, o_h, o_valid)
+    ex, ey = o_x[EGO], o_y[EGO]
+    off = _ego_offroad(sc, ln, ex, ey, o_len[EGO], o_wid[EGO], o_h[EGO])
     goal = ex >= sc[P_GOAL_X] and ln[L_GOAL, _lane_of(sc, ey)] != 0.0 and not col and not off
-    i_collision[s], i_offroad[s], i_goal[s] = col, off, goal
-    o_collided[s] = collided[s] or col
-    o_offroad[s] = offroad[s] or off
-    o_reached[s] = reached[s] or (goal and not collided[s] and not offroad[s])
+    info[0, s], info[1, s], info[2, s] = col, off, goal
+    o_ended[E_COLLIDED, s] = ended[E_COLLIDED, s] or col
+    o_ended[E_OFFROAD, s] = ended[E_OFFROAD, s] or off
+    o_ended[E_REACHED, s] = ended[E_REACHED, s] or (goal and not ended[E_COLLIDED, s] and not ended[E_OFFROAD, s])
 
 
 # --- one scene, and a range of scenes ------------------------------------------------------------------------------
@@ -759,30 +773,35 @@ def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, 
 
 
 @jit
-def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, stp, next_id, x, y, vx, heading, length, width,
-               valid, vid, lane, traits, ys, timer, decel, cd, ego_speed, ego_steer, collided, offroad, reached,
-               action, o_next_id, o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys,
-               o_timer, o_decel, o_cd, o_ego_speed, o_ego_steer, o_collided, o_offroad, o_reached, i_collision,
-               i_offroad, i_goal, i_acc, i_log_w, scratch_i, scratch_f, scratch_b):
-    """Advance scenes [a, b) by one step: the state's arrays in, the new state's and the step's outcome arrays out
-    (``o_*``, ``i_*``; shapes as :class:`~wmplan.sim.state.TrafficState` and :class:`~wmplan.sim.engine.StepInfo`).
-    Scene s uses parameter row ``group[s]``. Touches only rows [a, b). ``scratch_*``: work space of this call
-    only ((7, V) int64, (2, V) float64, (2, V) bool): the kernel runs without numba's reference counting (no
-    allocation inside), so the caller provides it."""
+def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, vf, vi, valid, ys, traits, sf, si, ended, action,
+               o_vf, o_vi, o_valid, o_ys, o_traits, o_sf, o_si, o_ended, info, i_acc, i_log_w, scratch_i, scratch_f,
+               scratch_b):
+    """Advance scenes [a, b) by one step: the state's packed arrays in, the new state's and the step's outcome
+    arrays out (``o_*``, ``info``, ``i_*``). Layouts (:data:`VF_FIELDS` and the other tables): ``vf`` (NVF, S, V)
+    float64, ``vi`` (NVI, S, V) int64, ``valid`` (S, V) bool, ``ys`` (S, V) int8, ``traits`` (S, V, NT), ``sf``
+    (NSF, S) float64, ``si`` (NSI, S) int64, ``ended`` (NE, S) bool; ``info`` (3, S) bool (collision, off-road,
+    goal), ``i_acc`` (S, V), ``i_log_w`` (S,). ``o_traits`` already holds the old traits (or is ``traits`` itself
+    on steps where nobody may enter). Scene s uses parameter row ``group[s]``; only rows [a, b) are touched.
+    ``scratch_*``: work space of this call only ((7, V) int64, (2, V) float64, (2, V) bool): the kernel runs
+    without numba's reference counting (no allocation inside), so the caller provides it."""
     order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
     lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
     lead_gap, v_lead, traffic, merger = scratch_f[0], scratch_f[1], scratch_b[0], scratch_b[1]
     for s in range(a, b):
         g = group[s]
         sc, ln, pt = p_scalars[g], p_lanes[g], p_traits[g]
-        new_id = next_id[s]
+        new_id = si[S_NEXT_ID, s]
+        o_len, o_wid, o_vid = o_vf[F_LEN, s], o_vf[F_WID, s], o_vi[I_VID, s]
+        for i in range(o_len.shape[0]):
+            o_len[i], o_wid[i], o_vid[i] = vf[F_LEN, s, i], vf[F_WID, s, i], vi[I_VID, s, i]
+        o_x, o_y, o_h = o_vf[F_X, s], o_vf[F_Y, s], o_vf[F_H, s]
         log_w, steer, ev, entered = _step_scene(
-            sc, ln, pt, key[s], stp[s], new_id, x[s], y[s], vx[s], heading[s], length[s], width[s], valid[s], vid[s],
-            lane[s], traits[s], ys[s], timer[s], decel[s], cd[s], ego_speed[s], ego_steer[s], action[s, 0],
-            action[s, 1], o_x[s], o_y[s], o_vx[s], o_vy[s], o_h[s], o_len[s], o_wid[s], o_valid[s], o_vid[s],
-            o_lane[s], o_traits[s], o_ys[s], o_timer[s], o_decel[s], o_cd[s], i_acc[s], order, rank, bits,
-            centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger)
-        o_next_id[s] = new_id + entered
-        o_ego_speed[s], o_ego_steer[s], i_log_w[s] = ev, steer, log_w
-        _outcome(sc, ln, s, collided, offroad, reached, o_x, o_y, o_len, o_wid, o_h, o_valid, o_collided, o_offroad,
-                 o_reached, i_collision, i_offroad, i_goal)
+            sc, ln, pt, key[s], si[S_STEP, s], new_id, vf[F_X, s], vf[F_Y, s], vf[F_VX, s], vf[F_H, s],
+            vf[F_LEN, s], vf[F_WID, s], valid[s], vi[I_VID, s], vi[I_LANE, s], traits[s], ys[s], vf[F_TIMER, s],
+            vf[F_DECEL, s], vf[F_CD, s], sf[S_EGO_SPEED, s], sf[S_EGO_STEER, s], action[s, 0], action[s, 1], o_x, o_y,
+            o_vf[F_VX, s], o_vf[F_VY, s], o_h, o_len, o_wid, o_valid[s], o_vid, o_vi[I_LANE, s], o_traits[s], o_ys[s],
+            o_vf[F_TIMER, s], o_vf[F_DECEL, s], o_vf[F_CD, s], i_acc[s], order, rank, bits, centre_bit, lead,
+            merge_to, new_lane, lead_gap, v_lead, traffic, merger)
+        o_si[S_STEP, s], o_si[S_NEXT_ID, s] = si[S_STEP, s] + 1, new_id + entered
+        o_sf[S_EGO_SPEED, s], o_sf[S_EGO_STEER, s], i_log_w[s] = ev, steer, log_w
+        _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid[s], ended, s, o_ended, info)

@@ -28,6 +28,13 @@ from wmplan.sim.features import (
     NUM_ROAD_FEATURES,
     NUM_VEHICLE_FEATURES,
 )
+from wmplan.sim.kernel import F_H as K_H
+from wmplan.sim.kernel import F_LEN as K_LEN
+from wmplan.sim.kernel import F_VX as K_VX
+from wmplan.sim.kernel import F_VY as K_VY
+from wmplan.sim.kernel import F_WID as K_WID
+from wmplan.sim.kernel import F_X as K_X
+from wmplan.sim.kernel import F_Y as K_Y
 from wmplan.sim.kernel import P_NUM_LANES, _centre, _exists, _lane_of, _to_end
 from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
@@ -200,31 +207,30 @@ def _road_row(sc, ln, x, y, out):
 
 
 @jit
-def _observe_scenes(sc, ln, x, y, vx, vy, heading, length, width, valid, objects, road, slots):
-    """:func:`observe` of every scene: (S, V) state fields in; objects (S, 1 + M, F), road (S, 6), slots
-    (S, 1 + M) out. ``sc``, ``ln``: one row of the kernel's parameter tables."""
+def _observe_scenes(sc, ln, vf, valid, objects, road, slots):
+    """:func:`observe` of every scene: the packed (NVF, S, V) float fields and (S, V) ``valid`` of
+    :class:`~wmplan.sim.engine.Packed` in; objects (S, 1 + M, F), road (S, 6), slots (S, 1 + M) out. ``sc``,
+    ``ln``: one row of the kernel's parameter tables."""
+    x, y = vf[K_X], vf[K_Y]
     for s in range(x.shape[0]):
         _nearest(x[s], y[s], valid[s], slots[s])
-        _object_rows(x[s], y[s], vx[s], vy[s], heading[s], length[s], width[s], slots[s], objects[s])
+        _object_rows(x[s], y[s], vf[K_VX, s], vf[K_VY, s], vf[K_H, s], vf[K_LEN, s], vf[K_WID, s], slots[s],
+                     objects[s])
         _road_row(sc, ln, x[s, EGO], y[s, EGO], road[s])
 
 
 def observe(state: TrafficState, params: SimParams, num_objects: int = DEFAULT_NUM_OBJECTS,
             dtype=np.float64) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Object list (S, 1 + M, F), road context (S, 6) and source slots (S, 1 + M) of every scene: the values of
-    :func:`object_list` and :func:`road_features` (compiled; float64, or float32 when ``dtype`` says so, as
-    ``astype`` rounds)."""
-    from wmplan.sim.engine import param_table  # the engine's parameter table of these params, made once
+    :func:`object_list` and :func:`road_features` (compiled; float64, or as ``astype(dtype)`` rounds them)."""
+    from wmplan.sim.engine import Packed, param_table  # the engine's layout and parameter table (made once)
 
-    table = param_table(params)
+    table, packed = param_table(params), Packed.of(state)
     s_n = state.num_scenes
     objects = np.empty((s_n, 1 + num_objects, NUM_VEHICLE_FEATURES))
     road = np.empty((s_n, NUM_ROAD_FEATURES))
     slots = np.empty((s_n, 1 + num_objects), dtype=np.int64)
-    f8 = np.float64
-    _observe_scenes(table.scalars[0], table.lanes[0], *(np.ascontiguousarray(getattr(state, k), dtype=f8) for k in (
-        "x_m", "y_m", "vx_mps", "vy_mps", "heading_rad", "length_m", "width_m")),
-        np.ascontiguousarray(state.valid, dtype=np.bool_), objects, road, slots)
+    _observe_scenes(table.scalars[0], table.lanes[0], packed.vf, packed.valid, objects, road, slots)
     if dtype != np.float64:
         return objects.astype(dtype), road.astype(dtype), slots
     return objects, road, slots
