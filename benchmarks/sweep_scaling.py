@@ -23,16 +23,14 @@ Importing this module runs nothing.
 
 from __future__ import annotations
 
-import argparse
-import json
-import os
-import platform
 import resource
 import statistics
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from wmplan import benchkit
 
 FULL = dict(num_cells=24, episodes_per_cell=384, repeats=3)
 QUICK = dict(num_cells=8, episodes_per_cell=96, repeats=1)
@@ -72,7 +70,7 @@ def run(quick: bool = False) -> dict:
 
     cfg = QUICK if quick else FULL
     sweep = _sweep(cfg["num_cells"], cfg["episodes_per_cell"])
-    load_before = os.getloadavg()
+    machine = benchkit.machine()
     times: dict[int, list[float]] = {1: [], 2: []}
     cpu: dict[int, list[float]] = {1: [], 2: []}
     identical = True
@@ -99,27 +97,15 @@ def run(quick: bool = False) -> dict:
         "scaling_2x_if_idle": 2.0 * cpu_med[1] / cpu_med[2],
         "scaling_2x": scaling, "target_scaling_2x": TARGET_SCALING_2X, "meets_target": scaling >= TARGET_SCALING_2X,
         "rows_identical": bool(identical),
-        "cpu_count": os.cpu_count(), "load_average_before": list(load_before),
-        "load_average_after": list(os.getloadavg()),
-        "python": platform.python_version(), "quick": quick,
+        "benchmark": "sweep_scaling", "quick": quick,
+        "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
+        "caution": benchkit.CAUTION,
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="a smaller sweep, one repeat")
-    parser.add_argument("--json", metavar="FILE", help="also write the result to FILE (atomically)")
-    args = parser.parse_args(argv)
-    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
-    result = run(quick=args.quick)
-    text = json.dumps(result, indent=2)
-    if args.json:
-        from wmplan.io import atomic_write_text
-
-        atomic_write_text(Path(args.json), text + "\n")
-    print(text)
-    return 0
+    return benchkit.main(run, __doc__.splitlines()[0], argv)
 
 
 if __name__ == "__main__":  # the spawned sweep workers import this file as __mp_main__; they must not rerun it
-    raise SystemExit(main())
+    sys.exit(main())

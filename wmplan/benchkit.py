@@ -13,8 +13,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-NOTE = ("Measured on a simplified traffic model on one machine; it certifies nothing about a real vehicle (see "
-        "functional-safety standards, local regulation and licensed engineering practice for that).")
+from wmplan.caution import CAUTION  # noqa: F401  (every benchmark's JSON carries it under "caution")
 
 
 def load_avg() -> float | None:
@@ -51,7 +50,7 @@ def timed(fn: Callable[[], object], repeats: int) -> tuple[list[float], list[flo
 def main(run: Callable[..., dict], description: str, argv: list[str] | None = None,
          add_arguments: Callable[[argparse.ArgumentParser], None] | None = None) -> int:
     """The command line of a benchmark: ``--quick``, ``--json FILE`` (written atomically) and any arguments
-    ``add_arguments`` adds (passed to ``run`` by name); prints the result as JSON."""
+    ``add_arguments`` adds (passed to ``run`` by name); prints the result as JSON, with the ``caution`` key."""
     parser = argparse.ArgumentParser(description=description)
     parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
     parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
@@ -60,6 +59,7 @@ def main(run: Callable[..., dict], description: str, argv: list[str] | None = No
     args = vars(parser.parse_args(argv))
     json_path = args.pop("json")
     result = run(**args)
+    result.setdefault("caution", CAUTION)
     if json_path:
         from wmplan.io import atomic_write_json
 

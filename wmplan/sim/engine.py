@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from wmplan.sim import kernel
-from wmplan.sim._jit import jit
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.collision import boxes_overlap
 from wmplan.sim.kernel import (  # noqa: F401  (the engine's constants, re-exported)
     BAND_EPS_M,
@@ -127,7 +127,7 @@ def _check_action(action, num_scenes: int) -> np.ndarray:
     action = np.asarray(action, dtype=np.float64)
     if action.shape != (num_scenes, 2):
         raise ValueError(f"action must have shape ({num_scenes}, 2) (accel_mps2, steer_rad), got {action.shape}")
-    return np.ascontiguousarray(action)
+    return kernel_array(action, np.float64)
 
 
 def step(state: TrafficState, action: np.ndarray, params: SimParams,
@@ -175,7 +175,7 @@ def step_groups(state: TrafficState, action: np.ndarray, table: ParamTable, grou
         ValueError: ``action`` is not (S, 2), or ``group`` is not (S,) with rows of ``table``.
     """
     action = _check_action(action, state.num_scenes)
-    group = np.ascontiguousarray(group, dtype=np.int64)
+    group = kernel_array(np.asarray(group), np.int64)
     g_n = table.scalars.shape[0]
     if group.shape != (state.num_scenes,) or (group.size and (group.min() < 0 or group.max() >= g_n)):
         raise ValueError(f"group must have shape ({state.num_scenes},) with values in [0, {g_n}), got shape "
@@ -209,13 +209,12 @@ class Packed:
                     out[k] = getattr(state, name)
                 return out
 
-            c = np.ascontiguousarray
             packed = cls(stack(kernel.VF_FIELDS, np.float64, (s_n, v_n)), stack(kernel.VI_FIELDS, np.int64, (s_n, v_n)),
                          np.array(state.valid, dtype=np.bool_, order="C"),
                          np.array(state.yield_state, dtype=np.int8, order="C"),
                          np.array(state.traits, dtype=np.float64, order="C"), stack(kernel.SF_FIELDS, np.float64, (s_n,)),
                          stack(kernel.SI_FIELDS, np.int64, (s_n,)), stack(kernel.ENDED_FIELDS, np.bool_, (s_n,)),
-                         c(state.key, dtype=np.uint64))
+                         kernel_array(state.key, np.uint64))
             state.__dict__["_packed"] = packed
         return packed
 
@@ -288,10 +287,9 @@ def ego_collisions(arrays: dict) -> np.ndarray:
     ``y_m``, ``length_m``, ``width_m``, ``heading_rad``, ``valid`` of a state). The step's own check, compiled: a
     separating-axis test on the pairs that are close enough along the road to overlap."""
     f8 = np.float64
-    x, y, ln, wd, hd = (np.ascontiguousarray(arrays[k], dtype=f8)
-                        for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
+    x, y, ln, wd, hd = (kernel_array(arrays[k], f8) for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
     hit = np.empty(x.shape[0], dtype=bool)
-    _ego_collisions(x, y, ln, wd, hd, np.ascontiguousarray(arrays["valid"], dtype=np.bool_), hit)
+    _ego_collisions(x, y, ln, wd, hd, kernel_array(arrays["valid"], np.bool_), hit)
     return hit
 
 

@@ -30,7 +30,7 @@ from gymnasium.vector.utils import batch_space
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, builtin_names, load_scenario
-from wmplan.sim._jit import jit
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.engine import Packed, StepInfo, param_table
 from wmplan.sim.engine import step as engine_step
 from wmplan.sim.features import (
@@ -164,8 +164,7 @@ def step_reward(params: SimParams, cfg: RewardConfig, before: TrafficState, afte
     pb, pa = Packed.of(before), Packed.of(after)
     out = np.empty(before.num_scenes)
     _rewards(_constants(params, cfg), pb.vf, pb.ended, pa.vf, pa.ended,
-             np.ascontiguousarray(info.accel_mps2, dtype=np.float64),
-             np.ascontiguousarray(info.steer_rad, dtype=np.float64), out)
+             kernel_array(info.accel_mps2, np.float64), kernel_array(info.steer_rad, np.float64), out)
     return out
 
 

@@ -22,7 +22,7 @@ from typing import Literal
 import numpy as np
 
 from wmplan import rng
-from wmplan.sim._jit import jit
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.engine import Packed, param_table
 from wmplan.sim.features import ACTION_DIM
 from wmplan.sim.kernel import (
@@ -237,7 +237,7 @@ def oracle_futures_batch(state: TrafficState, params: SimParams | Sequence[SimPa
         ValueError: plans not (S, C, H, 2), ``num_futures`` < 1, ``params`` not one per scene, or parameter sets
             with different simulator steps.
     """
-    plans = np.ascontiguousarray(plans, dtype=np.float64)
+    plans = kernel_array(np.asarray(plans), np.float64)
     scenes = np.asarray(scenes, dtype=np.int64)
     if plans.ndim != 4 or plans.shape[-1] != ACTION_DIM or plans.shape[0] != len(scenes):
         raise ValueError(f"plans must have shape (S={len(scenes)}, C, H, {ACTION_DIM}), got {plans.shape}")
@@ -323,7 +323,7 @@ def object_futures(fut: OracleFutures, slots: np.ndarray, anchor_ids: np.ndarray
     (the identities at the decision). Compiled."""
     s_n, c_n, k_n, h_n = fut.vehicles.shape[:4]
     out = np.empty((s_n, c_n, k_n, h_n, slots.shape[1], fut.vehicles.shape[-1]), dtype=np.float32)
-    _frame_futures(np.ascontiguousarray(fut.vehicles, dtype=np.float64),
-                   np.ascontiguousarray(fut.vehicle_id, dtype=np.int64), np.ascontiguousarray(slots, dtype=np.int64),
-                   np.ascontiguousarray(anchor_ids, dtype=np.int64), np.ascontiguousarray(pose, dtype=np.float64), out)
+    _frame_futures(kernel_array(fut.vehicles, np.float64), kernel_array(fut.vehicle_id, np.int64),
+                   kernel_array(np.asarray(slots), np.int64), kernel_array(np.asarray(anchor_ids), np.int64),
+                   kernel_array(np.asarray(pose), np.float64), out)
     return out
