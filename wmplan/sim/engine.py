@@ -149,8 +149,9 @@ def step(state: TrafficState, action: np.ndarray, params: SimParams,
     Raises:
         ValueError: ``action`` does not have shape (S, 2).
     """
-    action = _check_action(action, state.num_scenes)
-    return _run(state, action, param_table(params), _zeros(state.num_scenes), threads)
+    packed = Packed.of(state)
+    s_n = packed.valid.shape[0]
+    return _run(packed, _check_action(action, s_n), param_table(params), _zeros(s_n), threads)
 
 
 _ZEROS: dict[int, np.ndarray] = {}
@@ -180,7 +181,7 @@ def step_groups(state: TrafficState, action: np.ndarray, table: ParamTable, grou
     if group.shape != (state.num_scenes,) or (group.size and (group.min() < 0 or group.max() >= g_n)):
         raise ValueError(f"group must have shape ({state.num_scenes},) with values in [0, {g_n}), got shape "
                          f"{group.shape}")
-    return _run(state, action, table, group, threads)
+    return _run(Packed.of(state), action, table, group, threads)
 
 
 class Packed:
@@ -250,9 +251,8 @@ def _scratch(v_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return out
 
 
-def _run(state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray,
+def _run(p: Packed, action: np.ndarray, table: ParamTable, group: np.ndarray,
          threads: int | None) -> tuple[TrafficState, StepInfo]:
-    p = Packed.of(state)
     s_n, v_n = p.valid.shape
     # a vehicle may enter only on steps that are multiples of SPAWN_PERIOD_STEPS: otherwise the new state shares
     # the traits (states are never written in place)

@@ -17,6 +17,7 @@ about a real vehicle.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -47,7 +48,7 @@ from wmplan.sim.features import (
     NUM_ROAD_FEATURES,
     NUM_VEHICLE_FEATURES,
 )
-from wmplan.sim.kernel import E_COLLIDED, E_OFFROAD, E_REACHED, S_STEP
+from wmplan.sim.kernel import E_COLLIDED, E_OFFROAD, E_REACHED, S_EGO_SPEED, S_STEP
 from wmplan.sim.kernel import F_H as K_H
 from wmplan.sim.kernel import F_LEN as K_LEN
 from wmplan.sim.kernel import F_VX as K_VX
@@ -277,7 +278,8 @@ def _check_actions(actions: Any, shape: tuple[int, ...], where: str) -> np.ndarr
     arr = np.asarray(actions, dtype=np.float64)
     if arr.shape != shape:
         raise ConfigError(f"{where}: action must have shape {shape} (accel_mps2, steer_rad), got {arr.shape}")
-    if not np.isfinite(arr).all():
+    finite = all(map(math.isfinite, arr.tolist())) if arr.ndim == 1 else bool(np.isfinite(arr).all())
+    if not finite:
         raise ConfigError(f"{where}: action holds NaN or inf ({arr.tolist()}); pass finite numbers")
     return arr
 
@@ -446,11 +448,13 @@ class LaneEnv(gym.Env):
         return {k: v[0] for k, v in obs.items()}
 
     def _info(self, accel_mps2: float, steer_rad: float) -> dict[str, Any]:
-        st = self._state
+        p = Packed.of(self._state)
+        ended, stp = p.ended[:, 0].tolist(), int(p.si[S_STEP, 0])
         return {
-            "collision": bool(st.collided[0]), "offroad": bool(st.offroad[0]), "goal": bool(st.reached_goal[0]),
-            "scene_seed": self._scene_seed, "step": int(st.step[0]), "time_s": float(st.step[0] * self.params.dt_s),
-            "ego_speed_mps": float(st.ego_speed_mps[0]), "accel_mps2": float(accel_mps2), "steer_rad": float(steer_rad),
+            "collision": ended[E_COLLIDED], "offroad": ended[E_OFFROAD], "goal": ended[E_REACHED],
+            "scene_seed": self._scene_seed, "step": stp, "time_s": float(p.si[S_STEP, 0] * self.params.dt_s),
+            "ego_speed_mps": float(p.sf[S_EGO_SPEED, 0]), "accel_mps2": float(accel_mps2),
+            "steer_rad": float(steer_rad),
         }
 
     def step(self, action: Any) -> tuple[dict[str, np.ndarray], float, bool, bool, dict[str, Any]]:
@@ -470,9 +474,8 @@ class LaneEnv(gym.Env):
         _env_outputs(table.scalars[0], table.lanes[0], _constants(self.params, self.reward_config), pb.vf, pb.ended,
                      pa.vf, pa.valid, pa.ended, sinfo.accel_mps2, sinfo.steer_rad, objects, road, self._slots,
                      self._reward)
-        terminated = bool(pa.ended[0, 0] or pa.ended[1, 0] or pa.ended[2, 0])
-        step_now = int(pa.si[S_STEP, 0])
-        truncated = (not terminated) and step_now >= self.params.num_steps
+        terminated = bool(pa.ended[:, 0].any())
+        truncated = (not terminated) and int(pa.si[S_STEP, 0]) >= self.params.num_steps
         self._ended = terminated or truncated
         info = self._info(float(sinfo.accel_mps2[0, EGO]), float(sinfo.steer_rad[0]))
         return {"objects": objects[0], "road": road[0]}, float(self._reward[0]), terminated, truncated, info

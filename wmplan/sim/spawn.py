@@ -9,10 +9,13 @@ from __future__ import annotations
 import numpy as np
 
 from wmplan import rng
-from wmplan.sim._jit import jit
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.behaviour import idm_equilibrium_gap
+from wmplan.sim.draws import combine5, to_unit
 from wmplan.sim.params import NUM_TRAITS, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
+
+STREAM_INIT = rng.STREAM_INIT  # a compile-time constant of _grid_uniforms
 
 
 def draw_traits(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray, salt: int = 0,
@@ -35,6 +38,15 @@ def draw_size(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray) -> tup
     both = rng.truncated_normal(dist[:, 0], dist[:, 1], dist[:, 2], dist[:, 3], np.asarray(key)[..., None],
                                 rng.STREAM_TRAITS, np.asarray(vehicle_id)[..., None], np.array([101, 102]))
     return both[..., 0], both[..., 1]
+
+
+@jit
+def _grid_uniforms(keys, lane, out):
+    """``out[k, s, i]`` = ``rng.uniform(keys[s], rng.STREAM_INIT, lane, i, k + 1)`` (the same numbers, compiled)."""
+    for s in range(keys.shape[0]):
+        for i in range(out.shape[2]):
+            for k in range(out.shape[0]):
+                out[k, s, i] = to_unit(combine5(keys[s], STREAM_INIT, lane, i, k + 1))
 
 
 @jit
@@ -121,9 +133,10 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
         cand_placed.append(np.full((s, 1), i))
     for lane in range(params.num_lanes):
         n = len(grid)
-        idx = np.arange(n)
-        jitter = (rng.uniform(keys[:, None], rng.STREAM_INIT, lane, idx, 1) - 0.5) * spacing * 0.6
-        keep_u = rng.uniform(keys[:, None], rng.STREAM_INIT, lane, idx, 2)
+        u = np.empty((2, s, n))
+        _grid_uniforms(kernel_array(keys, np.uint64), lane, u)
+        jitter = (u[0] - 0.5) * spacing * 0.6
+        keep_u = u[1]
         xs = grid[None, :] + jitter
         keep = keep_u < params.density_veh_per_m[lane] * spacing
         keep &= params.lane_exists(np.full_like(xs, lane, dtype=np.int64), xs)
