@@ -247,7 +247,7 @@ def _scratch(v_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     cache = _LOCAL.__dict__.setdefault("scratch", {})
     out = cache.get(v_n)
     if out is None:
-        out = cache[v_n] = (np.empty((7, v_n), dtype=np.int64), np.empty((2, v_n)), np.empty((2, v_n), dtype=np.bool_))
+        out = cache[v_n] = (np.empty((7, v_n), dtype=np.int64), np.empty((3, v_n)), np.empty((2, v_n), dtype=np.bool_))
     return out
 
 

@@ -228,10 +228,10 @@ def _c(traits, j):
 
 
 @jit
-def _follow(vx, traits, j, gap, v_lead):
-    """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead``."""
-    return _idm(vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A],
-                _c(traits, j))
+def _follow(vx, traits, cc, j, gap, v_lead):
+    """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead`` (``cc[j]``: its
+    :func:`_c`, worked out once a step)."""
+    return _idm(vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A], cc[j])
 
 
 @jit
@@ -366,15 +366,15 @@ def _leaders(x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, m
 
 
 @jit
-def _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lead, acc):
+def _car_following(sc, ln, x, vx, length, lane, traits, cc, traffic, lead_gap, v_lead, acc):
     """IDM toward the leader and, where any lane of the road ends, toward the end of the own lane."""
     any_end = sc[P_ANY_END] != 0.0
     for i in range(x.shape[0]):
         if not traffic[i]:
             continue
-        a = _follow(vx, traits, i, lead_gap[i], v_lead[i])
+        a = _follow(vx, traits, cc, i, lead_gap[i], v_lead[i])
         if any_end:
-            a = min(a, _follow(vx, traits, i, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], 0.0))
+            a = min(a, _follow(vx, traits, cc, i, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], 0.0))
         acc[i] = a
 
 
@@ -391,7 +391,7 @@ def _bold(sc, ln, x, vx, length, lane, traits, i, gap, v_lead):
 
 
 @jit
-def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_old, order, rank, n, any_merger,
+def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, cc, traffic, ys_old, order, rank, n, any_merger,
               merger, merge_to, lead_gap, v_lead, acc, ys):
     """Drivers with a merging vehicle just ahead whose target is their lane decide (once, at random) whether to
     let it in; sets ``ys`` (0 no partner, 1 yields, 2 does not) and adjusts ``acc``. Returns the log-likelihood
@@ -428,7 +428,7 @@ def _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_ol
             state = 1 if yields else 2
         ys[i] = state
         if state == 1:
-            a_yield = _follow(vx, traits, i, max(_gap_ahead(x, length, i, p), traits[i, T_S0]), vx[p])
+            a_yield = _follow(vx, traits, cc, i, max(_gap_ahead(x, length, i, p), traits[i, T_S0]), vx[p])
             acc[i] = min(acc[i], max(a_yield, -traits[i, T_BSAFE]))
         else:  # close up on the leader, so that the merging vehicle finds no gap in front
             acc[i] = _bold(sc, ln, x, vx, length, lane, traits, i, lead_gap[i], v_lead[i])
@@ -474,7 +474,7 @@ def _braking(sc, key, stp, x, vx, vid, traffic, timer_in, decel_in, acc, timer, 
 
 
 @jit
-def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d):
+def _incentive(sc, ln, x, vx, length, lane, traits, cc, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d):
     """MOBIL incentive of vehicle i for a change by d lanes, or -inf where the change is not allowed or not safe.
     The incentive includes the mandatory-merge bias where i's lane ends within the merge zone."""
     target = lane[i] + d
@@ -487,16 +487,16 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
     # old follower (in any lane this vehicle occupies), before and after the change
     f = _prev_in(order, rank, i, bits, bits[i])
     f_gap = _gap_behind(x, length, i, f)
-    a_o = _follow(vx, traits, f, f_gap, vx[i]) if f >= 0 else 0.0
-    a_o_after = _follow(vx, traits, f, f_gap + lead_gap[i] + length[i], v_lead[i]) if f >= 0 else 0.0
+    a_o = _follow(vx, traits, cc, f, f_gap, vx[i]) if f >= 0 else 0.0
+    a_o_after = _follow(vx, traits, cc, f, f_gap + lead_gap[i] + length[i], v_lead[i]) if f >= 0 else 0.0
     # new leader and new follower in the target lane
     nl = _next_in(order, rank, n, i, bits, 1 << target)
     nf = _prev_in(order, rank, i, bits, 1 << target)
     nl_gap, nf_gap = _gap_ahead(x, length, i, nl), _gap_behind(x, length, i, nf)
     v_nl = vx[nl] if nl >= 0 else 0.0
-    a_self_after = min(_follow(vx, traits, i, nl_gap, v_nl), _follow(vx, traits, i, d_end_t - 0.5 * length[i], 0.0))
-    a_n = _follow(vx, traits, nf, nl_gap + nf_gap + length[i], v_nl) if nf >= 0 else 0.0
-    a_n_after = _follow(vx, traits, nf, nf_gap, vx[i]) if nf >= 0 else 0.0
+    a_self_after = min(_follow(vx, traits, cc, i, nl_gap, v_nl), _follow(vx, traits, cc, i, d_end_t - 0.5 * length[i], 0.0))
+    a_n = _follow(vx, traits, cc, nf, nl_gap + nf_gap + length[i], v_nl) if nf >= 0 else 0.0
+    a_n_after = _follow(vx, traits, cc, nf, nf_gap, vx[i]) if nf >= 0 else 0.0
     b_safe = traits[i, T_BSAFE]
     if not ((nf < 0 or a_n_after >= -b_safe) and nl_gap > 1.0 and nf_gap > 1.0 and a_self_after >= -b_safe):
         return -np.inf
@@ -508,7 +508,7 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
 
 
 @jit
-def _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, traffic, cd_in, order, rank, n, bits, lead,
+def _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, cc, traffic, cd_in, order, rank, n, bits, lead,
                   lead_gap, v_lead, acc, new_lane, cooldown):
     """MOBIL on decision steps: right (-1) at phase 0 of the decision period, left (+1) at half the period."""
     dt = sc[P_DT]
@@ -519,7 +519,8 @@ def _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, traffic, cd_in, o
         new_lane[i] = lane[i]
         if d == 0 or not traffic[i] or cooldown[i] > 0.0 or not abs(y[i] - _centre(sc, lane[i])) < SETTLED_M:
             continue
-        inc = _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d)
+        inc = _incentive(sc, ln, x, vx, length, lane, traits, cc, order, rank, n, bits, lead, lead_gap, v_lead, acc, i,
+                         d)
         if inc > traits[i, T_TH]:
             new_lane[i] = lane[i] + d
             cooldown[i] = LANE_CHANGE_COOLDOWN_S
@@ -730,14 +731,17 @@ def _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid, ended, s, o_ended, in
 def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, valid, vid, lane, traits, ys_old,
                 timer_in, decel_in, cd_in, ego_speed, ego_steer, a_cmd, steer_cmd,
                 o_x, o_y, o_vx, o_vy, o_h, o_len, o_wid, o_valid, o_vid, o_lane, o_traits, o_ys, o_timer, o_decel,
-                o_cd, acc, order, rank, bits, centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger):
+                o_cd, acc, order, rank, bits, centre_bit, lead, merge_to, new_lane, lead_gap, v_lead, traffic, merger,
+                cc):
     """Advance one scene by one step (module docstring). Writes the scene's new rows into the ``o_*`` arrays
     (``o_len``, ``o_wid``, ``o_vid``, ``o_traits`` already hold the old rows) and the applied accelerations into
-    ``acc``. Returns (log-weight, ego steering, ego speed, vehicles entered)."""
+    ``acc``; ``order`` ... ``cc`` are work space (V,). Returns (log-weight, ego steering, ego speed, vehicles
+    entered)."""
     v_n = x.shape[0]
     for i in range(v_n):
         traffic[i] = valid[i] and i != EGO
         acc[i] = 0.0
+        cc[i] = _c(traits, i) if valid[i] else 0.0  # the IDM's 1 / (2 sqrt(a b)) of each driver, once a step
     # 1. neighbours
     _occupancy(sc, x, y, length, width, heading, valid, lane, bits, centre_bit)
     n = _sort(x, valid, order, rank)
@@ -745,15 +749,15 @@ def _step_scene(sc, ln, pt, key, stp, new_id, x, y, vx, heading, length, width, 
     _leaders(x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit, lead, lead_gap,
              v_lead)
     # 2. car following
-    _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lead, acc)
+    _car_following(sc, ln, x, vx, length, lane, traits, cc, traffic, lead_gap, v_lead, acc)
     # 3. yielding to merging vehicles
-    log_w = _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, traffic, ys_old, order, rank, n,
+    log_w = _yielding(sc, ln, key, stp, x, vx, length, lane, vid, traits, cc, traffic, ys_old, order, rank, n,
                       any_merger, merger, merge_to, lead_gap, v_lead, acc, o_ys)
     # 4. hard braking
     log_w += _braking(sc, key, stp, x, vx, vid, traffic, timer_in, decel_in, acc, o_timer, o_decel)
     # 5. lane changes
-    _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, traffic, cd_in, order, rank, n, bits, lead, lead_gap,
-                  v_lead, acc, new_lane, o_cd)
+    _lane_changes(sc, ln, stp, x, y, vx, length, lane, traits, cc, traffic, cd_in, order, rank, n, bits, lead,
+                  lead_gap, v_lead, acc, new_lane, o_cd)
     # 6. motion
     _traffic_motion(sc, x, y, vx, traffic, acc, new_lane, o_x, o_y, o_vx, o_vy, o_h)
     a_ego, steer, ev = _ego_motion(sc, x, y, heading, ego_speed, ego_steer, a_cmd, steer_cmd, o_x, o_y, o_vx, o_vy,
@@ -782,11 +786,11 @@ def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, vf, vi, valid, ys
     (NSF, S) float64, ``si`` (NSI, S) int64, ``ended`` (NE, S) bool; ``info`` (3, S) bool (collision, off-road,
     goal), ``i_acc`` (S, V), ``i_log_w`` (S,). ``o_traits`` already holds the old traits (or is ``traits`` itself
     on steps where nobody may enter). Scene s uses parameter row ``group[s]``; only rows [a, b) are touched.
-    ``scratch_*``: work space of this call only ((7, V) int64, (2, V) float64, (2, V) bool): the kernel runs
+    ``scratch_*``: work space of this call only ((7, V) int64, (3, V) float64, (2, V) bool): the kernel runs
     without numba's reference counting (no allocation inside), so the caller provides it."""
     order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
     lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
-    lead_gap, v_lead, traffic, merger = scratch_f[0], scratch_f[1], scratch_b[0], scratch_b[1]
+    lead_gap, v_lead, cc, traffic, merger = scratch_f[0], scratch_f[1], scratch_f[2], scratch_b[0], scratch_b[1]
     for s in range(a, b):
         g = group[s]
         sc, ln, pt = p_scalars[g], p_lanes[g], p_traits[g]
@@ -801,7 +805,7 @@ def step_range(a, b, group, p_scalars, p_lanes, p_traits, key, vf, vi, valid, ys
             vf[F_DECEL, s], vf[F_CD, s], sf[S_EGO_SPEED, s], sf[S_EGO_STEER, s], action[s, 0], action[s, 1], o_x, o_y,
             o_vf[F_VX, s], o_vf[F_VY, s], o_h, o_len, o_wid, o_valid[s], o_vid, o_vi[I_LANE, s], o_traits[s], o_ys[s],
             o_vf[F_TIMER, s], o_vf[F_DECEL, s], o_vf[F_CD, s], i_acc[s], order, rank, bits, centre_bit, lead,
-            merge_to, new_lane, lead_gap, v_lead, traffic, merger)
+            merge_to, new_lane, lead_gap, v_lead, traffic, merger, cc)
         o_si[S_STEP, s], o_si[S_NEXT_ID, s] = si[S_STEP, s] + 1, new_id + entered
         o_sf[S_EGO_SPEED, s], o_sf[S_EGO_STEER, s], i_log_w[s] = ev, steer, log_w
         _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid[s], ended, s, o_ended, info)

@@ -163,7 +163,7 @@ def _rollout_range(a, b, c_n, k_n, sub, group, p_scalars, p_lanes, p_traits, key
     h_n = plans.shape[2]
     order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
     lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
-    lead_gap, v_lead, traffic, merger = scratch_f[0], scratch_f[1], scratch_b[0], scratch_b[1]
+    lead_gap, v_lead, cc, traffic, merger = scratch_f[0], scratch_f[1], scratch_f[2], scratch_b[0], scratch_b[1]
     v_n = valid.shape[1]
     for n in range(a, b):
         s, c, k = n // (c_n * k_n), (n // k_n) % c_n, n % k_n
@@ -197,7 +197,7 @@ def _rollout_range(a, b, c_n, k_n, sub, group, p_scalars, p_lanes, p_traits, key
                     plans[s, c, h, 1], o_x, o_y, bvf[nxt, F_VX], bvf[nxt, F_VY], o_h, o_len, o_wid, bvalid[nxt],
                     bvi[nxt, I_VID], bvi[nxt, I_LANE], btr[tnxt], bys[nxt], bvf[nxt, F_TIMER], bvf[nxt, F_DECEL],
                     bvf[nxt, F_CD], acc, order, rank, bits, centre_bit, lead, merge_to, new_lane, lead_gap, v_lead,
-                    traffic, merger)
+                    traffic, merger, cc)
                 stp, new_id = stp + 1, new_id + entered
                 _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, bvalid[nxt], bended[cur], 0, bended[nxt], info)
                 cur, tcur = nxt, tnxt
@@ -218,7 +218,7 @@ def _rollout_buffers(packed: Packed) -> tuple:
     return (np.empty((2, packed.vf.shape[0], v_n)), np.empty((2, packed.vi.shape[0], v_n), dtype=np.int64),
             np.empty((2, v_n), dtype=np.bool_), np.empty((2, v_n), dtype=np.int8), np.empty((2, v_n, nt)),
             np.empty((2, packed.ended.shape[0], 1), dtype=np.bool_), np.empty(v_n), np.empty((3, 1), dtype=np.bool_),
-            np.empty((7, v_n), dtype=np.int64), np.empty((2, v_n)), np.empty((2, v_n), dtype=np.bool_))
+            np.empty((7, v_n), dtype=np.int64), np.empty((3, v_n)), np.empty((2, v_n), dtype=np.bool_))
 
 
 def oracle_futures_batch(state: TrafficState, params: SimParams | Sequence[SimParams], scenes: np.ndarray, plans: np.ndarray,
