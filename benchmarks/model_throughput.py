@@ -49,9 +49,6 @@ Usage: ``python benchmarks/model_throughput.py [--quick] [--threads N] [--json F
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import platform
 import statistics
 import sys
 import tempfile
@@ -60,6 +57,8 @@ from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
+
+from wmplan import benchkit
 
 SCENARIO = "onramp-merge"
 PLANNER_SHAPE = dict(scenes=1, candidates=64, samples=8)
@@ -87,18 +86,9 @@ TARGET_EFFICIENCY = 0.5
 SEED = 0
 
 
-def _load() -> float | None:
-    return os.getloadavg()[0] if hasattr(os, "getloadavg") else None
-
-
 def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
     """Wall-clock and process-CPU seconds of ``repeats`` calls of ``fn``."""
-    wall, cpu = [], []
-    for _ in range(repeats):
-        t0, c0 = time.perf_counter(), time.process_time()
-        fn()
-        wall.append(time.perf_counter() - t0)
-        cpu.append(time.process_time() - c0)
+    wall, cpu, _ = benchkit.timed(fn, repeats)
     return wall, cpu
 
 
@@ -350,7 +340,7 @@ def run(quick: bool = False, threads: int = 1) -> dict:
     cfg = QUICK if quick else FULL
     threads_before = torch.get_num_threads()
     torch.set_num_threads(int(threads))
-    load_start = _load()
+    machine = benchkit.machine()
     try:
         model_cfg = ModelConfig()
         spec = WindowSpec(model_cfg.history, model_cfg.horizon, model_cfg.num_objects)
@@ -476,40 +466,40 @@ def run(quick: bool = False, threads: int = 1) -> dict:
                 "rollout_efficiency_met": t_mm / t_roll >= TARGET_EFFICIENCY,
             },
             "machine": {
-                "platform": platform.platform(),
-                "processor": platform.processor() or platform.machine(),
-                "python": platform.python_version(),
+                **machine,
                 "torch": torch.__version__,
-                "cpu_count": os.cpu_count(),
-                "load_avg_1min_at_start": load_start,
-                "load_avg_1min_at_end": _load(),
+                "torch_threads": int(threads),
+                "load_avg_1min_at_end": benchkit.load_avg(),
             },
-            "note": "Speed of a model of a simplified traffic simulator on one machine; it certifies nothing about "
-            "a real vehicle.",
+            "caution": benchkit.CAUTION,
         }
     finally:
         torch.set_num_threads(threads_before)
     return result
 
 
-def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(
-        description="Forward-model throughput: training samples/s, rollout "
-        "vehicle-steps/s and rollout efficiency against plain matmuls."
-    )
-    parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
-    parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
-    parser.add_argument("--threads", type=int, default=1, help="torch intra-op threads (default 1)")
-    args = parser.parse_args(argv)
-    if args.threads < 1:
-        parser.error(f"--threads must be >= 1, got {args.threads}")
-    result = run(quick=args.quick, threads=args.threads)
-    if args.json:
-        from wmplan.io import atomic_write_json
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be an integer >= 1, got {text!r}")
+    return value
 
-        atomic_write_json(Path(args.json), result)
-    print(json.dumps(result, indent=2))
-    return 0
+
+def _arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--threads", type=_positive_int, default=1, help="torch intra-op threads (default 1)")
+
+
+def main(argv: list[str] | None = None) -> int:
+    return benchkit.main(
+        run,
+        "Forward-model throughput: training samples/s, rollout vehicle-steps/s and rollout "
+        "efficiency against plain matmuls.",
+        argv,
+        _arguments,
+    )
 
 
 if __name__ == "__main__":

@@ -261,7 +261,7 @@ def run(quick: bool = False) -> dict:
             k: (values[k] <= t if k == "compile_s" else values[k] >= t) for k, t in TARGETS.items() if k in values
         },
         "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
-        "note": benchkit.NOTE,
+        "caution": benchkit.CAUTION,
     }
 
 

@@ -34,16 +34,13 @@ about 1).
 
 from __future__ import annotations
 
-import argparse
-import json
 import math
-import os
-import platform
 import statistics
 import sys
 import tempfile
 import time
-from pathlib import Path
+
+from wmplan import benchkit
 
 FULL = dict(reference_episodes=80_000, min_per_stratum=1200, budget=1000, seeds=(1, 2, 3, 4, 5))
 QUICK = dict(reference_episodes=4000, min_per_stratum=100, budget=240, seeds=(1,))
@@ -155,10 +152,8 @@ def stress_runs(budget: int, seeds: tuple[int, ...], p_ref: float) -> list[dict]
 
 def run(quick: bool = False) -> dict:
     cfg = QUICK if quick else FULL
-    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else None
-    t0 = time.perf_counter()
-    ref = reference(cfg["reference_episodes"], cfg["min_per_stratum"])
-    ref_seconds = time.perf_counter() - t0
+    machine = benchkit.machine()
+    (ref_seconds,), _cpu, ref = benchkit.timed(lambda: reference(cfg["reference_episodes"], cfg["min_per_stratum"]), 1)
     runs = stress_runs(cfg["budget"], tuple(cfg["seeds"]), ref["estimate"]) if ref["estimate"] > 0 else []
     gains = [r["fewer_simulations_x"] for r in runs if r["fewer_simulations_x"]]
     p = ref["estimate"]
@@ -184,31 +179,14 @@ def run(quick: bool = False) -> dict:
         "fewer_simulations_x_median": statistics.median(gains) if gains else None,
         "across_seeds": spread,
         "is_covers_reference": sum(r["is_covers_reference"] for r in runs),
-        "machine": {
-            "platform": platform.platform(),
-            "python": platform.python_version(),
-            "cpu_count": os.cpu_count(),
-            "load_avg_1min_at_start": load,
-        },
-        "caution": "A simplified traffic model; certifies nothing about a real vehicle.",
+        "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
+        "caution": benchkit.CAUTION,
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="a small reference and one short stress run")
-    parser.add_argument("--json", metavar="FILE", help="also write the result to FILE (atomically)")
-    args = parser.parse_args(argv)
-    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
-    result = run(quick=args.quick)
-    text = json.dumps(result, indent=2)
-    if args.json:
-        from wmplan.io import atomic_write_text
-
-        atomic_write_text(Path(args.json), text + "\n")
-    print(text)
-    return 0
+    return benchkit.main(run, __doc__.splitlines()[0], argv)
 
 
 if __name__ == "__main__":
-    raise SystemExit(main())
+    sys.exit(main())

@@ -7,7 +7,8 @@ the worker processes does not dominate), into a fresh folder each time, plots of
 * ``cells_per_min["1"]``: ``workers=1`` (cells run one after another in this process);
 * ``cells_per_min["2"]``: ``workers=2`` (a spawned process pool; its start-up time is included);
 * ``scaling_2x`` = rate with 2 workers / rate with 1; the design target is >= 1.8 on a 2-core machine;
-* ``rows_identical``: both runs wrote the same ``results.parquet`` rows (they must).
+* ``rows_identical``: both runs wrote the same ``results.parquet`` rows, apart from the wall-clock ``decision_ms``
+  column (they must).
 * ``cpu_seconds``: CPU time of this process and the pool's workers per run; ``cpu_utilisation`` = CPU seconds /
   (workers x wall seconds), below 1 when other programs took the cores; ``scaling_2x_if_idle`` = 2 x CPU(1) / CPU(2),
   the scaling that the 2-worker run's extra work (start-up, transfers) would allow on otherwise idle cores. It is a
@@ -23,16 +24,14 @@ Importing this module runs nothing.
 
 from __future__ import annotations
 
-import argparse
-import json
-import os
-import platform
 import resource
 import statistics
 import sys
 import tempfile
 import time
 from pathlib import Path
+
+from wmplan import benchkit
 
 FULL = dict(num_cells=24, episodes_per_cell=384, repeats=3)
 QUICK = dict(num_cells=8, episodes_per_cell=96, repeats=1)
@@ -78,7 +77,7 @@ def run(quick: bool = False) -> dict:
 
     cfg = QUICK if quick else FULL
     sweep = _sweep(cfg["num_cells"], cfg["episodes_per_cell"])
-    load_before = os.getloadavg()
+    machine = benchkit.machine()
     times: dict[int, list[float]] = {1: [], 2: []}
     cpu: dict[int, list[float]] = {1: [], 2: []}
     identical = True
@@ -90,7 +89,8 @@ def run(quick: bool = False) -> dict:
                 seconds, cpu_s, outs[workers] = _time_run(sweep, workers, root, f"w{workers}-r{r}")
                 times[workers].append(seconds)
                 cpu[workers].append(cpu_s)
-            identical &= pq.read_table(outs[1] / "results.parquet").equals(pq.read_table(outs[2] / "results.parquet"))
+            tables = [pq.read_table(outs[w] / "results.parquet") for w in (1, 2)]
+            identical &= tables[0].drop_columns(["decision_ms"]).equals(tables[1].drop_columns(["decision_ms"]))
     seconds = {w: statistics.median(ts) for w, ts in times.items()}
     cpu_med = {w: statistics.median(cs) for w, cs in cpu.items()}
     rate = {w: 60.0 * cfg["num_cells"] / s for w, s in seconds.items()}
@@ -109,29 +109,16 @@ def run(quick: bool = False) -> dict:
         "target_scaling_2x": TARGET_SCALING_2X,
         "meets_target": scaling >= TARGET_SCALING_2X,
         "rows_identical": bool(identical),
-        "cpu_count": os.cpu_count(),
-        "load_average_before": list(load_before),
-        "load_average_after": list(os.getloadavg()),
-        "python": platform.python_version(),
+        "benchmark": "sweep_scaling",
         "quick": quick,
+        "machine": {**machine, "load_avg_1min_at_end": benchkit.load_avg()},
+        "caution": benchkit.CAUTION,
     }
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--quick", action="store_true", help="a smaller sweep, one repeat")
-    parser.add_argument("--json", metavar="FILE", help="also write the result to FILE (atomically)")
-    args = parser.parse_args(argv)
-    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
-    result = run(quick=args.quick)
-    text = json.dumps(result, indent=2)
-    if args.json:
-        from wmplan.io import atomic_write_text
-
-        atomic_write_text(Path(args.json), text + "\n")
-    print(text)
-    return 0
+    return benchkit.main(run, __doc__.splitlines()[0], argv)
 
 
 if __name__ == "__main__":  # the spawned sweep workers import this file as __mp_main__; they must not rerun it
-    raise SystemExit(main())
+    sys.exit(main())

@@ -13,10 +13,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-NOTE = (
-    "Measured on a simplified traffic model on one machine; it certifies nothing about a real vehicle (see "
-    "functional-safety standards, local regulation and licensed engineering practice for that)."
-)
+from wmplan.caution import CAUTION  # noqa: F401  (every benchmark's JSON carries it under "caution")
 
 
 def load_avg() -> float | None:
@@ -62,7 +59,7 @@ def main(
     add_arguments: Callable[[argparse.ArgumentParser], None] | None = None,
 ) -> int:
     """The command line of a benchmark: ``--quick``, ``--json FILE`` (written atomically) and any arguments
-    ``add_arguments`` adds (passed to ``run`` by name); prints the result as JSON."""
+    ``add_arguments`` adds (passed to ``run`` by name); prints the result as JSON, with the ``caution`` key."""
     parser = argparse.ArgumentParser(description=description)
     parser.add_argument("--json", metavar="FILE", help="also write the results to FILE (atomically)")
     parser.add_argument("--quick", action="store_true", help="short runs (a smoke test, not for numbers)")
@@ -71,6 +68,7 @@ def main(
     args = vars(parser.parse_args(argv))
     json_path = args.pop("json")
     result = run(**args)
+    result.setdefault("caution", CAUTION)
     if json_path:
         from wmplan.io import atomic_write_json
 

@@ -209,3 +209,61 @@ def test_step_refuses_a_wrong_action_shape():
     st = initial_state(params, [0, 1, 2])
     with pytest.raises(ValueError, match=re.escape("action must have shape (3, 2) (accel_mps2, steer_rad), got (2,)")):
         step(st, np.zeros(2), params)
+
+
+@pytest.mark.parametrize("name", ["onramp-merge", "cut-in"])
+def test_engine_made_pickled_and_rebuilt_states_step_alike(name):
+    """An engine-made state (its fields views of the engine's packed arrays, made on first read), a pickled copy
+    (fields only) and a state rebuilt from copies of its fields continue bit for bit alike over 60 steps; reading a
+    field of the engine-made state gives the same array every time, and the state it came from is unchanged."""
+    import pickle
+
+    params = _params(name)
+    st = initial_state(params, np.arange(24) + 5)
+    for _ in range(17):
+        st = _advance(st, params)
+    before = st.to_arrays()
+    assert st.x_m is st.x_m and st.traits is st.traits
+    copies = [st, pickle.loads(pickle.dumps(st)), TrafficState.from_arrays(st.to_arrays())]
+    for k in range(60):
+        copies = [_advance(c, params) for c in copies]
+        for c in copies[1:]:
+            _assert_same(copies[0], c, f"step {k}")
+    for field, value in before.items():
+        np.testing.assert_array_equal(getattr(st, field), value)
+    with pytest.raises(AttributeError):
+        _ = st.no_such_field
+
+
+def test_one_compiled_specialisation_whatever_the_inputs():
+    """Read-only, strided and other-typed inputs (actions, groups, plans, state fields) are copied into the one
+    layout the compiled functions take, so each is compiled once (a second specialisation of the step costs tens
+    of seconds on first use); their results equal those of ordinary inputs."""
+    from wmplan.sim import engine, kernel
+    from wmplan.sim.ego_rules import _rule_actions, rule_actions
+    from wmplan.sim.engine import step_groups
+    from wmplan.sim.observe import _observe_scenes, observe
+    from wmplan.sim.oracle import _rollout_range, oracle_futures_batch
+
+    params = _params("onramp-merge")
+    st = initial_state(params, np.arange(6))
+    arrays = st.to_arrays()
+    for value in arrays.values():
+        value.flags.writeable = False
+    frozen = TrafficState(**{k: (v[:, ::-1][:, ::-1] if v.ndim == 2 else v) for k, v in arrays.items()})
+    act = np.zeros((6, 2), dtype=np.float32)
+    act.flags.writeable = False
+    group = np.zeros(6, dtype=np.int32)
+    group.flags.writeable = False
+    a, _ = step(st, np.zeros((6, 2)), params)
+    b, _ = step(frozen, act, params)
+    c, _ = step_groups(frozen, act[:, ::1], engine.param_table(params), group)
+    _assert_same(a, b, "read-only inputs")
+    _assert_same(a, c, "step_groups, read-only int32 group")
+    plans = np.zeros((1, 2, 3, 2), dtype=np.float32)
+    plans.flags.writeable = False
+    oracle_futures_batch(frozen, params, np.array([0]), plans, 2)
+    rule_actions(frozen, params)
+    observe(frozen, params)
+    for fn in (kernel.step_range, _rollout_range, _rule_actions, _observe_scenes):
+        assert len(fn.signatures) == 1, (fn.__name__, fn.signatures)

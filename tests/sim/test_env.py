@@ -399,3 +399,59 @@ def test_bad_input_gives_one_line_errors():
     venv.reset(seed=0)
     with pytest.raises(ConfigError, match=re.escape("LaneVectorEnv.step: action must have shape (2, 2)")):
         venv.step(np.zeros(2))
+
+
+def _numpy_step_reward(params, cfg, before, after, info):
+    """RewardConfig's formula in numpy, as step_reward computed it before it was compiled."""
+    v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
+    dx = after.x_m[:, 0] - before.x_m[:, 0]
+    progress = cfg.progress_weight * np.minimum(dx, v_lim * dt) / (v_lim * dur)
+    comfort = (
+        (
+            cfg.accel_weight * (info.accel_mps2[:, 0] / cfg.comfort_accel_mps2) ** 2
+            + cfg.steer_weight * (info.steer_rad / params.max_steer_rad) ** 2
+        )
+        * dt
+        / dur
+    )
+    crashed = (after.collided | after.offroad) & ~(before.collided | before.offroad)
+    arrived = after.reached_goal & ~before.reached_goal
+    return progress - comfort - cfg.crash_penalty * crashed + cfg.goal_bonus * arrived
+
+
+@pytest.mark.parametrize("scenario", ["onramp-merge", "cut-in", "stop-and-go"])
+def test_compiled_reward_equals_the_numpy_formula(scenario):
+    """step_reward (compiled) equals the numpy formula bit for bit over whole episodes of 256 scenes with random
+    actions in half of them and non-default weights (collisions, off-road ends and goals included); an equivalence check
+    (docs/references.md#practice-equivalence-test)."""
+    from wmplan.sim import initial_state
+    from wmplan.sim.engine import step as engine_step
+    from wmplan.sim.env import step_reward
+    from wmplan.sim.params import SimParams
+
+    params = SimParams.from_scenario(load_scenario(scenario))
+    gen = np.random.default_rng(7)
+    st = initial_state(params, np.arange(256))
+    ended = np.zeros(256, dtype=bool)
+    for cfg in (
+        RewardConfig(),
+        RewardConfig(
+            progress_weight=2.0,
+            accel_weight=0.3,
+            comfort_accel_mps2=1.5,
+            steer_weight=0.7,
+            crash_penalty=3.0,
+            goal_bonus=1.25,
+        ),
+    ):
+        st = initial_state(params, np.arange(256))
+        for _ in range(params.num_steps):
+            act = rule_actions(st, params)  # half the scenes driven by the rules (goals), half at random (crashes)
+            act[128:] = np.stack([gen.uniform(-9.0, 4.0, 128), gen.normal(0.0, 0.08, 128)], axis=1)
+            after, info = engine_step(st, act, params)
+            np.testing.assert_array_equal(
+                step_reward(params, cfg, st, after, info), _numpy_step_reward(params, cfg, st, after, info)
+            )
+            ended |= after.collided | after.offroad
+            st = after
+    assert ended.any() and st.reached_goal.any()

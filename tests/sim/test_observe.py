@@ -224,3 +224,55 @@ def test_road_features_elsewhere_on_onramp_merge(x_m, y_m, expected):
     """More hand-worked points on the same road (lane centres 1.8, 5.4, 9.0 m)."""
     params = SimParams.from_scenario(load_scenario("onramp-merge"))
     np.testing.assert_allclose(road_features(params, np.array([x_m]), np.array([y_m]))[0], expected, rtol=0, atol=1e-9)
+
+
+# --- the compiled observe against the numpy functions it runs (docs/references.md#practice-equivalence-test) ---------
+
+
+def _numpy_observe(state, params, num_objects):
+    """What ``observe`` computed before it was compiled: the numpy functions of this module on the state's rows."""
+    objects, slots = object_list(state.vehicles(), num_objects)
+    return objects, road_features(params, state.x_m[:, EGO], state.y_m[:, EGO]), slots
+
+
+@pytest.mark.parametrize("name", ["open-road", "onramp-merge", "cut-in", "lane-drop", "stop-and-go"])
+@pytest.mark.parametrize("num_objects", [1, 8, 20])
+def test_compiled_observe_equals_the_numpy_functions(name, num_objects):
+    """Bit for bit (slots exactly, values exactly): 64 scenes driven by the rule-based ego for 120 steps, and the
+    float32 form equals the float64 one cast by numpy. num_objects = 20 exceeds the slots (padding rows)."""
+    params = SimParams.from_scenario(load_scenario(name))
+    st = initial_state(params, np.arange(64) + 1000)
+    for k in range(120):
+        if k % 10 == 0:
+            objects, road, slots = observe(st, params, num_objects)
+            ref_objects, ref_road, ref_slots = _numpy_observe(st, params, num_objects)
+            np.testing.assert_array_equal(slots, ref_slots)
+            np.testing.assert_array_equal(objects, ref_objects)
+            np.testing.assert_array_equal(road, ref_road)
+            o32, r32, s32 = observe(st, params, num_objects, dtype=np.float32)
+            assert o32.dtype == r32.dtype == np.float32
+            np.testing.assert_array_equal(o32, ref_objects.astype(np.float32))
+            np.testing.assert_array_equal(r32, ref_road.astype(np.float32))
+            np.testing.assert_array_equal(s32, ref_slots)
+        st, _info = step(st, rule_actions(st, params), params)
+
+
+def test_compiled_observe_ties_and_empty_scenes():
+    """Equal distances go to the lower slot (the stable sort's order), a scene with only the ego pads with -1 and
+    zero rows, and a turned ego (heading near pi) wraps the others' relative headings as the numpy code does."""
+    params = SimParams.from_scenario(load_scenario("open-road"))
+    st = initial_state(params, [1, 2, 3])
+    x, y, h, valid = st.x_m.copy(), st.y_m.copy(), st.heading_rad.copy(), st.valid.copy()
+    x[0, 1:5] = x[0, EGO] + np.array([10.0, -10.0, 10.0, 0.0])  # three at exactly 10 m (two at the same point)
+    y[0, 1:5] = y[0, EGO] + np.array([0.0, 0.0, 0.0, 10.0])
+    valid[0, 1:5] = True
+    valid[1, 1:] = False  # the ego alone
+    h[2, EGO], h[2, 1:] = 3.1, -3.1
+    st = st.replace(x_m=x, y_m=y, heading_rad=h, valid=valid)
+    for m in (3, 8):
+        objects, road, slots = observe(st, params, m)
+        ref_objects, ref_road, ref_slots = _numpy_observe(st, params, m)
+        np.testing.assert_array_equal(slots, ref_slots)
+        np.testing.assert_array_equal(objects, ref_objects)
+        np.testing.assert_array_equal(road, ref_road)
+    assert list(slots[0, 1:5]) == [1, 2, 3, 4] and (slots[1, 1:] == -1).all()

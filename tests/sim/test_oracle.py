@@ -410,3 +410,122 @@ def test_bad_arguments_are_refused_in_one_line(kwargs, msg):
     plans, k = args.pop("plans"), args.pop("num_futures")
     with pytest.raises(ValueError, match=f"^{re.escape(msg)}$"):
         oracle_futures(st, params, plans, k, **args)
+
+
+# --- the compiled rollout against the engine's step, one step at a time (docs/references.md#practice-equivalence-test)
+
+
+def _stepped_futures(state, params, scenes, plans, k_n, *, mode, plan_dt_s, seed):
+    """What oracle_futures_batch computed before its rollout was compiled: the branches taken into (S, C, K)
+    order and advanced by engine.step, plan step by plan step, their world rows recorded."""
+    from wmplan.sim.oracle import substeps_per_plan_step
+
+    s_n, c_n, h_n, _ = plans.shape
+    sub = substeps_per_plan_step(params, plan_dt_s)
+    branches = branch(state, params, scenes, k_n, mode=mode, seed=seed)
+    take = (np.arange(s_n)[:, None, None] * k_n + np.arange(k_n)[None, None, :]).repeat(c_n, axis=1)
+    st = branches.take(take.reshape(-1))
+    actions = np.repeat(plans, k_n, axis=1).reshape(s_n * c_n * k_n, h_n, 2)
+    rows, ids, first = [], [], np.full(st.num_scenes, h_n)
+    for h in range(h_n):
+        for _ in range(sub):
+            st, _info = step(st, actions[:, h], params)
+        rows.append(st.vehicles())
+        ids.append(st.vehicle_id)
+        first = np.where((first == h_n) & (st.collided | st.offroad), h, first)
+    lead = (s_n, c_n, k_n)
+    return (
+        np.stack(rows, 1).reshape(*lead, h_n, st.num_vehicles, -1),
+        np.stack(ids, 1).reshape(*lead, h_n, -1),
+        st.collided.reshape(lead),
+        st.offroad.reshape(lead),
+        first.reshape(lead),
+    )
+
+
+@pytest.mark.parametrize("name", ["onramp-merge", "cut-in", "stop-and-go"])
+@pytest.mark.parametrize("mode", ["known", "resampled"])
+def test_compiled_rollout_equals_stepping_the_engine(name, mode):
+    """Bit for bit, three scenes of a batch, 16 plans (hard braking and swerves: collisions and off-road ends
+    happen), 6 futures, 15 plan steps of 0.2 s; on two threads and on one."""
+    from wmplan.sim.oracle import oracle_futures_batch
+
+    params = SimParams.from_scenario(load_scenario(name))
+    st = initial_state(params, np.arange(5) + 40)
+    for _ in range(25):
+        st, _ = step(st, rule_actions(st, params), params)
+    gen = np.random.default_rng(3)
+    plans = np.stack([gen.uniform(-8.0, 3.0, (3, 16, 15)), gen.normal(0.0, 0.15, (3, 16, 15))], axis=-1)
+    scenes, seeds = np.array([4, 0, 2]), np.array([7, 8, 9])
+    want = _stepped_futures(st, params, scenes, plans, 6, mode=mode, plan_dt_s=0.2, seed=seeds)
+    for threads in (2, 1):  # 288 futures: two chunks on two threads
+        got = oracle_futures_batch(st, params, scenes, plans, 6, mode=mode, plan_dt_s=0.2, seed=seeds, threads=threads)
+        for field, ref in zip(
+            ("vehicles", "vehicle_id", "collided", "offroad", "first_collision_step"), want, strict=True
+        ):
+            np.testing.assert_array_equal(getattr(got, field), ref, err_msg=field)
+    assert want[2].any() or want[3].any()
+
+
+def test_per_scene_parameters_run_in_one_call_as_alone():
+    """Scenes of two scenario variants (denser traffic, more hard braking, another yield probability) in one call
+    give, scene by scene, the futures each gives alone with its own parameters."""
+    import copy
+
+    from wmplan.scenario import parse_scenario, scenario_to_dict
+    from wmplan.sim.oracle import oracle_futures_batch
+
+    base = load_scenario("onramp-merge")
+    d = copy.deepcopy(scenario_to_dict(base))
+    d["traffic"]["density_veh_per_km"] = [8.0, 40.0, 30.0]
+    d["drivers"]["hard_brake_rate_per_min"] = 3.0
+    pa, pb = SimParams.from_scenario(base), SimParams.from_scenario(parse_scenario(d, source="variant"))
+    sa, sb = initial_state(pa, [1, 2]), initial_state(pb, [3])
+    gen = np.random.default_rng(5)
+    plans = np.stack([gen.uniform(-4.0, 2.0, (3, 4, 10)), gen.normal(0.0, 0.03, (3, 4, 10))], axis=-1)
+    both = TrafficState.concat([sa, sb])
+    for mode in ("known", "resampled"):
+        got = oracle_futures_batch(both, [pa, pa, pb], np.array([0, 1, 2]), plans, 5, mode=mode, seed=[1, 2, 3])
+        alone = [
+            oracle_futures_batch(sa, pa, np.array([0, 1]), plans[:2], 5, mode=mode, seed=[1, 2]),
+            oracle_futures_batch(sb, pb, np.array([0]), plans[2:], 5, mode=mode, seed=[3]),
+        ]
+        for field in ("vehicles", "vehicle_id", "collided", "offroad", "first_collision_step"):
+            want = np.concatenate([getattr(a, field) for a in alone])
+            np.testing.assert_array_equal(getattr(got, field), want, err_msg=field)
+    with pytest.raises(ValueError, match="one per scene"):
+        oracle_futures_batch(both, [pa, pb], np.array([0, 1, 2]), plans, 5)
+
+
+def test_object_futures_equal_the_numpy_framing():
+    """object_futures (compiled) equals gather_slots + the identity check + to_frame + the float32 cast, the numpy
+    code the oracle predictor ran before, on futures where slots are refilled and vehicles leave."""
+    from wmplan.sim.observe import gather_slots, observe, to_frame
+    from wmplan.sim.oracle import object_futures, oracle_futures_batch
+
+    params = SimParams.from_scenario(load_scenario("onramp-merge"))
+    st = initial_state(params, np.arange(4) + 9)
+    for _ in range(30):
+        st, _ = step(st, rule_actions(st, params), params)
+    gen = np.random.default_rng(2)
+    plans = np.stack([gen.uniform(-6.0, 2.0, (2, 8, 15)), gen.normal(0.0, 0.1, (2, 8, 15))], axis=-1)
+    scenes = np.array([1, 3])
+    fut = oracle_futures_batch(st, params, scenes, plans, 4, seed=[5, 6])
+    _, _, slots = observe(st.take(scenes), params, 12)  # 12 objects: padding rows too
+    slots = slots.copy()
+    slots[0, 3] = 15  # a slot that is empty or refilled in some futures
+    pose = np.stack([st.x_m[scenes, EGO], st.y_m[scenes, EGO], st.heading_rad[scenes, EGO] + 0.3], axis=-1)
+    anchor = np.take_along_axis(st.vehicle_id[scenes], np.where(slots >= 0, slots, 0), axis=1)
+    b, c, k, h = fut.vehicles.shape[:4]
+    sl = np.broadcast_to(slots[:, None, None, None, :], (b, c, k, h, slots.shape[1]))
+    picked = gather_slots(fut.vehicles, sl)
+    ids = np.take_along_axis(fut.vehicle_id, np.where(sl >= 0, sl, 0), axis=-1)
+    picked[..., 7] *= (ids == anchor[:, None, None, None, :]) & (sl >= 0)
+    want = to_frame(
+        picked,
+        np.broadcast_to(pose[:, None, None, None, :2], (b, c, k, h, 2)),
+        np.broadcast_to(pose[:, None, None, None, 2], (b, c, k, h)),
+    ).astype(np.float32)
+    got = object_futures(fut, slots, anchor, pose)
+    np.testing.assert_array_equal(got, want)
+    assert got.dtype == np.float32 and (got[..., 7] == 0).any() and (got[..., 7] == 1).any()

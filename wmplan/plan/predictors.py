@@ -24,9 +24,9 @@ from wmplan.model.baselines import ConstantVelocity
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.world_model import WorldModel
 from wmplan.plan.base import HISTORY_STEPS as HISTORY
-from wmplan.sim.features import F_HEADING, F_VALID, F_X, F_Y
-from wmplan.sim.observe import gather_slots, road_features, to_frame
-from wmplan.sim.oracle import oracle_futures_batch
+from wmplan.sim.features import F_HEADING, F_X, F_Y
+from wmplan.sim.observe import road_features
+from wmplan.sim.oracle import object_futures, oracle_futures_batch
 from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
 
@@ -149,19 +149,10 @@ class OraclePredictor(Predictor):
             plan_dt_s=self.plan_dt_s,
             seed=seed,
         )
-        b, c, k, h = fut.vehicles.shape[:4]
-        slots = np.broadcast_to(ctx.slots[:, None, None, None, :], (b, c, k, h, ctx.slots.shape[1]))
-        picked = gather_slots(fut.vehicles, slots)  # (B, C, K, H, N, F)
         anchor_ids = np.take_along_axis(
             ctx.state.vehicle_id[ctx.scenes], np.where(ctx.slots >= 0, ctx.slots, 0), axis=1
         )
-        ids = np.take_along_axis(fut.vehicle_id, np.where(slots >= 0, slots, 0), axis=-1)
-        picked[..., F_VALID] *= (ids == anchor_ids[:, None, None, None, :]) & (slots >= 0)
-        pose = ctx.ego_pose
-        origin = np.broadcast_to(pose[:, None, None, None, :2], (b, c, k, h, 2))
-        heading = np.broadcast_to(pose[:, None, None, None, 2], (b, c, k, h))
-        framed = to_frame(picked, origin, heading)
-        return torch.from_numpy(framed.astype(np.float32))
+        return torch.from_numpy(object_futures(fut, ctx.slots, anchor_ids, ctx.ego_pose))
 
 
 def builtin_predictor(

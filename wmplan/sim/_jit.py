@@ -11,6 +11,16 @@ compiles (tens of seconds, see the README); later processes load the machine cod
 from __future__ import annotations
 
 import numba
+import numpy as np
 
 jit = numba.njit(cache=True, nogil=True, error_model="numpy", _nrt=False)
 """Decorator of every compiled simulator function."""
+
+
+def kernel_array(a, dtype) -> np.ndarray:
+    """``a`` itself if it is a writeable C-ordered numpy array of ``dtype``, else such a copy. Every array handed
+    to a compiled function goes through this: a read-only, strided or other-typed array would make numba compile
+    that function once more, for its type (tens of seconds for the step)."""
+    if type(a) is np.ndarray and a.dtype == dtype and a.flags.c_contiguous and a.flags.writeable:
+        return a
+    return np.array(a, dtype=dtype, order="C")

@@ -1,7 +1,7 @@
 """A rule-based driver for the ego: IDM car following, MOBIL lane choice, a merge rule and lane-keeping steering.
 
 It uses no prediction; it is the non-learning baseline of the planner comparisons and one of the behaviour
-policies that generate datasets. Vectorised over scenes.
+policies that generate datasets. Compiled, one scene at a time (the numpy form it replaced is the tests' reference).
 
 * Longitudinal: IDM (Treiber et al. 2000) with the ego's own traits (``params.EGO_RULE_TRAITS``, common
   practice), toward the nearest vehicle ahead in the ego's lane or in the lane it is moving to, and toward the end
@@ -17,11 +17,42 @@ policies that generate datasets. Vectorised over scenes.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
-from wmplan.sim.behaviour import idm_accel, mobil_incentive, mobil_safe
-from wmplan.sim.engine import lane_occupancy
-from wmplan.sim.params import EGO_RULE_TRAITS, T_A, T_B, T_S0, T_T, T_V0, SimParams
+from wmplan.sim._jit import jit
+from wmplan.sim.behaviour import idm_accel
+from wmplan.sim.draws import clip
+from wmplan.sim.engine import Packed, param_table
+from wmplan.sim.kernel import (
+    BAND_EPS_M,
+    F_H,
+    F_LEN,
+    F_VX,
+    F_WID,
+    F_X,
+    F_Y,
+    I_LANE,
+    L_MERGE_TO,
+    P_LANE_W,
+    P_MAX_ACCEL,
+    P_MAX_BRAKE,
+    P_MAX_STEER,
+    P_MERGE_ZONE,
+    P_NUM_LANES,
+    P_SPEED_LIMIT,
+    P_WHEELBASE,
+    S_EGO_SPEED,
+    _c,
+    _centre,
+    _exists,
+    _half_extent_y,
+    _idm,
+    _lane_of,
+    _to_end,
+)
+from wmplan.sim.params import EGO_RULE_TRAITS, T_A, T_S0, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
 
 # The rule-based driver decides every 0.2 s and holds its action in between, as the planners do (the decision
@@ -49,109 +80,189 @@ def _ego_idm(params: SimParams, v, gap, v_lead):
     )
 
 
-def _leaders_followers(state: TrafficState, params: SimParams):
-    """Nearest vehicle ahead / behind the ego in every lane: gaps (S, L) and slots (S, L)."""
-    x, ln = state.x_m, state.length_m
-    occ = lane_occupancy(params, state.y_m, state.width_m, state.valid, state.lane)  # (S, V, L)
-    occ[:, EGO, :] = False
-    dx = (x - x[:, :1])[..., None]  # (S, V, 1)
-    half = (0.5 * (ln + ln[:, :1]))[..., None]
-    ahead = np.where(occ & (dx > 0), dx - half, np.inf)
-    behind = np.where(occ & (dx <= 0), -dx - half, np.inf)
-    return ahead.min(axis=1), ahead.argmin(axis=1), behind.min(axis=1), behind.argmin(axis=1)
+_RULE_T, _RULE_S0, _RULE_A = (EGO_RULE_TRAITS[k] for k in ("time_headway_s", "min_gap_m", "max_accel_mps2"))
+_RULE_C = 0.5 / math.sqrt(EGO_RULE_TRAITS["max_accel_mps2"] * EGO_RULE_TRAITS["comfort_decel_mps2"])
+
+
+@jit
+def _ego_idm_k(sc, v, gap, v_lead):
+    """:func:`_ego_idm`, compiled (the same operations as ``idm_accel``)."""
+    return _idm(v, sc[P_SPEED_LIMIT], gap, v - v_lead, _RULE_T, _RULE_S0, _RULE_A, _RULE_C)
+
+
+@jit
+def _leaders_followers_k(sc, x, y, length, width, valid, lane, g_ahead, i_ahead, g_behind, i_behind):
+    """Nearest vehicle ahead / behind the ego in every lane (gap and slot, the lowest slot on a tie; slot 0 and
+    gap inf where there is none). A vehicle is in lane l if its (unturned) body reaches BAND_EPS_M into it or l
+    is its lane."""
+    w = sc[P_LANE_W]
+    for ln in range(g_ahead.shape[0]):
+        g_ahead[ln], i_ahead[ln], g_behind[ln], i_behind[ln] = np.inf, 0, np.inf, 0
+    len_e = length[EGO]
+    for j in range(1, x.shape[0]):
+        if not valid[j]:
+            continue
+        hw = 0.5 * width[j]
+        top, bottom = y[j] + hw, y[j] - hw
+        dx = x[j] - x[EGO]
+        half = 0.5 * (length[j] + len_e)
+        for ln in range(int(sc[P_NUM_LANES])):
+            lo = ln * w
+            if not ((top > lo + BAND_EPS_M and bottom < lo + w - BAND_EPS_M) or lane[j] == ln):
+                continue
+            if dx > 0:
+                if dx - half < g_ahead[ln]:
+                    g_ahead[ln], i_ahead[ln] = dx - half, j
+            elif -dx - half < g_behind[ln]:
+                g_behind[ln], i_behind[ln] = -dx - half, j
+
+
+@jit
+def _ego_lane_end_gap_k(sc, ln, x, y, length, width, heading):
+    """:func:`ego_lane_end_gap` of one ego at (x, y), compiled."""
+    hw = _half_extent_y(length, width, heading)
+    w = sc[P_LANE_W]
+    own = _lane_of(sc, y)
+    d = np.inf
+    for lane in range(int(sc[P_NUM_LANES])):
+        lo = lane * w
+        if lane == own or (y + hw > lo + BAND_EPS_M and y - hw < lo + w - BAND_EPS_M):
+            d = min(d, _to_end(sc, ln, lane, x))
+    return d - 0.5 * length
+
+
+@jit
+def _lead(sc, vx, g_ahead, i_ahead, lane):
+    li = min(max(lane, 0), int(sc[P_NUM_LANES]) - 1)
+    g = g_ahead[li]
+    return g, (vx[i_ahead[li]] if math.isfinite(g) else 0.0)
+
+
+@jit
+def _follower_acc(sc, vx, traits, len_e, v, g_ahead, i_ahead, g_behind, i_behind, lane):
+    """(accel now, accel if the ego moved in front, whether there is one, gap) of the nearest follower in a lane."""
+    li = min(max(lane, 0), int(sc[P_NUM_LANES]) - 1)
+    g, f = g_behind[li], i_behind[li]
+    if not math.isfinite(g):
+        return 0.0, 0.0, False, g
+    vf = vx[f]
+    gl, vl = _lead(sc, vx, g_ahead, i_ahead, li)
+    c = _c(traits, f)
+    now = _idm(vf, traits[f, T_V0], gl + g + len_e, vf - vl, traits[f, T_T], traits[f, T_S0], traits[f, T_A], c)
+    after = _idm(vf, traits[f, T_V0], g, vf - v, traits[f, T_T], traits[f, T_S0], traits[f, T_A], c)
+    return now, after, True, g
+
+
+@jit
+def _steer_k(sc, y, heading, speed, target):
+    """:func:`steer_to_lane` of one ego, compiled."""
+    v = max(speed, 1.0)
+    err = _centre(sc, target) - y
+    heading_des = clip(math.atan(LATERAL_GAIN * err * 10.0 / max(v, 5.0)), -MAX_HEADING_RAD, MAX_HEADING_RAD)
+    yaw_rate = HEADING_GAIN_PER_S * (heading_des - heading)
+    return clip(math.atan(sc[P_WHEELBASE] * yaw_rate / v), -sc[P_MAX_STEER], sc[P_MAX_STEER])
+
+
+@jit
+def _rule_scene(
+    sc, ln, x, y, vx, heading, length, width, valid, lane_arr, traits, v, g_ahead, i_ahead, g_behind, i_behind
+):
+    """(accel, steer) of the rule-based ego in one scene (module docstring; :func:`rule_actions`)."""
+    _leaders_followers_k(sc, x, y, length, width, valid, lane_arr, g_ahead, i_ahead, g_behind, i_behind)
+    ex, ey, len_e = x[EGO], y[EGO], length[EGO]
+    lane = _lane_of(sc, ey)
+    d_end = _ego_lane_end_gap_k(sc, ln, ex, ey, len_e, width[EGO], heading[EGO])
+    g_own, v_own = _lead(sc, vx, g_ahead, i_ahead, lane)
+    a_now = min(_ego_idm_k(sc, v, g_own, v_own), _ego_idm_k(sc, v, d_end, 0.0))
+    target, best = lane, -np.inf
+    merge_to = int(ln[L_MERGE_TO, lane])
+    must_merge = merge_to >= 0 and _to_end(sc, ln, lane, ex) < sc[P_MERGE_ZONE]
+    for d in (-1, 1):
+        tl = lane + d
+        ok_lane = _exists(sc, ln, tl, ex) and _exists(sc, ln, tl, ex + 30.0)
+        g_t, v_t = _lead(sc, vx, g_ahead, i_ahead, tl)
+        d_end_t = _to_end(sc, ln, tl, ex)
+        a_after = min(_ego_idm_k(sc, v, g_t, v_t), _ego_idm_k(sc, v, d_end_t - 0.5 * len_e, 0.0))
+        n_now, n_after, has_n, g_n = _follower_acc(sc, vx, traits, len_e, v, g_ahead, i_ahead, g_behind, i_behind, tl)
+        safe = (n_after >= -SAFE_DECEL_MPS2 or not has_n) and g_t > 2.0 and g_n > 2.0 and a_after >= -SAFE_DECEL_MPS2
+        inc = (a_after - a_now) + POLITENESS * ((n_after - n_now) + (0.0 - 0.0))  # mobil_incentive
+        forced = must_merge and merge_to == tl
+        if forced:
+            inc = np.inf
+        avoid = d_end_t < sc[P_MERGE_ZONE] and not forced
+        choose = ok_lane and safe and not avoid and inc > THRESHOLD_MPS2 and inc > best
+        if choose:
+            target, best = tl, inc
+        if forced and not choose and ok_lane:  # while waiting to merge, fall in behind the target lane's vehicle
+            a_now = min(a_now, _ego_idm_k(sc, v, max(g_t, 0.5), v_t))
+    accel = clip(a_now, -sc[P_MAX_BRAKE], sc[P_MAX_ACCEL])
+    return accel, _steer_k(sc, ey, heading[EGO], v, target)
+
+
+@jit
+def _rule_actions(sc, ln, vf, vi, valid, traits, sf, out, work_f, work_i):
+    """:func:`rule_actions` of every scene from the engine's packed arrays (``work_*`` (2, L): work space)."""
+    for s in range(valid.shape[0]):
+        out[s, 0], out[s, 1] = _rule_scene(
+            sc,
+            ln,
+            vf[F_X, s],
+            vf[F_Y, s],
+            vf[F_VX, s],
+            vf[F_H, s],
+            vf[F_LEN, s],
+            vf[F_WID, s],
+            valid[s],
+            vi[I_LANE, s],
+            traits[s],
+            sf[S_EGO_SPEED, s],
+            work_f[0],
+            work_i[0],
+            work_f[1],
+            work_i[1],
+        )
+
+
+@jit
+def _lane_end_gaps(sc, ln, vf, out):
+    for s in range(out.shape[0]):
+        out[s] = _ego_lane_end_gap_k(
+            sc, ln, vf[F_X, s, EGO], vf[F_Y, s, EGO], vf[F_LEN, s, EGO], vf[F_WID, s, EGO], vf[F_H, s, EGO]
+        )
 
 
 def ego_lane_end_gap(state: TrafficState, params: SimParams) -> np.ndarray:
     """(S,) metres from the ego's front to the nearest end of a lane its body reaches into (inf if none ends).
 
     Every lane the body still touches counts, not only the lane of its centre: half-way through a merge the rear
-    corner may still be over the ending lane."""
-    s_n = state.num_scenes
-    body = lane_occupancy(
-        params,
-        state.y_m[:, :1],
-        state.width_m[:, :1],
-        np.ones((s_n, 1), dtype=bool),
-        None,
-        state.heading_rad[:, :1],
-        state.length_m[:, :1],
-    )[:, 0]  # (S, L)
-    body[np.arange(s_n), params.lane_of(state.y_m[:, EGO])] = True
-    lanes = np.broadcast_to(np.arange(params.num_lanes), body.shape)
-    d_lanes = params.distance_to_lane_end(lanes, state.x_m[:, :1])  # (S, L)
-    return np.where(body, d_lanes, np.inf).min(axis=1) - 0.5 * state.length_m[:, EGO]
+    corner may still be over the ending lane. Compiled."""
+    table = param_table(params)
+    out = np.empty(state.num_scenes)
+    _lane_end_gaps(table.scalars[0], table.lanes[0], Packed.of(state).vf, out)
+    return out
 
 
 def rule_actions(state: TrafficState, params: SimParams) -> np.ndarray:
-    """Actions (S, 2) of the rule-based ego for every scene: (accel_mps2, steer_rad), within the limits."""
-    s_n = state.num_scenes
-    rows = np.arange(s_n)
-    x, y = state.x_m[:, EGO], state.y_m[:, EGO]
-    v = state.ego_speed_mps
-    lane = params.lane_of(y)
-    g_ahead, i_ahead, g_behind, i_behind = _leaders_followers(state, params)
-    vx = state.vx_mps
+    """Actions (S, 2) of the rule-based ego for every scene: (accel_mps2, steer_rad), within the limits.
 
-    def lead(l_idx):
-        li = np.clip(l_idx, 0, params.num_lanes - 1)
-        g = g_ahead[rows, li]
-        return g, np.where(np.isfinite(g), vx[rows, i_ahead[rows, li]], 0.0)
-
-    def follower_acc(l_idx):
-        """(accel now, accel if the ego moved in front) of the nearest follower in lane l_idx."""
-        li = np.clip(l_idx, 0, params.num_lanes - 1)
-        g = g_behind[rows, li]
-        f = i_behind[rows, li]
-        has = np.isfinite(g)
-        tr = state.traits[rows, f]
-        vf = vx[rows, f]
-        gl, vl = lead(li)
-        now = idm_accel(
-            vf, tr[:, T_V0], gl + g + state.length_m[:, EGO], vf - vl, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B]
-        )
-        after = idm_accel(vf, tr[:, T_V0], g, vf - v, tr[:, T_T], tr[:, T_S0], tr[:, T_A], tr[:, T_B])
-        return np.where(has, now, 0.0), np.where(has, after, 0.0), has, g
-
-    d_end = ego_lane_end_gap(state, params)
-    g_own, v_own = lead(lane)
-    a_now = np.minimum(_ego_idm(params, v, g_own, v_own), _ego_idm(params, v, d_end, 0.0))
-
-    # --- lane choice ---
-    target = lane.copy()
-    best = np.full(s_n, -np.inf)
-    merge_to = params.merge_target[lane]
-    must_merge = (merge_to >= 0) & (params.distance_to_lane_end(lane, x) < params.merge_zone_m)
-    for d in (-1, 1):
-        tl = lane + d
-        ok_lane = params.lane_exists(tl, x) & params.lane_exists(tl, x + 30.0)
-        g_t, v_t = lead(tl)
-        a_after = _ego_idm(params, v, g_t, v_t)
-        d_end_t = params.distance_to_lane_end(np.clip(tl, 0, params.num_lanes - 1), x)
-        a_after = np.minimum(a_after, _ego_idm(params, v, d_end_t - 0.5 * state.length_m[:, EGO], 0.0))
-        n_now, n_after, has_n, g_n = follower_acc(tl)
-        # MOBIL's safety criterion for the new follower, and the same bound on the ego's own braking toward the
-        # new leader (a merge into a short gap behind a slower car is not taken; the ego falls in behind instead)
-        safe = (
-            (mobil_safe(n_after, SAFE_DECEL_MPS2) | ~has_n)
-            & (g_t > 2.0)
-            & (g_n > 2.0)
-            & mobil_safe(a_after, SAFE_DECEL_MPS2)
-        )
-        inc = mobil_incentive(a_now, a_after, n_now, n_after, 0.0, 0.0, POLITENESS)
-        forced = must_merge & (merge_to == tl)
-        inc = np.where(forced, np.inf, inc)
-        # never move into a lane that ends soon unless forced
-        avoid = (d_end_t < params.merge_zone_m) & ~forced
-        choose = ok_lane & safe & ~avoid & (inc > THRESHOLD_MPS2) & (inc > best)
-        target = np.where(choose, tl, target)
-        best = np.where(choose, inc, best)
-        # while waiting to merge, fall in behind the target lane's vehicle alongside
-        waiting = forced & ~choose & ok_lane
-        a_now = np.where(waiting, np.minimum(a_now, _ego_idm(params, v, np.maximum(g_t, 0.5), v_t)), a_now)
-    # Keep a lane change going once the ego's centre has left its lane's middle.
-    accel = np.clip(a_now, -params.max_brake_mps2, params.max_accel_mps2)
-    steer = steer_to_lane(state, params, target)
-    return np.stack([accel, steer], axis=-1)
+    Compiled, one scene at a time: a scene's actions do not depend on the batch (the numpy form this replaced used
+    numpy's vectorised arctan on batches of 8 or more, which can differ from the scalar one in the last bit)."""
+    table, p = param_table(params), Packed.of(state)
+    out = np.empty((state.num_scenes, 2))
+    l_n = table.lanes.shape[2]
+    _rule_actions(
+        table.scalars[0],
+        table.lanes[0],
+        p.vf,
+        p.vi,
+        p.valid,
+        p.traits,
+        p.sf,
+        out,
+        np.empty((2, l_n)),
+        np.empty((2, l_n), dtype=np.int64),
+    )
+    return out
 
 
 def steer_to_lane(state: TrafficState, params: SimParams, target_lane: np.ndarray) -> np.ndarray:

@@ -17,12 +17,14 @@ slowly; the tests compare the two.
 
 from __future__ import annotations
 
+import dataclasses
+import threading
 from dataclasses import dataclass
 
 import numpy as np
 
 from wmplan.sim import kernel
-from wmplan.sim._jit import jit
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.collision import boxes_overlap
 from wmplan.sim.kernel import (  # noqa: F401  (the engine's constants, re-exported)
     BAND_EPS_M,
@@ -40,7 +42,7 @@ from wmplan.sim.kernel import (  # noqa: F401  (the engine's constants, re-expor
 )
 from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
-from wmplan.sim.threads import map_chunks
+from wmplan.sim.threads import MIN_SCENES_PER_THREAD, map_chunks
 
 
 @dataclass(frozen=True, eq=False)
@@ -54,6 +56,20 @@ class StepInfo:
     steer_rad: np.ndarray  # (S,) ego steering angle applied after clipping and rate limiting
     # (S,) log f/g of this step's tilted random draws (``params.tilt``, see wmplan.sim.tilt); 0 when not tilted
     log_weight: np.ndarray | None = None
+
+    @classmethod
+    def _trusted(cls, collision, offroad, goal, accel_mps2, steer_rad, log_weight) -> StepInfo:
+        """The engine's hot path: no per-field assignment through the frozen dataclass's checks."""
+        info = object.__new__(cls)
+        info.__dict__.update(
+            collision=collision,
+            offroad=offroad,
+            goal=goal,
+            accel_mps2=accel_mps2,
+            steer_rad=steer_rad,
+            log_weight=log_weight,
+        )
+        return info
 
 
 def _lateral_half_extent(width_m: np.ndarray, length_m: np.ndarray, heading_rad: np.ndarray) -> np.ndarray:
@@ -129,7 +145,7 @@ def _check_action(action, num_scenes: int) -> np.ndarray:
     action = np.asarray(action, dtype=np.float64)
     if action.shape != (num_scenes, 2):
         raise ValueError(f"action must have shape ({num_scenes}, 2) (accel_mps2, steer_rad), got {action.shape}")
-    return np.ascontiguousarray(action)
+    return kernel_array(action, np.float64)
 
 
 def step(
@@ -152,8 +168,9 @@ def step(
     Raises:
         ValueError: ``action`` does not have shape (S, 2).
     """
-    action = _check_action(action, state.num_scenes)
-    return _run(state, action, param_table(params), _zeros(state.num_scenes), threads)
+    packed = Packed.of(state)
+    s_n = packed.valid.shape[0]
+    return _run(packed, _check_action(action, s_n), param_table(params), _zeros(s_n), threads)
 
 
 _ZEROS: dict[int, np.ndarray] = {}
@@ -179,84 +196,115 @@ def step_groups(
         ValueError: ``action`` is not (S, 2), or ``group`` is not (S,) with rows of ``table``.
     """
     action = _check_action(action, state.num_scenes)
-    group = np.ascontiguousarray(group, dtype=np.int64)
+    group = kernel_array(np.asarray(group), np.int64)
     g_n = table.scalars.shape[0]
     if group.shape != (state.num_scenes,) or (group.size and (group.min() < 0 or group.max() >= g_n)):
         raise ValueError(
             f"group must have shape ({state.num_scenes},) with values in [0, {g_n}), got shape {group.shape}"
         )
-    return _run(state, action, table, group, threads)
+    return _run(Packed.of(state), action, table, group, threads)
 
 
-def _c(a: np.ndarray, dtype) -> np.ndarray:
-    """``a`` itself if it is a writeable C-ordered array of ``dtype`` (read-only arrays would make the kernel
-    compile a second time, for their type), else a copy that is."""
-    if type(a) is np.ndarray and a.dtype == dtype and a.flags.c_contiguous and a.flags.writeable:
-        return a
-    return np.array(a, dtype=dtype, order="C")
+class Packed:
+    """A state's arrays in the kernel's layout (:data:`~wmplan.sim.kernel.VF_FIELDS` and the other tables of
+    :mod:`wmplan.sim.kernel`): ``vf`` (NVF, S, V) float64, ``vi`` (NVI, S, V) int64, ``valid`` (S, V) bool,
+    ``ys`` (S, V) int8, ``traits`` (S, V, NT) float64, ``sf`` (NSF, S) float64, ``si`` (NSI, S) int64, ``ended``
+    (NE, S) bool, ``key`` (S,) uint64; all C-contiguous. A state the engine made holds its own (its fields are
+    views of these); any other state is packed once, on its first step (a copy)."""
+
+    __slots__ = ("vf", "vi", "valid", "ys", "traits", "sf", "si", "ended", "key")
+
+    def __init__(self, vf, vi, valid, ys, traits, sf, si, ended, key):
+        self.vf, self.vi, self.valid, self.ys, self.traits = vf, vi, valid, ys, traits
+        self.sf, self.si, self.ended, self.key = sf, si, ended, key
+
+    @classmethod
+    def of(cls, state: TrafficState) -> Packed:
+        """The packed arrays of ``state`` (kept on it; states are never written in place)."""
+        packed = state.__dict__.get("_packed")
+        if packed is None:
+            s_n, v_n = state.x_m.shape
+
+            def stack(names, dtype, shape):
+                out = np.empty((len(names),) + shape, dtype=dtype)
+                for k, name in enumerate(names):
+                    out[k] = getattr(state, name)
+                return out
+
+            packed = cls(
+                stack(kernel.VF_FIELDS, np.float64, (s_n, v_n)),
+                stack(kernel.VI_FIELDS, np.int64, (s_n, v_n)),
+                np.array(state.valid, dtype=np.bool_, order="C"),
+                np.array(state.yield_state, dtype=np.int8, order="C"),
+                np.array(state.traits, dtype=np.float64, order="C"),
+                stack(kernel.SF_FIELDS, np.float64, (s_n,)),
+                stack(kernel.SI_FIELDS, np.int64, (s_n,)),
+                stack(kernel.ENDED_FIELDS, np.bool_, (s_n,)),
+                kernel_array(state.key, np.uint64),
+            )
+            state.__dict__["_packed"] = packed
+        return packed
+
+    def state(self) -> TrafficState:
+        """The :class:`TrafficState` whose fields are views of these arrays (made when first read)."""
+        return TrafficState._trusted({"_packed": self})
+
+    def field(self, name: str) -> np.ndarray:
+        """The view of these arrays that is the state's field ``name`` (KeyError for other names)."""
+        where, row = _FIELDS[name]
+        buf = getattr(self, where)
+        return buf if row is None else buf[row]
 
 
-def _same(a: np.ndarray, _dtype) -> np.ndarray:
-    return a
+_FIELDS = {
+    **{n: ("vf", k) for k, n in enumerate(kernel.VF_FIELDS)},
+    **{n: ("vi", k) for k, n in enumerate(kernel.VI_FIELDS)},
+    **{n: ("sf", k) for k, n in enumerate(kernel.SF_FIELDS)},
+    **{n: ("si", k) for k, n in enumerate(kernel.SI_FIELDS)},
+    **{n: ("ended", k) for k, n in enumerate(kernel.ENDED_FIELDS)},
+    "valid": ("valid", None),
+    "yield_state": ("ys", None),
+    "traits": ("traits", None),
+    "key": ("key", None),
+}
+assert set(_FIELDS) == {f.name for f in dataclasses.fields(TrafficState)}, "every field has a place in Packed"
+
+
+_LOCAL = threading.local()
+
+
+def _scratch(v_n: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The kernel's work space for V slots, one set per thread (a call never shares it with another thread)."""
+    cache = _LOCAL.__dict__.setdefault("scratch", {})
+    out = cache.get(v_n)
+    if out is None:
+        out = cache[v_n] = (np.empty((7, v_n), dtype=np.int64), np.empty((3, v_n)), np.empty((2, v_n), dtype=np.bool_))
+    return out
 
 
 def _run(
-    state: TrafficState, action: np.ndarray, table: ParamTable, group: np.ndarray, threads: int | None
+    p: Packed, action: np.ndarray, table: ParamTable, group: np.ndarray, threads: int | None
 ) -> tuple[TrafficState, StepInfo]:
-    f8, i8, b1 = np.float64, np.int64, np.bool_
-    s_n, v_n = state.x_m.shape
-    c = _same if state.__dict__.get("_kernel_made", False) else _c  # the kernel's own output needs no checks
-    key, stp, next_id = c(state.key, np.uint64), c(state.step, i8), c(state.next_id, i8)
-    x, y, vx, heading = c(state.x_m, f8), c(state.y_m, f8), c(state.vx_mps, f8), c(state.heading_rad, f8)
-    length, width, valid = c(state.length_m, f8), c(state.width_m, f8), c(state.valid, b1)
-    vid, lane, traits = c(state.vehicle_id, i8), c(state.lane, i8), c(state.traits, f8)
-    ys, timer, decel = c(state.yield_state, np.int8), c(state.brake_timer_s, f8), c(state.brake_decel_mps2, f8)
-    cd, ego_speed, ego_steer = c(state.cooldown_s, f8), c(state.ego_speed_mps, f8), c(state.ego_steer_rad, f8)
-    collided, offroad, reached = c(state.collided, b1), c(state.offroad, b1), c(state.reached_goal, b1)
+    s_n, v_n = p.valid.shape
     # a vehicle may enter only on steps that are multiples of SPAWN_PERIOD_STEPS: otherwise the new state shares
-    # the arrays that only an entry changes (states are never written in place)
+    # the traits (states are never written in place)
+    stp = p.si[kernel.S_STEP]
     may_enter = (
         bool(np.any((stp + 1) % SPAWN_PERIOD_STEPS == 0)) if s_n > 1 else (int(stp[0]) + 1) % SPAWN_PERIOD_STEPS == 0
     )
-    if may_enter:
-        o_len, o_wid, o_vid, o_traits = length.copy(), width.copy(), vid.copy(), traits.copy()
-    else:
-        o_len, o_wid, o_vid, o_traits = length, width, vid, traits
-    e2 = lambda dtype: np.empty((s_n, v_n), dtype=dtype)  # noqa: E731
-    e1 = lambda dtype: np.empty(s_n, dtype=dtype)  # noqa: E731
-    out = dict(
-        key=key,
-        step=stp + 1,
-        next_id=e1(i8),
-        x_m=e2(f8),
-        y_m=e2(f8),
-        vx_mps=e2(f8),
-        vy_mps=e2(f8),
-        heading_rad=e2(f8),
-        length_m=o_len,
-        width_m=o_wid,
-        valid=e2(b1),
-        vehicle_id=o_vid,
-        lane=e2(i8),
-        traits=o_traits,
-        yield_state=e2(np.int8),
-        brake_timer_s=e2(f8),
-        brake_decel_mps2=e2(f8),
-        cooldown_s=e2(f8),
-        ego_speed_mps=e1(f8),
-        ego_steer_rad=e1(f8),
-        collided=e1(b1),
-        offroad=e1(b1),
-        reached_goal=e1(b1),
+    out = Packed(
+        np.empty_like(p.vf),
+        np.empty_like(p.vi),
+        np.empty_like(p.valid),
+        np.empty_like(p.ys),
+        p.traits.copy() if may_enter else p.traits,
+        np.empty_like(p.sf),
+        np.empty_like(p.si),
+        np.empty_like(p.ended),
+        p.key,
     )
-    info = dict(
-        collision=e1(b1),
-        offroad=e1(b1),
-        goal=e1(b1),
-        accel_mps2=e2(f8),
-        steer_rad=out["ego_steer_rad"],
-        log_weight=e1(f8),
-    )
+    info = np.empty((3, s_n), dtype=np.bool_)
+    acc, log_w = np.empty((s_n, v_n)), np.empty(s_n)
 
     def run(a: int, b: int) -> None:
         kernel.step_range(
@@ -266,63 +314,35 @@ def _run(
             table.scalars,
             table.lanes,
             table.traits,
-            key,
-            stp,
-            next_id,
-            x,
-            y,
-            vx,
-            heading,
-            length,
-            width,
-            valid,
-            vid,
-            lane,
-            traits,
-            ys,
-            timer,
-            decel,
-            cd,
-            ego_speed,
-            ego_steer,
-            collided,
-            offroad,
-            reached,
+            p.key,
+            p.vf,
+            p.vi,
+            p.valid,
+            p.ys,
+            p.traits,
+            p.sf,
+            p.si,
+            p.ended,
             action,
-            out["next_id"],
-            out["x_m"],
-            out["y_m"],
-            out["vx_mps"],
-            out["vy_mps"],
-            out["heading_rad"],
-            o_len,
-            o_wid,
-            out["valid"],
-            o_vid,
-            out["lane"],
-            o_traits,
-            out["yield_state"],
-            out["brake_timer_s"],
-            out["brake_decel_mps2"],
-            out["cooldown_s"],
-            out["ego_speed_mps"],
-            out["ego_steer_rad"],
-            out["collided"],
-            out["offroad"],
-            out["reached_goal"],
-            info["collision"],
-            info["offroad"],
-            info["goal"],
-            info["accel_mps2"],
-            info["log_weight"],
-            np.empty((7, v_n), dtype=i8),
-            np.empty((2, v_n)),
-            np.empty((2, v_n), dtype=b1),
+            out.vf,
+            out.vi,
+            out.valid,
+            out.ys,
+            out.traits,
+            out.sf,
+            out.si,
+            out.ended,
+            info,
+            acc,
+            log_w,
+            *_scratch(v_n),
         )
 
-    map_chunks(run, s_n, threads)
-    out["_kernel_made"] = True
-    return TrafficState._trusted(out), StepInfo(**info)
+    if s_n < 2 * MIN_SCENES_PER_THREAD:
+        run(0, s_n)
+    else:
+        map_chunks(run, s_n, threads)
+    return out.state(), StepInfo._trusted(info[0], info[1], info[2], acc, out.sf[kernel.S_EGO_STEER], log_w)
 
 
 @jit
@@ -336,11 +356,9 @@ def ego_collisions(arrays: dict) -> np.ndarray:
     ``y_m``, ``length_m``, ``width_m``, ``heading_rad``, ``valid`` of a state). The step's own check, compiled: a
     separating-axis test on the pairs that are close enough along the road to overlap."""
     f8 = np.float64
-    x, y, ln, wd, hd = (
-        np.ascontiguousarray(arrays[k], dtype=f8) for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad")
-    )
+    x, y, ln, wd, hd = (kernel_array(arrays[k], f8) for k in ("x_m", "y_m", "length_m", "width_m", "heading_rad"))
     hit = np.empty(x.shape[0], dtype=bool)
-    _ego_collisions(x, y, ln, wd, hd, np.ascontiguousarray(arrays["valid"], dtype=np.bool_), hit)
+    _ego_collisions(x, y, ln, wd, hd, kernel_array(arrays["valid"], np.bool_), hit)
     return hit
 
 

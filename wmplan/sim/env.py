@@ -17,6 +17,7 @@ about a real vehicle.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -30,7 +31,8 @@ from gymnasium.vector.utils import batch_space
 
 from wmplan.errors import ConfigError
 from wmplan.scenario import Scenario, builtin_names, load_scenario
-from wmplan.sim.engine import StepInfo
+from wmplan.sim._jit import jit, kernel_array
+from wmplan.sim.engine import Packed, StepInfo, param_table
 from wmplan.sim.engine import step as engine_step
 from wmplan.sim.features import (
     DEFAULT_NUM_OBJECTS,
@@ -46,7 +48,15 @@ from wmplan.sim.features import (
     NUM_ROAD_FEATURES,
     NUM_VEHICLE_FEATURES,
 )
-from wmplan.sim.observe import observe
+from wmplan.sim.kernel import E_COLLIDED, E_OFFROAD, E_REACHED, S_EGO_SPEED, S_STEP
+from wmplan.sim.kernel import F_H as K_H
+from wmplan.sim.kernel import F_LEN as K_LEN
+from wmplan.sim.kernel import F_VX as K_VX
+from wmplan.sim.kernel import F_VY as K_VY
+from wmplan.sim.kernel import F_WID as K_WID
+from wmplan.sim.kernel import F_X as K_X
+from wmplan.sim.kernel import F_Y as K_Y
+from wmplan.sim.observe import _nearest, _object_rows, _road_row, observe
 from wmplan.sim.params import T_V0, SimParams
 from wmplan.sim.spawn import initial_state
 from wmplan.sim.state import EGO, TrafficState
@@ -101,24 +111,83 @@ class RewardConfig:
             raise ConfigError(f"RewardConfig.comfort_accel_mps2 must be > 0 m/s^2, got {self.comfort_accel_mps2!r}")
 
 
+def _reward_constants(params: SimParams, cfg: RewardConfig) -> np.ndarray:
+    """The numbers :func:`_rewards` reads, in its order (kept on the config per parameter set)."""
+    v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
+    return np.array(
+        [
+            cfg.progress_weight,
+            v_lim * dt,
+            v_lim * dur,
+            cfg.accel_weight,
+            cfg.comfort_accel_mps2,
+            cfg.steer_weight,
+            params.max_steer_rad,
+            dt,
+            dur,
+            cfg.crash_penalty,
+            cfg.goal_bonus,
+        ]
+    )
+
+
+@jit
+def _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer):
+    """:class:`RewardConfig`'s reward of scene s: packed float fields and outcome flags before (``vf0``,
+    ``ended0``) and after (``vf1``, ``ended1``) the step (:class:`~wmplan.sim.engine.Packed` layout), applied
+    accelerations (S, V) and steering (S,); ``k`` from :func:`_reward_constants`."""
+    dx = vf1[K_X, s, EGO] - vf0[K_X, s, EGO]
+    progress = k[0] * (dx if not dx > k[1] else k[1]) / k[2]
+    a, d = acc[s, EGO] / k[4], steer[s] / k[6]
+    comfort = (k[3] * (a * a) + k[5] * (d * d)) * k[7] / k[8]
+    crashed = (ended1[E_COLLIDED, s] or ended1[E_OFFROAD, s]) and not (ended0[E_COLLIDED, s] or ended0[E_OFFROAD, s])
+    arrived = ended1[E_REACHED, s] and not ended0[E_REACHED, s]
+    return progress - comfort - k[9] * (1.0 if crashed else 0.0) + k[10] * (1.0 if arrived else 0.0)
+
+
+@jit
+def _rewards(k, vf0, ended0, vf1, ended1, acc, steer, out):
+    for s in range(out.shape[0]):
+        out[s] = _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer)
+
+
+@jit
+def _env_outputs(sc, ln, k, vf0, ended0, vf1, valid1, ended1, acc, steer, objects, road, slots, reward):
+    """Observation (float32 ``objects``, ``road``; :func:`~wmplan.sim.observe.observe`) and reward of every scene
+    after a step, in one call (the single environment's hot path)."""
+    for s in range(valid1.shape[0]):
+        x, y = vf1[K_X, s], vf1[K_Y, s]
+        _nearest(x, y, valid1[s], slots[s])
+        _object_rows(x, y, vf1[K_VX, s], vf1[K_VY, s], vf1[K_H, s], vf1[K_LEN, s], vf1[K_WID, s], slots[s], objects[s])
+        _road_row(sc, ln, x[EGO], y[EGO], road[s])
+        reward[s] = _reward_of(k, s, vf0, ended0, vf1, ended1, acc, steer)
+
+
+def _constants(params: SimParams, cfg: RewardConfig) -> np.ndarray:
+    consts = cfg.__dict__.get("_consts")
+    if consts is None or consts[0] is not params:
+        consts = (params, _reward_constants(params, cfg))
+        object.__setattr__(cfg, "_consts", consts)
+    return consts[1]
+
+
 def step_reward(
     params: SimParams, cfg: RewardConfig, before: TrafficState, after: TrafficState, info: StepInfo
 ) -> np.ndarray:
-    """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it."""
-    v_lim, dt, dur = params.speed_limit_mps, params.dt_s, params.num_steps * params.dt_s
-    dx = after.x_m[:, EGO] - before.x_m[:, EGO]
-    progress = cfg.progress_weight * np.minimum(dx, v_lim * dt) / (v_lim * dur)
-    comfort = (
-        (
-            cfg.accel_weight * (info.accel_mps2[:, EGO] / cfg.comfort_accel_mps2) ** 2
-            + cfg.steer_weight * (info.steer_rad / params.max_steer_rad) ** 2
-        )
-        * dt
-        / dur
+    """Reward (N,) of one engine step of N scenes, as :class:`RewardConfig` defines it (compiled)."""
+    pb, pa = Packed.of(before), Packed.of(after)
+    out = np.empty(before.num_scenes)
+    _rewards(
+        _constants(params, cfg),
+        pb.vf,
+        pb.ended,
+        pa.vf,
+        pa.ended,
+        kernel_array(info.accel_mps2, np.float64),
+        kernel_array(info.steer_rad, np.float64),
+        out,
     )
-    crashed = (after.collided | after.offroad) & ~(before.collided | before.offroad)
-    arrived = after.reached_goal & ~before.reached_goal
-    return progress - comfort - cfg.crash_penalty * crashed + cfg.goal_bonus * arrived
+    return out
 
 
 # --- spaces ---------------------------------------------------------------------------------------------------------
@@ -229,15 +298,16 @@ def _check_render_mode(render_mode: str | None, modes: list[str]) -> str | None:
 
 
 def _observation(state: TrafficState, params: SimParams, num_objects: int) -> dict[str, np.ndarray]:
-    objects, road, _ = observe(state, params, num_objects)
-    return {"objects": objects.astype(np.float32), "road": road.astype(np.float32)}
+    objects, road, _ = observe(state, params, num_objects, dtype=np.float32)
+    return {"objects": objects, "road": road}
 
 
 def _check_actions(actions: Any, shape: tuple[int, ...], where: str) -> np.ndarray:
     arr = np.asarray(actions, dtype=np.float64)
     if arr.shape != shape:
         raise ConfigError(f"{where}: action must have shape {shape} (accel_mps2, steer_rad), got {arr.shape}")
-    if not np.isfinite(arr).all():
+    finite = all(map(math.isfinite, arr.tolist())) if arr.ndim == 1 else bool(np.isfinite(arr).all())
+    if not finite:
         raise ConfigError(f"{where}: action holds NaN or inf ({arr.tolist()}); pass finite numbers")
     return arr
 
@@ -390,6 +460,8 @@ class LaneEnv(gym.Env):
         self._scene_seed = -1
         self._ended = False
         self._renderer = None
+        self._slots = np.empty((1, 1 + self.num_objects), dtype=np.int64)  # work space of step()
+        self._reward = np.empty(1)
 
     @property
     def state(self) -> TrafficState | None:
@@ -420,15 +492,16 @@ class LaneEnv(gym.Env):
         return {k: v[0] for k, v in obs.items()}
 
     def _info(self, accel_mps2: float, steer_rad: float) -> dict[str, Any]:
-        st = self._state
+        p = Packed.of(self._state)
+        ended, stp = p.ended[:, 0].tolist(), int(p.si[S_STEP, 0])
         return {
-            "collision": bool(st.collided[0]),
-            "offroad": bool(st.offroad[0]),
-            "goal": bool(st.reached_goal[0]),
+            "collision": ended[E_COLLIDED],
+            "offroad": ended[E_OFFROAD],
+            "goal": ended[E_REACHED],
             "scene_seed": self._scene_seed,
-            "step": int(st.step[0]),
-            "time_s": float(st.step[0] * self.params.dt_s),
-            "ego_speed_mps": float(st.ego_speed_mps[0]),
+            "step": stp,
+            "time_s": float(p.si[S_STEP, 0] * self.params.dt_s),
+            "ego_speed_mps": float(p.sf[S_EGO_SPEED, 0]),
             "accel_mps2": float(accel_mps2),
             "steer_rad": float(steer_rad),
         }
@@ -443,12 +516,34 @@ class LaneEnv(gym.Env):
             act = to_physical(act, self.params)
         before = self._state
         self._state, sinfo = engine_step(before, act[None, :], self.params)
-        reward = float(step_reward(self.params, self.reward_config, before, self._state, sinfo)[0])
-        terminated = bool(self._state.done[0])
-        truncated = (not terminated) and int(self._state.step[0]) >= self.params.num_steps
+        pb, pa = Packed.of(before), Packed.of(self._state)
+        m = self.num_objects
+        objects, road = (
+            np.empty((1, 1 + m, NUM_VEHICLE_FEATURES), np.float32),
+            np.empty((1, NUM_ROAD_FEATURES), np.float32),
+        )
+        table = param_table(self.params)
+        _env_outputs(
+            table.scalars[0],
+            table.lanes[0],
+            _constants(self.params, self.reward_config),
+            pb.vf,
+            pb.ended,
+            pa.vf,
+            pa.valid,
+            pa.ended,
+            sinfo.accel_mps2,
+            sinfo.steer_rad,
+            objects,
+            road,
+            self._slots,
+            self._reward,
+        )
+        terminated = bool(pa.ended[:, 0].any())
+        truncated = (not terminated) and int(pa.si[S_STEP, 0]) >= self.params.num_steps
         self._ended = terminated or truncated
-        info = self._info(sinfo.accel_mps2[0, EGO], sinfo.steer_rad[0])
-        return self._obs(), reward, terminated, truncated, info
+        info = self._info(float(sinfo.accel_mps2[0, EGO]), float(sinfo.steer_rad[0]))
+        return {"objects": objects[0], "road": road[0]}, float(self._reward[0]), terminated, truncated, info
 
     def render(self) -> np.ndarray | None:
         """An (H, W, 3) uint8 picture of the road around the ego if ``render_mode == "rgb_array"``, else None."""

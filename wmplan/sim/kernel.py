@@ -78,6 +78,30 @@ SIZE_SALTS = (101, 102)  # last counter of the length and width draws (wmplan.si
 
 EGO = 0
 
+# --- the state's packed layout (what step_range reads and writes) ------------------------------------------------------
+# (S, V) float64 fields of a TrafficState, stacked as the rows of one (NVF, S, V) array, and so on for the others.
+VF_FIELDS = (
+    "x_m",
+    "y_m",
+    "vx_mps",
+    "vy_mps",
+    "heading_rad",
+    "length_m",
+    "width_m",
+    "brake_timer_s",
+    "brake_decel_mps2",
+    "cooldown_s",
+)
+F_X, F_Y, F_VX, F_VY, F_H, F_LEN, F_WID, F_TIMER, F_DECEL, F_CD = range(len(VF_FIELDS))
+VI_FIELDS = ("vehicle_id", "lane")  # (NVI, S, V) int64
+I_VID, I_LANE = range(len(VI_FIELDS))
+SF_FIELDS = ("ego_speed_mps", "ego_steer_rad")  # (NSF, S) float64
+S_EGO_SPEED, S_EGO_STEER = range(len(SF_FIELDS))
+SI_FIELDS = ("step", "next_id")  # (NSI, S) int64
+S_STEP, S_NEXT_ID = range(len(SI_FIELDS))
+ENDED_FIELDS = ("collided", "offroad", "reached_goal")  # (NE, S) bool
+E_COLLIDED, E_OFFROAD, E_REACHED = range(len(ENDED_FIELDS))
+
 # --- parameter tables -------------------------------------------------------------------------------------------------
 # Scalars of one parameter set, by column of ParamTable.scalars:
 (
@@ -253,11 +277,10 @@ def _c(traits, j):
 
 
 @jit
-def _follow(vx, traits, j, gap, v_lead):
-    """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead``."""
-    return _idm(
-        vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A], _c(traits, j)
-    )
+def _follow(vx, traits, cc, j, gap, v_lead):
+    """IDM acceleration of vehicle j behind a leader ``gap`` ahead going ``v_lead`` (``cc[j]``: its
+    :func:`_c`, worked out once a step)."""
+    return _idm(vx[j], traits[j, T_V0], gap, vx[j] - v_lead, traits[j, T_T], traits[j, T_S0], traits[j, T_A], cc[j])
 
 
 @jit
@@ -393,15 +416,15 @@ def _leaders(
 
 
 @jit
-def _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lead, acc):
+def _car_following(sc, ln, x, vx, length, lane, traits, cc, traffic, lead_gap, v_lead, acc):
     """IDM toward the leader and, where any lane of the road ends, toward the end of the own lane."""
     any_end = sc[P_ANY_END] != 0.0
     for i in range(x.shape[0]):
         if not traffic[i]:
             continue
-        a = _follow(vx, traits, i, lead_gap[i], v_lead[i])
+        a = _follow(vx, traits, cc, i, lead_gap[i], v_lead[i])
         if any_end:
-            a = min(a, _follow(vx, traits, i, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], 0.0))
+            a = min(a, _follow(vx, traits, cc, i, _to_end(sc, ln, lane[i], x[i]) - 0.5 * length[i], 0.0))
         acc[i] = a
 
 
@@ -433,6 +456,7 @@ def _yielding(
     lane,
     vid,
     traits,
+    cc,
     traffic,
     ys_old,
     order,
@@ -481,7 +505,7 @@ def _yielding(
             state = 1 if yields else 2
         ys[i] = state
         if state == 1:
-            a_yield = _follow(vx, traits, i, max(_gap_ahead(x, length, i, p), traits[i, T_S0]), vx[p])
+            a_yield = _follow(vx, traits, cc, i, max(_gap_ahead(x, length, i, p), traits[i, T_S0]), vx[p])
             acc[i] = min(acc[i], max(a_yield, -traits[i, T_BSAFE]))
         else:  # close up on the leader, so that the merging vehicle finds no gap in front
             acc[i] = _bold(sc, ln, x, vx, length, lane, traits, i, lead_gap[i], v_lead[i])
@@ -530,7 +554,7 @@ def _braking(sc, key, stp, x, vx, vid, traffic, timer_in, decel_in, acc, timer, 
 
 
 @jit
-def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d):
+def _incentive(sc, ln, x, vx, length, lane, traits, cc, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d):
     """MOBIL incentive of vehicle i for a change by d lanes, or -inf where the change is not allowed or not safe.
     The incentive includes the mandatory-merge bias where i's lane ends within the merge zone."""
     target = lane[i] + d
@@ -543,16 +567,18 @@ def _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, 
     # old follower (in any lane this vehicle occupies), before and after the change
     f = _prev_in(order, rank, i, bits, bits[i])
     f_gap = _gap_behind(x, length, i, f)
-    a_o = _follow(vx, traits, f, f_gap, vx[i]) if f >= 0 else 0.0
-    a_o_after = _follow(vx, traits, f, f_gap + lead_gap[i] + length[i], v_lead[i]) if f >= 0 else 0.0
+    a_o = _follow(vx, traits, cc, f, f_gap, vx[i]) if f >= 0 else 0.0
+    a_o_after = _follow(vx, traits, cc, f, f_gap + lead_gap[i] + length[i], v_lead[i]) if f >= 0 else 0.0
     # new leader and new follower in the target lane
     nl = _next_in(order, rank, n, i, bits, 1 << target)
     nf = _prev_in(order, rank, i, bits, 1 << target)
     nl_gap, nf_gap = _gap_ahead(x, length, i, nl), _gap_behind(x, length, i, nf)
     v_nl = vx[nl] if nl >= 0 else 0.0
-    a_self_after = min(_follow(vx, traits, i, nl_gap, v_nl), _follow(vx, traits, i, d_end_t - 0.5 * length[i], 0.0))
-    a_n = _follow(vx, traits, nf, nl_gap + nf_gap + length[i], v_nl) if nf >= 0 else 0.0
-    a_n_after = _follow(vx, traits, nf, nf_gap, vx[i]) if nf >= 0 else 0.0
+    a_self_after = min(
+        _follow(vx, traits, cc, i, nl_gap, v_nl), _follow(vx, traits, cc, i, d_end_t - 0.5 * length[i], 0.0)
+    )
+    a_n = _follow(vx, traits, cc, nf, nl_gap + nf_gap + length[i], v_nl) if nf >= 0 else 0.0
+    a_n_after = _follow(vx, traits, cc, nf, nf_gap, vx[i]) if nf >= 0 else 0.0
     b_safe = traits[i, T_BSAFE]
     if not ((nf < 0 or a_n_after >= -b_safe) and nl_gap > 1.0 and nf_gap > 1.0 and a_self_after >= -b_safe):
         return -np.inf
@@ -574,6 +600,7 @@ def _lane_changes(
     length,
     lane,
     traits,
+    cc,
     traffic,
     cd_in,
     order,
@@ -596,7 +623,9 @@ def _lane_changes(
         new_lane[i] = lane[i]
         if d == 0 or not traffic[i] or cooldown[i] > 0.0 or not abs(y[i] - _centre(sc, lane[i])) < SETTLED_M:
             continue
-        inc = _incentive(sc, ln, x, vx, length, lane, traits, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d)
+        inc = _incentive(
+            sc, ln, x, vx, length, lane, traits, cc, order, rank, n, bits, lead, lead_gap, v_lead, acc, i, d
+        )
         if inc > traits[i, T_TH]:
             new_lane[i] = lane[i] + d
             cooldown[i] = LANE_CHANGE_COOLDOWN_S
@@ -824,35 +853,17 @@ def _ego_offroad(sc, ln, x, y, length, width, heading):
 
 
 @jit
-def _outcome(
-    sc,
-    ln,
-    s,
-    collided,
-    offroad,
-    reached,
-    o_x,
-    o_y,
-    o_len,
-    o_wid,
-    o_h,
-    o_valid,
-    o_collided,
-    o_offroad,
-    o_reached,
-    i_collision,
-    i_offroad,
-    i_goal,
-):
-    """The ego's collision, off-road and goal checks of scene s after its step; the outcome flags are sticky."""
-    col = _ego_collides(o_x[s], o_y[s], o_len[s], o_wid[s], o_h[s], o_valid[s])
-    ex, ey = o_x[s, EGO], o_y[s, EGO]
-    off = _ego_offroad(sc, ln, ex, ey, o_len[s, EGO], o_wid[s, EGO], o_h[s, EGO])
+def _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid, ended, s, o_ended, info):
+    """The ego's collision, off-road and goal checks of scene s after its step into ``info[:, s]``; the outcome
+    flags ``ended[:, s]`` (collided, off-road, reached) are sticky (``o_ended``: the new ones)."""
+    col = _ego_collides(o_x, o_y, o_len, o_wid, o_h, o_valid)
+    ex, ey = o_x[EGO], o_y[EGO]
+    off = _ego_offroad(sc, ln, ex, ey, o_len[EGO], o_wid[EGO], o_h[EGO])
     goal = ex >= sc[P_GOAL_X] and ln[L_GOAL, _lane_of(sc, ey)] != 0.0 and not col and not off
-    i_collision[s], i_offroad[s], i_goal[s] = col, off, goal
-    o_collided[s] = collided[s] or col
-    o_offroad[s] = offroad[s] or off
-    o_reached[s] = reached[s] or (goal and not collided[s] and not offroad[s])
+    info[0, s], info[1, s], info[2, s] = col, off, goal
+    o_ended[E_COLLIDED, s] = ended[E_COLLIDED, s] or col
+    o_ended[E_OFFROAD, s] = ended[E_OFFROAD, s] or off
+    o_ended[E_REACHED, s] = ended[E_REACHED, s] or (goal and not ended[E_COLLIDED, s] and not ended[E_OFFROAD, s])
 
 
 # --- one scene, and a range of scenes ------------------------------------------------------------------------------
@@ -911,14 +922,17 @@ def _step_scene(
     v_lead,
     traffic,
     merger,
+    cc,
 ):
     """Advance one scene by one step (module docstring). Writes the scene's new rows into the ``o_*`` arrays
     (``o_len``, ``o_wid``, ``o_vid``, ``o_traits`` already hold the old rows) and the applied accelerations into
-    ``acc``. Returns (log-weight, ego steering, ego speed, vehicles entered)."""
+    ``acc``; ``order`` ... ``cc`` are work space (V,). Returns (log-weight, ego steering, ego speed, vehicles
+    entered)."""
     v_n = x.shape[0]
     for i in range(v_n):
         traffic[i] = valid[i] and i != EGO
         acc[i] = 0.0
+        cc[i] = _c(traits, i) if valid[i] else 0.0  # the IDM's 1 / (2 sqrt(a b)) of each driver, once a step
     # 1. neighbours
     _occupancy(sc, x, y, length, width, heading, valid, lane, bits, centre_bit)
     n = _sort(x, valid, order, rank)
@@ -927,7 +941,7 @@ def _step_scene(
         x, vx, length, traffic, ys_old, order, rank, n, bits, any_merger, merger, centre_bit, lead, lead_gap, v_lead
     )
     # 2. car following
-    _car_following(sc, ln, x, vx, length, lane, traits, traffic, lead_gap, v_lead, acc)
+    _car_following(sc, ln, x, vx, length, lane, traits, cc, traffic, lead_gap, v_lead, acc)
     # 3. yielding to merging vehicles
     log_w = _yielding(
         sc,
@@ -940,6 +954,7 @@ def _step_scene(
         lane,
         vid,
         traits,
+        cc,
         traffic,
         ys_old,
         order,
@@ -966,6 +981,7 @@ def _step_scene(
         length,
         lane,
         traits,
+        cc,
         traffic,
         cd_in,
         order,
@@ -1026,110 +1042,89 @@ def step_range(
     p_lanes,
     p_traits,
     key,
-    stp,
-    next_id,
-    x,
-    y,
-    vx,
-    heading,
-    length,
-    width,
+    vf,
+    vi,
     valid,
-    vid,
-    lane,
-    traits,
     ys,
-    timer,
-    decel,
-    cd,
-    ego_speed,
-    ego_steer,
-    collided,
-    offroad,
-    reached,
+    traits,
+    sf,
+    si,
+    ended,
     action,
-    o_next_id,
-    o_x,
-    o_y,
-    o_vx,
-    o_vy,
-    o_h,
-    o_len,
-    o_wid,
+    o_vf,
+    o_vi,
     o_valid,
-    o_vid,
-    o_lane,
-    o_traits,
     o_ys,
-    o_timer,
-    o_decel,
-    o_cd,
-    o_ego_speed,
-    o_ego_steer,
-    o_collided,
-    o_offroad,
-    o_reached,
-    i_collision,
-    i_offroad,
-    i_goal,
+    o_traits,
+    o_sf,
+    o_si,
+    o_ended,
+    info,
     i_acc,
     i_log_w,
     scratch_i,
     scratch_f,
     scratch_b,
 ):
-    """Advance scenes [a, b) by one step: the state's arrays in, the new state's and the step's outcome arrays out
-    (``o_*``, ``i_*``; shapes as :class:`~wmplan.sim.state.TrafficState` and :class:`~wmplan.sim.engine.StepInfo`).
-    Scene s uses parameter row ``group[s]``. Touches only rows [a, b). ``scratch_*``: work space of this call
-    only ((7, V) int64, (2, V) float64, (2, V) bool): the kernel runs without numba's reference counting (no
-    allocation inside), so the caller provides it."""
+    """Advance scenes [a, b) by one step: the state's packed arrays in, the new state's and the step's outcome
+    arrays out (``o_*``, ``info``, ``i_*``). Layouts (:data:`VF_FIELDS` and the other tables): ``vf`` (NVF, S, V)
+    float64, ``vi`` (NVI, S, V) int64, ``valid`` (S, V) bool, ``ys`` (S, V) int8, ``traits`` (S, V, NT), ``sf``
+    (NSF, S) float64, ``si`` (NSI, S) int64, ``ended`` (NE, S) bool; ``info`` (3, S) bool (collision, off-road,
+    goal), ``i_acc`` (S, V), ``i_log_w`` (S,). ``o_traits`` already holds the old traits (or is ``traits`` itself
+    on steps where nobody may enter). Scene s uses parameter row ``group[s]``; only rows [a, b) are touched.
+    ``scratch_*``: work space of this call only ((7, V) int64, (3, V) float64, (2, V) bool): the kernel runs
+    without numba's reference counting (no allocation inside), so the caller provides it."""
     order, rank, bits, centre_bit = scratch_i[0], scratch_i[1], scratch_i[2], scratch_i[3]
     lead, merge_to, new_lane = scratch_i[4], scratch_i[5], scratch_i[6]
-    lead_gap, v_lead, traffic, merger = scratch_f[0], scratch_f[1], scratch_b[0], scratch_b[1]
+    lead_gap, v_lead, cc, traffic, merger = scratch_f[0], scratch_f[1], scratch_f[2], scratch_b[0], scratch_b[1]
     for s in range(a, b):
         g = group[s]
         sc, ln, pt = p_scalars[g], p_lanes[g], p_traits[g]
-        new_id = next_id[s]
+        new_id = si[S_NEXT_ID, s]
+        o_len, o_wid, o_vid = o_vf[F_LEN, s], o_vf[F_WID, s], o_vi[I_VID, s]
+        for i in range(o_len.shape[0]):
+            o_len[i], o_wid[i], o_vid[i] = vf[F_LEN, s, i], vf[F_WID, s, i], vi[I_VID, s, i]
+        o_x, o_y, o_h = o_vf[F_X, s], o_vf[F_Y, s], o_vf[F_H, s]
         log_w, steer, ev, entered = _step_scene(
             sc,
             ln,
             pt,
             key[s],
-            stp[s],
+            si[S_STEP, s],
             new_id,
-            x[s],
-            y[s],
-            vx[s],
-            heading[s],
-            length[s],
-            width[s],
+            vf[F_X, s],
+            vf[F_Y, s],
+            vf[F_VX, s],
+            vf[F_H, s],
+            vf[F_LEN, s],
+            vf[F_WID, s],
             valid[s],
-            vid[s],
-            lane[s],
+            vi[I_VID, s],
+            vi[I_LANE, s],
             traits[s],
             ys[s],
-            timer[s],
-            decel[s],
-            cd[s],
-            ego_speed[s],
-            ego_steer[s],
+            vf[F_TIMER, s],
+            vf[F_DECEL, s],
+            vf[F_CD, s],
+            sf[S_EGO_SPEED, s],
+            sf[S_EGO_STEER, s],
             action[s, 0],
             action[s, 1],
-            o_x[s],
-            o_y[s],
-            o_vx[s],
-            o_vy[s],
-            o_h[s],
-            o_len[s],
-            o_wid[s],
+            o_x,
+            o_y,
+            o_vf[F_VX, s],
+            o_vf[F_VY, s],
+            o_h,
+            o_len,
+            o_wid,
             o_valid[s],
-            o_vid[s],
-            o_lane[s],
+            o_vid,
+            o_vi[I_LANE, s],
             o_traits[s],
             o_ys[s],
-            o_timer[s],
-            o_decel[s],
-            o_cd[s],
+            o_vf[F_TIMER, s],
+            o_vf[F_DECEL, s],
+            o_vf[F_CD, s],
             i_acc[s],
             order,
             rank,
@@ -1142,26 +1137,8 @@ def step_range(
             v_lead,
             traffic,
             merger,
+            cc,
         )
-        o_next_id[s] = new_id + entered
-        o_ego_speed[s], o_ego_steer[s], i_log_w[s] = ev, steer, log_w
-        _outcome(
-            sc,
-            ln,
-            s,
-            collided,
-            offroad,
-            reached,
-            o_x,
-            o_y,
-            o_len,
-            o_wid,
-            o_h,
-            o_valid,
-            o_collided,
-            o_offroad,
-            o_reached,
-            i_collision,
-            i_offroad,
-            i_goal,
-        )
+        o_si[S_STEP, s], o_si[S_NEXT_ID, s] = si[S_STEP, s] + 1, new_id + entered
+        o_sf[S_EGO_SPEED, s], o_sf[S_EGO_STEER, s], i_log_w[s] = ev, steer, log_w
+        _outcome(sc, ln, o_x, o_y, o_len, o_wid, o_h, o_valid[s], ended, s, o_ended, info)

@@ -9,9 +9,13 @@ from __future__ import annotations
 import numpy as np
 
 from wmplan import rng
+from wmplan.sim._jit import jit, kernel_array
 from wmplan.sim.behaviour import idm_equilibrium_gap
+from wmplan.sim.draws import combine5, to_unit
 from wmplan.sim.params import NUM_TRAITS, T_T, T_V0, SimParams
 from wmplan.sim.state import EGO, TrafficState
+
+STREAM_INIT = rng.STREAM_INIT  # a compile-time constant of _grid_uniforms
 
 
 def draw_traits(
@@ -51,6 +55,37 @@ def draw_size(params: SimParams, key: np.ndarray, vehicle_id: np.ndarray) -> tup
         np.array([101, 102]),
     )
     return both[..., 0], both[..., 1]
+
+
+@jit
+def _grid_uniforms(keys, lane, out):
+    """``out[k, s, i]`` = ``rng.uniform(keys[s], rng.STREAM_INIT, lane, i, k + 1)`` (the same numbers, compiled)."""
+    for s in range(keys.shape[0]):
+        for i in range(out.shape[2]):
+            for k in range(out.shape[0]):
+                out[k, s, i] = to_unit(combine5(keys[s], STREAM_INIT, lane, i, k + 1))
+
+
+@jit
+def _thin(order, c_lane, c_x, c_len, need, c_placed, c_speed, ok, last):
+    """Thin each scene's candidates (S, C) lane by lane, front to back (``order``: candidates by decreasing x): a
+    candidate survives if its gap to the last survivor ahead in its lane is at least ``need`` (its equilibrium
+    gap), or it is hand-placed; one that does not fit but is more than 8 m behind slows to that survivor's speed.
+    Writes ``ok`` and ``c_speed`` in place; ``last`` (3, L) is work space."""
+    for r in range(order.shape[0]):
+        for ln in range(last.shape[1]):
+            last[0, ln], last[1, ln], last[2, ln] = np.inf, 0.0, 0.0  # position, length, speed
+        for j in range(order.shape[1]):
+            ci = order[r, j]
+            ln = min(max(c_lane[r, ci], 0), last.shape[1] - 1)
+            gap = last[0, ln] - last[1, ln] / 2 - c_x[r, ci] - c_len[r, ci] / 2
+            fits = gap >= need[r, ci] or c_placed[r, ci] >= 0
+            alive = ok[r, ci] and (fits or gap > 8.0)
+            if alive and not fits:
+                c_speed[r, ci] = min(c_speed[r, ci], last[2, ln])
+            ok[r, ci] = alive
+            if alive:
+                last[0, ln], last[1, ln], last[2, ln] = c_x[r, ci], c_len[r, ci], c_speed[r, ci]
 
 
 def empty_state(params: SimParams, keys: np.ndarray) -> TrafficState:
@@ -127,9 +162,10 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
         cand_placed.append(np.full((s, 1), i))
     for lane in range(params.num_lanes):
         n = len(grid)
-        idx = np.arange(n)
-        jitter = (rng.uniform(keys[:, None], rng.STREAM_INIT, lane, idx, 1) - 0.5) * spacing * 0.6
-        keep_u = rng.uniform(keys[:, None], rng.STREAM_INIT, lane, idx, 2)
+        u = np.empty((2, s, n))
+        _grid_uniforms(kernel_array(keys, np.uint64), lane, u)
+        jitter = (u[0] - 0.5) * spacing * 0.6
+        keep_u = u[1]
         xs = grid[None, :] + jitter
         keep = keep_u < params.density_veh_per_m[lane] * spacing
         keep &= params.lane_exists(np.full_like(xs, lane, dtype=np.int64), xs)
@@ -169,29 +205,22 @@ def initial_state(params: SimParams, seeds: np.ndarray | list[int] | int) -> Tra
         ok &= ~((c_lane == pv.lane) & (np.abs(c_x - ego_x - pv.offset_m) < 30.0) & (c_placed < 0))
     # Thin each lane front to back: a candidate survives if the gap to the last survivor ahead suffices.
     order = np.argsort(-c_x, axis=1, kind="stable")
-    last_x = np.full((s, params.num_lanes), np.inf)
-    last_len = np.zeros((s, params.num_lanes))
-    last_v = np.zeros((s, params.num_lanes))
-    rows = np.arange(s)
-    for j in range(num_c):  # over candidate positions (a handful per lane), not over vehicles of the batch
-        ci = order[:, j]
-        lane = c_lane[rows, ci]
-        alive = ok[rows, ci]
-        ln = np.clip(lane, 0, params.num_lanes - 1)
-        gap = last_x[rows, ln] - last_len[rows, ln] / 2 - c_x[rows, ci] - c_len[rows, ci] / 2
-        v_f = c_speed[rows, ci]
-        need = idm_equilibrium_gap(
-            np.minimum(v_f, 0.97 * c_traits[rows, ci, T_V0]), c_traits[rows, ci, T_V0], c_traits[rows, ci, T_T], 2.0
-        )
-        fits = (gap >= need) | (c_placed[rows, ci] >= 0)
-        # Too close but not overlapping: slow down to the leader's speed instead of dropping, if that fits.
-        alive = alive & (fits | (gap > 8.0))
-        slow = alive & ~fits
-        c_speed[rows, ci] = np.where(slow, np.minimum(v_f, last_v[rows, ln]), c_speed[rows, ci])
-        ok[rows, ci] = alive
-        last_x[rows, ln] = np.where(alive, c_x[rows, ci], last_x[rows, ln])
-        last_len[rows, ln] = np.where(alive, c_len[rows, ci], last_len[rows, ln])
-        last_v[rows, ln] = np.where(alive, c_speed[rows, ci], last_v[rows, ln])
+    need = idm_equilibrium_gap(
+        np.minimum(c_speed, 0.97 * c_traits[..., T_V0]), c_traits[..., T_V0], c_traits[..., T_T], 2.0
+    )
+    c_speed = np.ascontiguousarray(c_speed, dtype=np.float64)
+    ok = np.ascontiguousarray(ok)
+    _thin(
+        order,
+        np.ascontiguousarray(c_lane, dtype=np.int64),
+        np.ascontiguousarray(c_x, dtype=np.float64),
+        np.ascontiguousarray(c_len, dtype=np.float64),
+        np.ascontiguousarray(need, dtype=np.float64),
+        np.ascontiguousarray(c_placed, dtype=np.int64),
+        c_speed,
+        ok,
+        np.empty((3, params.num_lanes)),
+    )
 
     # --- fill slots: placed first, then nearest to the ego ---
     prio = np.where(ok, np.abs(dx_ego) + np.where(c_placed >= 0, -1e6, 0.0), np.inf)

@@ -67,11 +67,28 @@ class TrafficState:
 
     @classmethod
     def _trusted(cls, fields: dict[str, np.ndarray]) -> TrafficState:
-        """A state from a complete dict of fields, without the dataclass's per-field assignment (the engine's hot
-        path; the caller guarantees every field is present with its documented dtype and shape)."""
+        """A state from a dict of fields, without the dataclass's per-field assignment (the engine's hot path; the
+        caller guarantees every field is present with its documented dtype and shape, or ``fields["_packed"]``
+        holds the engine's packed arrays, whose ``field(name)`` gives the missing ones when first read)."""
         state = object.__new__(cls)
         state.__dict__.update(fields)
         return state
+
+    def __getattr__(self, name: str):
+        # only reached for attributes not yet in __dict__: fields of an engine-made state, made on first read
+        packed = self.__dict__.get("_packed")
+        if packed is None or name.startswith("__"):
+            raise AttributeError(name)
+        try:
+            value = packed.field(name)
+        except KeyError:
+            raise AttributeError(name) from None
+        self.__dict__[name] = value
+        return value
+
+    def __getstate__(self) -> dict:
+        """Pickled as its fields alone (the engine's packed arrays are rebuilt on the next step)."""
+        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
 
     @property
     def num_scenes(self) -> int:
