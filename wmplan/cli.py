@@ -333,6 +333,7 @@ BENCHMARKS = {
     "plan": "plan_latency.py",
     "sweep": "sweep_scaling.py",
     "stress": "stress_batching.py",
+    "triage": "triage_cost.py",
 }
 
 

@@ -174,3 +174,22 @@ def test_cli_unreadable_summary_is_one_line_and_exit_2(tmp_path):
     (run / "summary.json").write_text("{not json")
     out = _cli("triage", str(run))
     assert out.returncode == 2 and "summary.json" in out.stderr and "Traceback" not in out.stderr
+
+
+@pytest.mark.slow
+def test_triage_cost_benchmark_smoke(tmp_path) -> None:
+    """Smoke test of ``benchmarks/triage_cost.py --quick --json FILE`` (common practice, no source): a real failure
+    of mpc+constant-velocity on short-gap-cut-in is triaged at the default budget, gets a cause and a point of no
+    return and a figure, and its time is recorded. The one-minute bound is read from the benchmark's JSON, not
+    asserted here."""
+    import importlib
+
+    module = importlib.import_module("benchmarks.triage_cost")
+    out = tmp_path / "triage.json"
+    assert module.main(["--quick", "--json", str(out)]) == 0
+    result = json.loads(out.read_text())
+    assert result["failures_found"] >= 1 and result["failures_triaged"] == 1
+    assert result["complete"] is True and result["figures_written"] == 1
+    assert len(result["seconds_per_failure"]) == 1 and result["seconds_per_failure"][0] > 0
+    assert set(result["counts"][result["planner"]]) == {"prediction", "planning", "past saving", "not reproduced"}
+    assert result["caution"] and result["machine"]["cpu_count"] >= 1

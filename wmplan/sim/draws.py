@@ -45,21 +45,25 @@ def fold(h, part):
 
 @jit
 def combine2(a, b):
+    """The counter hash of two 64-bit integers (``fold`` from the fixed start value)."""
     return fold(fold(_H0, a), b)
 
 
 @jit
 def combine3(a, b, c):
+    """The counter hash of three 64-bit integers, ``combine2`` folded once more."""
     return fold(combine2(a, b), c)
 
 
 @jit
 def combine4(a, b, c, d):
+    """The counter hash of four 64-bit integers, ``combine3`` folded once more."""
     return fold(combine3(a, b, c), d)
 
 
 @jit
 def combine5(a, b, c, d, e):
+    """The counter hash of five 64-bit integers, ``combine4`` folded once more."""
     return fold(combine4(a, b, c, d), e)
 
 

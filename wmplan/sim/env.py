@@ -471,6 +471,12 @@ class LaneEnv(gym.Env):
     def reset(
         self, *, seed: int | None = None, options: dict[str, Any] | None = None
     ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        """Start an episode: ``seed`` seeds the environment's generator (gymnasium's contract), which draws the
+        scene seed unless ``options={"scene_seed": s}`` (an integer >= 0) gives it. Returns (observation, info).
+
+        Raises:
+            ConfigError: an unknown option or a scene seed that is not an integer >= 0.
+        """
         super().reset(seed=seed)
         opts = dict(options or {})
         unknown = sorted(set(opts) - {"scene_seed"})
@@ -507,6 +513,13 @@ class LaneEnv(gym.Env):
         }
 
     def step(self, action: Any) -> tuple[dict[str, np.ndarray], float, bool, bool, dict[str, Any]]:
+        """Advance one simulator step (``dt_s``) with ``action`` (2,) = (acceleration m/s^2, steering rad), or
+        values in [-1, 1] if ``normalized_actions``. Returns (observation, reward, terminated, truncated, info).
+
+        Raises:
+            ResetNeeded: before the first reset or after the episode ended.
+            ConfigError: an action of another shape or not finite.
+        """
         if self._state is None:
             raise ResetNeeded("LaneEnv.step: call reset() before the first step")
         if self._ended:
@@ -560,6 +573,7 @@ class LaneEnv(gym.Env):
         )
 
     def close(self) -> None:
+        """Release the renderer's figure, if one was made."""
         if self._renderer is not None:
             self._renderer.close()
             self._renderer = None
@@ -640,6 +654,12 @@ class LaneVectorEnv(VectorEnv):
     def reset(
         self, *, seed: int | None = None, options: dict[str, Any] | None = None
     ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+        """Start every sub-environment: ``seed`` seeds the generator that draws the scene seeds unless
+        ``options={"scene_seeds": seeds}`` ((num_envs,) integers >= 0) gives them. Returns (observations, info).
+
+        Raises:
+            ConfigError: an unknown option or scene seeds of another shape, type or sign.
+        """
         super().reset(seed=seed)
         opts = dict(options or {})
         unknown = sorted(set(opts) - {"scene_seeds"})
@@ -681,6 +701,14 @@ class LaneVectorEnv(VectorEnv):
         return info
 
     def step(self, actions: Any) -> tuple[dict[str, np.ndarray], np.ndarray, np.ndarray, np.ndarray, dict[str, Any]]:
+        """Advance every sub-environment one step with ``actions`` (num_envs, 2); a sub-environment whose episode
+        ended at the previous step restarts from a newly drawn scene instead (reward 0, its next-step autoreset).
+        Returns (observations, rewards, terminated, truncated, info), each with a leading num_envs axis.
+
+        Raises:
+            ResetNeeded: before the first reset.
+            ConfigError: actions of another shape or not finite.
+        """
         if self._state is None:
             raise ResetNeeded("LaneVectorEnv.step: call reset() before the first step")
         act = _check_actions(actions, (self.num_envs, 2), "LaneVectorEnv.step")
@@ -724,6 +752,7 @@ class LaneVectorEnv(VectorEnv):
         )
 
     def close_extras(self, **kwargs: Any) -> None:
+        """Release the renderer's figure, if one was made (called by gymnasium's ``close``)."""
         if self._renderer is not None:
             self._renderer.close()
             self._renderer = None

@@ -156,6 +156,7 @@ def distance_and_speed(v: float, a: float, dt: float) -> tuple[float, float]:
 
 
 def clip(value: float, lo: float, hi: float) -> float:
+    """``value`` limited to [lo, hi]."""
     return min(max(value, lo), hi)
 
 
@@ -208,12 +209,15 @@ class Road:
         self.goal_lanes = [bool(v) for v in p.goal_lane_mask]
 
     def centre(self, lane: int) -> float:
+        """Lateral position (m) of the centre line of ``lane`` (0 = the rightmost)."""
         return (lane + 0.5) * self.lane_w
 
     def lane_of(self, y: float) -> int:
+        """The lane whose strip holds lateral position ``y`` (m), clipped to the road's lanes."""
         return min(max(math.floor(y / self.lane_w), 0), self.num_lanes - 1)
 
     def exists(self, lane: int, x: float) -> bool:
+        """Whether ``lane`` is a lane of the road and is open at longitudinal position ``x`` (m)."""
         return 0 <= lane < self.num_lanes and self.start[lane] <= x <= self.end[lane]
 
     def to_end(self, lane: int, x: float) -> float:

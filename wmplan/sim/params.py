@@ -157,6 +157,7 @@ class SimParams:
 
     @property
     def road_width_m(self) -> float:
+        """Width of the paved road (m): lanes times lane width."""
         return self.num_lanes * self.lane_width_m
 
     def with_tilt(self, tilt: EventTilt | None) -> SimParams:

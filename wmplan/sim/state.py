@@ -92,10 +92,12 @@ class TrafficState:
 
     @property
     def num_scenes(self) -> int:
+        """Scenes in the batch (the arrays' first axis)."""
         return int(self.x_m.shape[0])
 
     @property
     def num_vehicles(self) -> int:
+        """Vehicle slots per scene, the ego's included (the arrays' second axis)."""
         return int(self.x_m.shape[1])
 
     @property

@@ -56,6 +56,7 @@ class EventTilt:
 
     @property
     def active(self) -> bool:
+        """Whether the tilt changes anything (a factor other than 1)."""
         return self.brake_factor != 1.0 or self.yield_factor != 1.0
 
 

@@ -105,14 +105,17 @@ class VariantBatch:
 
     @staticmethod
     def single(params: SimParams, num_scenes: int) -> VariantBatch:
+        """A batch of ``num_scenes`` scenes that all share one parameter set."""
         return VariantBatch((params,), (int(num_scenes),))
 
     @property
     def num_scenes(self) -> int:
+        """Scenes over all variants."""
         return int(sum(self.counts))
 
     @property
     def bounds(self) -> list[tuple[int, int]]:
+        """The [start, stop) scene range of each variant, in order."""
         edges = np.concatenate([[0], np.cumsum(self.counts)]).astype(int)
         return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True)]
 
