@@ -31,7 +31,7 @@ from wmplan.evaluate.compare import compare_planners
 from wmplan.io import atomic_write_json
 from wmplan.scenario import load_scenario
 
-SCENARIOS = ("short-gap-cut-in",)
+SCENARIOS = ("short-gap-cut-in", "lane-drop-turns", "courtesy-stop")
 PLANNERS = ("mpc+constant-velocity", "mpc+oracle")
 REFERENCE = "mpc+oracle"
 

@@ -101,8 +101,10 @@ def _run_both(params: SimParams, state: TrafficState, num_steps: int, actions_of
 # Events each built-in scenario must show in NUM_STEPS steps of NUM_SCENES scenes (seeds 0..NUM_SCENES-1).
 NUM_SCENES, NUM_STEPS = 8, 90
 EXPECTED = {
+    "courtesy-stop": ("lane_change", "yield_decision", "no_yield_decision"),
     "cut-in": ("lane_change", "spawn", "leave"),
     "lane-drop": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
+    "lane-drop-turns": ("lane_change",),
     "onramp-merge": ("lane_change", "spawn", "leave", "yield_decision", "no_yield_decision", "brake_start"),
     "open-road": ("lane_change", "spawn", "leave"),
     "short-gap-cut-in": ("lane_change",),

@@ -23,7 +23,16 @@ from wmplan.sim import SimParams, TrafficState, initial_state, step
 from wmplan.sim.ego_rules import rule_actions
 
 FIELDS = tuple(f.name for f in dataclasses.fields(TrafficState))
-SCENARIOS = ("cut-in", "lane-drop", "onramp-merge", "open-road", "short-gap-cut-in", "stop-and-go")
+SCENARIOS = (
+    "courtesy-stop",
+    "cut-in",
+    "lane-drop",
+    "lane-drop-turns",
+    "onramp-merge",
+    "open-road",
+    "short-gap-cut-in",
+    "stop-and-go",
+)
 BATCH = 512
 NUM_STEPS = 100
 

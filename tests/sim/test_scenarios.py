@@ -27,7 +27,16 @@ from wmplan.scenario import (
 from wmplan.sim.params import SimParams
 from wmplan.sim.spawn import initial_state
 
-BUILTINS = ["cut-in", "lane-drop", "onramp-merge", "open-road", "short-gap-cut-in", "stop-and-go"]
+BUILTINS = [
+    "courtesy-stop",
+    "cut-in",
+    "lane-drop",
+    "lane-drop-turns",
+    "onramp-merge",
+    "open-road",
+    "short-gap-cut-in",
+    "stop-and-go",
+]
 REPO_SCENARIOS = Path(__file__).resolve().parents[2] / "scenarios"
 UNKNOWN_KEY_HINT = "unknown key (check the spelling against `wmplan scenarios show open-road`)"
 

@@ -95,8 +95,8 @@ def _errors(path: Path) -> None:
         ),
         (
             "name: t\nbase: onramp-merg\n" + TAIL,
-            "base: onramp-merg: no such built-in scenario or file; built-ins are: cut-in, lane-drop, onramp-merge, "
-            "open-road, short-gap-cut-in, stop-and-go",
+            "base: onramp-merg: no such built-in scenario or file; built-ins are: courtesy-stop, cut-in, lane-drop, "
+            "lane-drop-turns, onramp-merge, open-road, short-gap-cut-in, stop-and-go",
         ),
         (
             "name: t\nbase: [onramp\n",
