@@ -85,7 +85,7 @@ class Manoeuvres:
         draw = {c: rng.uniform(self.key, rng.STREAM_POLICY, decision_idx, c) for c in (_C_START, _C_KIND)}
         idle = self.active & (self.steps_left <= 0)
         self.kind = np.where(self.steps_left > 0, self.kind, -1)
-        near = _follower_gap(state.vehicles(), params) <= FOLLOWER_NEAR_M
+        near = follower_gap_m(state.vehicles(), params) <= FOLLOWER_NEAR_M
         rate = MANOEUVRE_RATE_PER_S * np.where(near, FOLLOWER_NEAR_RATE_FACTOR, 1.0)
         start = idle & (draw[_C_START] < rate * decision_dt_s)
         kind = np.searchsorted(np.cumsum(KIND_PROBS), draw[_C_KIND], side="right").clip(0, len(KINDS) - 1)
@@ -144,7 +144,7 @@ class Manoeuvres:
         return np.where(self._lane_start & ok, proposal, target)
 
 
-def _follower_gap(vehicles: np.ndarray, params: SimParams) -> np.ndarray:
+def follower_gap_m(vehicles: np.ndarray, params: SimParams) -> np.ndarray:
     """(...,) bumper gap (m) to the nearest valid vehicle behind the ego in its lane (+inf if none), from world
     rows (..., V, F)."""
     ego = vehicles[..., EGO : EGO + 1, :]
@@ -189,7 +189,7 @@ def manoeuvre_shares(
     lane_change = lane[:, ts + horizon] != lane[:, ts]
     speed = np.hypot(ego[..., F_VX], ego[..., F_VY])
     speed_change = np.abs(speed[:, ts + horizon] - speed[:, ts]) >= SPEED_CHANGE_DETECT_MPS
-    near = _follower_gap(vehicles[:, ts], params) <= FOLLOWER_NEAR_M
+    near = follower_gap_m(vehicles[:, ts], params) <= FOLLOWER_NEAR_M
     n = int(ok.sum())
 
     def share(mask: np.ndarray) -> float:
