@@ -6,6 +6,11 @@ scenario, on common scene seeds, and reports per scenario, model and share the s
 (Wilson 95 % intervals), the collisions by side and the mean speed, plus the paired comparison of each share with
 the first one (same model, same seeds: differences with Newcombe intervals and exact McNemar p-values).
 
+The built-in scenarios seldom put the discount to work, so the run also has ``stopped-ahead-follower-behind``
+(``--scenarios`` may name it): one lane, no random traffic, the ego at 100 km/h, a stopped vehicle 60 m ahead and
+a vehicle 20 m behind at the same speed, 8 s. Every plan that stops in time is predicted to be run into from
+behind unless the predictor foresees the follower braking; the simulator's follower does brake.
+
 Usage: ``python benchmarks/from_behind_discount.py --model old=runs/latent-old --model new=runs/latent
 [--shares 0.25,1.0] [--scenarios a,b] [--episodes 100] [--seed 5] [--json FILE]``. Importing this module runs
 nothing. Results on a simplified traffic model certify nothing about a real vehicle.
@@ -26,17 +31,44 @@ from wmplan.evaluate.paired import paired_comparison
 from wmplan.evaluate.tables import summarise_planner
 from wmplan.io import atomic_write_json
 from wmplan.plan.mpc import CostWeights, PlannerConfig
-from wmplan.scenario import builtin_names, load_scenario
+from wmplan.scenario import Scenario, builtin_names, load_scenario, parse_scenario, scenario_to_dict
 
 KEYS = ("success_rate", "success_ci95", "collision_rate", "collision_ci95", "collisions_by_contact_side")
 KEYS += ("mean_speed_mps", "mean_speed_ci95", "timeout_rate")
+STOPPED_AHEAD = "stopped-ahead-follower-behind"
+SPEED_MPS = 100 / 3.6
+
+
+def stopped_ahead_follower_behind() -> Scenario:
+    """The scenario ``STOPPED_AHEAD`` (module docstring), from open-road; the speed limit makes the planner's target
+    speed 100 km/h."""
+    from wmplan.plan.mpc import PlannerConfig
+
+    d = scenario_to_dict(load_scenario("open-road"))
+    d["name"] = STOPPED_AHEAD
+    d["road"]["lanes"] = [{"start_m": 0.0}]
+    d["road"]["speed_limit_mps"] = SPEED_MPS / PlannerConfig().target_speed_fraction
+    d["ego"].update(lane=0, speed_mps=SPEED_MPS)
+    d["ego"]["goal"]["lanes"] = [0]
+    d["traffic"].update(density_veh_per_km=[0.0], window_ahead_m=400.0, window_behind_m=60.0)
+    d["traffic"]["placed"] = [
+        {"lane": 0, "offset_m": 60.0 + 4.7, "speed_mps": 0.0, "desired_speed_mps": 0.1, "politeness": 0.0},
+        {"lane": 0, "offset_m": -25.0, "speed_mps": SPEED_MPS, "desired_speed_mps": SPEED_MPS},
+    ]
+    d["drivers"]["hard_brake_rate_per_min"] = 0.0
+    d["duration_s"] = 8.0
+    return parse_scenario(d, source=STOPPED_AHEAD)
+
+
+def _scenario(name: str) -> Scenario:
+    return stopped_ahead_follower_behind() if name == STOPPED_AHEAD else load_scenario(name)
 
 
 def one(scenario: str, model_dir: str, share: float, *, episodes: int, seed: int) -> tuple[dict, list[dict]]:
     """Summary and rows of mpc+latent with ``from_behind = share`` on one scenario."""
     cfg = PlannerConfig(weights=CostWeights(from_behind=share))
     out = evaluate_planner(
-        load_scenario(scenario),
+        _scenario(scenario),
         "mpc+latent",
         episodes=episodes,
         seed=seed,
@@ -87,7 +119,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--model", action="append", default=[], help="NAME=MODEL_DIR of a latent model (repeat)")
     ap.add_argument("--shares", default="0.25,1.0")
-    ap.add_argument("--scenarios", default=",".join(builtin_names()))
+    ap.add_argument("--scenarios", default=",".join([*builtin_names(), STOPPED_AHEAD]))
     ap.add_argument("--episodes", type=int, default=100)
     ap.add_argument("--seed", type=int, default=5)
     ap.add_argument("--json", type=Path, default=None)
