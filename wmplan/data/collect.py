@@ -5,7 +5,9 @@ So that a forward model sees the ego do many different things, each episode driv
 * ``rules``: the rule-based driver (IDM + MOBIL + merge rule) with small action noise;
 * ``explore``: the rule-based driver's acceleration plus a smooth random (first-order autoregressive) offset of
   about 1.2 m/s^2, and lane targets that switch at random every few seconds, so that speeds, gaps and lane
-  changes cover the action space.
+  changes cover the action space; on top of it, manoeuvres a planner makes (hard brakings, strong decelerations,
+  speed changes, lane changes toward and away from the goal lanes) at random times
+  (:mod:`wmplan.data.manoeuvres`), so that the data show how the other drivers react to them.
 
 Every random draw of a policy comes from the counter-based generator keyed by the scene, so an episode is the same
 whatever batch it is collected in.
@@ -19,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from wmplan import rng
+from wmplan.data.manoeuvres import Manoeuvres
 from wmplan.sim.ego_rules import rule_actions, steer_to_lane
 from wmplan.sim.engine import step
 from wmplan.sim.params import SimParams
@@ -82,12 +85,15 @@ def episode_seeds(seed: int, num_episodes: int) -> np.ndarray:
 class BehaviourPolicy:
     """The mixed behaviour policy for a batch of scenes (stateful: it keeps the random offset and lane targets)."""
 
-    def __init__(self, params: SimParams, state: TrafficState, policy_idx: np.ndarray):
+    def __init__(self, params: SimParams, state: TrafficState, policy_idx: np.ndarray, *, manoeuvres: bool = True):
+        """``manoeuvres``: whether ``explore`` scenes also run the manoeuvres of :mod:`wmplan.data.manoeuvres`."""
         self.params = params
         self.policy_idx = np.asarray(policy_idx)
         self.key = state.key.copy()
         self.offset = np.zeros(state.num_scenes)
         self.target_lane = params.lane_of(state.y_m[:, EGO])
+        explore = (self.policy_idx == POLICIES.index("explore")) & bool(manoeuvres)
+        self.manoeuvres = Manoeuvres(self.key, explore)
 
     def __call__(self, state: TrafficState, decision_idx: int, decision_dt_s: float) -> np.ndarray:
         """Actions (S, 2) at one decision: the rule actions perturbed by this policy's counter-based draws."""
@@ -99,6 +105,9 @@ class BehaviourPolicy:
         # smooth random acceleration offset (AR(1) process)
         self.offset = EXPLORE_ACCEL_CORR * self.offset + np.sqrt(1 - EXPLORE_ACCEL_CORR**2) * EXPLORE_ACCEL_STD_MPS2 * z
         accel = base[:, 0] + np.where(explore, self.offset, RULES_ACCEL_NOISE_MPS2 * z)
+        self.manoeuvres.draw(decision_idx, decision_dt_s, state, p)
+        forced = self.manoeuvres.accel(base[:, 0], state.ego_speed_mps)
+        accel = np.where(np.isnan(forced), accel, forced)
         # explore: switch to a random existing neighbouring lane now and then, unless a merge forces the lane
         u_switch = rng.uniform(self.key, rng.STREAM_POLICY, decision_idx, 3)
         u_dir = rng.uniform(self.key, rng.STREAM_POLICY, decision_idx, 4)
@@ -108,6 +117,7 @@ class BehaviourPolicy:
         ok = p.lane_exists(proposal, x) & p.lane_exists(proposal, x + 60.0)
         switch = explore & ok & (u_switch < EXPLORE_LANE_SWITCH_PER_S * decision_dt_s)
         self.target_lane = np.where(switch, proposal, self.target_lane)
+        self.target_lane = self.manoeuvres.target_lane(state, p, self.target_lane)
         self.target_lane = np.where(p.lane_exists(self.target_lane, x + 20.0), self.target_lane, lane_now)
         # a lane that ends soon is left as the rule-based driver would (merges are not explored away)
         must_merge = p.merge_target[lane_now] >= 0
@@ -125,6 +135,7 @@ def collect(
     *,
     policy_mix: float = 0.5,
     decision_every: int = 2,
+    manoeuvres: bool = True,
     progress: Callable[[int], None] | None = None,
     on_decision: Callable[[int, TrafficState], None] | None = None,
 ) -> Trajectories:
@@ -135,6 +146,8 @@ def collect(
         seeds: (E,) scene seeds.
         policy_mix: probability that an episode uses the ``explore`` policy rather than ``rules``.
         decision_every: simulator steps per decision (and per recorded time step); 2 gives 0.2 s at dt 0.1 s.
+        manoeuvres: whether ``explore`` episodes also run the planner's manoeuvres (:mod:`wmplan.data.manoeuvres`);
+            False gives the exploring policy without them.
         progress: called with the number of decision steps done since the last call.
         on_decision: called with (decision index t, state) before each decision's action is applied; the state
             matches the recorded rows ``vehicles[:, t]`` (snapshots for the oracle are taken this way).
@@ -148,7 +161,7 @@ def collect(
     state = initial_state(params, seeds)
     u_pol = rng.uniform(state.key, rng.STREAM_POLICY, 0xB0)
     policy_idx = np.where(u_pol < policy_mix, POLICIES.index("explore"), POLICIES.index("rules")).astype(np.int8)
-    policy = BehaviourPolicy(params, state, policy_idx)
+    policy = BehaviourPolicy(params, state, policy_idx, manoeuvres=manoeuvres)
     num_decisions = params.num_steps // decision_every
     e_n, v_n = state.num_scenes, state.num_vehicles
     vehicles = np.empty((e_n, num_decisions + 1, v_n, 8), dtype=np.float32)
