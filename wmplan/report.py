@@ -228,8 +228,11 @@ def _load_scenario(run_dir: Path, doc: _Doc):
     if man_path.is_file():
         try:
             manifest = read_json_object(man_path)
+            entries = manifest.get("scenarios")
             if scenario is None and isinstance(manifest.get("scenario"), dict):
                 scenario = parse_scenario(manifest["scenario"], f"{man_path} (scenario)")
+            elif scenario is None and isinstance(entries, list) and len(entries) == 1 and isinstance(entries[0], dict):
+                scenario = parse_scenario(entries[0].get("scenario"), f"{man_path} (scenarios.0.scenario)")
         except WmplanError as err:
             doc.skip(f"data/manifest.json could not be read: {err}")
             manifest = None
@@ -288,6 +291,28 @@ def _scenario_section(doc: _Doc, scenario, manifest: dict | None) -> None:
         }
         rows += [[words.get(k, k.replace("_", " ")), _fmt(v)] for k, v in out.items()]
         doc.add(_Heading(3, "Training data (data/manifest.json)"), _Table(["", "value"], rows, [False, True]))
+        entries = manifest.get("scenarios")
+        if isinstance(entries, list) and len(entries) > 1 and all(isinstance(e, dict) for e in entries):
+            per = []
+            for e in entries:
+                eo = e.get("outcomes") if isinstance(e.get("outcomes"), dict) else {}
+                per.append(
+                    [
+                        str(e.get("name")),
+                        _fmt(e.get("num_episodes")),
+                        _fmt(e.get("num_decisions")),
+                        *[_fmt(eo.get(k)) for k in ("reached_goal", "collided", "offroad")],
+                        str(e.get("hash", ""))[:12],
+                    ]
+                )
+            doc.add(
+                _Para("The dataset holds several scenarios; one model is trained on all of them."),
+                _Table(
+                    ["scenario", "episodes", "decisions", "goal reached", "collisions", "off-road", "hash"],
+                    per,
+                    [False, True, True, True, True, True, False],
+                ),
+            )
 
 
 def _model_section(doc: _Doc, run_dir: Path, params) -> None:
