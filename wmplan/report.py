@@ -377,7 +377,49 @@ def _model_section(doc: _Doc, run_dir: Path, params) -> None:
             doc.skip(f"Futures figure skipped: {err}")
 
 
+SCENARIO_TABLE = (
+    ("latent_min_ade_k6_m", "latent minADE [m]"),
+    ("latent_min_fde_k6_m", "latent minFDE [m]"),
+    ("constant_velocity_min_fde_k6_m", "constant velocity minFDE [m]"),
+    ("deterministic_min_fde_k6_m", "least squares minFDE [m]"),
+    ("fde_ratio_constant_velocity", "latent / constant velocity [1]"),
+    ("fde_ratio_deterministic", "latent / least squares [1]"),
+    ("latent_coverage_90", "coverage of 90% intervals [1]"),
+    ("latent_nll", "NLL [nats]"),
+    ("latent_energy_distance", "energy distance to oracle [m]"),
+    ("latent_collision_prob_gap", "|ΔP(collision)| vs oracle [1]"),
+)
+"""(key of a row of ``assess.json`` ``table``, column heading with unit) of the per-scenario assessment table."""
+
+
+def _scenario_table(doc: _Doc, data: dict) -> None:
+    table = data["table"]
+    if not all(isinstance(r, dict) and isinstance(r.get("scenario"), str) for r in table):
+        raise ConfigError("assess.json: 'table' must be a list of rows, each with a 'scenario' name")
+    doc.add(_Heading(3, "Assessment per scenario (assess.json)"))
+    facts = [
+        f"{label} {data[key]}"
+        for key, label in (("heldout_episodes", "held-out episodes per scenario"), ("seed", "seed"))
+        if key in data
+    ]
+    doc.add(
+        _Para(
+            "One model for every scenario: the latent model's best-of-6 errors against constant velocity and "
+            "the least-squares model on fresh episodes of each scenario, the ratios of the final errors (below 1: "
+            "the latent model is better), the coverage of its 90% intervals (0.90 is calibrated) and its "
+            "likelihood and distance to the oracle's futures" + ("; " + "; ".join(facts) if facts else "") + "."
+        )
+    )
+    rows = [[r["scenario"], *[_fmt(r.get(key)) for key, _ in SCENARIO_TABLE]] for r in table]
+    doc.add(_Table(["scenario", *[label for _, label in SCENARIO_TABLE]], rows, [False, *[True] * len(SCENARIO_TABLE)]))
+    doc.sections.append("assessment_by_scenario")
+
+
 def _assessment(doc: _Doc, data: dict) -> None:
+    if isinstance(data.get("table"), list) and data["table"]:
+        _scenario_table(doc, data)
+        if "predictors" not in data:  # several scenarios: each one's details stay in by_scenario
+            return
     preds = data.get("predictors")
     if not isinstance(preds, dict) or not preds or not all(isinstance(v, dict) for v in preds.values()):
         raise ConfigError("assess.json: 'predictors' must map each predictor name to a dict of metrics")
