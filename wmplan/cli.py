@@ -432,6 +432,9 @@ def cmd_train(args: argparse.Namespace) -> int:
 
         _, _, st = load_training_state(Path(args.out))
         bar.update(int(st["step"]))
+    from wmplan.benchkit import load_avg
+
+    load_start = load_avg()  # the machine's state, recorded with the time (the training budget is wall-clock)
     t0 = time.perf_counter()
     try:
         res = train(args.data_dir, args.out, model_cfg=mcfg, train_cfg=tcfg, resume=args.resume, progress=progress)
@@ -448,6 +451,10 @@ def cmd_train(args: argparse.Namespace) -> int:
         "out": str(res.out_dir),
         "epochs": len(res.history),
         "seconds": round(time.perf_counter() - t0, 1),
+        "cores": os.cpu_count(),
+        "torch_threads": tcfg.threads,
+        "load_avg_1min_at_start": load_start,
+        "load_avg_1min_at_end": load_avg(),
         "stopped_by_time_budget": res.stopped_early,
         "num_parameters": res.model.num_parameters(),
         "last_epoch": last,
@@ -471,7 +478,7 @@ def cmd_train(args: argparse.Namespace) -> int:
 def cmd_assess(args: argparse.Namespace) -> int:
     """The ``wmplan assess`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
-    from wmplan.model.assess import assess_scenarios
+    from wmplan.model.assess import assess_scenarios, format_scenario_table
 
     scns = _scenario_list(args.scenario, "assess --scenario")
     result = assess_scenarios(
@@ -489,36 +496,9 @@ def cmd_assess(args: argparse.Namespace) -> int:
         print(f"  {'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
         for pred, row in result["by_scenario"][name]["predictors"].items():
             print(f"  {pred:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
-    print(format_assess_table(result["table"]))
+    print(format_scenario_table(result["table"]))
     print(CAUTION)
     return 0
-
-
-def format_assess_table(rows: list[dict]) -> str:
-    """One line per scenario of ``assess_scenarios(...)["table"]``: the latent model's best-of-6 errors against
-    constant velocity (CV) and least squares (LS), their ratios, and its interval coverage."""
-    cols = (
-        ("latent minADE", "latent_min_ade_k6_m"),
-        ("latent minFDE", "latent_min_fde_k6_m"),
-        ("CV minFDE", "constant_velocity_min_fde_k6_m"),
-        ("LS minFDE", "deterministic_min_fde_k6_m"),
-        ("latent/CV", "fde_ratio_constant_velocity"),
-        ("latent/LS", "fde_ratio_deterministic"),
-        ("coverage 90%", "latent_coverage_90"),
-        ("NLL", "latent_nll"),
-        ("energy dist", "latent_energy_distance"),
-        ("|dP coll|", "latent_collision_prob_gap"),
-    )
-    width = max([len("scenario"), *(len(r["scenario"]) for r in rows)]) + 2
-    lines = [
-        "per scenario (minADE/minFDE: best of 6, metres; ratios of minFDE; coverage of the latent model's 90% "
-        "intervals):",
-        f"{'scenario':<{width}}" + "".join(f"{label:>14}" for label, _ in cols),
-    ]
-    for r in rows:
-        cells = "".join(f"{'-':>14}" if r[key] is None else f"{r[key]:>14.3f}" for _, key in cols)
-        lines.append(f"{r['scenario']:<{width}}" + cells)
-    return "\n".join(lines)
 
 
 # --- evaluate -----------------------------------------------------------------------------------------------------

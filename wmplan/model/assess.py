@@ -441,3 +441,30 @@ def assess_scenarios(
         }
     )
     return out
+
+
+def format_scenario_table(rows: list[dict]) -> str:
+    """One line per scenario of ``assess_scenarios(...)["table"]``: the latent model's best-of-6 errors against
+    constant velocity (CV) and least squares (LS), their ratios, and its interval coverage."""
+    cols = (
+        ("latent minADE", "latent_min_ade_k6_m"),
+        ("latent minFDE", "latent_min_fde_k6_m"),
+        ("CV minFDE", "constant_velocity_min_fde_k6_m"),
+        ("LS minFDE", "deterministic_min_fde_k6_m"),
+        ("latent/CV", "fde_ratio_constant_velocity"),
+        ("latent/LS", "fde_ratio_deterministic"),
+        ("coverage 90%", "latent_coverage_90"),
+        ("NLL", "latent_nll"),
+        ("energy dist", "latent_energy_distance"),
+        ("|dP coll|", "latent_collision_prob_gap"),
+    )
+    width = max([len("scenario"), *(len(r["scenario"]) for r in rows)]) + 2
+    lines = [
+        "per scenario (minADE/minFDE: best of 6, metres; ratios of minFDE; coverage of the latent model's 90% "
+        "intervals):",
+        f"{'scenario':<{width}}" + "".join(f"{label:>14}" for label, _ in cols),
+    ]
+    for r in rows:
+        cells = "".join(f"{'-':>14}" if r[key] is None else f"{r[key]:>14.3f}" for _, key in cols)
+        lines.append(f"{r['scenario']:<{width}}" + cells)
+    return "\n".join(lines)
