@@ -274,12 +274,13 @@ NB02 = [
     md(f"""
     # 02 · Training the world model
 
-    This notebook makes a dataset of `onramp-merge` episodes, trains two forward models of the other vehicles on it —
-    the latent-variable model (a conditional VAE: one draw of its latent variable is one coherent future) and a
-    deterministic network of the same size trained by least squares — and compares them at one held-out decision
-    with the oracle's true futures. The least-squares model predicts the *average* of the possible futures, a single
-    blurred track that runs between the modes; the latent model should spread its samples over the modes as the
-    oracle does. Last, `assess` scores both models and constant velocity on fresh episodes.
+    This notebook makes one dataset of every built-in scenario, trains two forward models of the other vehicles on
+    it — the latent-variable model (a conditional VAE: one draw of its latent variable is one coherent future) and a
+    deterministic network of the same size trained by least squares — and compares them at one held-out decision of
+    `onramp-merge` with the oracle's true futures. The least-squares model predicts the *average* of the possible
+    futures, a single blurred track that runs between the modes; the latent model should spread its samples over the
+    modes as the oracle does. Last, `assess` scores both models and constant velocity on fresh episodes of every
+    scenario, one row each: one model serves the whole library.
 
     {CAUTION}
     """),
@@ -288,9 +289,9 @@ NB02 = [
     from pathlib import Path
 
     {QUICK_LINE}
-    SCENARIO = "onramp-merge"
+    SCENARIO = "onramp-merge"  # the scenario of the held-out decision below
     SEED = 0
-    EPISODES = 64 if QUICK else 1024  # 1024 episodes give about 100 k training windows
+    EPISODES = 8 if QUICK else 256  # of each built-in scenario: 6 x 256 episodes give about 100 k training windows
     TRAIN_MINUTES = 0.5 if QUICK else 4.5  # wall-clock cap per model
     TRAIN_EPOCHS = 2 if QUICK else 16  # the learning rate decays over these
     STEPS_PER_EPOCH = 25 if QUICK else 200
@@ -299,8 +300,8 @@ NB02 = [
     HELDOUT_SEED = 121  # the scene of the decision we look at (not among the training episodes) ...
     ANCHOR = 14  # ... and its decision step (0.2 s each): the ego merges, its neighbours' futures split
     NUM_FUTURES = 16 if QUICK else 32  # futures drawn per predictor at that decision
-    ASSESS = dict(episodes=12, oracle_states=6, oracle_samples=8) if QUICK else dict(episodes=96, oracle_states=48,
-                                                                                     oracle_samples=32)
+    ASSESS = dict(episodes=4, oracle_states=2, oracle_samples=4) if QUICK else dict(episodes=96, oracle_states=48,
+                                                                                   oracle_samples=32)  # per scenario
     OUT = Path("runs/notebooks/02_train_world_model")
     """),
     code("""
@@ -312,12 +313,12 @@ NB02 = [
 
     from wmplan.data import simulate_dataset
     from wmplan.data.windows import Windows, WindowSpec, anchor_index
-    from wmplan.model.assess import assess
+    from wmplan.model.assess import assess_scenarios, format_scenario_table
     from wmplan.model.checkpoint import load_model
     from wmplan.model.config import ModelConfig, TrainConfig
     from wmplan.model.train import train
     from wmplan.plan.predictors import ModelPredictor, OraclePredictor, make_context
-    from wmplan.scenario import load_scenario
+    from wmplan.scenario import builtin_names, load_scenario
     from wmplan.sim import SimParams, initial_state, step
     from wmplan.sim.ego_rules import rule_actions
     from wmplan.viz import futures_figure, training_figure
@@ -328,18 +329,22 @@ NB02 = [
     md("""
     ## A dataset
 
-    `simulate_dataset` rolls out episodes in batches. Half of them are driven by the rule-based ego with a little
-    noise, half by an *exploring* ego (random smooth accelerations and lane targets), so that the model sees the
-    ego do many different things. The folder holds the arrays and a manifest (scenario, seeds, shapes, outcomes).
+    `simulate_dataset` rolls out episodes of each scenario in batches. Half of them are driven by the rule-based ego
+    with a little noise, half by an *exploring* ego (random smooth accelerations and lane targets), so that the model
+    sees the ego do many different things. The folder holds the arrays of all scenarios and one manifest that lists
+    each scenario with its content hash, episode count and outcomes (`wmplan simulate all` does the same).
     Training cuts it into *windows*: a short history and the next 3 s of the ego and its 8 nearest vehicles, in the
     ego's frame at the decision.
     """),
     code("""
+    library = [load_scenario(name) for name in builtin_names()]
     scn = load_scenario(SCENARIO)
-    ds = simulate_dataset(scn, OUT / "data", episodes=EPISODES, seed=SEED)
+    ds = simulate_dataset(library, OUT / "data", episodes=EPISODES, seed=SEED)
     m = ds.manifest
-    print(f"{m['num_episodes']} episodes x {m['num_decisions']} decisions of {m['decision_dt_s']} s, "
-          f"{m['num_vehicles']} vehicle slots; outcomes {m['outcomes']}")
+    print(f"{m['num_episodes']} episodes (at most {m['num_decisions']} decisions of {m['decision_dt_s']} s, "
+          f"{m['num_vehicles']} vehicle slots); outcomes {m['outcomes']}")
+    for e in m["scenarios"]:
+        print(f"  {e['name']:<18} {e['num_episodes']} episodes x {e['num_decisions']} decisions, hash {e['hash'][:12]}")
 
     spec = WindowSpec()  # 5 steps of history, 15 of future, 8 other vehicles: the defaults of ModelConfig
     index = anchor_index(ds, spec)
@@ -421,8 +426,8 @@ NB02 = [
     md("""
     ## Assessment on fresh episodes
 
-    `assess` simulates episodes with seeds no dataset uses and scores each predictor (keys as in
-    `wmplan.model.assess`):
+    `assess_scenarios` simulates episodes of each scenario with seeds no dataset uses and scores each predictor on
+    them (keys as in `wmplan.model.assess`):
 
     * `min_ade_k6_m`, `min_fde_k6_m`: best of 6 futures, mean and final displacement error (m);
     * `nll`: negative log-likelihood of the true positions under the predictive mixture (nats; lower is better);
@@ -431,18 +436,17 @@ NB02 = [
       plans (m; lower is better);
     * `collision_prob_gap`: mean |P_model(collision) − P_oracle(collision)| over the oracle states and plans.
 
-    With the quick settings the numbers are noisy and the models undertrained; run without `WMPLAN_QUICK` for the
-    real budget.
+    The table has one row per scenario: the latent model's errors against constant velocity and least squares, and
+    the ratios of the final errors (below 1: the latent model is better). With the quick settings the numbers are
+    noisy and the models undertrained; run without `WMPLAN_QUICK` for the real budget.
     """),
     code("""
-    result = assess(OUT / "latent", scn, deterministic_dir=OUT / "deterministic", seed=SEED, **ASSESS)
-    keys = ("min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance", "collision_prob_gap")
-    print(f"{'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
-    for name, row in result["predictors"].items():
-        print(f"{name:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
-    print(f"\\n{result['heldout_windows']} held-out windows from {result['heldout_episodes']} episodes; "
-          f"{result['oracle_states']} oracle states x {result['oracle_plans_per_state']} plans x "
-          f"{result['oracle_samples']} futures; oracle collision probability {result['oracle_collision_prob_mean']}")
+    result = assess_scenarios(OUT / "latent", library, deterministic_dir=OUT / "deterministic", seed=SEED, **ASSESS)
+    print(format_scenario_table(result["table"]))
+    one = result["by_scenario"][SCENARIO]  # every scenario's full result is kept
+    print(f"\\n{SCENARIO}: {one['heldout_windows']} held-out windows from {one['heldout_episodes']} episodes; "
+          f"{one['oracle_states']} oracle states x {one['oracle_plans_per_state']} plans x "
+          f"{one['oracle_samples']} futures; oracle collision probability {one['oracle_collision_prob_mean']}")
     """),
     md("""
     The latent model is what notebook 03 plans with: it looks for `runs/notebooks/02_train_world_model/latent`.

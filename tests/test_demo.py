@@ -10,6 +10,7 @@ import json
 from wmplan.caution import CAUTION
 from wmplan.demo import run_demo
 from wmplan.evaluate.planners import BUILTIN_PLANNERS as PLANNER_NAMES
+from wmplan.scenario import builtin_names
 
 
 def test_quick_demo_writes_the_whole_report(tmp_path):
@@ -30,6 +31,9 @@ def test_quick_demo_writes_the_whole_report(tmp_path):
     demo = json.loads((out / "demo.json").read_text())
     assert demo["quick"] is True and demo["seconds"] > 0
     assert {"simulate", "train_latent", "train_deterministic", "assess", "report"} <= set(demo["stage_seconds"])
+    assessed = json.loads((out / "assess.json").read_text())  # one model, assessed on every built-in scenario
+    assert [row["scenario"] for row in assessed["table"]] == list(builtin_names())
+    assert "Assessment per scenario" in html
     for fig in (
         "scene.png",
         "episode.gif",

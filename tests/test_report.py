@@ -374,3 +374,48 @@ def test_a_file_instead_of_a_folder_is_refused(tmp_path):
     path.write_text("{}")
     with pytest.raises(ConfigError, match=re.escape(f"{path}: is a file, not a run folder")):
         build_report(path)
+
+
+def _row(name: str, latent: float, cv: float, ls: float, coverage: float) -> dict:
+    """A row of ``assess.json`` ``table`` as wmplan.model.assess.scenario_row shapes it."""
+    return {
+        "scenario": name,
+        "latent_min_ade_k6_m": latent / 2,
+        "latent_min_fde_k6_m": latent,
+        "constant_velocity_min_fde_k6_m": cv,
+        "deterministic_min_fde_k6_m": ls,
+        "latent_coverage_90": coverage,
+        "latent_nll": 1.5,
+        "latent_energy_distance": 0.75,
+        "latent_collision_prob_gap": 0.0625,
+        "fde_ratio_constant_velocity": latent / cv,
+        "fde_ratio_deterministic": latent / ls,
+    }
+
+
+def test_the_assessment_of_several_scenarios_is_one_row_each(tmp_path):
+    """An assess.json of two scenarios (``wmplan assess --scenario a,b``) gives the per-scenario table, one row per
+    scenario with its ratios, and no single-scenario table; a dataset of several scenarios lists them; a table of
+    rows without names is skipped with a note."""
+    run = tmp_path / "library"
+    ds = simulate_dataset(
+        [load_scenario("short-gap-cut-in"), load_scenario("cut-in")], run / "data", episodes=2, seed=5, batch_size=2
+    )
+    rows = [_row("short-gap-cut-in", 0.5, 2.0, 0.8, 0.9), _row("cut-in", 0.25, 1.0, 0.5, 0.875)]
+    (run / "assess.json").write_text(json.dumps({"scenarios": ["short-gap-cut-in", "cut-in"], "table": rows}))
+    out = cli_report(run)
+    assert "assessment_by_scenario" in out["sections"] and "assessment" not in out["sections"]
+    assert "dataset" in out["sections"]
+    page = (run / "report.html").read_text(encoding="utf-8")
+    assert "Assessment per scenario (assess.json)" in page
+    table = page[page.index("Assessment per scenario (assess.json)") :]
+    for cells in (("short-gap-cut-in", "0.250", "0.625", "0.900"), ("cut-in", "0.250", "0.500", "0.875")):
+        row = re.search(r"<tr><td>" + re.escape(cells[0]) + r"</td>.*?</tr>", table, re.S)
+        assert row is not None, cells[0]
+        for value in cells[1:]:
+            assert f'<td class="num">{value}</td>' in row.group(0), (cells[0], value)
+    for e in ds.manifest["scenarios"]:
+        assert f"<td>{e['hash'][:12]}</td>" in page
+    (run / "assess.json").write_text(json.dumps({"table": [{"latent_min_fde_k6_m": 1.0}]}))
+    out = cli_report(run)
+    assert any(s.startswith("Assessment skipped: assess.json: 'table' must be a list") for s in out["skipped"])

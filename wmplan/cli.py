@@ -268,20 +268,20 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     """The ``wmplan simulate`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.data import decisions_per_episode, simulate_dataset
     from wmplan.data.store import MANIFEST_FILE
-    from wmplan.scenario import load_scenario
 
-    scn = load_scenario(args.scenario)
+    scns = _scenario_list(args.scenarios, "simulate SCENARIO")
+    names = ", ".join(s.name for s in scns)
     out = Path(args.out)
     if (out / MANIFEST_FILE).exists() and not args.overwrite:
         raise ConfigError(f"{out}: already holds a dataset; pass --overwrite to replace it or choose another --out")
     if out.exists() and not out.is_dir():
         raise ConfigError(f"{out}: exists and is not a folder")
-    total = decisions_per_episode(scn, args.decision_every) * args.episodes
-    advance, close = _progress(total, f"simulate {scn.name}")
+    total = sum(decisions_per_episode(s, args.decision_every) for s in scns) * args.episodes
+    advance, close = _progress(total, f"simulate {names}")
     t0 = time.perf_counter()
     try:
         ds = simulate_dataset(
-            scn,
+            scns,
             out,
             episodes=args.episodes,
             seed=args.seed,
@@ -296,7 +296,10 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     m = ds.manifest
     summary = {
         "out": str(out),
-        "scenario": scn.name,
+        "scenario": names,
+        "scenarios": [
+            {k: e[k] for k in ("name", "hash", "num_episodes", "num_decisions", "outcomes")} for e in m["scenarios"]
+        ],
         "episodes": m["num_episodes"],
         "seed": args.seed,
         "decisions_per_episode": m["num_decisions"],
@@ -306,11 +309,37 @@ def cmd_simulate(args: argparse.Namespace) -> int:
     _write_json(args.json, summary)
     o = m["outcomes"]
     print(
-        f"wrote {m['num_episodes']} episodes of {scn.name} ({m['num_decisions']} decisions of {m['decision_dt_s']} s "
-        f"each) to {out} in {secs:.1f} s; goal reached {o['reached_goal']}, collisions {o['collided']}, "
+        f"wrote {m['num_episodes']} episodes of {names} ({m['num_decisions']} decisions of {m['decision_dt_s']} s "
+        f"each at most) to {out} in {secs:.1f} s; goal reached {o['reached_goal']}, collisions {o['collided']}, "
         f"off-road {o['offroad']}"
     )
+    if len(scns) > 1:
+        for e in m["scenarios"]:
+            eo = e["outcomes"]
+            print(
+                f"  {e['name']:<20} {e['num_episodes']:>6} episodes x {e['num_decisions']:>3} decisions  "
+                f"hash {e['hash'][:12]}  goal reached {eo['reached_goal']}, collisions {eo['collided']}, "
+                f"off-road {eo['offroad']}"
+            )
     return 0
+
+
+def _scenario_list(items: Sequence[str], what: str) -> list:
+    """Scenarios from names or YAML files; ``all`` (alone) means every built-in, and each item may itself be a
+    comma-separated list. Raises ConfigError naming a repeated or empty entry."""
+    from wmplan.scenario import builtin_names, load_scenario
+
+    names = [n.strip() for item in items for n in item.split(",")]
+    if names == ["all"]:
+        names = list(builtin_names())
+    if not all(names):
+        raise ConfigError(f"{what}: an empty name in {' '.join(items)!r}; give names or files")
+    if "all" in names:
+        raise ConfigError(f"{what}: 'all' stands alone (every built-in scenario); got {' '.join(items)!r}")
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        raise ConfigError(f"{what}: {', '.join(twice)} given twice; give each scenario once")
+    return [load_scenario(n) for n in names]
 
 
 # --- render ----------------------------------------------------------------------------------------------------------
@@ -404,6 +433,9 @@ def cmd_train(args: argparse.Namespace) -> int:
 
         _, _, st = load_training_state(Path(args.out))
         bar.update(int(st["step"]))
+    from wmplan.benchkit import load_avg
+
+    load_start = load_avg()  # the machine's state, recorded with the time (the training budget is wall-clock)
     t0 = time.perf_counter()
     try:
         res = train(args.data_dir, args.out, model_cfg=mcfg, train_cfg=tcfg, resume=args.resume, progress=progress)
@@ -420,6 +452,10 @@ def cmd_train(args: argparse.Namespace) -> int:
         "out": str(res.out_dir),
         "epochs": len(res.history),
         "seconds": round(time.perf_counter() - t0, 1),
+        "cores": os.cpu_count(),
+        "torch_threads": tcfg.threads,
+        "load_avg_1min_at_start": load_start,
+        "load_avg_1min_at_end": load_avg(),
         "stopped_by_time_budget": res.stopped_early,
         "num_parameters": res.model.num_parameters(),
         "last_epoch": last,
@@ -443,13 +479,12 @@ def cmd_train(args: argparse.Namespace) -> int:
 def cmd_assess(args: argparse.Namespace) -> int:
     """The ``wmplan assess`` verb: run it from parsed flags; returns the exit status."""
     from wmplan.caution import CAUTION
-    from wmplan.model.assess import assess
-    from wmplan.scenario import load_scenario
+    from wmplan.model.assess import assess_scenarios, format_scenario_table
 
-    scn = load_scenario(args.scenario)
-    result = assess(
+    scns = _scenario_list(args.scenario, "assess --scenario")
+    result = assess_scenarios(
         args.model_dir,
-        scn,
+        scns,
         deterministic_dir=args.deterministic,
         episodes=args.episodes,
         seed=args.seed,
@@ -457,9 +492,12 @@ def cmd_assess(args: argparse.Namespace) -> int:
     )
     _write_json(args.json, result)
     keys = ["min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance", "collision_prob_gap"]
-    print(f"{'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
-    for name, row in result["predictors"].items():
-        print(f"{name:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
+    for name in result["scenarios"]:
+        print(f"{name}:")
+        print(f"  {'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
+        for pred, row in result["by_scenario"][name]["predictors"].items():
+            print(f"  {pred:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
+    print(format_scenario_table(result["table"]))
     print(CAUTION)
     return 0
 
@@ -670,12 +708,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp.set_defaults(func=cmd_scenarios, outputs=(("json", "file"),))
 
     sp = sub.add_parser("simulate", help="roll out episodes with behaviour policies into a dataset folder")
-    sp.add_argument("scenario", help="built-in scenario name or YAML file")
+    sp.add_argument(
+        "scenarios",
+        nargs="+",
+        metavar="SCENARIO",
+        help="built-in scenario names or YAML files, or 'all' for every built-in: one dataset holds them all",
+    )
     sp.add_argument(
         "--episodes",
         type=_int_in(1, MAX_EPISODES),
         default=200,
-        help=f"number of episodes, 1 to {MAX_EPISODES} (default 200)",
+        help=f"number of episodes of each scenario, 1 to {MAX_EPISODES} (default 200)",
     )
     sp.add_argument("--seed", type=_seed, default=0, help=f"dataset seed, {SEED_HELP} (default 0)")
     sp.add_argument("--out", required=True, metavar="DIR", help="dataset folder to write")
@@ -733,7 +776,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     sp = sub.add_parser("assess", help="compare the forward models with constant velocity and the oracle")
     sp.add_argument("model_dir", help="latent model folder")
-    sp.add_argument("--scenario", default="onramp-merge")
+    sp.add_argument(
+        "--scenario",
+        nargs="+",
+        default=["onramp-merge"],
+        metavar="SCENARIO",
+        help="built-in names or YAML files (space- or comma-separated), or 'all' for every built-in: one row "
+        "per scenario (default onramp-merge)",
+    )
     sp.add_argument("--deterministic", metavar="DIR", default=None, help="deterministic model folder")
     sp.add_argument(
         "--episodes",

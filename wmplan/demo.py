@@ -1,8 +1,8 @@
 """The end-to-end demo: the whole job on ``onramp-merge``, from traffic to a report, in minutes on a laptop CPU.
 
-Stages (each writes into ``OUT``): simulate a dataset (``data/``), draw a scene and an episode, train the latent
-model (``latent/``) and the least-squares baseline (``deterministic/``), assess them against constant velocity and
-the oracle (``assess.json``), keep one decision's sampled futures for the figures (``futures.npz``,
+Stages (each writes into ``OUT``): simulate one dataset of every built-in scenario (``data/``), draw a scene and an
+episode, train one latent model (``latent/``) and one least-squares baseline (``deterministic/``) for the whole
+library, assess them against constant velocity and the oracle on every built-in scenario (``assess.json``), keep one decision's sampled futures for the figures (``futures.npz``,
 ``candidates.npz``), evaluate all five planners in closed loop (``evaluate/``), and write ``report.html`` and
 ``report.md``. The demo's budgets are smaller than the defaults of the individual commands (``quick`` smaller
 still, for tests); its numbers show the workflow, not the best the tool can do.
@@ -17,9 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
-from wmplan.scenario import load_scenario, scenario_to_yaml
+from wmplan.scenario import builtin_names, load_scenario, scenario_to_yaml
 
 SCENARIO = "onramp-merge"
+"""The scenario the demo draws and evaluates in closed loop; the model learns every built-in."""
 
 
 def _say(msg: str) -> None:
@@ -97,7 +98,7 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     from wmplan.evaluate.planners import BUILTIN_PLANNERS
     from wmplan.evaluate.tables import format_table
     from wmplan.io import atomic_write_json, atomic_write_text
-    from wmplan.model.assess import assess
+    from wmplan.model.assess import assess_scenarios
     from wmplan.model.config import ModelConfig, TrainConfig
     from wmplan.model.train import train
     from wmplan.report import build_report
@@ -117,11 +118,12 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
     torch.set_num_threads(2)
     scn = load_scenario(SCENARIO)
     atomic_write_text(out / "scenario.yaml", scenario_to_yaml(scn))
-    episodes = 48 if quick else 768
+    library = [load_scenario(name) for name in builtin_names()]
+    episodes = 8 if quick else 128  # of each built-in scenario (six of them: 768 episodes in all)
     # --- simulate ---
-    _say(f"1/7 simulating {episodes} episodes of {SCENARIO}")
-    with _bar(episodes * decisions_per_episode(scn), "simulate") as bar:
-        simulate_dataset(scn, out / "data", episodes=episodes, seed=seed + 1, progress=bar.update)
+    _say(f"1/7 simulating {episodes} episodes of each of {len(library)} built-in scenarios")
+    with _bar(episodes * sum(decisions_per_episode(s) for s in library), "simulate") as bar:
+        simulate_dataset(library, out / "data", episodes=episodes, seed=seed + 1, progress=bar.update)
     # --- pictures ---
     lap("simulate")
     _say("2/7 drawing a scene and an episode")
@@ -147,14 +149,14 @@ def run_demo(out: Path, *, quick: bool = False, seed: int = 0) -> Path:
             )
         lap(f"train_{kind}")
     # --- assess ---
-    _say("4/7 assessing the models against constant velocity and the oracle")
-    result = assess(
+    _say(f"4/7 assessing the models against constant velocity and the oracle on {len(library)} scenarios")
+    result = assess_scenarios(
         out / "latent",
-        scn,
+        library,
         deterministic_dir=out / "deterministic",
-        episodes=16 if quick else 64,
-        oracle_states=6 if quick else 24,
-        oracle_samples=8 if quick else 32,
+        episodes=4 if quick else 32,
+        oracle_states=2 if quick else 12,
+        oracle_samples=4 if quick else 16,
         seed=seed,
     )
     atomic_write_json(out / "assess.json", result)

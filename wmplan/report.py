@@ -228,8 +228,11 @@ def _load_scenario(run_dir: Path, doc: _Doc):
     if man_path.is_file():
         try:
             manifest = read_json_object(man_path)
+            entries = manifest.get("scenarios")
             if scenario is None and isinstance(manifest.get("scenario"), dict):
                 scenario = parse_scenario(manifest["scenario"], f"{man_path} (scenario)")
+            elif scenario is None and isinstance(entries, list) and len(entries) == 1 and isinstance(entries[0], dict):
+                scenario = parse_scenario(entries[0].get("scenario"), f"{man_path} (scenarios.0.scenario)")
         except WmplanError as err:
             doc.skip(f"data/manifest.json could not be read: {err}")
             manifest = None
@@ -288,6 +291,28 @@ def _scenario_section(doc: _Doc, scenario, manifest: dict | None) -> None:
         }
         rows += [[words.get(k, k.replace("_", " ")), _fmt(v)] for k, v in out.items()]
         doc.add(_Heading(3, "Training data (data/manifest.json)"), _Table(["", "value"], rows, [False, True]))
+        entries = manifest.get("scenarios")
+        if isinstance(entries, list) and len(entries) > 1 and all(isinstance(e, dict) for e in entries):
+            per = []
+            for e in entries:
+                eo = e.get("outcomes") if isinstance(e.get("outcomes"), dict) else {}
+                per.append(
+                    [
+                        str(e.get("name")),
+                        _fmt(e.get("num_episodes")),
+                        _fmt(e.get("num_decisions")),
+                        *[_fmt(eo.get(k)) for k in ("reached_goal", "collided", "offroad")],
+                        str(e.get("hash", ""))[:12],
+                    ]
+                )
+            doc.add(
+                _Para("The dataset holds several scenarios; one model is trained on all of them."),
+                _Table(
+                    ["scenario", "episodes", "decisions", "goal reached", "collisions", "off-road", "hash"],
+                    per,
+                    [False, True, True, True, True, True, False],
+                ),
+            )
 
 
 def _model_section(doc: _Doc, run_dir: Path, params) -> None:
@@ -352,7 +377,49 @@ def _model_section(doc: _Doc, run_dir: Path, params) -> None:
             doc.skip(f"Futures figure skipped: {err}")
 
 
+SCENARIO_TABLE = (
+    ("latent_min_ade_k6_m", "latent minADE [m]"),
+    ("latent_min_fde_k6_m", "latent minFDE [m]"),
+    ("constant_velocity_min_fde_k6_m", "constant velocity minFDE [m]"),
+    ("deterministic_min_fde_k6_m", "least squares minFDE [m]"),
+    ("fde_ratio_constant_velocity", "latent / constant velocity [1]"),
+    ("fde_ratio_deterministic", "latent / least squares [1]"),
+    ("latent_coverage_90", "coverage of 90% intervals [1]"),
+    ("latent_nll", "NLL [nats]"),
+    ("latent_energy_distance", "energy distance to oracle [m]"),
+    ("latent_collision_prob_gap", "|ΔP(collision)| vs oracle [1]"),
+)
+"""(key of a row of ``assess.json`` ``table``, column heading with unit) of the per-scenario assessment table."""
+
+
+def _scenario_table(doc: _Doc, data: dict) -> None:
+    table = data["table"]
+    if not all(isinstance(r, dict) and isinstance(r.get("scenario"), str) for r in table):
+        raise ConfigError("assess.json: 'table' must be a list of rows, each with a 'scenario' name")
+    doc.add(_Heading(3, "Assessment per scenario (assess.json)"))
+    facts = [
+        f"{label} {data[key]}"
+        for key, label in (("heldout_episodes", "held-out episodes per scenario"), ("seed", "seed"))
+        if key in data
+    ]
+    doc.add(
+        _Para(
+            "One model for every scenario: the latent model's best-of-6 errors against constant velocity and "
+            "the least-squares model on fresh episodes of each scenario, the ratios of the final errors (below 1: "
+            "the latent model is better), the coverage of its 90% intervals (0.90 is calibrated) and its "
+            "likelihood and distance to the oracle's futures" + ("; " + "; ".join(facts) if facts else "") + "."
+        )
+    )
+    rows = [[r["scenario"], *[_fmt(r.get(key)) for key, _ in SCENARIO_TABLE]] for r in table]
+    doc.add(_Table(["scenario", *[label for _, label in SCENARIO_TABLE]], rows, [False, *[True] * len(SCENARIO_TABLE)]))
+    doc.sections.append("assessment_by_scenario")
+
+
 def _assessment(doc: _Doc, data: dict) -> None:
+    if isinstance(data.get("table"), list) and data["table"]:
+        _scenario_table(doc, data)
+        if "predictors" not in data:  # several scenarios: each one's details stay in by_scenario
+            return
     preds = data.get("predictors")
     if not isinstance(preds, dict) or not preds or not all(isinstance(v, dict) for v in preds.values()):
         raise ConfigError("assess.json: 'predictors' must map each predictor name to a dict of metrics")

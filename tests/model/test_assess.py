@@ -96,3 +96,111 @@ def test_heldout_metrics_do_not_depend_on_the_chunk_size(latent_run, dataset):
         for key in ("min_ade_k6_m", "min_fde_k6_m", "nll"):
             assert parts[key] == pytest.approx(whole[key], rel=rel), key
         assert abs(parts["coverage_90"] - whole["coverage_90"]) < 0.05
+
+
+# --- several scenarios ----------------------------------------------------------------------------------------------
+
+LIBRARY = ("short-gap-cut-in", "cut-in")
+
+
+def run_cli(*args, cwd):
+    """``wmplan ARGS`` in a child process with this checkout on the path."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[2]), "TQDM_DISABLE": "1"}
+    return subprocess.run(
+        [sys.executable, "-m", "wmplan.cli", *map(str, args)], cwd=cwd, env=env, capture_output=True, text=True
+    )
+
+
+@pytest.fixture(scope="module")
+def library(latent_run, deterministic_run) -> dict:
+    from wmplan.model.assess import assess_scenarios
+
+    return assess_scenarios(
+        latent_run.out_dir,
+        [load_scenario(n) for n in LIBRARY],
+        deterministic_dir=deterministic_run.out_dir,
+        episodes=4,
+        oracle_states=2,
+        oracle_samples=4,
+        seed=0,
+    )
+
+
+def test_one_row_per_scenario_from_its_own_assessment(library, latent_run, deterministic_run):
+    """``table`` has one row per scenario, in order; each row's numbers are those of the scenario's full result in
+    ``by_scenario`` (the same as ``assess`` on that scenario alone, same seed), and its ratios are the quotients of
+    its minFDE columns; the JSON carries the caution and survives a round trip."""
+    from wmplan.caution import CAUTION
+
+    assert library["scenarios"] == list(LIBRARY)
+    assert [r["scenario"] for r in library["table"]] == list(LIBRARY)
+    assert library["caution"] == CAUTION and "predictors" not in library
+    alone = assess(
+        latent_run.out_dir,
+        load_scenario(LIBRARY[1]),
+        deterministic_dir=deterministic_run.out_dir,
+        episodes=4,
+        oracle_states=2,
+        oracle_samples=4,
+        seed=0,
+    )
+    assert library["by_scenario"][LIBRARY[1]]["predictors"] == alone["predictors"]
+    for row in library["table"]:
+        preds = library["by_scenario"][row["scenario"]]["predictors"]
+        assert row["latent_min_fde_k6_m"] == preds["latent"]["min_fde_k6_m"]
+        assert row["constant_velocity_min_fde_k6_m"] == preds["constant_velocity"]["min_fde_k6_m"]
+        assert row["deterministic_min_fde_k6_m"] == preds["deterministic"]["min_fde_k6_m"]
+        assert row["latent_coverage_90"] == preds["latent"]["coverage_90"]
+        assert row["fde_ratio_constant_velocity"] == pytest.approx(
+            preds["latent"]["min_fde_k6_m"] / preds["constant_velocity"]["min_fde_k6_m"], rel=1e-12
+        )
+        assert row["fde_ratio_deterministic"] == pytest.approx(
+            preds["latent"]["min_fde_k6_m"] / preds["deterministic"]["min_fde_k6_m"], rel=1e-12
+        )
+    assert json.loads(json.dumps(library)) == library
+
+
+def test_one_scenario_keeps_the_single_scenario_json(latent_run):
+    """With one scenario the full result's keys stay at the top level (what the report and older scripts read),
+    and the table has its one row; without the least-squares model its columns are None."""
+    from wmplan.model.assess import assess_scenarios
+
+    one = assess_scenarios(
+        latent_run.out_dir, [load_scenario("short-gap-cut-in")], episodes=2, oracle_states=1, oracle_samples=2
+    )
+    assert one["scenario"] == "short-gap-cut-in" and set(one["predictors"]) == {"latent", "constant_velocity"}
+    (row,) = one["table"]
+    assert row["deterministic_min_fde_k6_m"] is None and row["fde_ratio_deterministic"] is None
+
+
+def test_the_command_prints_and_writes_one_row_per_scenario(latent_run, deterministic_run, tmp_path):
+    """``wmplan assess MODEL --scenario a,b`` prints a table line per scenario and the caution, and writes the
+    same rows to --json; a list naming a scenario twice is a one-line refusal (exit 2) before any work."""
+    out = tmp_path / "a.json"
+    run = run_cli(
+        "assess",
+        latent_run.out_dir,
+        "--deterministic",
+        deterministic_run.out_dir,
+        "--scenario",
+        ",".join(LIBRARY),
+        "--episodes",
+        2,
+        "--json",
+        out,
+        cwd=tmp_path,
+    )
+    assert run.returncode == 0, run.stderr[-2000:]
+    doc = json.loads(out.read_text())
+    lines = run.stdout.splitlines()
+    for row in doc["table"]:
+        (line,) = [ln for ln in lines if ln.split()[:1] == [row["scenario"]]]
+        assert f"{row['fde_ratio_constant_velocity']:.3f}" in line and f"{row['latent_coverage_90']:.3f}" in line
+    assert "certify nothing" in run.stdout
+    bad = run_cli("assess", latent_run.out_dir, "--scenario", "cut-in", "cut-in", cwd=tmp_path)
+    assert bad.returncode == 2 and len(bad.stderr.splitlines()) == 1 and "cut-in given twice" in bad.stderr

@@ -104,12 +104,14 @@ def frame_window(rows: np.ndarray, ids: np.ndarray, anchor: int, num_objects: in
 
 
 class Windows:
-    """Vectorised window builder over a loaded dataset."""
+    """Vectorised window builder over a loaded dataset (of one scenario or several: each window's road context
+    comes from its own episode's scenario)."""
 
     def __init__(self, dataset: Dataset, spec: WindowSpec = WindowSpec()):
         self.dataset = dataset
         self.spec = spec
-        self.params = SimParams.from_scenario(dataset.scenario)
+        self.params_list = [SimParams.from_scenario(scn) for scn in dataset.scenarios]
+        self._which = dataset.episode_scenario  # (E,) scenario of each episode
         tr = dataset.traj
         self._veh = tr.vehicles  # (E, T+1, V, F) float32
         self._ids = tr.vehicle_id
@@ -126,7 +128,12 @@ class Windows:
         w = spec.history - 1
         framed, slots = frame_window(rows, ids, w, spec.num_objects)
         ego = rows[:, w, 0]
-        road = road_features(self.params, ego[:, F_X], ego[:, F_Y])
+        road = np.empty((len(e), NUM_ROAD_FEATURES))
+        which = self._which[e]
+        for i, params in enumerate(self.params_list):
+            sel = which == i
+            if sel.any():
+                road[sel] = road_features(params, ego[sel, F_X], ego[sel, F_Y])
         speed = np.hypot(ego[:, 2], ego[:, 3])
         steer = np.where(t > 0, self._act[e, np.maximum(t - 1, 0), 1], 0.0)
         return WindowBatch(

@@ -30,6 +30,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from wmplan.caution import CAUTION
 from wmplan.data import Dataset, collect, episode_seeds, load_dataset
 from wmplan.data.windows import Windows, WindowSpec, anchor_index
 from wmplan.errors import ConfigError
@@ -164,7 +165,7 @@ def _heldout(scn: Scenario, episodes: int, seed: int, snapshot_times: list[int],
 
     traj = collect(params, seeds, policy_mix=0.5, decision_every=decision_every, on_decision=keep)
     manifest = {"decision_dt_s": decision_every * scn.dt_s, "scenario_hash": scenario_hash(scn)}
-    return params, Dataset(path=Path("."), scenario=scn, manifest=manifest, traj=traj), snaps
+    return params, Dataset(path=Path("."), scenarios=(scn,), manifest=manifest, traj=traj), snaps
 
 
 def _rule_plans(params: SimParams, states: TrafficState, horizon: int, decision_every: int) -> np.ndarray:
@@ -183,19 +184,20 @@ def _rule_plans(params: SimParams, states: TrafficState, horizon: int, decision_
     return plans
 
 
-def assess(
-    model_dir: Path | str,
-    scenario: Scenario,
-    *,
-    deterministic_dir: Path | str | None = None,
-    episodes: int = 96,
-    oracle_states: int = 48,
-    oracle_samples: int = 32,
-    seed: int = 0,
-    progress: Callable[[str], None] | None = None,
-) -> dict:
-    """Compare the predictors on held-out episodes and oracle states; returns the JSON-ready results."""
-    say = progress or (lambda msg: None)
+def load_predictors(
+    model_dir: Path | str, deterministic_dir: Path | str | None = None, *, say: Callable[[str], None] | None = None
+) -> tuple[dict[str, object], bool]:
+    """The predictors to assess: the latent model, the least-squares one if given, and constant velocity with its
+    variance fitted on the latent model's training windows (every scenario of its dataset).
+
+    Returns:
+        The predictors by name and whether constant velocity was fitted (False when the training data are gone:
+        each scenario then fits it on half of its own held-out episodes).
+
+    Raises:
+        ConfigError: a model of the wrong kind in either place.
+    """
+    say = say or (lambda msg: None)
     model, meta = load_model(model_dir)
     if meta.get("kind") != "latent":
         raise ConfigError(
@@ -209,18 +211,47 @@ def assess(
         predictors["deterministic"] = det
     cfg = model.cfg
     spec = WindowSpec(cfg.history, cfg.horizon, cfg.num_objects)
-    decision_every = model.ego.substeps
     cv = ConstantVelocity(cfg, model.ego)
     train_path = Path(meta.get("dataset", {}).get("path", ""))
     try:
         train_ds = load_dataset(train_path, verify_hash=False)
         tw = Windows(train_ds, spec)
-        ti = anchor_index(train_ds, spec, stride=7)[:20000]
+        ti = anchor_index(train_ds, spec, stride=7)
+        ti = ti[np.linspace(0, len(ti) - 1, min(len(ti), 20000)).astype(np.int64)]  # evenly over every scenario
         cv.fit_variance(to_torch(tw.batch(ti[i : i + 2048])) for i in range(0, len(ti), 2048))
         say(f"constant velocity: variance fitted on {len(ti)} windows of {train_path}")
+        fitted = True
     except Exception:  # noqa: BLE001 - the training data may have moved; fall back to a held-out half
-        train_ds = None
+        fitted = False
     predictors["constant_velocity"] = cv
+    return predictors, fitted
+
+
+def assess(
+    model_dir: Path | str,
+    scenario: Scenario,
+    *,
+    deterministic_dir: Path | str | None = None,
+    episodes: int = 96,
+    oracle_states: int = 48,
+    oracle_samples: int = 32,
+    seed: int = 0,
+    progress: Callable[[str], None] | None = None,
+    predictors: tuple[dict[str, object], bool] | None = None,
+) -> dict:
+    """Compare the predictors on held-out episodes and oracle states of one scenario; returns the JSON-ready
+    results. ``predictors`` is what :func:`load_predictors` returned, to assess several scenarios with one load."""
+    say = progress or (lambda msg: None)
+    if predictors is None:
+        predictors = load_predictors(model_dir, deterministic_dir, say=say)
+    predictors, cv_fitted = dict(predictors[0]), predictors[1]
+    model = predictors["latent"]
+    cv = predictors["constant_velocity"]
+    if not cv_fitted:
+        cv = predictors["constant_velocity"] = ConstantVelocity(model.cfg, model.ego)
+    cfg = model.cfg
+    spec = WindowSpec(cfg.history, cfg.horizon, cfg.num_objects)
+    decision_every = model.ego.substeps
 
     # --- held-out episodes with snapshots for the oracle ---
     n_dec = int(round(scenario.duration_s / scenario.dt_s)) // decision_every
@@ -230,7 +261,7 @@ def assess(
     say(f"simulating {episodes} held-out episodes of {scenario.name}")
     params, ds, snaps = _heldout(scenario, episodes, seed, snap_times, decision_every)
     windows = Windows(ds, spec)
-    if train_ds is None:
+    if not cv_fitted:
         idx_fit = anchor_index(ds, spec, np.arange(episodes // 2))
         cv.fit_variance([to_torch(windows.batch(idx_fit[:4096]))])
         eval_eps = np.arange(episodes // 2, episodes)
@@ -312,6 +343,7 @@ def assess(
         out[name]["collision_prob_mean"] = float(p_model.mean())
     oracle_rate = {m: float(truth[m][1].mean()) for m in truth}
     return {
+        "caution": CAUTION,
         "scenario": scenario.name,
         "scenario_hash": scenario_hash(scenario),
         "model_dir": str(model_dir),
@@ -325,3 +357,114 @@ def assess(
         "oracle_collision_prob_mean": oracle_rate,
         "predictors": out,
     }
+
+
+TABLE_COLUMNS = (
+    ("latent_min_ade_k6_m", "latent", "min_ade_k6_m"),
+    ("latent_min_fde_k6_m", "latent", "min_fde_k6_m"),
+    ("constant_velocity_min_fde_k6_m", "constant_velocity", "min_fde_k6_m"),
+    ("deterministic_min_fde_k6_m", "deterministic", "min_fde_k6_m"),
+    ("latent_coverage_90", "latent", "coverage_90"),
+    ("latent_nll", "latent", "nll"),
+    ("latent_energy_distance", "latent", "energy_distance"),
+    ("latent_collision_prob_gap", "latent", "collision_prob_gap"),
+)
+"""(column of a per-scenario row, predictor, metric key) of :func:`scenario_row`; the two ratios follow."""
+
+
+def scenario_row(result: dict) -> dict:
+    """One scenario's assessment as one flat row: the latent model's best-of-6 errors against constant velocity's
+    and least squares' (``None`` where the least-squares model was not given), their ratios
+    (``fde_ratio_constant_velocity`` = latent minFDE / constant velocity minFDE, ``fde_ratio_deterministic``
+    likewise), and the latent model's coverage of its 90% intervals, NLL, energy distance and collision-probability
+    gap (units as in the module docstring)."""
+    preds = result["predictors"]
+    row: dict = {"scenario": result["scenario"]}
+    for col, name, key in TABLE_COLUMNS:
+        row[col] = preds[name][key] if name in preds else None
+    fde = row["latent_min_fde_k6_m"]
+    for name in ("constant_velocity", "deterministic"):
+        other = row[f"{name}_min_fde_k6_m"]
+        row[f"fde_ratio_{name}"] = None if other is None or other <= 0.0 else fde / other
+    return row
+
+
+def assess_scenarios(
+    model_dir: Path | str,
+    scenarios: list[Scenario],
+    *,
+    deterministic_dir: Path | str | None = None,
+    episodes: int = 96,
+    oracle_states: int = 48,
+    oracle_samples: int = 32,
+    seed: int = 0,
+    progress: Callable[[str], None] | None = None,
+) -> dict:
+    """:func:`assess` on each scenario (the models loaded once, the same seed for each); returns the JSON-ready
+    results: ``table``, one :func:`scenario_row` per scenario, and ``by_scenario``, each scenario's full result.
+    With one scenario its full result's keys are also at the top level (the single-scenario JSON).
+
+    Raises:
+        ConfigError: no scenario, or a model of the wrong kind.
+    """
+    if not scenarios:
+        raise ConfigError("assess: give at least one scenario")
+    say = progress or (lambda msg: None)
+    loaded = load_predictors(model_dir, deterministic_dir, say=say)
+    results = []
+    for scn in scenarios:
+        say(f"scenario {scn.name}")
+        results.append(
+            assess(
+                model_dir,
+                scn,
+                deterministic_dir=deterministic_dir,
+                episodes=episodes,
+                oracle_states=oracle_states,
+                oracle_samples=oracle_samples,
+                seed=seed,
+                progress=progress,
+                predictors=loaded,
+            )
+        )
+    out = dict(results[0]) if len(results) == 1 else {}
+    out.update(
+        {
+            "caution": CAUTION,
+            "model_dir": str(model_dir),
+            "deterministic_dir": None if deterministic_dir is None else str(deterministic_dir),
+            "seed": seed,
+            "heldout_episodes": episodes,
+            "scenarios": [r["scenario"] for r in results],
+            "table": [scenario_row(r) for r in results],
+            "by_scenario": {r["scenario"]: r for r in results},
+        }
+    )
+    return out
+
+
+def format_scenario_table(rows: list[dict]) -> str:
+    """One line per scenario of ``assess_scenarios(...)["table"]``: the latent model's best-of-6 errors against
+    constant velocity (CV) and least squares (LS), their ratios, and its interval coverage."""
+    cols = (
+        ("latent minADE", "latent_min_ade_k6_m"),
+        ("latent minFDE", "latent_min_fde_k6_m"),
+        ("CV minFDE", "constant_velocity_min_fde_k6_m"),
+        ("LS minFDE", "deterministic_min_fde_k6_m"),
+        ("latent/CV", "fde_ratio_constant_velocity"),
+        ("latent/LS", "fde_ratio_deterministic"),
+        ("coverage 90%", "latent_coverage_90"),
+        ("NLL", "latent_nll"),
+        ("energy dist", "latent_energy_distance"),
+        ("|dP coll|", "latent_collision_prob_gap"),
+    )
+    width = max([len("scenario"), *(len(r["scenario"]) for r in rows)]) + 2
+    lines = [
+        "per scenario (minADE/minFDE: best of 6, metres; ratios of minFDE; coverage of the latent model's 90% "
+        "intervals):",
+        f"{'scenario':<{width}}" + "".join(f"{label:>14}" for label, _ in cols),
+    ]
+    for r in rows:
+        cells = "".join(f"{'-':>14}" if r[key] is None else f"{r[key]:>14.3f}" for _, key in cols)
+        lines.append(f"{r['scenario']:<{width}}" + cells)
+    return "\n".join(lines)

@@ -40,6 +40,7 @@ from wmplan.model.checkpoint import (
 from wmplan.model.config import ModelConfig, TrainConfig
 from wmplan.model.ego import EgoKinematics
 from wmplan.model.world_model import WorldModel
+from wmplan.scenario import scenario_hash
 from wmplan.sim.features import ACTION_DIM, F_VALID, F_X, F_Y, NUM_ROAD_FEATURES, NUM_VEHICLE_FEATURES
 
 VAL_WINDOWS = 2048
@@ -96,6 +97,28 @@ class WindowCache:
         return {k: v.index_select(0, pos) for k, v in self.tensors.items()}
 
 
+def dataset_hashes(ds) -> list[str]:
+    """Content hashes of a dataset's scenarios, in their stored order."""
+    return [scenario_hash(scn) for scn in ds.scenarios]
+
+
+def dataset_ego(ds, plan_dt_s: float, data_dir: Path | str) -> EgoKinematics:
+    """The ego every scenario of a dataset shares (the model propagates one ego).
+
+    Raises:
+        ConfigError: two scenarios differ in the ego's vehicle or limits, naming both.
+    """
+    egos = [EgoKinematics.from_scenario(scn, plan_dt_s) for scn in ds.scenarios]
+    for scn, ego in zip(ds.scenarios[1:], egos[1:], strict=True):
+        if ego != egos[0]:
+            diff = [f for f in ego.__dataclass_fields__ if getattr(ego, f) != getattr(egos[0], f)]
+            raise ConfigError(
+                f"{data_dir}: scenarios {ds.scenarios[0].name!r} and {scn.name!r} differ in the ego's "
+                f"{', '.join(diff)}; one model propagates one ego, so train one model per ego"
+            )
+    return egos[0]
+
+
 def split_episodes(num_episodes: int, val_fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Train / validation episodes, split by episode with a seeded permutation."""
     perm = np.random.default_rng(np.random.SeedSequence([seed, 0x5B1])).permutation(num_episodes)
@@ -103,6 +126,25 @@ def split_episodes(num_episodes: int, val_fraction: float, seed: int) -> tuple[n
     if num_episodes - n_val < 1:
         raise ConfigError(f"dataset has {num_episodes} episode(s); need at least 2 for a train/validation split")
     return np.sort(perm[n_val:]), np.sort(perm[:n_val])
+
+
+def split_dataset(ds, val_fraction: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Train / validation episodes of a dataset: :func:`split_episodes` within each scenario's episodes, so every
+    scenario is held out in the same share (with one scenario, exactly :func:`split_episodes`)."""
+    if len(ds.scenarios) == 1:
+        return split_episodes(ds.traj.num_episodes, val_fraction, seed)
+    parts = []
+    for i, scn in enumerate(ds.scenarios):
+        eps = ds.scenario_episodes(i)
+        try:
+            tr, va = split_episodes(len(eps), val_fraction, seed)
+        except ConfigError:
+            raise ConfigError(
+                f"{ds.path}: scenario {scn.name} has {len(eps)} episode(s); need at least 2 for a "
+                "train/validation split"
+            ) from None
+        parts.append((eps[tr], eps[va]))
+    return np.concatenate([p[0] for p in parts]), np.concatenate([p[1] for p in parts])
 
 
 def min_fde(model: WorldModel, batch: dict, k: int, generator: torch.Generator) -> float:
@@ -203,7 +245,7 @@ def train(
         train_cfg = TrainConfig(**{"nll_beta": 0.0, **ckpt_cfg["train"]})
         stored = ckpt_cfg.get("dataset", {})
         if (
-            stored.get("scenario_hash") != ds.manifest["scenario_hash"]
+            stored.get("scenario_hashes", [stored.get("scenario_hash")]) != dataset_hashes(ds)
             or stored.get("array_sha256", ds.manifest["array_sha256"]) != ds.manifest["array_sha256"]
         ):
             raise CheckpointError(
@@ -218,7 +260,7 @@ def train(
         )
     spec = WindowSpec(model_cfg.history, model_cfg.horizon, model_cfg.num_objects)
     windows = Windows(ds, spec)
-    tr_eps, va_eps = split_episodes(ds.traj.num_episodes, train_cfg.val_fraction, train_cfg.seed)
+    tr_eps, va_eps = split_dataset(ds, train_cfg.val_fraction, train_cfg.seed)
     tr_idx = anchor_index(ds, spec, tr_eps, train_cfg.anchor_stride)
     va_idx = anchor_index(ds, spec, va_eps, 1)
     if len(tr_idx) == 0 or len(va_idx) == 0:
@@ -230,7 +272,7 @@ def train(
     ss = np.random.SeedSequence(train_cfg.seed)
     init_ss, data_ss, noise_ss, eval_ss = ss.spawn(4)
     gen_init = torch.Generator().manual_seed(int(init_ss.generate_state(1)[0]))
-    ego = EgoKinematics.from_scenario(ds.scenario, model_cfg.plan_dt_s)
+    ego = dataset_ego(ds, model_cfg.plan_dt_s, data_dir)
     model = WorldModel(model_cfg, ego, generator=gen_init)
     peak_lr = train_cfg.peak_lr(model_cfg.deterministic)
     opt = torch.optim.Adam(model.parameters(), lr=peak_lr, weight_decay=train_cfg.weight_decay)
@@ -252,8 +294,13 @@ def train(
         "train": train_cfg.to_dict(),
         "dataset": {
             "path": str(Path(data_dir).resolve()),
-            "scenario_name": ds.scenario.name,
-            "scenario_hash": ds.manifest["scenario_hash"],
+            "scenario_name": ", ".join(scn.name for scn in ds.scenarios),
+            "scenario_hash": dataset_hashes(ds)[0],
+            "scenario_hashes": dataset_hashes(ds),
+            "scenarios": [
+                {"name": scn.name, "hash": h, "num_episodes": int(len(ds.scenario_episodes(i)))}
+                for i, (scn, h) in enumerate(zip(ds.scenarios, dataset_hashes(ds), strict=True))
+            ],
             "array_sha256": ds.manifest["array_sha256"],
             "num_episodes": ds.traj.num_episodes,
         },
