@@ -386,9 +386,9 @@ def training_cut_notes(run_dir: Path | str) -> list[str]:
     """One sentence per model of the run whose training stopped before its planned epochs.
 
     Read from the newest checkpoint's ``config.json`` in ``RUN_DIR/latent`` and ``RUN_DIR/deterministic``
-    (``epoch``, ``train.max_epochs``, ``train.steps_per_epoch``, ``train.minutes``, ``metrics.elapsed_s``): a run
-    past its time cap was stopped by it; one short of its epochs and inside the cap was interrupted. Folders without
-    a readable checkpoint give no sentence.
+    (``epoch``, ``train.max_epochs``, ``train.steps_per_epoch``, ``train.minutes``, ``stopped_by_time_cap``; for
+    checkpoints written before that flag, ``metrics.elapsed_s`` past the cap): a run the cap stopped says so, one
+    short of its epochs otherwise was interrupted. Folders without a readable checkpoint give no sentence.
     """
     from wmplan.model.checkpoint import checkpoint_folder
 
@@ -412,7 +412,9 @@ def training_cut_notes(run_dir: Path | str) -> list[str]:
             if isinstance(per_epoch, int) and not isinstance(per_epoch, bool)
             else ""
         )
-        capped = isinstance(minutes, (int, float)) and isinstance(elapsed, (int, float)) and elapsed > 60 * minutes
+        capped = cfg.get("stopped_by_time_cap")
+        if not isinstance(capped, bool):
+            capped = isinstance(minutes, (int, float)) and isinstance(elapsed, (int, float)) and elapsed > 60 * minutes
         why = f"the {minutes:g}-minute time cap cut its training short" if capped else "its training was interrupted"
         notes.append(
             f"The {name} model is undertrained: {why} after {done} of {planned} planned epochs{steps}, before its "

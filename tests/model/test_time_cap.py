@@ -11,6 +11,7 @@ model stopped early, with the epochs and steps done and planned.
 from __future__ import annotations
 
 import csv
+import json
 import shutil
 
 import pytest
@@ -39,6 +40,9 @@ def test_capped_run_keeps_a_curve_of_ten_points(capped):
     training and a validation NLL, and the file matches the returned rows."""
     run, res = capped
     assert res.stopped_early and len(res.history) == 1
+    config = json.loads((run / "latent" / "ckpt-000000" / "config.json").read_text())
+    assert config["stopped_by_time_cap"] is True
+    assert config["metrics"]["calib/noise_scale"] > 0  # calibrated as the last epoch
     assert len(res.curve) == CURVE_POINTS_PER_EPOCH == 10
     assert [r["step"] for r in res.curve] == list(range(2, 21, 2))
     assert [r["epochs_done"] for r in res.curve] == pytest.approx([0.1 * i for i in range(1, 11)])
@@ -90,5 +94,6 @@ def test_report_says_at_the_top_that_the_cap_cut_training_short(capped, latent_r
 
     full = tmp_path / "full"
     shutil.copytree(latent_run.out_dir, full / "latent")
+    assert json.loads((full / "latent" / "ckpt-000001" / "config.json").read_text())["stopped_by_time_cap"] is False
     assert training_cut_notes(full) == []
     assert "planned epochs" not in build_report(full)[1].read_text()

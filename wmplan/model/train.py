@@ -356,7 +356,10 @@ def train(
         }
         if model_cfg.deterministic:
             fit_residual_variance(model, windows, tr_idx[:: max(1, len(tr_idx) // 20000)], 1024)
-        last_epoch = epoch + 1 >= train_cfg.max_epochs or time.perf_counter() - t_start > 60.0 * train_cfg.minutes
+        # one reading of the clock decides both: a run the cap stops is calibrated like one that ran all its epochs
+        over_cap = time.perf_counter() - t_start > 60.0 * train_cfg.minutes
+        capped = over_cap and epoch + 1 < train_cfg.max_epochs
+        last_epoch = epoch + 1 >= train_cfg.max_epochs or over_cap
         if last_epoch and not model_cfg.deterministic:
             half = {k: v[: VAL_WINDOWS // 2] for k, v in val_batch.items()}
             row["calib/noise_scale"] = calibrate_noise_scale(model, half, seed=train_cfg.seed)
@@ -364,13 +367,13 @@ def train(
             out_dir,
             model,
             epoch=epoch,
-            meta={**meta, "metrics": row},
+            meta={**meta, "metrics": row, "stopped_by_time_cap": capped},
             optimizer_state=opt_tensors,
             train_state=train_state,
         )
         write_metrics_csv(out_dir / "metrics.csv", history)
         write_metrics_csv(out_dir / "curve.csv", curve)
-        if time.perf_counter() - t_start > 60.0 * train_cfg.minutes and epoch + 1 < train_cfg.max_epochs:
+        if capped:
             stopped_early = True
             break
     model.eval()
