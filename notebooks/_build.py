@@ -464,8 +464,10 @@ NB03 = [
     risk, applies the first action of the best plan and repeats every 0.2 s. This notebook builds the planner with
     three predictors — constant velocity, the oracle (the true simulator) and the latent model of notebook 02 —
     and puts it in a harder variant of the on-ramp merge: dense main lanes whose drivers brake hard often. It looks
-    inside one decision (the candidates, their futures and their risk), compares the planners and the rule-based
-    ego in closed loop with 95% intervals, and checks whether the predicted collision probabilities are calibrated.
+    inside one decision (the candidates, their futures and their risk), then compares the planners and the
+    rule-based ego in closed loop on two scenarios — that variant and `short-gap-cut-in`, where a neighbour's
+    hidden intent decides the outcome — each planner paired with the oracle planner on the same scenes, and checks
+    whether the predicted collision probabilities are calibrated.
 
     {CAUTION}
     """),
@@ -475,14 +477,16 @@ NB03 = [
 
     {QUICK_LINE}
     SCENARIO = "onramp-merge"
+    CUT_IN_SCENARIO = "short-gap-cut-in"  # the second scenario of the closed loop
     DENSITY_VEH_PER_KM = [4.0, 50.0, 36.0]  # the variant we plan in: dense main lanes (lane 0 is the ramp) ...
     HARD_BRAKES_PER_MIN = 6.0  # ... whose drivers brake hard often
     SEED = 0
     MODEL_DIR = Path("runs/notebooks/02_train_world_model/latent")  # notebook 02's model; trained here if missing
     PLANNERS = ("rules", "mpc+constant-velocity", "mpc+oracle", "mpc+latent")
+    REFERENCE = "mpc+oracle"  # every other planner is compared with it, scene by scene
     NUM_CANDIDATES = 16 if QUICK else 64  # candidate plans per decision
     NUM_FUTURES = 4 if QUICK else 8  # sampled futures per candidate
-    EPISODES = 8 if QUICK else 32  # closed-loop episodes per planner (the same scenes for every planner)
+    EPISODES = 8 if QUICK else 40  # closed-loop episodes per planner and scenario (the same scenes for every planner)
     SCENE_SEED = 37  # the scene of the decision we look inside ...
     DECISION = 15  # ... and its decision step (0.2 s each): many of the ego's possible plans are risky
     THREADS = 1  # torch threads: the planner's tensors are small, one thread is fastest
@@ -497,9 +501,12 @@ NB03 = [
 
     from wmplan.data import simulate_dataset
     from wmplan.caution import CAUTION
-    from wmplan.evaluate.closed_loop import evaluate_planner
+    from IPython.display import display
+
+    from wmplan.evaluate.compare import compare_planners
+    from wmplan.evaluate.paired import clear_differences, comparison_table
     from wmplan.evaluate.planners import make_planner
-    from wmplan.evaluate.tables import calibration, format_table, summarise_planner
+    from wmplan.evaluate.tables import format_table
     from wmplan.model.checkpoint import load_model
     from wmplan.model.config import TrainConfig
     from wmplan.model.train import train
@@ -509,6 +516,7 @@ NB03 = [
     from wmplan.sim import SimParams, initial_state, step
     from wmplan.sim.ego_rules import rule_actions
     from wmplan.viz import candidate_arrays, candidates_figure, closed_loop_figure, reliability_figure
+    from wmplan.viz.plots import paired_difference_figure
 
     torch.set_num_threads(THREADS)
     OUT.mkdir(parents=True, exist_ok=True)
@@ -604,28 +612,52 @@ NB03 = [
                       title=f"mpc+oracle at t = {DECISION * cfg.plan_dt_s:.1f} s, scene seed {SCENE_SEED}")
     """),
     md("""
-    ## Closed loop
+    ## Closed loop on two scenarios
 
-    Each planner now drives `EPISODES` episodes in the true simulator, the same scenes for every planner (a paired
-    comparison), many episodes per planner call. Collision and success rates carry Wilson 95% intervals; with a few
-    episodes they are wide, which is the honest answer (`wmplan evaluate` runs larger comparisons). Compare the
-    planners that trust a single, confident prediction (constant velocity) with those that weigh several possible
-    futures.
+    Each planner now drives `EPISODES` episodes in the true simulator, in two scenarios: the dense on-ramp variant
+    above, and `short-gap-cut-in`: a neighbour stuck behind a slow truck in the next lane may or may not swerve
+    into the ego's lane a few metres ahead of it. Whether it does is a hidden trait of its driver, drawn anew
+    every episode; the only cue is its lateral motion once it has begun. A planner that only extrapolates what it
+    sees (constant velocity) learns of the swerve late; one that weighs the possible futures can ease off early.
+
+    Every planner meets the same scenes, so each is compared with the oracle planner scene by scene (`compare_planners`
+    is what `wmplan evaluate` runs): differences planner minus oracle with paired 95% intervals (Newcombe's method
+    10 for rates, paired t for means), exact McNemar p-values, and the number of scenes needed for 80% power. Where
+    neither planner ever failed, the table says in words that the comparison has no power. Rates alone carry
+    Wilson 95% intervals; with few episodes they are wide, which is the honest answer.
     """),
     code("""
-    summaries, calib = {}, {}
-    for name in PLANNERS:
+    scenarios = {scn.name: scn, CUT_IN_SCENARIO: load_scenario(CUT_IN_SCENARIO)}
+    runs = {}
+    for name, s in scenarios.items():
         t0 = time.perf_counter()
-        out = evaluate_planner(scn, name, episodes=EPISODES, seed=SEED, options={} if name == "rules" else options,
-                               batch_size=EPISODES)
-        summaries[name] = summarise_planner(out.rows)
-        if name != "rules":
-            calib[name] = calibration(out.predicted, out.happened)
-        print(f"{name}: {EPISODES} episodes in {time.perf_counter() - t0:.0f} s")
-    print()
-    print(format_table(summaries))
+        runs[name], _ = compare_planners(s, PLANNERS, episodes=EPISODES, seed=SEED, options=options,
+                                         batch_size=EPISODES, reference=REFERENCE)
+        print(f"{name}: {len(PLANNERS)} planners x {EPISODES} episodes in {time.perf_counter() - t0:.0f} s")
+        print(format_table(runs[name]["results"]))
+        print()
+        print(comparison_table(runs[name]["comparisons"]))
+        print()
     print(CAUTION)
-    closed_loop_figure(summaries, title=f"{SCENARIO}: {EPISODES} episodes per planner")
+    for name, summary in runs.items():
+        display(closed_loop_figure(summary["results"], title=f"{name}: {EPISODES} episodes per planner"))
+    """),
+    md("""
+    The paired differences to the oracle planner, one figure per scenario: a filled point is a difference whose 95%
+    interval excludes zero, a hollow one could be chance. In the dense on-ramp variant collisions are rare, so the
+    collision comparisons there often have no power; in `short-gap-cut-in` the planner that trusts constant velocity
+    collides where the oracle does not. Below the figures, every difference whose interval excludes zero, in words.
+    """),
+    code("""
+    for name, summary in runs.items():
+        display(paired_difference_figure(summary, title=f"{name}: paired differences to {REFERENCE}, 95% intervals"))
+    for name, summary in runs.items():
+        clear = clear_differences(summary["comparisons"])
+        print(f"{name}:")
+        for d in clear:
+            print("   ", d["text"])
+        if not clear:
+            print(f"    no difference to {REFERENCE} has a 95% interval that excludes zero at {EPISODES} episodes")
     """),
     md("""
     ## Calibration
@@ -634,14 +666,17 @@ NB03 = [
     records whether the ego then collided within that plan's horizon. A reliability diagram bins the predictions and
     compares each bin's mean prediction with the observed frequency (on the diagonal is calibrated). Brier score and
     expected calibration error (ECE) summarise it. With few episodes and fewer collisions the bins are nearly empty:
-    run without `WMPLAN_QUICK` and look again.
+    run without `WMPLAN_QUICK` and look again. The diagram shows `short-gap-cut-in`, where collisions happen.
     """),
     code("""
-    for name, c in calib.items():
-        if c.get("decisions"):
-            print(f"{name:<24} {c['decisions']:>6} decisions, mean predicted {c['mean_predicted']:.4f}, observed "
-                  f"{c['observed_rate']:.4f}, Brier {c['brier']:.4f}, ECE {c['ece']:.4f}")
-    reliability_figure(calib, title="Predicted collision probability of the chosen plan vs what happened")
+    for name, summary in runs.items():
+        for planner, c in summary["calibration"].items():
+            if c.get("decisions"):
+                print(f"{name:<28} {planner:<24} {c['decisions']:>6} decisions, with P > 0.01: "
+                      f"{c['decisions_p_above_0_01']:>5}, mean predicted {c['mean_predicted']:.4f}, observed "
+                      f"{c['observed_rate']:.4f}, Brier {c['brier']:.4f}, ECE {c['ece']:.4f}")
+    reliability_figure(runs[CUT_IN_SCENARIO]["calibration"],
+                       title=f"{CUT_IN_SCENARIO}: predicted collision probability of the chosen plan vs what happened")
     """),
 ]
 

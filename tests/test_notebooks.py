@@ -38,7 +38,7 @@ EXPECTED = {
     "01_traffic_sandbox": (("episode.gif",), 5),
     "02_train_world_model": (("data/manifest.json", "latent/latest", "latent/metrics.csv", "deterministic/latest"), 2),
     # run alone in a fresh folder, notebook 03 trains its own small model instead of reading notebook 02's
-    "03_plan_under_uncertainty": (("latent/latest",), 4),
+    "03_plan_under_uncertainty": (("latent/latest",), 7),
     "04_sweeps_and_stress": (
         (
             "merge-density-yield.yaml",

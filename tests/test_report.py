@@ -419,3 +419,63 @@ def test_the_assessment_of_several_scenarios_is_one_row_each(tmp_path):
     (run / "assess.json").write_text(json.dumps({"table": [{"latent_min_fde_k6_m": 1.0}]}))
     out = cli_report(run)
     assert any(s.startswith("Assessment skipped: assess.json: 'table' must be a list") for s in out["skipped"])
+
+
+def test_paired_comparisons_with_the_differences_off_zero_and_their_figure(tmp_path):
+    """A closed loop on another scenario than the training data's: the report says so; the comparison table, the
+    differences whose interval excludes zero in words (here constant velocity colliding in 10 of 40 scenes where
+    the oracle never does: exact McNemar p = 2 / 2**10 = 0.0020, by hand from the binomial) and the figure of the
+    paired differences. Without such a difference the report says that the data cannot tell the planners apart."""
+    from wmplan.evaluate.paired import paired_comparison
+
+    def rows(collide: int) -> list[dict]:
+        return [
+            {
+                "seed": s,
+                "collision": s < collide,
+                "success": s >= collide,
+                "near_miss": False,
+                "mean_speed_mps": 20.0 + 0.3 * (s % 4) - (0.5 if s % 2 else 0.0) * (collide > 0),
+                "progress_m": 150.0 + (s % 5),
+            }
+            for s in range(40)
+        ]
+
+    run = tmp_path / "run"
+    simulate_dataset(load_scenario("onramp-merge"), run / "data", episodes=2, seed=5, batch_size=2)
+    cmp = paired_comparison(rows(0), rows(10), reference="mpc+oracle", planner="mpc+constant-velocity")
+    summary = {
+        "scenario": "short-gap-cut-in",
+        "episodes": 40,
+        "seed": 0,
+        "planners": ["mpc+constant-velocity", "mpc+oracle"],
+        "results": {"mpc+constant-velocity": _planner(10, 40), "mpc+oracle": _planner(0, 40)},
+        "reference": "mpc+oracle",
+        "comparisons": {"mpc+constant-velocity": cmp},
+    }
+    (run / "evaluate").mkdir()
+    (run / "evaluate" / "summary.json").write_text(json.dumps(summary))
+    out = cli_report(run)
+    assert "paired_differences" in out["sections"]
+    assert str(run / "figures" / "paired_differences.png") in out["figures"]
+    md = (run / "report.md").read_text(encoding="utf-8")
+    assert (
+        "The forward models were trained on onramp-merge; the closed loop runs on short-gap-cut-in, which their "
+        "training data did not include." in md
+    )
+    assert "### Paired comparisons with mpc+oracle" in md
+    low, high = cmp["collision_rate_diff_ci95"]
+    assert low > 0
+    line = (
+        f"- mpc+constant-velocity vs mpc+oracle: collision rate +0.250 [{low:+.3f}, {high:+.3f}] over 40 pairs, "
+        "McNemar p = 0.0020"
+    )
+    assert line in md.splitlines()
+    assert md.index("whose 95% interval excludes zero") < md.index("figures/paired_differences.png")
+
+    summary["comparisons"] = {"mpc+constant-velocity": paired_comparison(rows(0), rows(0), reference="mpc+oracle")}
+    summary["results"]["mpc+constant-velocity"] = _planner(0, 40)
+    (run / "evaluate" / "summary.json").write_text(json.dumps(summary))
+    build_report(run)
+    md = (run / "report.md").read_text(encoding="utf-8")
+    assert "No difference to mpc+oracle has a 95% interval that excludes zero" in md

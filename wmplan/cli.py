@@ -939,7 +939,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--quick", action="store_true", help="short runs (for a smoke test, not for numbers)")
     sp.set_defaults(func=cmd_bench, outputs=(("json", "file"),))
 
-    sp = sub.add_parser("demo", help="run the whole job end to end on onramp-merge and write a report")
+    sp = sub.add_parser("demo", help="run the whole job end to end and write a report")
     sp.add_argument("--out", default="demo-out", metavar="DIR")
     sp.add_argument("--seed", type=_seed, default=0, help=f"{SEED_HELP} (default 0)")
     sp.add_argument("--quick", action="store_true", help="a small, fast version (for tests)")

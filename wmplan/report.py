@@ -5,7 +5,9 @@
 | file                                   | section                                                          |
 |----------------------------------------|------------------------------------------------------------------|
 | ``scenario.yaml`` or ``data/manifest.json`` | the scenario and its key numbers (and the dataset's counts)  |
-| ``latent/metrics.csv``, ``deterministic/metrics.csv`` | training curves                                   |
+| ``latent/metrics.csv``, ``deterministic/metrics.csv`` | training curves (with ``curve.csv`` beside them:  |
+|                                        | the finer curve); a note at the top when the time cap cut training |
+|                                        | short (from the checkpoint's ``config.json``)                    |
 | ``assess.json``                        | the forward models' assessment (``wmplan assess --json``)        |
 | ``futures.npz``                        | fans of sampled futures at one decision (arrays ``history``,     |
 |                                        | ``model_rows``, optional ``oracle_rows``, ``deterministic_rows``, |
@@ -112,6 +114,7 @@ figure img { max-width: 100%; height: auto; border: 1px solid #e3e5e8; }
 figcaption { font-size: 0.88em; color: #56677a; margin-top: 0.3em; }
 .note { color: #56677a; font-style: italic; }
 .caution { border-left: 5px solid #c8460c; background: #fdf3ee; padding: 0.5em 1em; }
+.warn { border-left: 5px solid #b58900; background: #fdf8e4; padding: 0.5em 1em; }
 ul.skipped { color: #56677a; font-size: 0.9em; }
 """.strip()
 
@@ -317,20 +320,27 @@ def _scenario_section(doc: _Doc, scenario, manifest: dict | None) -> None:
 
 def _model_section(doc: _Doc, run_dir: Path, params) -> None:
     from wmplan.viz.futures import futures_figure
-    from wmplan.viz.plots import training_figure
+    from wmplan.viz.plots import read_metrics_csv, training_figure
 
     doc.add(_Heading(2, "Forward model"))
-    runs = {
-        name: run_dir / name / "metrics.csv"
-        for name in ("latent", "deterministic")
-        if (run_dir / name / "metrics.csv").is_file()
-    }
-    if runs:
+    names = [name for name in MODEL_FOLDERS if (run_dir / name / "metrics.csv").is_file()]
+    if names:
         try:
+            runs = {
+                name: read_metrics_csv(run_dir / name / "metrics.csv")
+                + (read_metrics_csv(run_dir / name / "curve.csv") if (run_dir / name / "curve.csv").is_file() else [])
+                for name in names
+            }
             fig = training_figure(runs, title="Training curves (" + " and ".join(runs) + " model)")
             doc.add(
                 _Heading(3, "Training"),
-                _figure("training", fig, "Per-epoch training (solid) and validation (dashed) values from metrics.csv."),
+                _figure(
+                    "training",
+                    fig,
+                    "Training (solid) and validation (dashed) values against the epochs done: the losses every "
+                    "tenth of an epoch where curve.csv holds them (validation on a fixed subset of held-out "
+                    "windows), the other values once per epoch from metrics.csv.",
+                ),
             )
             doc.sections.append("training")
         except WmplanError as err:
@@ -415,6 +425,67 @@ def _scenario_table(doc: _Doc, data: dict) -> None:
     doc.sections.append("assessment_by_scenario")
 
 
+def _trained_on(run_dir: Path) -> list[str]:
+    """Names of the scenarios in the run's dataset manifest (``data/manifest.json``), [] when unknown."""
+    path = run_dir / "data" / "manifest.json"
+    try:
+        manifest = read_json_object(path) if path.is_file() else {}
+    except WmplanError:
+        return []
+    entries = manifest.get("scenarios")
+    if isinstance(entries, list):
+        names = [e.get("name") for e in entries if isinstance(e, dict)]
+        if names and all(isinstance(n, str) for n in names):
+            return names
+    scenario = manifest.get("scenario")
+    return [scenario["name"]] if isinstance(scenario, dict) and isinstance(scenario.get("name"), str) else []
+
+
+MODEL_FOLDERS = ("latent", "deterministic")
+"""The model folders of a run whose training the report shows."""
+
+
+def training_cut_notes(run_dir: Path | str) -> list[str]:
+    """One sentence per model of the run whose training stopped before its planned epochs.
+
+    Read from the newest checkpoint's ``config.json`` in ``RUN_DIR/latent`` and ``RUN_DIR/deterministic``
+    (``epoch``, ``train.max_epochs``, ``train.steps_per_epoch``, ``train.minutes``, ``stopped_by_time_cap``; for
+    checkpoints written before that flag, ``metrics.elapsed_s`` past the cap): a run the cap stopped says so, one
+    short of its epochs otherwise was interrupted. Folders without a readable checkpoint give no sentence.
+    """
+    from wmplan.model.checkpoint import checkpoint_folder
+
+    notes = []
+    for name in MODEL_FOLDERS:
+        try:
+            cfg = read_json_object(checkpoint_folder(Path(run_dir) / name) / "config.json")
+        except WmplanError:
+            continue
+        train = cfg.get("train") if isinstance(cfg.get("train"), dict) else {}
+        metrics = cfg.get("metrics") if isinstance(cfg.get("metrics"), dict) else {}
+        done, planned = cfg.get("epoch"), train.get("max_epochs")
+        if not all(isinstance(v, int) and not isinstance(v, bool) for v in (done, planned)):
+            continue
+        done += 1
+        if done >= planned:
+            continue
+        per_epoch, minutes, elapsed = train.get("steps_per_epoch"), train.get("minutes"), metrics.get("elapsed_s")
+        steps = (
+            f" ({done * per_epoch:,} of {planned * per_epoch:,} optimiser steps)"
+            if isinstance(per_epoch, int) and not isinstance(per_epoch, bool)
+            else ""
+        )
+        capped = cfg.get("stopped_by_time_cap")
+        if not isinstance(capped, bool):
+            capped = isinstance(minutes, (int, float)) and isinstance(elapsed, (int, float)) and elapsed > 60 * minutes
+        why = f"the {minutes:g}-minute time cap cut its training short" if capped else "its training was interrupted"
+        notes.append(
+            f"The {name} model is undertrained: {why} after {done} of {planned} planned epochs{steps}, before its "
+            "learning rate finished its decay; its numbers in this report are those of that shorter training."
+        )
+    return notes
+
+
 def _assessment(doc: _Doc, data: dict) -> None:
     if isinstance(data.get("table"), list) and data["table"]:
         _scenario_table(doc, data)
@@ -489,6 +560,15 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
                         + ". Rates with Wilson 95% intervals, means with t intervals."
                     )
                 )
+            trained_on = _trained_on(run_dir)
+            if trained_on and summary.get("scenario") and summary["scenario"] not in trained_on:
+                doc.add(
+                    _Para(
+                        f"The forward models were trained on {', '.join(trained_on)}; the closed loop runs on "
+                        f"{summary['scenario']}, which their training data did not include.",
+                        css="note",
+                    )
+                )
             header = [
                 "planner",
                 "episodes",
@@ -540,12 +620,19 @@ def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
 
 def _comparisons(doc: _Doc, summary: dict) -> None:
     """The paired comparisons with the reference planner, with the no-power notes in words."""
-    from wmplan.evaluate.paired import TABLE_HEADER, TABLE_METHODS, comparison_rows
+    from wmplan.evaluate.paired import TABLE_HEADER, TABLE_METHODS, clear_differences, comparison_rows
+    from wmplan.viz.plots import paired_difference_figure
 
     comparisons = summary.get("comparisons")
     if not isinstance(comparisons, dict) or not comparisons:
         return
-    rows, notes = comparison_rows(comparisons)
+    try:
+        rows, notes = comparison_rows(comparisons)
+        clear = clear_differences(comparisons)
+    except (KeyError, TypeError, ValueError) as err:
+        raise ConfigError(
+            f"evaluate/summary.json: 'comparisons' is not as `wmplan evaluate` writes it ({err!r})"
+        ) from None
     doc.add(
         _Heading(3, f"Paired comparisons with {summary.get('reference')}"),
         _Para(
@@ -556,6 +643,29 @@ def _comparisons(doc: _Doc, summary: dict) -> None:
     )
     if notes:
         doc.add(_List([f"[{i}] {note}" for i, note in enumerate(notes, start=1)]))
+    if clear:
+        doc.add(
+            _Para(
+                f"Differences to {summary.get('reference')} whose 95% interval excludes zero (planner minus reference):"
+            ),
+            _List([d["text"] for d in clear]),
+        )
+    else:
+        doc.add(
+            _Para(
+                f"No difference to {summary.get('reference')} has a 95% interval that excludes zero: on these "
+                "episodes the data cannot tell the planners apart."
+            )
+        )
+    doc.add(
+        _figure(
+            "paired_differences",
+            paired_difference_figure(summary),
+            "Each planner's paired differences to the reference with their 95% intervals (filled where the "
+            "interval excludes zero; 'no power' where no episode told the two apart on that outcome).",
+        )
+    )
+    doc.sections.append("paired_differences")
 
 
 def _candidates(doc: _Doc, path: Path, params) -> None:
@@ -841,7 +951,7 @@ def _markdown(doc: _Doc, title: str, meta: str) -> str:
         if isinstance(b, _Heading):
             out += ["#" * b.level + " " + b.text, ""]
         elif isinstance(b, _Para):
-            out += [f"_{b.text}_" if b.css == "note" else b.text, ""]
+            out += [f"_{b.text}_" if b.css == "note" else f"> **{b.text}**" if b.css == "warn" else b.text, ""]
         elif isinstance(b, _List):
             out += [f"- {i}" for i in b.items] + [""]
         elif isinstance(b, _Table):
@@ -864,6 +974,8 @@ def _document(run_dir: Path) -> _Doc:
     doc = _Doc()
     scenario, manifest = _load_scenario(run_dir, doc)
     params = SimParams.from_scenario(scenario) if scenario is not None else None
+    for note in training_cut_notes(run_dir):
+        doc.add(_Para(note, css="warn"))
     _scenario_section(doc, scenario, manifest)
     _model_section(doc, run_dir, params)
     summary = _closed_loop_section(doc, run_dir, params)

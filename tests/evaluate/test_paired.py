@@ -324,6 +324,67 @@ def test_terminal_table_is_fixed_width():
     assert rows[0]["reference"] == "mpc+oracle" and rows[0]["pairs"] == "300"
 
 
+# --- the differences the data can tell ----------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    "ci, expected",
+    [
+        ([0.011, 0.4], True),
+        ([-0.4, -0.011], True),
+        ([0.0, 0.4], False),  # touching zero is not excluding it
+        ([-0.1, 0.1], False),
+        ([float("nan"), 0.4], False),
+        (None, False),
+        ("ab", False),
+    ],
+)
+def test_excludes_zero(ci, expected):
+    assert P.excludes_zero(ci) is expected
+
+
+def test_clear_differences_lists_only_intervals_off_zero():
+    """Planner A collides in 10 of 40 episodes where the reference never does and drives 1 m/s faster; planner B
+    is the reference's twin. Only A's collision and success differences (exact McNemar p = 2 / 2**10 =
+    0.001953125, by hand from the binomial) and its speed difference are listed; B's outcomes without power
+    never are."""
+
+    def rows(collide: int, speed: float) -> list[dict]:
+        return [
+            {
+                "seed": s,
+                "collision": s < collide,
+                "success": s >= collide,
+                "near_miss": False,
+                "mean_speed_mps": speed + 0.1 * (s % 3),
+                "progress_m": 150.0 + (s % 5),
+            }
+            for s in range(40)
+        ]
+
+    ref = rows(0, 20.0)
+    cmps = {
+        "A": P.paired_comparison(ref, rows(10, 21.0), reference="oracle"),
+        "B": P.paired_comparison(ref, rows(0, 20.0), reference="oracle"),
+    }
+    clear = P.clear_differences(cmps)
+    assert [(d["planner"], d["key"]) for d in clear] == [
+        ("A", "collision_rate_diff"),
+        ("A", "success_diff"),
+        ("A", "mean_speed_diff_mps"),
+    ]
+    col = clear[0]
+    assert col["difference"] == 0.25 and col["p_value"] == pytest.approx(0.001953125, rel=1e-12)
+    assert col["ci95"] == cmps["A"]["collision_rate_diff_ci95"] and col["ci95"][0] > 0
+    low, high = col["ci95"]
+    assert (
+        col["text"] == f"A vs oracle: collision rate +0.250 [{low:+.3f}, {high:+.3f}] over 40 pairs, McNemar p = 0.0020"
+    )
+    assert clear[2]["p_value"] is None and clear[2]["text"].startswith("A vs oracle: mean speed +1.00 [")
+    assert clear[2]["text"].endswith(" m/s over 40 pairs")
+    assert cmps["B"]["collision_power"]["no_power"] and P.clear_differences({"B": cmps["B"]}) == []
+
+
 # --- bad input ------------------------------------------------------------------------------------------------
 
 

@@ -103,6 +103,7 @@ def test_resume_after_ctrl_c_equals_the_uninterrupted_run(straight, dataset_dir,
     assert counter.steps == STEPS_PER_EPOCH
     assert len(resumed.history) == 3
     assert without_timing(resumed.history) == without_timing(straight.history)
+    assert without_timing(resumed.curve) == without_timing(straight.curve)  # the finer curve too
     assert_same_weights(resumed.model, straight.model)
     assert_same_weights(load_model(out)[0], straight.model)
     assert (out / "latest").read_text().strip() == "ckpt-000002"

@@ -43,6 +43,7 @@ from wmplan.viz.futures import (
 from wmplan.viz.plots import (
     closed_loop_figure,
     figure_png,
+    paired_difference_figure,
     read_metrics_csv,
     reliability_figure,
     training_figure,
@@ -343,7 +344,7 @@ def test_training_figure_reads_metrics_csv(tmp_path):
         "KL weight (warm-up schedule)",
     ]
     for ax in visible:
-        assert ax.get_xlabel() == "epoch [count]" and "[" in ax.get_ylabel()
+        assert ax.get_xlabel() == "epochs done [count]" and "[" in ax.get_ylabel()
     fde = visible[2].lines[0]
     np.testing.assert_allclose(fde.get_xdata(), np.arange(1, 7))
     np.testing.assert_allclose(fde.get_ydata(), [r["val/min_fde_k6_m"] for r in rows])
@@ -465,3 +466,55 @@ def test_no_pyplot_state():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, timeout=120)
     assert out.stdout.split() == ["False", "False"]
+
+
+def test_paired_difference_figure_marks_intervals_off_zero_and_carries_the_caution():
+    """One row per compared planner and four panels; the point is filled where the interval excludes zero (a
+    collision rate 10 of 40 against 0 of 40) and hollow where it does not; an outcome without discordant pairs is
+    written "no power"; the caution is the footer. Invented rows (demo data)."""
+    from wmplan.caution import CAUTION
+    from wmplan.evaluate.paired import paired_comparison
+
+    def rows(collide: int, near: int) -> list[dict]:
+        return [
+            {
+                "seed": s,
+                "collision": s < collide,
+                "success": s >= collide,
+                "near_miss": 20 <= s < 20 + near,
+                "mean_speed_mps": 20.0 + 0.2 * (s % 3),
+                "progress_m": 150.0 + (s % 5),
+            }
+            for s in range(40)
+        ]
+
+    ref = rows(0, 1)
+    summary = {
+        "planners": ["rules", "mpc+constant-velocity", "mpc+oracle"],
+        "reference": "mpc+oracle",
+        "comparisons": {
+            "rules": paired_comparison(ref, rows(0, 3), reference="mpc+oracle"),
+            "mpc+constant-velocity": paired_comparison(ref, rows(10, 1), reference="mpc+oracle"),
+        },
+    }
+    fig = paired_difference_figure(summary)
+    axes = [ax for ax in fig.axes if ax.get_visible()]
+    assert [ax.get_title(loc="left").split("\n")[0] for ax in axes] == [
+        "collision rate",
+        "near-miss rate",
+        "success rate",
+        "mean speed",
+    ]
+    collision = axes[0]
+    points = [ln for ln in collision.get_lines() if ln.get_marker() == "o"]
+    assert len(points) == 1  # rules never collided: no point, the words instead
+    assert points[0].get_markerfacecolor() != "white"  # filled: +0.25 with an interval above zero
+    assert points[0].get_color() == style.PLANNER_COLOURS[1]  # the colour of closed_loop_figure for that planner
+    assert any(t.get_text().strip() == "no power" for t in collision.texts)
+    near = [ln for ln in axes[1].get_lines() if ln.get_marker() == "o"]
+    assert len(near) == 1 and near[0].get_markerfacecolor() == "white"  # 3 vs 1 near misses: could be chance
+    assert any(t.get_text() == CAUTION for t in fig.texts)
+    with pytest.raises(ConfigError, match="paired_difference_figure: comparisons must be a non-empty dict"):
+        paired_difference_figure({})
+    with pytest.raises(ConfigError, match=r"comparisons\['x'\] lacks the differences"):
+        paired_difference_figure({"x": {"collision_rate_diff": 0.1}})

@@ -564,3 +564,69 @@ def comparison_markdown(comparisons: Mapping[str, dict]) -> str:
         out.append("")
         out.extend(f"{i}. {note}" for i, note in enumerate(notes, start=1))
     return "\n".join(out)
+
+
+# --- the differences the data can tell --------------------------------------------------------------------------
+
+DIFFERENCES = (
+    ("collision_rate_diff", "collision_rate_diff_ci95", "collision", "collision rate", ""),
+    ("near_miss_rate_diff", "near_miss_rate_diff_ci95", "near_miss", "near-miss rate", ""),
+    ("success_diff", "success_diff_ci95", "success", "success rate", ""),
+    ("mean_speed_diff_mps", "mean_speed_diff_ci95", None, "mean speed", " m/s"),
+    ("progress_diff_m", "progress_diff_ci95", None, "progress", " m"),
+)
+"""(key of a comparison, key of its 95% interval, its 0/1 outcome or None for a mean, quantity in words, unit
+after a number) of each difference a comparison reports, in the order reports list them."""
+
+
+def excludes_zero(ci: object) -> bool:
+    """True when ``ci`` is a pair of finite numbers on the same side of zero (both above it or both below)."""
+    if not isinstance(ci, Sequence) or isinstance(ci, (str, bytes)) or len(ci) != 2:
+        return False
+    try:
+        low, high = float(ci[0]), float(ci[1])
+    except (TypeError, ValueError):
+        return False
+    return math.isfinite(low) and math.isfinite(high) and (low > 0.0 or high < 0.0)
+
+
+def clear_differences(comparisons: Mapping[str, dict]) -> list[dict]:
+    """The differences whose 95% interval excludes zero, planner by planner in :data:`DIFFERENCES` order.
+
+    Args:
+        comparisons: planner name -> the dict of :func:`paired_comparison`.
+
+    Returns:
+        One dict per such difference: ``planner``, ``reference``, ``key``, ``quantity``, ``difference`` (planner
+        minus reference), ``ci95``, ``n_pairs``, ``p_value`` (exact McNemar, 0/1 outcomes only, else None) and
+        ``text``, one line in words, e.g. ``mpc+constant-velocity vs mpc+oracle: collision rate +0.250 [+0.111,
+        +0.402] over 40 pairs, McNemar p = 0.0020``. An outcome without power is never listed.
+    """
+    out = []
+    for planner, cmp in comparisons.items():
+        for key, ci_key, outcome, quantity, unit in DIFFERENCES:
+            ci = cmp.get(ci_key)
+            if key not in cmp or not excludes_zero(ci):
+                continue
+            if outcome is not None and cmp.get(f"{outcome}_power", {}).get("no_power"):
+                continue
+            p = cmp.get(f"{outcome}_p_value") if outcome is not None else None
+            digits = 3 if outcome is not None else 2
+            text = (
+                f"{planner} vs {cmp['reference']}: {quantity} {_fmt_diff(cmp[key], ci, digits)}{unit} over "
+                f"{cmp['n_pairs']} pairs" + (f", McNemar p = {_fmt_p(p)}" if p is not None else "")
+            )
+            out.append(
+                {
+                    "planner": planner,
+                    "reference": cmp["reference"],
+                    "key": key,
+                    "quantity": quantity,
+                    "difference": cmp[key],
+                    "ci95": list(ci),
+                    "n_pairs": cmp["n_pairs"],
+                    "p_value": p,
+                    "text": text,
+                }
+            )
+    return out

@@ -12,6 +12,13 @@ Logged scalars (the per-epoch rows of ``metrics.csv`` and the returned history):
 | val/min_fde_k6_m | best-of-6 final displacement error at the horizon on held-out windows    |
 | sched/lr, sched/kl_weight | learning rate and KL weight of the epoch (the latter latent only)  |
 | perf/samples_per_s | training windows per second                                            |
+
+Besides, ``curve.csv`` holds the finer training curve: a row every ``steps_per_epoch // 10`` steps and one at the end
+of each epoch (:data:`CURVE_POINTS_PER_EPOCH`, ten when 10 divides the steps per epoch), each with
+``step``, ``epoch`` (the epoch it falls in, from 0), ``epochs_done`` (steps done / steps per epoch), ``elapsed_s``,
+the training losses averaged over the steps since the previous row, ``sched/lr``, ``sched/kl_weight`` (latent
+only) and the validation losses (``val/nll``, ``val/kl`` or ``val/mse``) on the first :data:`CURVE_VAL_WINDOWS`
+held-out windows. A run the time cap stops after its first epoch therefore still draws a curve of ten points.
 """
 
 from __future__ import annotations
@@ -21,7 +28,7 @@ import io
 import math
 import time
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -44,6 +51,11 @@ from wmplan.scenario import scenario_hash
 from wmplan.sim.features import ACTION_DIM, F_VALID, F_X, F_Y, NUM_ROAD_FEATURES, NUM_VEHICLE_FEATURES
 
 VAL_WINDOWS = 2048
+CURVE_POINTS_PER_EPOCH = 10
+"""Rows of ``curve.csv`` per epoch when it divides the steps per epoch (module docstring)."""
+CURVE_VAL_WINDOWS = 256
+"""Held-out windows behind the validation values of ``curve.csv`` (a fixed subset: a forward pass on them costs
+about as much as one training step of 256 windows without the backward pass)."""
 CALIBRATION_CHUNK = 64
 """Windows per piece when the noise-scale calibration measures coverage."""
 CACHE_LIMIT_BYTES = 2 * 1024**3
@@ -58,6 +70,8 @@ class TrainResult:
     history: list[dict]
     out_dir: Path
     stopped_early: bool
+    curve: list[dict] = field(default_factory=list)
+    """The rows of ``curve.csv`` (module docstring)."""
 
 
 def to_torch(batch) -> dict[str, torch.Tensor]:
@@ -279,6 +293,7 @@ def train(
     data_rng = np.random.default_rng(data_ss)
     gen_noise = torch.Generator().manual_seed(int(noise_ss.generate_state(1)[0]))
     history: list[dict] = []
+    curve: list[dict] = []
     start_epoch, step, elapsed_before = 0, 0, 0.0
     if state is not None:
         from wmplan.model.checkpoint import checkpoint_folder, load_weights
@@ -289,6 +304,7 @@ def train(
         gen_noise.set_state(torch.tensor(state["noise_gen"], dtype=torch.uint8))
         start_epoch, step, elapsed_before = state["epoch"] + 1, state["step"], state["elapsed_s"]
         history = state["history"]
+        curve = [r for r in state.get("curve", []) if r.get("step", 0) <= step]
 
     meta = {
         "train": train_cfg.to_dict(),
@@ -308,6 +324,8 @@ def train(
         "window": {"history": spec.history, "horizon": spec.horizon, "num_objects": spec.num_objects},
     }
     total_steps = train_cfg.max_epochs * train_cfg.steps_per_epoch
+    curve_every = max(1, train_cfg.steps_per_epoch // CURVE_POINTS_PER_EPOCH)
+    curve_val = {k: v[:CURVE_VAL_WINDOWS] for k, v in val_batch.items()}
     t_start = time.perf_counter() - elapsed_before
     stopped_early = False
     for epoch in range(start_epoch, train_cfg.max_epochs):
@@ -315,6 +333,8 @@ def train(
         model.train()
         kl_weight = min(1.0, (epoch + 1) / max(1, train_cfg.kl_warmup_epochs))
         sums: dict[str, float] = {}
+        part: dict[str, float] = {}  # sums since the last row of the fine curve
+        part_steps = 0
         t_epoch = time.perf_counter()
         for _ in range(train_cfg.steps_per_epoch):
             lr = peak_lr * (0.1 + 0.9 * 0.5 * (1.0 + math.cos(math.pi * min(1.0, step / total_steps))))
@@ -337,6 +357,15 @@ def train(
             step += 1
             for k, v in metrics.items():
                 sums[k] = sums.get(k, 0.0) + v
+                part[k] = part.get(k, 0.0) + v
+            part_steps += 1
+            if part_steps == curve_every or step == (epoch + 1) * train_cfg.steps_per_epoch:
+                curve.append(
+                    _curve_row(model, curve_val, epoch, step, train_cfg.steps_per_epoch, part, part_steps, lr, t_start)
+                )
+                if model.zdim:
+                    curve[-1]["sched/kl_weight"] = kl_weight
+                part, part_steps = {}, 0
             if progress is not None:
                 progress(1, {k: v / max(1, step - epoch * train_cfg.steps_per_epoch) for k, v in sums.items()})
         secs = time.perf_counter() - t_epoch
@@ -370,10 +399,14 @@ def train(
             "noise_gen": gen_noise.get_state().tolist(),
             "optimizer": opt_desc,
             "history": history,
+            "curve": curve,
         }
         if model_cfg.deterministic:
             fit_residual_variance(model, windows, tr_idx[:: max(1, len(tr_idx) // 20000)], 1024)
-        last_epoch = epoch + 1 >= train_cfg.max_epochs or time.perf_counter() - t_start > 60.0 * train_cfg.minutes
+        # one reading of the clock decides both: a run the cap stops is calibrated like one that ran all its epochs
+        over_cap = time.perf_counter() - t_start > 60.0 * train_cfg.minutes
+        capped = over_cap and epoch + 1 < train_cfg.max_epochs
+        last_epoch = epoch + 1 >= train_cfg.max_epochs or over_cap
         if last_epoch and not model_cfg.deterministic:
             half = {k: v[: VAL_WINDOWS // 2] for k, v in val_batch.items()}
             row["calib/noise_scale"] = calibrate_noise_scale(model, half, seed=train_cfg.seed)
@@ -381,20 +414,51 @@ def train(
             out_dir,
             model,
             epoch=epoch,
-            meta={**meta, "metrics": row},
+            meta={**meta, "metrics": row, "stopped_by_time_cap": capped},
             optimizer_state=opt_tensors,
             train_state=train_state,
         )
         write_metrics_csv(out_dir / "metrics.csv", history)
-        if time.perf_counter() - t_start > 60.0 * train_cfg.minutes and epoch + 1 < train_cfg.max_epochs:
+        write_metrics_csv(out_dir / "curve.csv", curve)
+        if capped:
             stopped_early = True
             break
     model.eval()
-    return TrainResult(model=model, history=history, out_dir=out_dir, stopped_early=stopped_early)
+    return TrainResult(model=model, history=history, out_dir=out_dir, stopped_early=stopped_early, curve=curve)
+
+
+def _curve_row(
+    model: WorldModel,
+    val: dict,
+    epoch: int,
+    step: int,
+    steps_per_epoch: int,
+    sums: dict[str, float],
+    count: int,
+    lr: float,
+    t_start: float,
+) -> dict:
+    """One row of the fine curve: the training losses averaged over the last ``count`` steps and the validation
+    losses on ``val`` (no gradient; a generator of its own, so training draws the same numbers with or without
+    it)."""
+    row = {
+        "epoch": epoch,
+        "step": step,
+        "epochs_done": step / steps_per_epoch,
+        "elapsed_s": round(time.perf_counter() - t_start, 2),
+    }
+    row.update({k: v / count for k, v in sums.items()})
+    row["sched/lr"] = lr
+    model.eval()
+    with torch.no_grad():
+        _, vm = model.loss(val, kl_weight=1.0, free_bits=0.0, generator=torch.Generator().manual_seed(1))
+    model.train()
+    row.update({k.replace("loss/", "val/"): v for k, v in vm.items()})
+    return row
 
 
 def write_metrics_csv(path: Path, history: list[dict]) -> None:
-    """One row per epoch of ``history`` as CSV (columns in order of first appearance), atomically."""
+    """One row per entry of ``history`` (an epoch, or a point of the fine curve) as CSV (columns in order of first appearance), atomically."""
     keys: list[str] = []
     for row in history:
         keys += [k for k in row if k not in keys]

@@ -7,7 +7,8 @@ the planners are given.
 
 * :func:`reliability_figure`: predicted collision probability against what happened, per bin, with Wilson 95%
   intervals, the diagonal, and the number of decisions per bin below; one or several planners.
-* :func:`training_figure`: the per-epoch curves of ``metrics.csv`` (``wmplan.model.train``) in small multiples.
+* :func:`training_figure`: the curves of ``metrics.csv`` and ``curve.csv`` (``wmplan.model.train``) in small
+  multiples.
 * :func:`closed_loop_figure`: collision and success rates per planner with their 95% intervals.
 * :func:`figure_png`: a Figure as PNG bytes.
 
@@ -266,19 +267,30 @@ def _runs(history: object) -> dict[str, list[dict]]:
     )
 
 
+def _curve_points(rows: list[dict], key: str) -> tuple[list[dict], np.ndarray]:
+    """The rows that draw ``key`` and their x values (epochs done): the fine curve's rows (``curve.csv``, which carry
+    ``epochs_done``) when they logged ``key``, else the per-epoch rows (``metrics.csv``) at the end of their epoch."""
+    fine = [r for r in rows if math.isfinite(_number(r.get("epochs_done")))]
+    if any(math.isfinite(_number(r.get(key))) for r in fine):
+        return fine, np.array([_number(r["epochs_done"]) for r in fine])
+    coarse = [r for r in rows if not math.isfinite(_number(r.get("epochs_done")))]
+    return coarse, np.array([_number(r.get("epoch", j)) for j, r in enumerate(coarse)]) + 1.0  # epochs from 1
+
+
 def training_figure(history: object, *, title: str | None = None, width_in: float = 10.0) -> Figure:
     """Training curves in small multiples.
 
     Args:
         history: per-epoch rows (dicts with ``epoch`` and the keys of ``wmplan.model.train``), or a path to a
             ``metrics.csv``, or a dict of run name -> rows or path (e.g. ``{"latent": ..., "deterministic": ...}``),
-            drawn in the same panels in different colours.
+            drawn in the same panels in different colours. Rows of the finer curve (``curve.csv``: they carry
+            ``epochs_done``) may be mixed in: a key they logged is drawn from them, point by point.
         title: text above the panels.
         width_in: figure width in inches.
 
     Returns:
-        A Figure with one panel per key of :data:`TRAINING_PANELS` that some run logged: the training value per
-        epoch (solid) and the validation value (dashed), against the epoch.
+        A Figure with one panel per key of :data:`TRAINING_PANELS` that some run logged: the training value (solid)
+        and the validation value (dashed) against the epochs done.
     """
     runs = _runs(history)
     if not runs or not any(runs.values()):
@@ -299,12 +311,12 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
         ax.set_visible(False)
     for ax, (key, val_key, heading, ylabel) in zip(axes, panels, strict=False):
         last_epoch = 1.0
-        for i, (name, rows) in enumerate(runs.items()):
+        for i, (name, all_rows) in enumerate(runs.items()):
             colour = _colour(i)
-            epoch = np.array([_number(r.get("epoch", j)) for j, r in enumerate(rows)]) + 1.0  # epochs counted from 1
             for k, dash, marker, suffix in ((key, "-", "o", "train"), (val_key, "--", "s", "validation")):
                 if k is None:
                     continue
+                rows, epoch = _curve_points(all_rows, k)
                 y = np.array([_number(r.get(k)) for r in rows])
                 ok = np.isfinite(y) & np.isfinite(epoch)
                 if not ok.any():
@@ -323,9 +335,9 @@ def training_figure(history: object, *, title: str | None = None, width_in: floa
                 )
                 last_epoch = max(last_epoch, float(np.nanmax(epoch[ok])))
         ax.set_title(heading, fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, loc="left")
-        ax.set_xlabel("epoch [count]", fontsize=style.FONT_SIZE_PT)
+        ax.set_xlabel("epochs done [count]", fontsize=style.FONT_SIZE_PT)
         ax.set_ylabel(ylabel, fontsize=style.FONT_SIZE_PT)
-        ax.set_xlim(0.5, max(last_epoch, 1.0) + 0.5)
+        ax.set_xlim(0.0, max(last_epoch, 1.0) + 0.5)
         ax.xaxis.set_major_locator(MaxNLocator(integer=True, min_n_ticks=1))
         _style_axes(ax)
         if ax.get_legend_handles_labels()[1]:
@@ -413,4 +425,136 @@ def closed_loop_figure(results: Mapping, *, title: str | None = None, width_in: 
         x=0.01,
         ha="left",
     )
+    return fig
+
+
+# --- paired differences with the reference ------------------------------------------------------------------------
+
+
+def paired_difference_figure(
+    comparisons: Mapping, *, reference: str | None = None, title: str | None = None, width_in: float = 10.0
+) -> Figure:
+    """Each planner's paired differences to the reference planner, with their 95% intervals, and the caution.
+
+    Args:
+        comparisons: ``{planner: comparison}`` as :func:`wmplan.evaluate.paired.paired_comparison` gives (the
+            differences of :data:`wmplan.evaluate.paired.DIFFERENCES` but progress, with their intervals,
+            ``n_pairs``, ``reference`` and ``<outcome>_power``), or a whole ``summary.json`` dict holding it under
+            ``"comparisons"`` (then each planner keeps its colour of :func:`closed_loop_figure`).
+        reference: the reference's name for the title (default: the comparisons' own ``reference``).
+        title: text above the panels.
+        width_in: figure width in inches.
+
+    Returns:
+        A Figure with one panel per difference (planner minus reference): a point at the difference and a
+        whisker over its interval, filled where the interval excludes zero and hollow where it does not; "no
+        power" in words where no pair told the two planners apart on that outcome; a line at zero; the caution
+        as its footer (:func:`wmplan.caution.caution_footer`).
+    """
+    from wmplan.caution import caution_footer
+    from wmplan.evaluate.paired import DIFFERENCES, excludes_zero
+
+    panels = [d for d in DIFFERENCES if d[0] != "progress_diff_m"]
+
+    order: list = []
+    if isinstance(comparisons, Mapping) and isinstance(comparisons.get("comparisons"), Mapping):
+        reference = reference or comparisons.get("reference")
+        order = list(comparisons.get("planners") or [])
+        comparisons = comparisons["comparisons"]
+    if not isinstance(comparisons, Mapping) or not comparisons:
+        raise ConfigError("paired_difference_figure: comparisons must be a non-empty dict {planner: comparison}")
+    names = list(comparisons)
+    for name in names:
+        entry = comparisons[name]
+        if not isinstance(entry, Mapping) or not all(p[0] in entry and p[1] in entry for p in panels):
+            raise ConfigError(
+                f"paired_difference_figure: comparisons[{name!r}] lacks the differences and intervals of "
+                "wmplan.evaluate.paired.paired_comparison"
+            )
+    reference = reference or str(comparisons[names[0]].get("reference", "the reference"))
+    fig = Figure(figsize=(width_in, 1.9 + 1.05 * len(names)), layout="constrained", facecolor="white")
+    FigureCanvasAgg(fig)
+    fig.get_layout_engine().set(rect=(0.0, 0.05, 1.0, 0.95))  # room for the caution below
+    axes = fig.subplots(1, len(panels), sharey=True)
+    ypos = np.arange(len(names))[::-1].astype(float)
+    for ax, (key, ci_key, outcome, quantity, unit) in zip(axes, panels, strict=True):
+        reading = {"collision": "lower is safer", "near_miss": "lower is safer", "success": "higher is better"}.get(
+            outcome, "higher is faster"
+        )
+        ax.axvline(0.0, color=style.DIAGONAL_COLOUR, linewidth=1.0, linestyle="--", zorder=1.0)
+        ends = [0.0]
+        for i, (y, name) in enumerate(zip(ypos, names, strict=True)):
+            entry = comparisons[name]
+            colour = _colour(order.index(name) if name in order else i)  # as in closed_loop_figure
+            power = entry.get(f"{outcome}_power") if outcome else None
+            if isinstance(power, Mapping) and power.get("no_power"):
+                ax.text(
+                    0.0,
+                    y,
+                    " no power ",
+                    ha="center",
+                    va="center",
+                    fontsize=style.FONT_SIZE_PT - 1.5,
+                    color=style.TEXT_COLOUR,
+                    bbox={"facecolor": "white", "edgecolor": colour, "linewidth": 0.8},
+                )
+                continue
+            value = _number(entry.get(key))
+            ci = entry.get(ci_key)
+            if not math.isfinite(value):
+                continue
+            low, high = (_number(v) for v in ci) if isinstance(ci, Sequence) and len(ci) == 2 else (value, value)
+            strong = excludes_zero(ci)
+            if math.isfinite(low) and math.isfinite(high):
+                ax.plot([low, high], [y, y], color=colour, linewidth=2.2 if strong else 1.3, solid_capstyle="butt")
+                ax.plot([low, high], [y, y], "|", color=colour, markersize=9)
+                ends += [low, high]
+            ax.plot(
+                value,
+                y,
+                "o",
+                markersize=7,
+                color=colour,
+                markerfacecolor=colour if strong else "white",
+                markeredgewidth=1.6,
+                zorder=3.0,
+            )
+            ends.append(value)
+            digits = 3 if outcome else 2
+            text = f"{value:+.{digits}f}" + (
+                f" [{low:+.{digits}f}, {high:+.{digits}f}]" if math.isfinite(low) and math.isfinite(high) else ""
+            )
+            ax.annotate(
+                text,
+                (value, y),
+                xytext=(0, 7),
+                textcoords="offset points",
+                ha="center",
+                va="bottom",
+                fontsize=style.FONT_SIZE_PT - 1.5,
+                color=style.TEXT_COLOUR,
+                fontweight="bold" if strong else "normal",
+            )
+        span = max(abs(min(ends)), abs(max(ends)), 0.02 if outcome else 0.2)
+        ax.set_xlim(-1.25 * span, 1.25 * span)
+        ax.set_ylim(-0.7, len(names) - 0.3)
+        ax.set_xlabel(f"difference [{unit.strip() or '1'}]", fontsize=style.FONT_SIZE_PT)
+        ax.set_title(f"{quantity}\n({reading})", fontsize=style.FONT_SIZE_PT, color=style.TEXT_COLOUR, loc="left")
+        _style_axes(ax)
+        ax.grid(axis="y", visible=False)
+    labels = [
+        f"{n}\n({comparisons[n].get('n_pairs')} pairs)" if isinstance(comparisons[n].get("n_pairs"), int) else n
+        for n in names
+    ]
+    axes[0].set_yticks(ypos, labels, fontsize=style.FONT_SIZE_PT - 0.5)
+    fig.suptitle(
+        title
+        or f"Paired differences to {reference} on the same episode seeds (planner minus {reference}), 95% intervals;"
+        " filled: the interval excludes zero",
+        fontsize=style.FONT_SIZE_PT + 0.5,
+        color=style.TEXT_COLOUR,
+        x=0.01,
+        ha="left",
+    )
+    caution_footer(fig)
     return fig
