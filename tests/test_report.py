@@ -319,6 +319,20 @@ def test_partial_run_notes_what_is_missing(tmp_path):
     assert "certify nothing about a real vehicle" in page
 
 
+def test_an_evaluate_folder_is_a_run_of_its_own(tmp_path):
+    """``wmplan report R`` on the folder ``wmplan evaluate --out R`` wrote (summary.json beside episodes.parquet) shows
+    its closed loop; a lone summary.json of another command is not taken for one."""
+    run = tmp_path / "evaluated"
+    run.mkdir()
+    (run / "summary.json").write_text(json.dumps({"results": {"rules": _planner(3, 200)}}))
+    with pytest.raises(ConfigError, match="nothing to report"):
+        cli_report(run)
+    (run / "episodes.parquet").write_bytes(b"")
+    out = cli_report(run)
+    assert out["sections"][0] == "closed_loop"
+    assert "0.015 [0.005, 0.043]" in (run / "report.html").read_text(encoding="utf-8")
+
+
 def test_unreadable_pieces_are_skipped_with_the_file_named(tmp_path):
     """A broken assess.json and a summary.json without results: both named in a note, the rest still reported."""
     run = tmp_path / "broken"
@@ -364,7 +378,8 @@ def test_folder_with_nothing_usable_is_a_one_line_error(tmp_path):
         build_report(tmp_path)
     assert str(err.value) == (
         f"{tmp_path}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
-        "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png"
+        "latent/metrics.csv, assess.json, evaluate/summary.json (or summary.json beside episodes.parquet), "
+        "futures.npz, scene.png"
     )
     assert not (tmp_path / "report.html").exists()
 

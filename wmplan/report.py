@@ -12,7 +12,9 @@
 | ``futures.npz``                        | fans of sampled futures at one decision (arrays ``history``,     |
 |                                        | ``model_rows``, optional ``oracle_rows``, ``deterministic_rows``, |
 |                                        | ``anchor_pose``)                                                 |
-| ``evaluate/summary.json``              | the closed-loop table with 95% intervals, and calibration        |
+| ``evaluate/summary.json`` (or          | the closed-loop table with 95% intervals, and calibration        |
+| ``summary.json`` when ``RUN_DIR`` is   |                                                                  |
+| an ``evaluate --out`` folder)          |                                                                  |
 | ``candidates.npz``                     | one decision's candidate plans (``ego_paths``, ``costs``,        |
 |                                        | ``p_collision``, ``chosen``, optional ``futures``, ``current``,   |
 |                                        | ``anchor_pose``; :func:`wmplan.viz.futures.candidate_arrays`)    |
@@ -533,11 +535,30 @@ def _assessment(doc: _Doc, data: dict) -> None:
     doc.sections.append("assessment")
 
 
+EVALUATE_FILES = ("evaluate/summary.json", "summary.json")
+"""Where a run keeps its closed-loop summary: in ``evaluate/``, or at the top of a ``wmplan evaluate --out`` folder."""
+
+
+def _evaluate_summary_path(run_dir: Path) -> Path:
+    """The first of :data:`EVALUATE_FILES` in ``run_dir`` that is a file; ``evaluate/summary.json`` when none is.
+
+    A top-level ``summary.json`` counts only when ``episodes.parquet`` sits beside it (as ``wmplan evaluate`` leaves
+    them), so a summary of another command is not read as a closed-loop one."""
+    top = run_dir / "summary.json"
+    if (
+        not (run_dir / "evaluate" / "summary.json").is_file()
+        and top.is_file()
+        and (run_dir / "episodes.parquet").is_file()
+    ):
+        return top
+    return run_dir / "evaluate" / "summary.json"
+
+
 def _closed_loop_section(doc: _Doc, run_dir: Path, params) -> dict | None:
     from wmplan.viz.plots import closed_loop_figure
 
     doc.add(_Heading(2, "Closed loop"))
-    path = run_dir / "evaluate" / "summary.json"
+    path = _evaluate_summary_path(run_dir)
     summary = None
     if not path.is_file():
         doc.skip("No evaluate/summary.json: no closed-loop results.")
@@ -998,7 +1019,8 @@ def _write(run_dir: Path | str) -> tuple[Path, Path, _Doc]:
     if not doc.sections:
         raise ConfigError(
             f"{run_dir}: nothing to report; expected one of scenario.yaml, data/manifest.json, "
-            "latent/metrics.csv, assess.json, evaluate/summary.json, futures.npz, scene.png"
+            "latent/metrics.csv, assess.json, evaluate/summary.json (or summary.json beside episodes.parquet), "
+            "futures.npz, scene.png"
         )
     if doc.skipped:
         doc.add(_Heading(2, "Not in this run"), _List(doc.skipped, css="skipped"))
