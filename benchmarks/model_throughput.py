@@ -95,7 +95,8 @@ def _timed(fn, repeats: int) -> tuple[list[float], list[float]]:
 def linear_shapes(fn) -> list[tuple[int, int, int]]:
     """(rows, in, out) of every matrix multiply of two matrices (``aten.mm``, ``aten.addmm``, and ``aten.linear``,
     as every linear map of the model reaches torch's dispatcher: ``nn.Linear``, ``F.linear`` and the inference
-    path's ``torch.addmm`` / ``torch.mm`` alike) while ``fn()`` runs, recorded by a dispatch mode. Batched products (``aten.bmm``, the
+    path's ``torch.addmm`` / ``torch.mm`` alike) while ``fn()`` runs, recorded by a dispatch mode. Batched products
+    (``aten.bmm``, the
     attention's queries times keys and weights times values) are left out."""
     import torch
     from torch.utils._python_dispatch import TorchDispatchMode

@@ -419,7 +419,8 @@ NB02 = [
     gen = torch.Generator().manual_seed(SEED)
     futures = {name: p.predict(ctx, plan, NUM_FUTURES, generator=gen)[0, 0].numpy() for name, p in predictors.items()}
     futures_figure(ctx.history[0].numpy(), futures["latent"], futures["oracle"], params,
-                   deterministic_rows=futures["deterministic"][0], anchor_pose=ctx.ego_pose[0], model_label="latent model",
+                   deterministic_rows=futures["deterministic"][0], anchor_pose=ctx.ego_pose[0],
+                   model_label="latent model",
                    title=f"Scene seed {HELDOUT_SEED}, t = {ANCHOR * cfg.plan_dt_s:.1f} s: futures over the next "
                          f"{cfg.horizon * cfg.plan_dt_s:.0f} s")
     """),
@@ -544,7 +545,8 @@ NB03 = [
             train(OUT / "data", MODEL_DIR, train_cfg=TrainConfig(minutes=0.5, max_epochs=2, steps_per_epoch=25,
                                                                   batch_size=128, threads=THREADS, seed=SEED))
     model, meta = load_model(MODEL_DIR)
-    print(f"latent model {MODEL_DIR}: {model.num_parameters()} parameters, trained on {meta['dataset']['num_episodes']} "
+    print(f"latent model {MODEL_DIR}: {model.num_parameters()} parameters, "
+          f"trained on {meta['dataset']['num_episodes']} "
           f"episodes of {meta['dataset']['scenario_name']} for {meta['epoch'] + 1} epochs")
     """),
     md("""
@@ -558,7 +560,8 @@ NB03 = [
     cfg = PlannerConfig(num_candidates=NUM_CANDIDATES, num_futures=NUM_FUTURES)
     options = {"model": MODEL_DIR, "config": cfg}
     planners = {name: make_planner(name, params, options) for name in PLANNERS if name != "rules"}
-    print(f"{cfg.sampler.upper()}, {cfg.num_candidates} candidates x {cfg.num_futures} futures x {cfg.horizon} steps of "
+    print(f"{cfg.sampler.upper()}, {cfg.num_candidates} candidates x {cfg.num_futures} futures "
+          f"x {cfg.horizon} steps of "
           f"{cfg.plan_dt_s} s, risk as a {cfg.risk_mode} (weight {cfg.weights.collision} per unit of P(collision))")
     """),
     md("""
@@ -580,7 +583,8 @@ NB03 = [
         rows.append(state.vehicles())
         ids.append(state.vehicle_id)
     hist = model.cfg.history
-    ctx = make_context(params, state, np.stack(rows[-hist:], axis=1), np.stack(ids[-hist:], axis=1), model.cfg.num_objects)
+    ctx = make_context(params, state, np.stack(rows[-hist:], axis=1), np.stack(ids[-hist:], axis=1),
+                       model.cfg.num_objects)
 
     decisions = {}
     for name, planner in planners.items():
@@ -824,7 +828,8 @@ NB04 = [
     the knob values applied, plus a JSON record of the planner, the scene seed and what happened.
     """),
     code("""
-    assert report["failures_saved"], "no failure found within the budget: raise STRESS_BUDGET or stress a harder variant"
+    assert report["failures_saved"], (
+        "no failure found within the budget: raise STRESS_BUDGET or stress a harder variant")
     failure_files = [OUT / "stress" / "failures" / name for name in report["failures_saved"]]
     for path in failure_files:
         info = json.loads(path.read_text(encoding="utf-8"))

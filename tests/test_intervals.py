@@ -95,7 +95,8 @@ def test_no_trials_means_nothing_known():
 
 
 def test_bad_counts_are_one_line_errors():
-    """k > n, negative or fractional counts, non-broadcasting shapes and z <= 0 are refused by a one-line ConfigError."""
+    """k > n, negative or fractional counts, non-broadcasting shapes and z <= 0 are refused by a one-line
+    ConfigError."""
     with pytest.raises(ConfigError, match=re.escape("wilson_interval: needs integers 0 <= k <= n, got k=5 n=4")):
         wilson_interval(5, 4)
     with pytest.raises(ConfigError, match=re.escape("got k=1.5 n=4")):

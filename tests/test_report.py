@@ -345,8 +345,8 @@ def test_unreadable_pieces_are_skipped_with_the_file_named(tmp_path):
         for s in out["skipped"]
     )
     assert (
-        f"Closed-loop results skipped: {run / 'evaluate' / 'summary.json'}: 'results' must map each planner to its summary"
-        in out["skipped"]
+        f"Closed-loop results skipped: {run / 'evaluate' / 'summary.json'}: "
+        "'results' must map each planner to its summary" in out["skipped"]
     )
     assert "assessment" not in out["sections"] and "closed_loop" not in out["sections"]
     assert "training" in out["sections"]

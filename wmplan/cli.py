@@ -470,7 +470,8 @@ def cmd_train(args: argparse.Namespace) -> int:
     if res.stopped_early:
         print(
             f"wmplan: stopped by the {tcfg.minutes:g}-minute cap after {len(res.history)} of {tcfg.max_epochs} "
-            f"epochs, before the learning rate finished its decay (a larger --minutes or fewer --epochs lets it finish)",
+            f"epochs, before the learning rate finished its decay "
+            "(a larger --minutes or fewer --epochs lets it finish)",
             file=sys.stderr,
         )
     return 0

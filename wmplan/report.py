@@ -887,7 +887,8 @@ def _triage_section(doc: _Doc, run_dir: Path) -> None:
                     mime="image/png",
                     existing=True,
                     caption=(
-                        f"{f.get('name')}: believed (violet) and true (teal) P(collision) of the chosen plan per decision; "
+                        f"{f.get('name')}: believed (violet) and true (teal) P(collision) of the chosen plan "
+                        "per decision; "
                         "the shaded band runs from the point of no return to the contact (cross)."
                     ),
                 )

@@ -190,7 +190,8 @@ def test_errors_name_the_value():
 
 # --- near misses ----------------------------------------------------------------------------------------------
 # Definition: no collision, and minimum time-to-collision below 1.5 s (a threshold widely used for serious traffic
-# conflicts, van der Horst 1990, from memory: docs/references.md#van-der-horst-1990-ttc-threshold) or brake threat above 1
+# conflicts, van der Horst 1990, from memory: docs/references.md#van-der-horst-1990-ttc-threshold) or brake threat
+# above 1
 # (the brakes alone can no longer avoid the obstacle, wmplan/sim/threat.py). Rate interval: Wilson (1927) against
 # scipy.stats.binomtest(...).proportion_ci(method="wilson").
 

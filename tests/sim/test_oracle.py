@@ -239,7 +239,8 @@ def test_resampled_desired_speeds_follow_the_truncated_normal():
     """All re-drawn desired speeds (n >= 750000, 80000 futures x about 10 drivers) against scipy.stats.truncnorm with
     the scenario's mean 30, std 3, low 22, high 38; KS p > 1e-3, and no value exactly on a bound (a truncated
     normal puts probability 0 there). n is chosen so that a clipped normal would be caught: its CDF differs from
-    the truncated one by Phi(-8/3) = 0.0038 at the bounds, about 1.7 times the KS critical value 1.95 / sqrt(n) = 0.0022 at n = 800000."""
+    the truncated one by Phi(-8/3) = 0.0038 at the bounds, about 1.7 times the KS critical value
+    1.95 / sqrt(n) = 0.0022 at n = 800000."""
     x, d = _resampled_desired_speeds(8, 10_000)
     assert x.size >= 750_000
     assert ((x >= d.low) & (x <= d.high)).all()

@@ -72,7 +72,7 @@ def _has_colour(img: Image.Image, colour: str, tol: int = 3, min_pixels: int = 5
     return int(near) >= min_pixels
 
 
-# --- a real decision: a seeded onramp-merge scene and the oracle's futures ---------------------------------------------
+# --- a real decision: a seeded onramp-merge scene and the oracle's futures --------------------------------------------
 
 
 def _decision(seed: int, steps: int = 60, history: int = 5, horizon: int = 15, k: int = 12):

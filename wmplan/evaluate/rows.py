@@ -18,7 +18,8 @@ ROWS_VERSION = 3
 """Bumped whenever a column is added, removed or redefined (sweep cells of another version are not reused)."""
 
 NEAR_MISS_TTC_S = 1.5
-"""Time-to-collision below which an episode counts as a near miss (docs/references.md#van-der-horst-1990-ttc-threshold)."""
+"""Time-to-collision below which an episode counts as a near miss
+(docs/references.md#van-der-horst-1990-ttc-threshold)."""
 NEAR_MISS_BRAKE_THREAT = 1.0
 """Brake threat above which an episode counts as a near miss: the ego's brakes alone could no longer avoid it."""
 

@@ -47,9 +47,10 @@ def summarise_planner(rows: list[dict]) -> dict:
     """Rates with Wilson 95% intervals and means with t intervals for one planner's episodes.
 
     Collisions are also counted by the side of the ego that was touched (``collisions_by_contact_side``: front,
-    rear, left, right; see :func:`wmplan.sim.engine.contact_sides`). Besides collisions, leaving the road and success, the timeouts (episodes that ran out of time without reaching
-    the goal, colliding or leaving the road) and how many of them ended outside the goal's lanes (a stall before
-    the merge; rows without ``in_goal_lane`` count as inside)."""
+    rear, left, right; see :func:`wmplan.sim.engine.contact_sides`). Besides collisions, leaving the road and
+    success, the timeouts (episodes that ran out of time without reaching the goal, colliding or leaving the road)
+    and how many of them ended outside the goal's lanes (a stall before the merge; rows without ``in_goal_lane``
+    count as inside)."""
     col = np.array([r["collision"] for r in rows])
     off = np.array([r["offroad"] for r in rows])
     suc = np.array([r["success"] for r in rows])
@@ -134,7 +135,8 @@ def write_parquet(path: Path, rows: list[dict]) -> None:
 
 
 def write_outputs(out_dir: Path, summary: dict, rows: list[dict], calib_rows: list[dict]) -> None:
-    """Write ``episodes.parquet``, ``calibration.parquet`` (if any records) and ``summary.json`` into ``out_dir``, atomically."""
+    """Write ``episodes.parquet``, ``calibration.parquet`` (if any records) and ``summary.json`` into ``out_dir``,
+    atomically."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     write_parquet(out_dir / "episodes.parquet", rows)

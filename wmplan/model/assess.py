@@ -201,7 +201,8 @@ def load_predictors(
     model, meta = load_model(model_dir)
     if meta.get("kind") != "latent":
         raise ConfigError(
-            f"{model_dir}: is a {meta.get('kind')} model; pass the latent model first and the other with --deterministic"
+            f"{model_dir}: is a {meta.get('kind')} model; "
+            "pass the latent model first and the other with --deterministic"
         )
     predictors: dict[str, object] = {"latent": model}
     if deterministic_dir is not None:

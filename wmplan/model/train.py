@@ -64,7 +64,8 @@ CACHE_LIMIT_BYTES = 2 * 1024**3
 
 @dataclass
 class TrainResult:
-    """What :func:`train` returns: the trained model, one dict of metrics per epoch, the output folder and whether the time cap stopped it."""
+    """What :func:`train` returns: the trained model, one dict of metrics per epoch, the output folder and whether the
+    time cap stopped it."""
 
     model: WorldModel
     history: list[dict]
@@ -458,7 +459,8 @@ def _curve_row(
 
 
 def write_metrics_csv(path: Path, history: list[dict]) -> None:
-    """One row per entry of ``history`` (an epoch, or a point of the fine curve) as CSV (columns in order of first appearance), atomically."""
+    """One row per entry of ``history`` (an epoch, or a point of the fine curve) as CSV (columns in order of first
+    appearance), atomically."""
     keys: list[str] = []
     for row in history:
         keys += [k for k in row if k not in keys]

@@ -274,7 +274,7 @@ def to_physical(actions: np.ndarray, params: SimParams) -> np.ndarray:
     return np.stack([accel, a[..., 1] * params.max_steer_rad], axis=-1)
 
 
-# --- shared by both envs -----------------------------------------------------------------------------------------------
+# --- shared by both envs ----------------------------------------------------------------------------------------------
 
 
 def _resolve_scenario(scenario: str | Path | Scenario) -> Scenario:
@@ -767,7 +767,7 @@ def _put_scenes(state: TrafficState, idx: np.ndarray, fresh: TrafficState) -> Tr
     return TrafficState(**out)
 
 
-# --- construction and registration -------------------------------------------------------------------------------------
+# --- construction and registration ------------------------------------------------------------------------------------
 
 
 def make_env(scenario: str | Path | Scenario, **kwargs: Any) -> LaneEnv:

@@ -78,7 +78,7 @@ SIZE_SALTS = (101, 102)  # last counter of the length and width draws (wmplan.si
 
 EGO = 0
 
-# --- the state's packed layout (what step_range reads and writes) ------------------------------------------------------
+# --- the state's packed layout (what step_range reads and writes) -----------------------------------------------------
 # (S, V) float64 fields of a TrafficState, stacked as the rows of one (NVF, S, V) array, and so on for the others.
 VF_FIELDS = (
     "x_m",
@@ -368,7 +368,7 @@ def _gap_behind(x, length, i, j):
     return np.inf if j < 0 else (x[i] - x[j]) - 0.5 * (length[j] + length[i])
 
 
-# --- the phases of one scene's step -------------------------------------------------------------------------------------
+# --- the phases of one scene's step -----------------------------------------------------------------------------------
 
 
 @jit

@@ -263,6 +263,7 @@ def format_triage(report: dict) -> str:
         else:
             when = "no point of no return"
         lines.append(
-            f"  {f['name']}: {f['outcome']} at {f['contact_s']:.1f} s -> {f['cause']}; {when} (triaged in {f['seconds']:.0f} s)"
+            f"  {f['name']}: {f['outcome']} at {f['contact_s']:.1f} s -> {f['cause']}; {when} "
+            f"(triaged in {f['seconds']:.0f} s)"
         )
     return "\n".join(lines)
