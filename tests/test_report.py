@@ -494,3 +494,32 @@ def test_paired_comparisons_with_the_differences_off_zero_and_their_figure(tmp_p
     build_report(run)
     md = (run / "report.md").read_text(encoding="utf-8")
     assert "No difference to mpc+oracle has a 95% interval that excludes zero" in md
+
+
+def test_the_assessment_says_how_many_contested_pairs_it_found(tmp_path):
+    """The single-scenario assessment names the contested pairs' screening and count, and says in words when
+    there were none (the gap is then not measured, not zero)."""
+    run = tmp_path / "assessed"
+    run.mkdir()
+    contested = {
+        "band": [0.02, 0.98],
+        "oracle_samples": 8,
+        "screened_states": 504,
+        "states": 6,
+        "pairs": 12,
+        "drawn": "every held-out episode still running",
+    }
+    preds = {"latent": {"collision_prob_gap": 0.01, "collision_prob_gap_contested": 0.3}}
+    (run / "assess.json").write_text(json.dumps({"predictors": preds, "contested": contested}))
+    build_report(run)
+    md = (run / "report.md").read_text(encoding="utf-8")
+    assert "screened 504 states (every held-out episode still running); 6 had a plan" in md
+    assert "[0.02, 0.98], 12 pairs in all." in md
+    assert "| \\|ΔP(collision)\\|, contested pairs [1] | 0.300 |" in md
+    preds["latent"]["collision_prob_gap_contested"] = None
+    (run / "assess.json").write_text(
+        json.dumps({"predictors": preds, "contested": {**contested, "states": 0, "pairs": 0}})
+    )
+    build_report(run)
+    md = (run / "report.md").read_text(encoding="utf-8")
+    assert "0 pairs in all: none, so the contested gap is not measured" in md

@@ -493,11 +493,17 @@ def cmd_assess(args: argparse.Namespace) -> int:
     )
     _write_json(args.json, result)
     keys = ["min_ade_k6_m", "min_fde_k6_m", "nll", "coverage_90", "energy_distance", "collision_prob_gap"]
+    keys.append("collision_prob_gap_contested")
     for name in result["scenarios"]:
-        print(f"{name}:")
-        print(f"  {'predictor':<18}" + "".join(f"{k:>20}" for k in keys))
-        for pred, row in result["by_scenario"][name]["predictors"].items():
-            print(f"  {pred:<18}" + "".join(f"{row[k]:>20.3f}" for k in keys))
+        one = result["by_scenario"][name]
+        con = one["contested"]
+        print(
+            f"{name}: contested pairs (oracle P(collision) in [{con['band'][0]}, {con['band'][1]}]): {con['pairs']} "
+            f"in {con['states']} of {con['screened_states']} screened states"
+        )
+        print(f"  {'predictor':<18}" + "".join(f"{k:>30}" for k in keys))
+        for pred, row in one["predictors"].items():
+            print(f"  {pred:<18}" + "".join(f"{'-':>30}" if row.get(k) is None else f"{row[k]:>30.3f}" for k in keys))
     print(format_scenario_table(result["table"]))
     print(CAUTION)
     return 0

@@ -82,6 +82,12 @@ ASSESS_METRICS = (
         "better",
     ),
     (
+        "collision_prob_gap_contested",
+        "|ΔP(collision)|, contested pairs [1]",
+        "the same gap over the (state, plan) pairs whose true collision probability is neither near 0 nor "
+        "near 1 (see below)",
+    ),
+    (
         "energy_distance_resampled",
         "energy distance, traits re-drawn [m]",
         "as above, against an oracle that re-draws the drivers' hidden traits",
@@ -400,6 +406,8 @@ SCENARIO_TABLE = (
     ("latent_nll", "NLL [nats]"),
     ("latent_energy_distance", "energy distance to oracle [m]"),
     ("latent_collision_prob_gap", "|ΔP(collision)| vs oracle [1]"),
+    ("latent_collision_prob_gap_contested", "|ΔP(collision)|, contested pairs [1]"),
+    ("contested_pairs", "contested pairs [count]"),
 )
 """(key of a row of ``assess.json`` ``table``, column heading with unit) of the per-scenario assessment table."""
 
@@ -530,6 +538,22 @@ def _assessment(doc: _Doc, data: dict) -> None:
                 "True collision probability of the assessed plans (oracle): "
                 + ", ".join(f"{k} {_fmt(v)}" for k, v in oracle.items())
                 + "."
+            )
+        )
+    contested = data.get("contested")
+    if isinstance(contested, dict) and isinstance(contested.get("band"), list) and len(contested["band"]) == 2:
+        lo, hi = contested["band"]
+        doc.add(
+            _Para(
+                f"Contested pairs: the oracle (traits known, {contested.get('oracle_samples')} futures per plan) "
+                f"screened {contested.get('screened_states')} states ({contested.get('drawn')}); "
+                f"{contested.get('states')} had a plan whose true P(collision) lies in [{lo}, {hi}], "
+                f"{contested.get('pairs')} pairs in all"
+                + (
+                    "."
+                    if contested.get("pairs")
+                    else ": none, so the contested gap is not measured for this scenario and these amounts."
+                )
             )
         )
     doc.sections.append("assessment")

@@ -204,3 +204,37 @@ def test_the_command_prints_and_writes_one_row_per_scenario(latent_run, determin
     assert "certify nothing" in run.stdout
     bad = run_cli("assess", latent_run.out_dir, "--scenario", "cut-in", "cut-in", cwd=tmp_path)
     assert bad.returncode == 2 and len(bad.stderr.splitlines()) == 1 and "cut-in given twice" in bad.stderr
+
+
+@pytest.mark.parametrize("scenario", ["onramp-merge", "short-gap-cut-in"])
+def test_the_contested_gap_is_measured_where_the_oracle_is_unsure(latent_run, deterministic_run, scenario):
+    """The contested pairs all have an oracle P(collision) inside the band, are at most three per kept state, the
+    kept states at most what was asked and at most what was screened; the contested gap is a mean of absolute differences of two probabilities, so in [0, 1], and
+    None exactly when no pair was found. On short-gap-cut-in, where a neighbour may or may not swerve in, pairs are
+    found (the split is checked with the oracle in tests/sim/test_hidden_intent.py)."""
+    from wmplan.model.assess import CONTESTED_BAND
+
+    res = assess(
+        latent_run.out_dir,
+        load_scenario(scenario),
+        deterministic_dir=deterministic_run.out_dir,
+        episodes=24,
+        oracle_states=6,
+        oracle_samples=8,
+        seed=0,
+    )
+    con = res["contested"]
+    lo, hi = CONTESTED_BAND
+    assert con["band"] == [lo, hi] and con["oracle_samples"] == 8
+    assert con["states"] <= min(6, con["screened_states"])
+    assert con["states"] <= con["pairs"] <= 3 * con["states"]
+    assert len(con["oracle_p"]) == con["pairs"]
+    assert all(lo <= p <= hi for p in con["oracle_p"])
+    # P from 8 futures is a multiple of 1/8: inside [0.02, 0.98] means 1..7 of 8 futures collide
+    assert all(round(p * 8) in range(1, 8) and abs(p * 8 - round(p * 8)) < 1e-9 for p in con["oracle_p"])
+    for name, e in res["predictors"].items():
+        gap = e["collision_prob_gap_contested"]
+        assert (gap is None) == (con["pairs"] == 0), name
+        assert gap is None or 0.0 <= gap <= 1.0, name
+    if scenario == "short-gap-cut-in":
+        assert con["pairs"] > 0

@@ -17,6 +17,18 @@ Metrics (keys of each predictor's entry):
 |                     | each object's trajectory (flattened positions, metres), same states and plans; ``known`` |
 | collision_prob_gap  | mean |P_model(collision) - P_oracle(collision)| over states and plans; ``known`` oracle   |
 | *_resampled         | the two oracle metrics against the ``resampled`` oracle                                  |
+| collision_prob_gap_ | mean |P_model - P_oracle| over the contested (state, plan) pairs only: those whose         |
+| contested           | ``resampled`` oracle P(collision) lies in ``CONTESTED_BAND`` (None when no pair does)    |
+
+Contested pairs (the result's ``contested`` entry) are drawn from every held-out episode still running at every
+``CONTESTED_STRIDE``-th decision from the first with a full history, each with the three rule-based plans: the
+oracle that re-draws the hidden traits (``oracle_samples`` futures per plan, all states in one batch) screens them
+all, and the states with at least one pair inside the band are kept, in time order, up to ``oracle_states`` of
+them. Where the oracle is sure (P near 0 or 1), a predictor that is never worried looks good; the contested pairs
+are where its collision probability matters. The band is taken on the oracle that re-draws the traits because the
+traits are what no predictor sees: with them known, the futures split only on the drivers' random events, and
+almost no pair is contested (DEVELOPERS.md gives the counts). The entry says how many states were screened, how many had a pair in
+the band, and how many pairs were measured.
 
 Futures for the energy distance and collision probability are decoder means per draw of z (what the planner uses);
 the NLL and the coverage use the full predictive, decoder noise included.
@@ -43,7 +55,7 @@ from wmplan.sim.ego_rules import rule_actions
 from wmplan.sim.engine import step
 from wmplan.sim.features import F_HEADING, F_LENGTH, F_VALID, F_WIDTH, F_X, F_Y
 from wmplan.sim.observe import gather_slots, to_frame
-from wmplan.sim.oracle import oracle_futures
+from wmplan.sim.oracle import oracle_futures, oracle_futures_batch
 from wmplan.sim.params import SimParams
 from wmplan.sim.state import EGO, TrafficState
 
@@ -55,6 +67,10 @@ CHUNK_WINDOWS = 64
 """Held-out windows sampled at once: K_COVERAGE futures of 64 windows are 28 MB of rows, below the size the memory
 allocator serves from fresh pages (:mod:`wmplan._alloc`)."""
 PLAN_OFFSETS_MPS2 = (0.0, 1.0, -2.0)
+CONTESTED_BAND = (0.02, 0.98)
+"""Closed bounds of the oracle's P(collision) of a (state, plan) pair counted as contested."""
+CONTESTED_STRIDE = 4
+"""Decisions between the times at which held-out episodes are screened for contested pairs."""
 
 
 def ade_fde(
@@ -259,8 +275,9 @@ def assess(
     snap_times = sorted(
         {t for t in (cfg.history + 5, n_dec // 3, n_dec // 2) if cfg.history - 1 <= t < n_dec - cfg.horizon}
     )
+    contest_times = list(range(cfg.history - 1, n_dec - cfg.horizon, CONTESTED_STRIDE))
     say(f"simulating {episodes} held-out episodes of {scenario.name}")
-    params, ds, snaps = _heldout(scenario, episodes, seed, snap_times, decision_every)
+    params, ds, snaps = _heldout(scenario, episodes, seed, sorted(set(snap_times) | set(contest_times)), decision_every)
     windows = Windows(ds, spec)
     if not cv_fitted:
         idx_fit = anchor_index(ds, spec, np.arange(episodes // 2))
@@ -343,6 +360,23 @@ def assess(
             out[name]["collision_prob_gap" + suffix] = float(np.abs(p_model - o_coll.mean(-1)).mean())
         out[name]["collision_prob_mean"] = float(p_model.mean())
     oracle_rate = {m: float(truth[m][1].mean()) for m in truth}
+    contested = _contested(
+        predictors,
+        windows,
+        {t: snaps[t] for t in contest_times},
+        ds,
+        params,
+        cfg,
+        scenario,
+        decision_every,
+        oracle_states,
+        oracle_samples,
+        seed,
+        gen,
+    )
+    for name in out:
+        out[name]["collision_prob_gap_contested"] = contested["gaps"].get(name)
+    say(f"contested pairs: {contested['pairs']} in {contested['states']} states")
     return {
         "caution": CAUTION,
         "scenario": scenario.name,
@@ -356,8 +390,63 @@ def assess(
         "oracle_plans_per_state": int(c_n),
         "oracle_samples": oracle_samples,
         "oracle_collision_prob_mean": oracle_rate,
+        "contested": {k: v for k, v in contested.items() if k != "gaps"},
         "predictors": out,
     }
+
+
+def _contested(predictors, windows, snaps, ds, params, cfg, scenario, decision_every, max_states, samples, seed, gen):
+    """Screen every running held-out episode at the times of ``snaps`` with the oracle (traits known) and measure the
+    predictors' collision-probability gap on the (state, plan) pairs inside :data:`CONTESTED_BAND`.
+
+    Returns ``screened_states``, ``states`` (kept: at least one pair in the band, at most ``max_states``),
+    ``pairs``, ``band``, ``oracle_samples``, ``oracle_p`` (the kept pairs' oracle probabilities), ``drawn`` (how,
+    in words) and ``gaps`` (predictor name -> mean |P_model - P_oracle| over the pairs, None without pairs)."""
+    lo, hi = CONTESTED_BAND
+    pool, anchors = [], []
+    for t in sorted(snaps):
+        alive = np.nonzero(ds.traj.alive[:, min(t + cfg.horizon, ds.traj.alive.shape[1] - 1)])[0]
+        pool.append(snaps[t].take(alive))
+        anchors.append(np.stack([alive, np.full(len(alive), t)], axis=1))
+    st_pool = TrafficState.concat(pool)
+    anchor_pool = np.concatenate(anchors)
+    plans = _rule_plans(params, st_pool, cfg.horizon, decision_every)  # (P, C, H, 2)
+    p_oracle = oracle_futures_batch(
+        st_pool,
+        params,
+        np.arange(len(plans)),
+        plans,
+        samples,
+        mode="resampled",
+        plan_dt_s=cfg.plan_dt_s,
+        seed=seed + 500_000 + np.arange(len(plans)),
+    ).collided.mean(-1)  # (P, C)
+    band = (p_oracle >= lo) & (p_oracle <= hi)
+    keep = np.nonzero(band.any(axis=1))[0][:max_states]
+    result = {
+        "band": [lo, hi],
+        "oracle_samples": samples,
+        "screened_states": int(len(plans)),
+        "states": int(len(keep)),
+        "pairs": int(band[keep].sum()),
+        "oracle_p": [float(v) for v in p_oracle[keep][band[keep]]],
+        "drawn": (
+            f"every held-out episode still running, every {CONTESTED_STRIDE}th decision, three rule-based plans "
+            "each, screened by the oracle that re-draws the hidden traits; states with a pair in the band kept in "
+            "time order"
+        ),
+        "gaps": {},
+    }
+    if len(keep) == 0:
+        result["gaps"] = {name: None for name in predictors}
+        return result
+    obatch = to_torch(windows.batch(anchor_pool[keep]))
+    acts = torch.from_numpy(plans[keep].astype(np.float32))
+    for name, pred in predictors.items():
+        rows = pred.sample(obatch, acts, samples, generator=gen.manual_seed(seed + 5))["rows"].numpy()
+        p_model = model_collisions(rows, scenario.ego.length_m, scenario.ego.width_m).mean(-1)  # (S, C)
+        result["gaps"][name] = float(np.abs(p_model - p_oracle[keep])[band[keep]].mean())
+    return result
 
 
 TABLE_COLUMNS = (
@@ -369,6 +458,7 @@ TABLE_COLUMNS = (
     ("latent_nll", "latent", "nll"),
     ("latent_energy_distance", "latent", "energy_distance"),
     ("latent_collision_prob_gap", "latent", "collision_prob_gap"),
+    ("latent_collision_prob_gap_contested", "latent", "collision_prob_gap_contested"),
 )
 """(column of a per-scenario row, predictor, metric key) of :func:`scenario_row`; the two ratios follow."""
 
@@ -382,7 +472,8 @@ def scenario_row(result: dict) -> dict:
     preds = result["predictors"]
     row: dict = {"scenario": result["scenario"]}
     for col, name, key in TABLE_COLUMNS:
-        row[col] = preds[name][key] if name in preds else None
+        row[col] = preds[name].get(key) if name in preds else None
+    row["contested_pairs"] = result.get("contested", {}).get("pairs")
     fde = row["latent_min_fde_k6_m"]
     for name in ("constant_velocity", "deterministic"):
         other = row[f"{name}_min_fde_k6_m"]
@@ -458,14 +549,22 @@ def format_scenario_table(rows: list[dict]) -> str:
         ("NLL", "latent_nll"),
         ("energy dist", "latent_energy_distance"),
         ("|dP coll|", "latent_collision_prob_gap"),
+        ("contested", "latent_collision_prob_gap_contested"),
+        ("pairs", "contested_pairs"),
     )
     width = max([len("scenario"), *(len(r["scenario"]) for r in rows)]) + 2
     lines = [
         "per scenario (minADE/minFDE: best of 6, metres; ratios of minFDE; coverage of the latent model's 90% "
-        "intervals):",
+        "intervals; |dP coll|: mean gap of P(collision) to the oracle's; contested: the same over the pairs whose "
+        f"oracle P lies in [{CONTESTED_BAND[0]}, {CONTESTED_BAND[1]}]):",
         f"{'scenario':<{width}}" + "".join(f"{label:>14}" for label, _ in cols),
     ]
+
+    def cell(value, key: str) -> str:
+        if value is None:
+            return f"{'-':>14}"
+        return f"{int(value):>14d}" if key == "contested_pairs" else f"{value:>14.3f}"
+
     for r in rows:
-        cells = "".join(f"{'-':>14}" if r[key] is None else f"{r[key]:>14.3f}" for _, key in cols)
-        lines.append(f"{r['scenario']:<{width}}" + cells)
+        lines.append(f"{r['scenario']:<{width}}" + "".join(cell(r.get(key), key) for _, key in cols))
     return "\n".join(lines)
