@@ -27,8 +27,8 @@ all, and the states with at least one pair inside the band are kept, in time ord
 them. Where the oracle is sure (P near 0 or 1), a predictor that is never worried looks good; the contested pairs
 are where its collision probability matters. The band is taken on the oracle that re-draws the traits because the
 traits are what no predictor sees: with them known, the futures split only on the drivers' random events, and
-almost no pair is contested (DEVELOPERS.md gives the counts). The entry says how many states were screened, how many had a pair in
-the band, and how many pairs were measured.
+almost no pair is contested (DEVELOPERS.md gives the counts). The entry says how many states were screened, how
+many had a pair in the band, and how many pairs were measured.
 
 Futures for the energy distance and collision probability are decoder means per draw of z (what the planner uses);
 the NLL and the coverage use the full predictive, decoder noise included.
