@@ -210,8 +210,9 @@ def test_the_command_prints_and_writes_one_row_per_scenario(latent_run, determin
 def test_the_contested_gap_is_measured_where_the_oracle_is_unsure(latent_run, deterministic_run, scenario):
     """The contested pairs all have an oracle P(collision) inside the band, are at most three per kept state, the
     kept states at most what was asked and at most what was screened; the contested gap is a mean of absolute
-    differences of two probabilities, so in [0, 1], and None exactly when no pair was found. On short-gap-cut-in, where a neighbour may or may not swerve in, pairs are
-    found (the split is checked with the oracle in tests/sim/test_hidden_intent.py)."""
+    differences of two probabilities, so in [0, 1], and None exactly when no pair was found. On short-gap-cut-in,
+    where a neighbour may or may not swerve in, pairs are found (the split is checked with the oracle in
+    tests/sim/test_hidden_intent.py)."""
     from wmplan.model.assess import CONTESTED_BAND
 
     res = assess(
