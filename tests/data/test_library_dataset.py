@@ -120,9 +120,9 @@ def test_the_dataset_does_not_depend_on_the_batch_size(tmp_path):
     assert a.manifest["array_sha256"] == b.manifest["array_sha256"]
 
 
-def test_one_scenario_gives_the_data_of_a_plain_rollout_and_all_gives_six(tmp_path):
+def test_one_scenario_gives_the_data_of_a_plain_rollout_and_all_gives_every_builtin(tmp_path):
     """A one-scenario dataset holds ``collect`` on ``episode_seeds(seed, n)`` (as before the library datasets);
-    ``simulate all`` lists the six built-ins, short-gap-cut-in among them."""
+    ``simulate all`` lists the eight built-ins, the three hidden-intent scenarios among them."""
     scn = load_scenario("short-gap-cut-in")
     ds = simulate_dataset(scn, tmp_path / "one", episodes=3, seed=9)
     ref = collect(SimParams.from_scenario(scn), episode_seeds(9, 3))
@@ -131,7 +131,8 @@ def test_one_scenario_gives_the_data_of_a_plain_rollout_and_all_gives_six(tmp_pa
     run = run_cli("simulate", "all", "--episodes", 1, "--out", tmp_path / "all", cwd=tmp_path)
     assert run.returncode == 0, run.stderr[-2000:]
     names = [e["name"] for e in json.loads((tmp_path / "all" / MANIFEST_FILE).read_text())["scenarios"]]
-    assert names == list(builtin_names()) and len(names) == 6 and "short-gap-cut-in" in names
+    assert names == list(builtin_names()) and len(names) == 8
+    assert {"short-gap-cut-in", "lane-drop-turns", "courtesy-stop"} <= set(names)
 
 
 def test_a_dataset_of_schema_version_1_still_loads(tmp_path):
